@@ -1,0 +1,30 @@
+"""TBA solver for integrable S-matrices with CDD (TTbar) deformations.
+
+Public names::
+
+    from tba import ising_e8, ttbar, solve_ground_state
+    result = solve_ground_state(ising_e8(), 1.0, ttbar(0.05), tol=1e-12)
+    result.energy, result.error, result.status
+"""
+
+from tba.deformation import CDD, NO_DEFORMATION, higher_spin, ttbar
+from tba.models import (
+    DiagonalModel,
+    free_fermion,
+    get_model,
+    ising_e8,
+    lee_yang,
+    sinh_gordon,
+    user_model,
+)
+from tba.result import SolveError, SolveResult, Status, TBAWarning
+from tba.solver import solve_ground_state, solve_radii
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "CDD", "NO_DEFORMATION", "higher_spin", "ttbar",
+    "DiagonalModel", "free_fermion", "get_model", "ising_e8", "lee_yang", "sinh_gordon", "user_model",
+    "SolveError", "SolveResult", "Status", "TBAWarning",
+    "solve_ground_state", "solve_radii",
+]

@@ -1,0 +1,88 @@
+"""What a solve returns: status codes, the result object and the package's warning class."""
+
+import enum
+from dataclasses import dataclass, field
+from typing import Optional
+
+import numpy as np
+
+
+class Status(str, enum.Enum):
+    """Outcome of one point. The string values are part of the command-line/JSON contract."""
+
+    CONVERGED = "converged"
+    NO_REAL_SOLUTION = "no-real-solution"
+    NOT_CONVERGED = "not-converged"
+
+    def __str__(self):
+        return self.value
+
+
+#: Integer codes stored in HDF5 files next to the energies.
+STATUS_CODES = {Status.CONVERGED: 0, Status.NO_REAL_SOLUTION: 1, Status.NOT_CONVERGED: 2}
+
+
+class TBAWarning(UserWarning):
+    """Warnings issued by the tba package."""
+
+
+class SolveError(RuntimeError):
+    """Raised by `SolveResult.raise_for_status` for a point without a trusted energy."""
+
+
+@dataclass
+class SolveResult:
+    """One solved point.
+
+    ``energy`` and ``error`` are NaN unless ``status`` is CONVERGED; ``error`` is an
+    estimate of |energy - exact| that is meant to bound it (see README, Errors).
+    """
+
+    model: str
+    radius: float
+    couplings: dict
+    status: Status
+    coupling: Optional[float] = None
+    energy: float = np.nan
+    error: float = np.nan
+    momentum: float = 0.0
+    message: str = ""
+    iterations: int = 0
+    residual: float = np.nan
+    effective_radius: float = np.nan
+    fold_indicator: float = np.nan
+    grid: Optional[object] = None
+    rapidities: Optional[np.ndarray] = field(default=None, repr=False)
+    pseudo_energies: Optional[np.ndarray] = field(default=None, repr=False)
+    #: data for warm starts and derivatives, not part of the public contract
+    _state: Optional[object] = field(default=None, repr=False)
+
+    @property
+    def converged(self):
+        return self.status is Status.CONVERGED
+
+    @property
+    def alpha(self):
+        return self.couplings.get(1, 0.0)
+
+    def raise_for_status(self):
+        """Raise `SolveError` unless the point converged; return self otherwise."""
+        if not self.converged:
+            raise SolveError(f"{self.model} at R = {self.radius}: {self.status.value}: {self.message}")
+        return self
+
+    def as_record(self):
+        """The JSON-ready record of the command-line contract."""
+        ok = self.converged
+        return {
+            "model": self.model,
+            "coupling": self.coupling,
+            "radius": self.radius,
+            "alpha": self.alpha,
+            "couplings": {str(k): v for k, v in self.couplings.items()},
+            "energy": float(self.energy) if ok else None,
+            "error": float(self.error) if ok else None,
+            "status": self.status.value,
+            "iterations": int(self.iterations),
+            "message": self.message,
+        }

@@ -1,0 +1,476 @@
+"""Newton solver for the ground-state TBA of a diagonal model with CDD deformations.
+
+The discretised equations on a uniform grid t_i (trapezoid rule, weights h) are
+
+    F_a(i) = eps_a(i) - m_a R cosh t_i + sum_b sum_j K_ab(i - j) L_b(j)
+             + sum_r c_r u_r,a(i) sum_b sum_j v_r,b(j) L_b(j)  = 0
+
+with K_ab(k) = h phi_ab(k h) / 2 pi and, for every CDD spin s, two rank-one terms
+(cosh and sinh parts of cosh(s(t - t'))). Newton's method with a backtracking line
+search solves them; the Jacobian
+
+    J = 1 + K diag(L') + sum_r c_r u_r (v_r L')^T
+
+is factorised densely when the system is small and applied through FFTs inside GMRES
+when it is large (the crossover was measured, see ``DENSE_LIMIT``).
+
+Every point is solved on two grids of increasing resolution (``tba.grid``); the
+difference of their energies, plus the Newton and rounding contributions, is the
+error estimate. More levels are added until the estimate meets the tolerance.
+
+Real solutions stop existing at a fold (square-root branch point). Along the branch
+connected to the undeformed theory the determinant of the small "capacitance" matrix
+of the rank-one terms, ``fold_indicator``, is positive and vanishes at the fold. When
+Newton fails for a deformed point, the deformation is switched on gradually from 0 at
+fixed R; if that continuation ends at a fold before the requested coupling, the point
+has no real solution and is reported as such.
+"""
+
+import math
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+import scipy.sparse.linalg
+from scipy.interpolate import CubicSpline
+
+from kernels import SpectralConvolver, block_toeplitz_matrix, occupation_terms
+from tba.deformation import CDD, NO_DEFORMATION
+from tba.grid import Grid, choose_grid
+from tba.result import SolveResult, Status
+
+#: systems with n_species * N at or below this are factorised densely (measured crossover)
+DENSE_LIMIT = 1200
+#: refinement levels tried before a point is declared not converged
+MAX_LEVEL = 4
+_EPS = np.finfo(float).eps
+
+
+class _Operators:
+    """Kernel samples and the convolution operator for one model on one grid (cached)."""
+
+    def __init__(self, model, grid):
+        n, N = model.n_species, grid.N
+        offsets = grid.h * np.arange(-(N - 1), N)
+        kern = np.ascontiguousarray(model.kernel(offsets) * (grid.h / (2 * np.pi)))
+        self.n, self.N = n, N
+        self.trivial = not np.any(kern)
+        self.dense = n * N <= DENSE_LIMIT
+        if self.trivial:
+            self.matrix = None
+        elif self.dense:
+            self.matrix = block_toeplitz_matrix(kern, N)
+        else:
+            self._spectral = SpectralConvolver(kern)
+
+    def convolve(self, f):
+        if self.trivial:
+            return np.zeros_like(f)
+        if self.dense:
+            return (self.matrix @ f.reshape(-1)).reshape(f.shape)
+        return self._spectral(f)
+
+
+def _operators(model, grid):
+    cache = model._kernel_cache
+    key = (grid.h, grid.N)
+    ops = cache.get(key)
+    if ops is None:
+        if len(cache) > 64:
+            cache.clear()
+        ops = cache[key] = _Operators(model, grid)
+    return ops
+
+
+class Discretization:
+    """The ground-state equations of ``model`` deformed by ``deformation`` at radius R on ``grid``."""
+
+    def __init__(self, model, deformation, radius, grid):
+        self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
+        self.ops = _operators(model, grid)
+        t, h = grid.t, grid.h
+        m = model.masses
+        n, N = model.n_species, grid.N
+        self.shape = (n, N)
+        self.nu = radius * np.outer(m, np.cosh(t))
+        U, V, c = [], [], []
+        for s, coef, q in deformation.separable_terms(model):
+            ch, sh = np.cosh(s * t), np.sinh(s * t)
+            U += [np.outer(q, ch), np.outer(q, sh)]
+            V += [h * np.outer(q, ch), h * np.outer(q, sh)]
+            c += [coef / (2 * np.pi), -coef / (2 * np.pi)]
+        self.U = np.array(U).reshape(len(c), n, N)
+        self.V = np.array(V).reshape(len(c), n, N)
+        self.c = np.array(c)
+        self.wE = -(h / (2 * np.pi)) * np.outer(m, np.cosh(t))
+        self.wP = -(h / (2 * np.pi)) * np.outer(m, np.sinh(t))
+        self.sign = 1 if model.statistics == "fermion" else -1
+
+    # -- the equations -------------------------------------------------------------------
+    def occupation(self, e):
+        L = np.empty(self.shape)
+        dL = np.empty(self.shape)
+        bad = occupation_terms(np.ascontiguousarray(e), self.sign, L, dL)
+        return L, dL, bad == 0
+
+    def separable(self, L):
+        """(scalars S_r = v_r . L, the rank-one terms sum_r c_r S_r u_r)."""
+        S = np.einsum("rij,ij->r", self.V, L)
+        return S, np.einsum("r,rij->ij", self.c * S, self.U)
+
+    def dressing(self, L):
+        """-(K * L): the part of eps that comes from the model's own kernel."""
+        return -self.ops.convolve(L)
+
+    def residual(self, e, L):
+        return e - self.nu - self.dressing(L) + self.separable(L)[1]
+
+    def energy(self, L):
+        return float(np.sum(self.wE * L))
+
+    # -- the Jacobian --------------------------------------------------------------------
+    def jacobian(self, dL):
+        return _Jacobian(self, dL)
+
+    def initial_guess(self, state=None):
+        """eps on this grid from a solved neighbour (any grid, radius, coupling), or the driving term."""
+        if state is None:
+            return self.nu.copy()
+        t = self.grid.t
+        g = np.empty(self.shape)
+        for a in range(self.shape[0]):
+            spline = CubicSpline(state.grid.t, state.dressing[a], extrapolate=False)
+            g[a] = np.nan_to_num(spline(t), nan=0.0)
+        e = self.nu + g
+        if self.c.size and state.scalars.size == self.c.size:
+            e -= np.einsum("r,rij->ij", self.c * state.scalars, self.U)
+        return e
+
+
+class _Jacobian:
+    """J = J0 + U C (V L')^T with J0 = 1 + K diag(L') (the undeformed Jacobian).
+
+    Dense route: J0 is LU-factorised and J is solved with the Woodbury formula, so the
+    r x r capacitance matrix cap = 1 + C (V L')^T J0^{-1} U comes for free; its
+    determinant (the fold indicator) is 1 without deformation and 0 at a fold, while J0
+    stays well conditioned there. Krylov route: GMRES on J for Newton steps, and on the
+    well-conditioned J0 for the fold indicator.
+    """
+
+    def __init__(self, disc, dL):
+        self.disc = disc
+        self.dL = dL
+        n, N = disc.shape
+        self.size = n * N
+        r = disc.c.size
+        self.CVd = disc.c[:, None] * (disc.V * dL).reshape(r, n * N)
+        self.Uf = disc.U.reshape(r, n * N)
+        self._cap = None
+        if disc.ops.dense:
+            J0 = np.eye(self.size)
+            if not disc.ops.trivial:
+                J0 += disc.ops.matrix * dL.reshape(1, -1)
+            self._lu = scipy.linalg.lu_factor(J0, check_finite=False)
+            if r:
+                self._Z = scipy.linalg.lu_solve(self._lu, self.Uf.T, check_finite=False)
+                self._cap = np.eye(r) + self.CVd @ self._Z
+        else:
+            shape = (self.size, self.size)
+            self._op = scipy.sparse.linalg.LinearOperator(shape, matvec=self.matvec, dtype=float)
+            self._op0 = scipy.sparse.linalg.LinearOperator(shape, matvec=self._matvec0, dtype=float)
+
+    def _matvec0(self, x):
+        x = np.asarray(x).reshape(self.disc.shape)
+        return (x + self.disc.ops.convolve(self.dL * x)).reshape(-1)
+
+    def matvec(self, x):
+        y = self._matvec0(x)
+        if self.CVd.size:
+            y += (self.CVd @ np.asarray(x).reshape(-1)) @ self.Uf
+        return y
+
+    @staticmethod
+    def _gmres(op, b, rtol):
+        x, info = scipy.sparse.linalg.gmres(op, b, rtol=rtol, atol=0.0, restart=60, maxiter=20)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"GMRES did not converge (info={info})")
+        return x
+
+    def solve(self, rhs, rtol=1e-13):
+        b = rhs.reshape(-1)
+        if not self.disc.ops.dense:
+            return self._gmres(self._op, b, rtol).reshape(self.disc.shape)
+        y = scipy.linalg.lu_solve(self._lu, b, check_finite=False)
+        if self._cap is not None:
+            y = y - self._Z @ np.linalg.solve(self._cap, self.CVd @ y)
+        return y.reshape(self.disc.shape)
+
+    def fold_indicator(self):
+        """det(1 + C (V L')^T J0^{-1} U) = det J / det J0: 1 undeformed, 0 at a fold."""
+        r = self.disc.c.size
+        if r == 0:
+            return 1.0
+        if self._cap is None:
+            Z = np.stack([self._gmres(self._op0, self.Uf[k], 1e-12) for k in range(r)], axis=1)
+            self._cap = np.eye(r) + self.CVd @ Z
+        return float(np.linalg.det(self._cap))
+
+
+@dataclass
+class State:
+    """A solved point on one grid: enough to warm-start a neighbour or take derivatives."""
+
+    grid: Grid
+    radius: float
+    deformation: CDD
+    eps: np.ndarray
+    dressing: np.ndarray
+    scalars: np.ndarray
+    energy: float
+    momentum: float
+    iteration_error: float
+    rounding_error: float
+    tail_error: float
+    fold_indicator: float
+    residual: float
+    iterations: int
+
+
+@dataclass
+class _Newton:
+    ok: bool
+    e: np.ndarray
+    L: np.ndarray
+    dL: np.ndarray
+    iterations: int
+    residual: float
+    last_dE: float
+    message: str
+    jac: object = None
+
+
+def newton(disc, e, tol, maxiter=60):
+    """Newton's method with backtracking on the discretised equations, from ``e``.
+
+    Stops when the first-order energy change of the last full step is below
+    ``tol |E| / 100`` (quadratic convergence then leaves far less) or when the
+    residual sits at rounding level.
+    """
+    L, dL, ok = disc.occupation(e)
+    if not ok:
+        return _Newton(False, e, L, dL, 0, np.inf, np.inf, "initial guess outside the domain of L")
+    F = disc.residual(e, L)
+    r = float(np.max(np.abs(F)))
+    floor = 64 * _EPS * max(1.0, float(np.max(np.abs(disc.nu))))
+    last_dE = np.inf
+    jac = None
+    for it in range(1, maxiter + 1):
+        try:
+            jac = disc.jacobian(dL)
+            delta = jac.solve(-F, rtol=min(1e-3, max(1e-13, 1e-2 * r)))
+        except (np.linalg.LinAlgError, ValueError) as exc:
+            return _Newton(False, e, L, dL, it, r, last_dE, f"linear solve failed: {exc}")
+        dE = float(np.sum(disc.wE * dL * delta))
+        lam = 1.0
+        while True:
+            e_new = e + lam * delta
+            L_new, dL_new, ok = disc.occupation(e_new)
+            if ok:
+                F_new = disc.residual(e_new, L_new)
+                r_new = float(np.max(np.abs(F_new)))
+                if r_new <= (1 - 0.25 * lam) * r or r_new <= floor:
+                    break
+            lam *= 0.5
+            if lam < 1e-4:
+                if r <= 1e3 * floor:  # already at rounding level: stagnation is convergence
+                    return _Newton(True, e, L, dL, it, r, last_dE, "converged (rounding level)",
+                                   disc.jacobian(dL))
+                return _Newton(False, e, L, dL, it, r, last_dE, "line search failed")
+        e, L, dL, F, r = e_new, L_new, dL_new, F_new, r_new
+        last_dE = abs(lam * dE)
+        if lam == 1.0 and (last_dE <= 1e-2 * tol * abs(disc.energy(L)) and float(np.max(np.abs(delta))) < 1e-6
+                           or r <= floor):
+            # what one more step would change: the iteration error of the returned point
+            jac = disc.jacobian(dL)
+            try:
+                remaining = abs(float(np.sum(disc.wE * dL * jac.solve(-F, rtol=1e-10))))
+            except np.linalg.LinAlgError:
+                remaining = last_dE
+            return _Newton(True, e, L, dL, it, r, remaining, "converged", jac)
+    return _Newton(False, e, L, dL, maxiter, r, last_dE, f"no convergence in {maxiter} Newton steps")
+
+
+def _state(disc, nt, fold=None):
+    L = nt.L
+    S, _ = disc.separable(L)
+    E = disc.energy(L)
+    # rounding: every term of E and of eps carries a relative error of a few ulps
+    rounding = 16 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * nt.e)))
+    # tails beyond the cutoff: int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda) / eps'(Lambda)
+    edge = np.abs(disc.wE[:, [0, -1]] * L[:, [0, -1]]) / disc.grid.h
+    slope = np.maximum(np.abs(nt.e[:, [0, -1]] - nt.e[:, [1, -2]]) / disc.grid.h, 1e-300)
+    tail = float(np.sum(edge / slope))
+    if fold is None:
+        fold = nt.jac.fold_indicator() if nt.jac is not None else np.nan
+    return State(grid=disc.grid, radius=disc.radius, deformation=disc.deformation, eps=nt.e,
+                 dressing=disc.dressing(L), scalars=S, energy=E,
+                 momentum=float(np.sum(disc.wP * L)), iteration_error=nt.last_dE,
+                 rounding_error=float(rounding), tail_error=tail, fold_indicator=float(fold),
+                 residual=nt.residual, iterations=nt.iterations)
+
+
+def _continue_deformation(model, deformation, radius, grid, tol, start=None):
+    """Switch the deformation on in steps lambda: 0 -> 1 at fixed R, staying on the branch of
+    the undeformed theory. Returns (newton outcome or None, message, lambda_fold_estimate)."""
+    disc0 = Discretization(model, NO_DEFORMATION, radius, grid)
+    nt = newton(disc0, disc0.initial_guess(start), tol)
+    iterations = nt.iterations
+    if not nt.ok:
+        return None, f"undeformed equations: {nt.message}", None, iterations
+    lam, step = 0.0, 0.25
+    history = [(0.0, 1.0)]
+    e = nt.e
+    while lam < 1.0:
+        trial = min(1.0, lam + step)
+        disc = Discretization(model, deformation.scaled(trial), radius, grid)
+        out = newton(disc, e, tol)
+        iterations += out.iterations
+        d = out.jac.fold_indicator() if out.ok else np.nan
+        if out.ok and d > 0:
+            lam, e, nt = trial, out.e, out
+            history.append((lam, d))
+            step = min(2 * step, 1.0)
+            if lam == 1.0:
+                return nt, "converged", None, iterations
+        else:
+            step *= 0.5
+            if step < 1e-9:
+                break
+    (l1, d1), (l2, d2) = history[-2], history[-1]
+    slope = (d2 * d2 - d1 * d1) / (l2 - l1)
+    fold = l2 - d2 * d2 / slope if slope < 0 else None
+    return None, f"continuation stopped at {lam:.12g} of the coupling (fold indicator {d2:.3g})", fold, iterations
+
+
+def _validate(radius, tol):
+    try:
+        radius = float(radius)
+    except (TypeError, ValueError):
+        raise TypeError(f"radius must be a real number, got {radius!r}") from None
+    if not (math.isfinite(radius) and radius > 0):
+        raise ValueError(f"radius must be finite and positive, got {radius!r}")
+    try:
+        tol = float(tol)
+    except (TypeError, ValueError):
+        raise TypeError(f"tol must be a real number, got {tol!r}") from None
+    if not (math.isfinite(tol) and 1e-15 <= tol < 1e-2):
+        raise ValueError(f"tol must lie in [1e-15, 1e-2), got {tol!r}")
+    return radius, tol
+
+
+def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None):
+    """Ground-state energy E_0(R) of ``model`` deformed by ``deformation``.
+
+    Parameters
+    ----------
+    model : DiagonalModel
+    radius : float
+        Circumference R > 0 in units of the lightest mass.
+    deformation : CDD, optional
+        Default: undeformed.
+    tol : float
+        Requested relative accuracy of the energy; the returned ``error`` estimates the
+        actual error and is meant to bound it.
+    start : SolveResult, optional
+        A solved neighbour (other radius or coupling) to start Newton from.
+
+    Returns
+    -------
+    SolveResult
+        status CONVERGED, NO_REAL_SOLUTION (a fold lies between the undeformed theory and
+        the requested coupling at this R) or NOT_CONVERGED; energy and error are NaN
+        unless converged.
+    """
+    radius, tol = _validate(radius, tol)
+    deformation = NO_DEFORMATION if deformation is None else deformation
+    if not isinstance(deformation, CDD):
+        raise TypeError(f"deformation must be a CDD, got {type(deformation).__name__}")
+    t0 = time.perf_counter()
+    base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
+                coupling=model.coupling)
+    prev_state = start._state if isinstance(start, SolveResult) and start.converged else None
+    r_eff = prev_state and _effective_radius(prev_state, radius, deformation)
+    r_eff = r_eff if r_eff and r_eff > 0 else radius
+    min_mass = float(np.min(model.masses))
+    states = []
+    iterations = 0
+    level, cutoff_extra = 0, 0.0
+    seed = prev_state
+    while True:
+        grid = choose_grid(model.pole_distance, min_mass, r_eff, tol, level, cutoff_extra)
+        disc = Discretization(model, deformation, radius, grid)
+        nt = newton(disc, disc.initial_guess(seed), tol)
+        iterations += nt.iterations
+        fold = nt.jac.fold_indicator() if nt.ok and not deformation.is_zero else 1.0
+        if not (nt.ok and fold > 0) and not deformation.is_zero:
+            nt, message, lam_fold, its = _continue_deformation(model, deformation, radius, grid,
+                                                               tol, seed)
+            iterations += its
+            if nt is None:
+                if lam_fold is not None and lam_fold < 1.0:
+                    return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=iterations,
+                                       message=f"no real solution: the branch of the undeformed "
+                                               f"theory folds at about {lam_fold:.6g} times the "
+                                               f"requested couplings ({message})")
+                return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                                   message=message)
+            fold = nt.jac.fold_indicator()
+        if not nt.ok:
+            return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                               message=nt.message)
+        state = _state(disc, nt, fold)
+        scale = abs(state.energy)
+        if state.tail_error > 1e-3 * tol * scale and cutoff_extra < 60:
+            cutoff_extra += 4 + math.log(state.tail_error / (1e-3 * tol * scale))
+            seed = state
+            continue
+        states.append(state)
+        seed = state
+        r_eff = _effective_radius(state, radius, deformation) or r_eff
+        if len(states) >= 2:
+            fine, coarse = states[-1], states[-2]
+            error = (abs(fine.energy - coarse.energy) + fine.iteration_error + coarse.iteration_error
+                     + fine.rounding_error + fine.tail_error)
+            if error <= tol * scale or level >= MAX_LEVEL:
+                break
+        level += 1
+    fine = states[-1]
+    status = Status.CONVERGED if error <= tol * scale else Status.NOT_CONVERGED
+    message = (f"converged in {time.perf_counter() - t0:.3g} s" if status is Status.CONVERGED else
+               f"error estimate {error:.3g} above the tolerance after {MAX_LEVEL} refinements")
+    ok = status is Status.CONVERGED
+    return SolveResult(**base, status=status, energy=fine.energy if ok else np.nan,
+                       error=error if ok else np.nan, momentum=fine.momentum, message=message,
+                       iterations=iterations, residual=fine.residual,
+                       effective_radius=_effective_radius(fine, radius, deformation) or np.nan,
+                       fold_indicator=fine.fold_indicator, grid=fine.grid,
+                       rapidities=fine.grid.t, pseudo_energies=fine.eps, _state=fine)
+
+
+def _effective_radius(state, radius, deformation):
+    """R + alpha E for a TTbar-deformed ground state (exact for P = 0), else None."""
+    if not deformation.is_ttbar:
+        return None
+    return radius + deformation.alpha * state.energy
+
+
+def solve_radii(model, radii, deformation=None, *, tol=1e-12, start=None):
+    """Solve a sequence of radii in order, each warm-started from the last converged one."""
+    results = []
+    for R in radii:
+        res = solve_ground_state(model, R, deformation, tol=tol, start=start)
+        if res.converged:
+            start = res
+        results.append(res)
+    return results
