@@ -1,0 +1,5 @@
+import sys
+
+from tba.cli import main
+
+sys.exit(main())
