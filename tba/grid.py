@@ -54,7 +54,7 @@ def ladder(h):
 
 def exponent(tol, level):
     """X: the number of e-folds the grid of refinement ``level`` resolves."""
-    return math.log(1.0 / tol) + LEVEL_MARGIN * (1 + level)
+    return math.log(1.0 / tol) + LEVEL_MARGIN * level
 
 
 def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0):
