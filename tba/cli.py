@@ -136,15 +136,18 @@ def cmd_solve(args, out):
 
 
 DEMO_POINTS = [  # (model, coupling, alpha, radii): a small scan of our own
-    ("sinh-gordon", 0.6, 0.1, "0.5:3:6"),
-    ("sinh-gordon", 0.6, -0.1, "0.5:3:6"),
-    ("ising-e8", None, 0.05, "0.5:3:6"),
-    ("ising-e8", None, -0.05, "0.5:3:6"),
+    ("sinh-gordon", 0.6, 0.1, "0.3:3:10"),
+    ("sinh-gordon", 0.6, -0.1, "0.3:3:10"),
+    ("ising-e8", None, 0.05, "0.2:3:8"),
+    ("ising-e8", None, -0.05, "0.2:3:8"),
 ]
 
 
 def cmd_demo(args, out):
     """A built-in scan: two interacting models, both signs of alpha, printed as a table."""
+    print("Ground-state energies of sinh-Gordon (B = 0.6) and the E8 theory with a TTbar CDD\n"
+          "factor of both signs; on the alpha > 0 side the smallest radii lie past the branch\n"
+          "point and have no real solution.\n", file=out)
     print(TABLE_HEADER, file=out, flush=True)
     for model, coupling, alpha, radii in DEMO_POINTS:
         ns = argparse.Namespace(model=model, coupling=None if coupling is None else str(coupling),

@@ -425,7 +425,12 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         disc = Discretization(model, deformation, radius, grid)
         nt = newton(disc, disc.initial_guess(seed), tol)
         iterations += nt.iterations
-        fold = nt.jac.fold_indicator() if nt.ok and not deformation.is_zero else 1.0
+        if deformation.is_zero:
+            fold = 1.0
+        elif states and nt.ok:
+            fold = states[-1].fold_indicator  # same branch as the coarser level: checked there
+        else:
+            fold = nt.jac.fold_indicator() if nt.ok else np.nan
         if not (nt.ok and fold > 0) and not deformation.is_zero:
             nt, message, lam_fold, its = _continue_deformation(model, deformation, radius, grid,
                                                                tol, seed)
