@@ -28,7 +28,7 @@ has no real solution and is reported as such.
 
 import math
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.linalg
@@ -128,6 +128,17 @@ class Discretization:
     def energy(self, L):
         return float(np.sum(self.wE * L))
 
+    def coupling_derivative(self, L, spin):
+        """dF/dalpha_s at fixed eps: (s / 2pi) q_a [cosh(s t) C - sinh(s t) S], with
+        C, S = sum_b q_b int {cosh, sinh}(s t') L_b(t') dt'. Works whether or not the
+        deformation contains this spin (derivatives at alpha_s = 0)."""
+        t, h = self.grid.t, self.grid.h
+        q = self.deformation.charges(self.model, spin)
+        ch, sh = np.cosh(spin * t), np.sinh(spin * t)
+        C = h * float(q @ L @ ch)
+        S = h * float(q @ L @ sh)
+        return (spin / (2 * np.pi)) * np.outer(q, C * ch - S * sh)
+
     # -- the Jacobian --------------------------------------------------------------------
     def jacobian(self, dL):
         return _Jacobian(self, dL)
@@ -176,7 +187,7 @@ class _Jacobian:
         r = disc.c.size
         self.CVd = disc.c[:, None] * (disc.V * dL).reshape(r, n * N)
         self.Uf = disc.U.reshape(r, n * N)
-        self._cap = None
+        self._cap = self._Z = None
         if disc.ops.dense:
             J0 = np.eye(self.size)
             if not disc.ops.trivial:
@@ -185,9 +196,7 @@ class _Jacobian:
             if r:
                 # one right-hand side at a time: multi-column triangular solves are much
                 # slower for these sizes with some BLAS builds (measured: 5 ms vs 20 us)
-                self._Z = np.stack([scipy.linalg.lu_solve(self._lu, u, check_finite=False)
-                                    for u in self.Uf], axis=1)
-                self._cap = np.eye(r) + self.CVd @ self._Z
+                self._capacitance()
         else:
             shape = (self.size, self.size)
             self._op = scipy.sparse.linalg.LinearOperator(shape, matvec=self.matvec, dtype=float)
@@ -219,15 +228,50 @@ class _Jacobian:
             y = y - self._Z @ np.linalg.solve(self._cap, self.CVd @ y)
         return y.reshape(self.disc.shape)
 
+    def solve0(self, b, rtol=1e-13):
+        """J0^{-1} b for a flat vector b (the undeformed Jacobian: well conditioned at folds)."""
+        if self.disc.ops.dense:
+            return scipy.linalg.lu_solve(self._lu, b, check_finite=False)
+        return self._gmres(self._op0, b, rtol)
+
+    def _capacitance(self):
+        if self._cap is None:
+            r = self.disc.c.size
+            self._Z = np.stack([self.solve0(self.Uf[k], 1e-13) for k in range(r)], axis=1)
+            self._cap = np.eye(r) + self.CVd @ self._Z
+        return self._Z, self._cap
+
     def fold_indicator(self):
         """det(1 + C (V L')^T J0^{-1} U) = det J / det J0: 1 undeformed, 0 at a fold."""
-        r = self.disc.c.size
-        if r == 0:
+        if self.disc.c.size == 0:
             return 1.0
-        if self._cap is None:
-            Z = np.stack([self._gmres(self._op0, self.Uf[k], 1e-12) for k in range(r)], axis=1)
-            self._cap = np.eye(r) + self.CVd @ Z
-        return float(np.linalg.det(self._cap))
+        return float(np.linalg.det(self._capacitance()[1]))
+
+    def bordered_solve(self, f, p, q, a1, a2):
+        """Solve [[J, f], [p^T, q]] [x; y] = [a1; a2] (f, p, a1 of the equations' shape).
+
+        J is handled as J0 + U^T W with the Woodbury formula, so the bordered matrix may be
+        regular while J itself is singular (at a fold): only J0 is ever inverted.
+        """
+        f, p, a1 = f.reshape(-1), p.reshape(-1), a1.reshape(-1)
+        r = self.disc.c.size
+        ya, zf = self.solve0(a1), self.solve0(f)
+        if r:
+            Z, _ = self._capacitance()
+            W = self.CVd
+            M = np.zeros((r + 1, r + 1))
+            M[:r, :r] = np.eye(r) + W @ Z
+            M[:r, r] = W @ zf
+            M[r, :r] = -(p @ Z)
+            M[r, r] = q - p @ zf
+            rhs = np.concatenate([W @ ya, [a2 - p @ ya]])
+            sol = np.linalg.solve(M, rhs)
+            w, y = sol[:r], sol[r]
+            x = ya - Z @ w - zf * y
+        else:
+            y = (a2 - p @ ya) / (q - p @ zf)
+            x = ya - zf * y
+        return x.reshape(self.disc.shape), float(y)
 
 
 @dataclass
@@ -248,6 +292,22 @@ class State:
     fold_indicator: float
     residual: float
     iterations: int
+    disc: object = field(default=None, repr=False)
+    jac: object = field(default=None, repr=False)
+    L: np.ndarray = field(default=None, repr=False)
+    dL: np.ndarray = field(default=None, repr=False)
+    coarse: object = field(default=None, repr=False)
+
+    def derivatives(self, spins=(1,)):
+        """Exact dE/dR and dE/dalpha_s on this grid: J de/dx = -dF/dx with the Newton Jacobian."""
+        disc, jac = self.disc, self.jac
+        out = {}
+        de = jac.solve(disc.nu / disc.radius, rtol=1e-13)  # dF/dR = -nu / R
+        out["dE_dR"] = float(np.sum(disc.wE * self.dL * de))
+        for spin in spins:
+            de = jac.solve(-disc.coupling_derivative(self.L, spin), rtol=1e-13)
+            out[f"dE_dalpha{spin}"] = float(np.sum(disc.wE * self.dL * de))
+        return out
 
 
 @dataclass
@@ -266,9 +326,11 @@ class _Newton:
 def newton(disc, e, tol, maxiter=60):
     """Newton's method with backtracking on the discretised equations, from ``e``.
 
-    Stops when the first-order energy change of the last full step is below
-    ``tol |E| / 100`` (quadratic convergence then leaves far less) or when the
-    residual sits at rounding level.
+    Each step first solves for the Newton correction delta. When the energy change it
+    would make, |dE/deps . delta|, is below ``tol |E| / 100`` and delta is small (the
+    quadratic regime), the current point is returned without the step and that change
+    is its iteration error: an estimate of the distance to the exact discrete solution
+    that needs no extra solve.
     """
     L, dL, ok = disc.occupation(e)
     if not ok:
@@ -276,15 +338,19 @@ def newton(disc, e, tol, maxiter=60):
     F = disc.residual(e, L)
     r = float(np.max(np.abs(F)))
     floor = 64 * _EPS * max(1.0, float(np.max(np.abs(disc.nu))))
-    last_dE = np.inf
-    jac = None
-    for it in range(1, maxiter + 1):
+    dE = np.inf
+    for it in range(maxiter + 1):
         try:
             jac = disc.jacobian(dL)
             delta = jac.solve(-F, rtol=min(1e-3, max(1e-13, 1e-2 * r)))
         except (np.linalg.LinAlgError, ValueError) as exc:
-            return _Newton(False, e, L, dL, it, r, last_dE, f"linear solve failed: {exc}")
-        dE = float(np.sum(disc.wE * dL * delta))
+            return _Newton(False, e, L, dL, it, r, dE, f"linear solve failed: {exc}")
+        dE = abs(float(np.sum(disc.wE * dL * delta)))
+        small = float(np.max(np.abs(delta))) < 1e-6 or r <= floor
+        if small and dE <= 1e-2 * tol * abs(disc.energy(L)):
+            return _Newton(True, e, L, dL, it, r, dE, "converged", jac)
+        if it == maxiter:
+            break
         lam = 1.0
         while True:
             e_new = e + lam * delta
@@ -296,22 +362,11 @@ def newton(disc, e, tol, maxiter=60):
                     break
             lam *= 0.5
             if lam < 1e-4:
-                if r <= 1e3 * floor:  # already at rounding level: stagnation is convergence
-                    return _Newton(True, e, L, dL, it, r, last_dE, "converged (rounding level)",
-                                   disc.jacobian(dL))
-                return _Newton(False, e, L, dL, it, r, last_dE, "line search failed")
+                if r <= 1e3 * floor:  # at rounding level already: stagnation is convergence
+                    return _Newton(True, e, L, dL, it, r, dE, "converged (rounding level)", jac)
+                return _Newton(False, e, L, dL, it, r, dE, "line search failed")
         e, L, dL, F, r = e_new, L_new, dL_new, F_new, r_new
-        last_dE = abs(lam * dE)
-        if lam == 1.0 and (last_dE <= 1e-2 * tol * abs(disc.energy(L)) and float(np.max(np.abs(delta))) < 1e-6
-                           or r <= floor):
-            # what one more step would change: the iteration error of the returned point
-            jac = disc.jacobian(dL)
-            try:
-                remaining = abs(float(np.sum(disc.wE * dL * jac.solve(-F, rtol=1e-10))))
-            except np.linalg.LinAlgError:
-                remaining = last_dE
-            return _Newton(True, e, L, dL, it, r, remaining, "converged", jac)
-    return _Newton(False, e, L, dL, maxiter, r, last_dE, f"no convergence in {maxiter} Newton steps")
+    return _Newton(False, e, L, dL, maxiter, r, dE, f"no convergence in {maxiter} Newton steps")
 
 
 def _state(disc, nt, fold=None):
@@ -330,7 +385,8 @@ def _state(disc, nt, fold=None):
                  dressing=disc.dressing(L), scalars=S, energy=E,
                  momentum=float(np.sum(disc.wP * L)), iteration_error=nt.last_dE,
                  rounding_error=float(rounding), tail_error=tail, fold_indicator=float(fold),
-                 residual=nt.residual, iterations=nt.iterations)
+                 residual=nt.residual, iterations=nt.iterations, disc=disc, jac=nt.jac, L=L,
+                 dL=nt.dL)
 
 
 def _continue_deformation(model, deformation, radius, grid, tol, start=None):
@@ -453,6 +509,9 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
             cutoff_extra += 4 + math.log(state.tail_error / (1e-3 * tol * scale))
             seed = state
             continue
+        state.coarse = states[-1] if states else None
+        if state.coarse is not None:
+            state.coarse.coarse = None  # keep two levels: enough for derivative errors
         states.append(state)
         seed = state
         r_eff = _effective_radius(state, radius, deformation) or r_eff
@@ -492,3 +551,34 @@ def solve_radii(model, radii, deformation=None, *, tol=1e-12, start=None):
             start = res
         results.append(res)
     return results
+
+
+def energy_derivatives(result, spins=(1,)):
+    """Exact derivatives of a converged ground-state energy, with error estimates.
+
+    The linearised TBA equations J de/dx = -dF/dx are solved with the Newton Jacobian of
+    the final grid (no finite differences). Returns a dict with ``dE_dR`` and
+    ``dE_dalpha{s}`` for each spin in ``spins`` (also at alpha_s = 0), and for each key a
+    ``<key>_error``: the difference from the same derivative on the coarser grid plus a
+    rounding allowance, the same rule as for the energy.
+    """
+    if not result.converged:
+        raise ValueError(f"result: derivatives need a converged point, got status {result.status.value}")
+    fine = result._state
+    d_fine = fine.derivatives(spins)
+    d_coarse = fine.coarse.derivatives(spins) if fine.coarse is not None else None
+    out = dict(d_fine)
+    for key, value in d_fine.items():
+        floor = 64 * _EPS * abs(value) * np.sqrt(fine.eps.size)
+        out[key + "_error"] = (abs(value - d_coarse[key]) if d_coarse else abs(value)) + floor
+    return out
+
+
+def flow_residual(result):
+    """The ground state's Burgers-equation residual d_alpha E - E d_R E - P^2/R (P = 0 here),
+    from exact derivatives, with its error estimate and the scale |E dE/dR|."""
+    d = energy_derivatives(result, spins=(1,))
+    E, P, R = result.energy, result.momentum, result.radius
+    residual = d["dE_dalpha1"] - E * d["dE_dR"] - P * P / R
+    error = d["dE_dalpha1_error"] + abs(E) * d["dE_dR_error"] + result.error * abs(d["dE_dR"])
+    return {"residual": residual, "error": error, "scale": abs(E * d["dE_dR"]), **d}

@@ -1,0 +1,405 @@
+"""Pseudo-arclength continuation of the deformed ground-state equations through their fold.
+
+On a fixed grid the discretised equations F(eps; p) = 0 define a curve in (eps, p), with p
+the radius R (at fixed couplings) or the TTbar coupling alpha (at fixed R). Where the
+physical solution meets its square-root branch point the curve turns back (a fold): dp/ds
+changes sign, the Jacobian dF/deps is singular, but the bordered matrix
+
+    [[dF/deps, dF/dp], [tangent_eps^T, tangent_p]]
+
+stays regular. Each bordered solve uses only the undeformed Jacobian J0 = 1 + K diag(L')
+(well conditioned) and the small capacitance matrix of the CDD terms (see ``tba.solver``).
+
+What this module gives:
+* ``locate_fold``: the fold (branch radius R_c, or alpha_c at fixed R) by following the
+  curve and solving dp/ds = 0 with the secant method, on two grids for an error estimate;
+* ``second_branch``: the solution on the other side of the fold (real, unphysical branch);
+* ``complex_pair``: past the fold, the complex-conjugate pair of solutions with complex
+  pseudo-energies, started from the fold's null vector and solved by complex Newton.
+"""
+
+import math
+from dataclasses import dataclass, field
+from typing import Optional
+
+import numpy as np
+import scipy.linalg
+import scipy.sparse.linalg
+
+from tba.deformation import CDD
+from tba.grid import choose_grid
+from tba.solver import Discretization, newton, solve_ground_state
+
+PARAMETERS = ("radius", "alpha")
+
+
+class _Family:
+    """The equations on one grid as a function of the continuation parameter."""
+
+    def __init__(self, model, deformation, radius, grid, parameter):
+        if parameter not in PARAMETERS:
+            raise ValueError(f"parameter must be one of {PARAMETERS}, got {parameter!r}")
+        self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
+        self.parameter = parameter
+        # weights of eps in the arclength norm: a change of eps by m_a cosh t (what a change
+        # of the effective radius does) counts as one unit, spread over the grid
+        drive = np.outer(model.masses, np.cosh(grid.t))
+        self.theta = 1.0 / (drive * drive * drive.size)
+
+    def disc(self, p):
+        if self.parameter == "radius":
+            return Discretization(self.model, self.deformation, p, self.grid)
+        couplings = dict(self.deformation.couplings)
+        couplings[1] = p
+        return Discretization(self.model, CDD(couplings), self.radius, self.grid)
+
+    def dF_dp(self, disc, L):
+        if self.parameter == "radius":
+            return -disc.nu / disc.radius
+        return disc.coupling_derivative(L, 1)
+
+    def norm(self, x, y):
+        return math.sqrt(float(np.sum(self.theta * x * x)) + y * y)
+
+
+@dataclass
+class _Point:
+    eps: np.ndarray
+    p: float
+    tangent: tuple  # (t_eps, t_p), unit in the weighted norm
+    energy: float
+    fold_indicator: float
+
+
+def _tangent(fam, disc, jac, L, previous):
+    """Unit tangent with positive overlap with ``previous`` (or dp/ds < 0 at the start)."""
+    f = fam.dF_dp(disc, L)
+    if previous is None:
+        x = -jac.solve(f)  # dp = 1: J x = -f
+        y = 1.0
+        n = fam.norm(x, y)
+        return -x / n, -y / n  # start by decreasing p (towards the fold)
+    te, tp = previous
+    x, y = jac.bordered_solve(f, fam.theta * te, tp, np.zeros_like(te), 1.0)
+    n = fam.norm(x, y)
+    return x / n, y / n
+
+
+def _correct(fam, eps, p, pred_eps, pred_p, tangent, maxiter=30):
+    """Newton on [F(eps; p) = 0, tangent . (x - x_pred) = 0]."""
+    te, tp = tangent
+    for it in range(maxiter):
+        disc = fam.disc(p)
+        L, dL, ok = disc.occupation(eps)
+        if not ok:
+            return None
+        F = disc.residual(eps, L)
+        g = float(np.sum(fam.theta * te * (eps - pred_eps))) + tp * (p - pred_p)
+        jac = disc.jacobian(dL)
+        dx, dp = jac.bordered_solve(fam.dF_dp(disc, L), fam.theta * te, tp, -F, -g)
+        eps, p = eps + dx, p + dp
+        if not (np.all(np.isfinite(eps)) and math.isfinite(p)) or p <= 0 and fam.parameter == "radius":
+            return None
+        if (float(np.max(np.abs(dx) / (1 + np.abs(eps)))) < 1e-13
+                and abs(dp) < 1e-14 * max(1.0, abs(p))):
+            disc = fam.disc(p)
+            L, dL, ok = disc.occupation(eps)
+            jac = disc.jacobian(dL)
+            return eps, p, disc, jac, L, it + 1
+    return None
+
+
+def _point(fam, eps, p, disc, jac, L, previous_tangent):
+    tangent = _tangent(fam, disc, jac, L, previous_tangent)
+    return _Point(eps=eps, p=p, tangent=tangent, energy=disc.energy(L),
+                  fold_indicator=jac.fold_indicator())
+
+
+def _step(fam, point, ds):
+    te, tp = point.tangent
+    out = _correct(fam, point.eps + ds * te, point.p + ds * tp, point.eps + ds * te,
+                   point.p + ds * tp, point.tangent)
+    if out is None:
+        return None
+    eps, p, disc, jac, L, its = out
+    return _point(fam, eps, p, disc, jac, L, point.tangent), its
+
+
+def _start(fam, p0, start_state=None):
+    disc = fam.disc(p0)
+    nt = newton(disc, disc.initial_guess(start_state), 1e-13)
+    if not nt.ok:
+        raise RuntimeError(f"continuation could not start at {fam.parameter} = {p0}: {nt.message}")
+    return _point(fam, nt.e, p0, disc, nt.jac, nt.L, None)
+
+
+@dataclass
+class Fold:
+    """A fold of the deformed ground state: where two real solutions merge."""
+
+    parameter: str
+    value: float  # R_c or alpha_c
+    energy: float
+    value_error: float
+    energy_error: float
+    second_derivative: float  # d^2 p / ds^2 at the fold (arclength on this grid)
+    fold_indicator: float
+    steps: int
+    point: Optional[_Point] = field(default=None, repr=False)
+    family: Optional[_Family] = field(default=None, repr=False)
+
+
+def _find_fold(fam, point, ds=0.05, max_steps=400):
+    """Follow the curve from ``point`` until dp/ds changes sign, then secant on dp/ds = 0."""
+    steps = 0
+    sign0 = math.copysign(1.0, point.tangent[1])
+    while steps < max_steps:
+        out = _step(fam, point, ds)
+        steps += 1
+        if out is None:
+            ds *= 0.5
+            if ds < 1e-10:
+                raise RuntimeError("continuation stalled before reaching a fold")
+            continue
+        new, its = out
+        if math.copysign(1.0, new.tangent[1]) != sign0:
+            break
+        point = new
+        ds = min(ds * (1.5 if its <= 3 else 1.0), 0.5)
+    else:
+        raise RuntimeError(f"no fold within {max_steps} continuation steps")
+    # secant on tau_p(s) between s = 0 (point) and s = ds (new)
+    s0, f0 = 0.0, point.tangent[1]
+    s1, f1 = ds, new.tangent[1]
+    best = new
+    for _ in range(60):
+        s2 = s1 - f1 * (s1 - s0) / (f1 - f0)
+        out = _step(fam, point, s2)
+        steps += 1
+        if out is None:
+            break
+        best = out[0]
+        f2 = best.tangent[1]
+        s0, f0, s1, f1 = s1, f1, s2, f2
+        if abs(f2) < 1e-14 or abs(s1 - s0) < 1e-15:
+            break
+    curvature = (f1 - f0) / (s1 - s0) if s1 != s0 else math.nan
+    return best, curvature, steps
+
+
+def _design_radius(model, deformation, radius, parameter):
+    """A safe (small) effective radius to design the grid of a continuation."""
+    alpha = max(abs(deformation.alpha), 1e-12)
+    guess = 0.3 * math.sqrt(alpha)
+    if parameter == "alpha":
+        guess = min(guess, 0.3 * radius)
+    return guess
+
+
+def locate_fold(model, deformation, *, parameter="radius", radius=None, start=None, tol=1e-12):
+    """The fold of the deformed ground state, by pseudo-arclength continuation.
+
+    parameter="radius": at fixed couplings, the branch radius R_c (alpha > 0); the curve
+    is followed from ``start`` (a radius above R_c, default twice the CFT estimate).
+    parameter="alpha": at fixed ``radius``, the TTbar coupling alpha_c where the fold lies.
+
+    The fold is located on two grids of increasing resolution; their difference is the error
+    estimate (plus rounding). Returns a `Fold` (values of the finer grid).
+    """
+    if parameter == "radius":
+        if deformation.alpha <= 0 and deformation.is_ttbar:
+            raise ValueError("deformation: the ground state has no fold in R for alpha <= 0")
+        p0 = float(start) if start is not None else 2.0 * math.sqrt(2 * math.pi * deformation.alpha / 3)
+        r_ref = p0
+    else:
+        if radius is None:
+            raise ValueError("radius is required for parameter='alpha'")
+        p0 = float(start) if start is not None else max(deformation.alpha, 1e-3)
+        r_ref = float(radius)
+    r_design = _design_radius(model, deformation, r_ref, parameter)
+    folds = []
+    for level in (0, 1):
+        grid = choose_grid(model.pole_distance, float(np.min(model.masses)), r_design, tol, level,
+                           cutoff_extra=4.0)
+        defo = deformation
+        fam = _Family(model, defo, radius, grid, parameter)
+        seed = None
+        if parameter == "radius":
+            res = solve_ground_state(model, p0, deformation, tol=tol)
+        else:
+            res = solve_ground_state(model, radius, CDD({**deformation.couplings, 1: p0}), tol=tol)
+        if not res.converged:
+            raise RuntimeError(f"continuation start point did not converge: {res.message}")
+        seed = res._state
+        point = _start(fam, p0, seed)
+        if parameter == "alpha":  # move towards the fold: increasing alpha
+            point.tangent = (-point.tangent[0], -point.tangent[1])
+        fold_point, curvature, steps = _find_fold(fam, point)
+        folds.append((fold_point, curvature, steps, fam))
+    (c_pt, _, _, _), (f_pt, curvature, steps, fam) = folds
+    eps64 = np.finfo(float).eps
+    value_error = abs(f_pt.p - c_pt.p) + 64 * eps64 * abs(f_pt.p)
+    energy_error = abs(f_pt.energy - c_pt.energy) + 64 * eps64 * abs(f_pt.energy)
+    return Fold(parameter=parameter, value=f_pt.p, energy=f_pt.energy, value_error=value_error,
+                energy_error=energy_error, second_derivative=curvature,
+                fold_indicator=f_pt.fold_indicator, steps=steps, point=f_pt, family=fam)
+
+
+# -- beyond the fold ------------------------------------------------------------------------------
+
+@dataclass
+class BranchSolution:
+    """A solution off the physical branch, labelled as what it is."""
+
+    label: str  # "second-branch" or "complex-pair"
+    radius: float
+    energy: complex
+    fold_indicator: complex
+    residual: float
+    eps: np.ndarray = field(repr=False)
+
+    @property
+    def conjugate_energy(self):
+        return np.conj(self.energy)
+
+
+def second_branch(fold, radius):
+    """The real solution at ``radius`` (> R_c) on the far side of the fold (radius folds only).
+
+    The curve is followed past the fold until it passes ``radius`` again, and the point is
+    then corrected at fixed radius by Newton's method.
+    """
+    if fold.parameter != "radius":
+        raise ValueError("fold: second_branch needs a fold in the radius")
+    if not radius > fold.value:
+        raise ValueError(f"radius must exceed R_c = {fold.value:.12g}, got {radius}")
+    fam = fold.family
+    point = fold.point
+    ds = 0.02
+    steps = 0
+    while point.p < radius:
+        out = _step(fam, point, ds)
+        steps += 1
+        if out is None:
+            ds *= 0.5
+            if ds < 1e-10 or steps > 2000:
+                raise RuntimeError("continuation along the second branch stalled")
+            continue
+        new, its = out
+        if new.p > radius:
+            break
+        point = new
+        ds = min(ds * 1.5, 0.5)
+    disc = fam.disc(radius)
+    nt = newton(disc, point.eps, 1e-13)
+    if not nt.ok:
+        raise RuntimeError(f"second-branch point did not converge: {nt.message}")
+    return BranchSolution("second-branch", radius, disc.energy(nt.L), nt.jac.fold_indicator(),
+                          nt.residual, nt.e)
+
+
+class ComplexEquations:
+    """The discretised equations with complex pseudo-energies (and, optionally, complex radius).
+
+    L(eps) = log(1 + e^{-eps}) continued from the real axis (principal branch of
+    log1p in the variable e^{-|Re eps|}); the real kernel operators act on real and
+    imaginary parts separately.
+    """
+
+    def __init__(self, disc, radius=None):
+        self.disc = disc
+        self.nu = disc.nu if radius is None else disc.nu * (radius / disc.radius)
+
+    @staticmethod
+    def occupation(e):
+        pos = e.real >= 0
+        x = np.exp(np.where(pos, -e, e))
+        L = np.where(pos, np.log1p(x), -e + np.log1p(x))
+        dL = np.where(pos, -x / (1 + x), -1 / (1 + x))
+        return L, dL
+
+    def _conv(self, f):
+        ops = self.disc.ops
+        return ops.convolve(np.ascontiguousarray(f.real)) + 1j * ops.convolve(np.ascontiguousarray(f.imag))
+
+    def residual(self, e, L):
+        d = self.disc
+        S = np.einsum("rij,ij->r", d.V, L)
+        return e - self.nu + self._conv(L) + np.einsum("r,rij->ij", d.c * S, d.U)
+
+    def solve_linear(self, dL, rhs):
+        d = self.disc
+        n, N = d.shape
+        r = d.c.size
+        Uf = d.U.reshape(r, n * N)
+        CVd = d.c[:, None] * (d.V * dL).reshape(r, n * N)
+        if d.ops.dense:
+            J = np.eye(n * N, dtype=complex)
+            if not d.ops.trivial:
+                J += d.ops.matrix * dL.reshape(1, -1)
+            if r:
+                J += Uf.T @ CVd
+            return scipy.linalg.solve(J, rhs.reshape(-1), check_finite=False).reshape(d.shape)
+
+        def matvec(x):
+            x = np.asarray(x).reshape(d.shape)
+            y = x + self._conv(dL * x)
+            return y.reshape(-1) + ((CVd @ x.reshape(-1)) @ Uf if r else 0)
+
+        op = scipy.sparse.linalg.LinearOperator((n * N, n * N), matvec=matvec, dtype=complex)
+        x, info = scipy.sparse.linalg.gmres(op, rhs.reshape(-1), rtol=1e-13, atol=0.0, restart=80,
+                                            maxiter=30)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"complex GMRES did not converge (info={info})")
+        return x.reshape(d.shape)
+
+    def energy(self, L):
+        return complex(np.sum(self.disc.wE * L))
+
+    def newton(self, e, maxiter=60):
+        e = np.asarray(e, dtype=complex)
+        for it in range(maxiter):
+            L, dL = self.occupation(e)
+            F = self.residual(e, L)
+            r = float(np.max(np.abs(F)))
+            delta = self.solve_linear(dL, -F)
+            e = e + delta
+            if float(np.max(np.abs(delta))) < 1e-13 * max(1.0, float(np.max(np.abs(e.real[:, e.shape[1] // 2])))):
+                L, dL = self.occupation(e)
+                return e, L, dL, float(np.max(np.abs(self.residual(e, L)))), True
+            if not np.all(np.isfinite(e)):
+                break
+        return e, None, None, math.inf, False
+
+    def derivative_radius(self, L, dL):
+        """dE/dR of a complex solution (exact, linearised equations)."""
+        de = self.solve_linear(dL, self.nu / (self.nu.flat[0] / self.disc.nu.flat[0] * self.disc.radius))
+        return complex(np.sum(self.disc.wE * dL * de))
+
+
+def complex_pair(fold, radius):
+    """The complex-conjugate pair of solutions at ``radius`` < R_c (radius folds only).
+
+    Near the fold R(s) = R_c + R'' s^2 / 2 along the real curve; continuing s to imaginary
+    values gives the start eps_c + s t_eps with s = i sqrt(2 (R_c - R) / R''), which complex
+    Newton polishes. Returns the member with Im E > 0; its partner is the conjugate.
+    """
+    if fold.parameter != "radius":
+        raise ValueError("fold: complex_pair needs a fold in the radius")
+    if not 0 < radius < fold.value:
+        raise ValueError(f"radius must lie in (0, R_c = {fold.value:.12g}), got {radius}")
+    fam = fold.family
+    curvature = fold.second_derivative
+    if not (curvature > 0):
+        raise RuntimeError("fold curvature not available")
+    s = 1j * math.sqrt(2 * (fold.value - radius) / curvature)
+    e0 = fold.point.eps + s * fold.point.tangent[0]
+    eqs = ComplexEquations(fam.disc(radius))
+    e, L, dL, res, ok = eqs.newton(e0)
+    if not ok:
+        raise RuntimeError(f"complex Newton did not converge at R = {radius}")
+    E = eqs.energy(L)
+    if E.imag < 0:
+        e, E = np.conj(e), np.conj(E)
+    det = complex(np.nan)
+    return BranchSolution("complex-pair", radius, E, det, res, e)

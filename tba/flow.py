@@ -1,0 +1,188 @@
+"""The Burgers flow of CDD-deformed levels: predictions, the CFT closed form, branch points.
+
+With S -> S exp(i alpha m_a m_b sinh t) every level obeys
+
+    d/dalpha E = E dE/dR + P^2 / R,        P R = 2 pi k fixed.
+
+Its solution by characteristics: the deformed level at (R, alpha) is the undeformed level
+at the effective radius R~, seen from a frame boosted by the rapidity beta,
+
+    tanh beta = alpha P~ / (R~ - alpha E~),    E~ = E(R~, 0),  P~ = 2 pi k / R~,
+    E = E~ cosh beta + P~ sinh beta,           R = R~ cosh beta - alpha E.
+
+For P = 0 this is R = R~ - alpha E(R~, 0), E(R, alpha) = E(R~, 0). (The boosted driving term
+m (R + alpha E) cosh t - m alpha P sinh t = m R~ cosh(t - beta) is where it comes from.)
+
+Ground-state branch point (alpha > 0): dR/dR~ = 1 - alpha E'(R~) vanishes at E'(R~_*) = 1/alpha;
+R_c = R~_* - alpha E(R~_*); below R_c the two real solutions become a complex pair.
+"""
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import brentq
+
+from tba.deformation import NO_DEFORMATION
+from tba.solver import energy_derivatives, solve_ground_state
+
+
+# -- CFT closed form ---------------------------------------------------------------------------
+
+def cft_energy(radius, alpha, c, delta=0.0, delta_bar=0.0):
+    """Deformed CFT level: (R / 2 alpha) (sqrt(1 + 4 alpha E0 / R + 4 alpha^2 P^2 / R^2) - 1).
+
+    E0 = 2 pi (delta + delta_bar - c/12) / R, P = 2 pi (delta - delta_bar) / R. Written without
+    the cancellation at small alpha. NaN where the square root is imaginary (past the branch point).
+    """
+    R = float(radius)
+    E0 = 2 * math.pi * (delta + delta_bar - c / 12.0) / R
+    P = 2 * math.pi * (delta - delta_bar) / R
+    x = 4 * alpha * E0 / R + 4 * alpha * alpha * P * P / (R * R)
+    if 1 + x < 0:
+        return math.nan
+    return (2 * E0 + 2 * alpha * P * P / R) / (math.sqrt(1 + x) + 1)
+
+
+def cft_branch_radius(c, alpha):
+    """Ground-state branch radius of a deformed CFT: sqrt(2 pi c alpha / 3) (alpha > 0)."""
+    return math.sqrt(2 * math.pi * c * alpha / 3)
+
+
+# -- predictions from an undeformed level --------------------------------------------------------
+
+@dataclass
+class FlowPrediction:
+    energy: float
+    momentum: float
+    effective_radius: float  # R~
+    boost: float  # beta
+    error: float
+
+
+def predict(level, radius, alpha, k=0, guess=None):
+    """Deformed level at (R, alpha) from an undeformed one by characteristics.
+
+    ``level(Rt)`` returns (E(Rt, 0), dE/dR(Rt, 0), error of E); ``k`` is the momentum
+    quantum number (P R = 2 pi k). The root R~ is the one continuously connected to
+    alpha = 0 (R~ = R), found by Newton's method on R(R~) = radius.
+    """
+    R = float(radius)
+
+    def radius_of(Rt):
+        E_u, dE_u, err = level(Rt)
+        P_u = 2 * math.pi * k / Rt
+        beta = math.atanh(alpha * P_u / (Rt - alpha * E_u)) if k else 0.0
+        E = E_u * math.cosh(beta) + P_u * math.sinh(beta)
+        return Rt * math.cosh(beta) - alpha * E, E, beta, err, dE_u
+
+    Rt = guess if guess is not None else R
+    for _ in range(100):
+        R_of, E, beta, err, dE_u = radius_of(Rt)
+        if k == 0:
+            slope = 1 - alpha * dE_u
+        else:  # numerical slope of R(R~); the boost makes the closed form long
+            h = 1e-6 * Rt
+            slope = (radius_of(Rt + h)[0] - radius_of(Rt - h)[0]) / (2 * h)
+        step = (R_of - R) / slope
+        Rt_new = Rt - step
+        while Rt_new <= 0:
+            step /= 2
+            Rt_new = Rt - step
+        Rt = Rt_new
+        if abs(step) <= 1e-15 * Rt:
+            break
+    R_of, E, beta, err, dE_u = radius_of(Rt)
+    P = 2 * math.pi * k / R
+    # an error err in E(R~) moves R~ by alpha err / slope and E by E' that amount
+    slope = 1 - alpha * dE_u
+    error = err * (1 + abs(alpha * dE_u / slope)) if slope != 0 else math.inf
+    return FlowPrediction(energy=E, momentum=P, effective_radius=Rt, boost=beta, error=error)
+
+
+class UndeformedCurve:
+    """E_0(R, 0) of a model by TBA on demand, with exact derivatives, warm starts and a cache."""
+
+    def __init__(self, model, tol=1e-13):
+        self.model, self.tol = model, tol
+        self._cache = {}
+        self._last = None
+
+    def solve(self, radius):
+        R = float(radius)
+        res = self._cache.get(R)
+        if res is None:
+            res = solve_ground_state(self.model, R, NO_DEFORMATION, tol=self.tol, start=self._last)
+            res.raise_for_status()
+            self._cache[R] = self._last = res
+        return res
+
+    def __call__(self, radius):
+        res = self.solve(radius)
+        d = energy_derivatives(res)
+        return res.energy, d["dE_dR"], res.error
+
+    def derivative(self, radius):
+        return self(radius)[1]
+
+
+def predict_ground_state(model, radius, alpha, tol=1e-13, curve=None):
+    """Flow prediction E_0(R, alpha) from the model's undeformed ground state."""
+    curve = curve or UndeformedCurve(model, tol)
+    return predict(curve, radius, alpha)
+
+
+# -- the ground state's branch point ---------------------------------------------------------------
+
+@dataclass
+class BranchPoint:
+    """Where the deformed ground state stops being real (alpha > 0)."""
+
+    model: str
+    alpha: float
+    status: str  # "found" or "none" (alpha <= 0: no branch point on this side)
+    radius: float = math.nan
+    energy: float = math.nan
+    effective_radius: float = math.nan
+    radius_error: float = math.nan
+    energy_error: float = math.nan
+    message: str = ""
+
+    def as_record(self):
+        ok = self.status == "found"
+        return {"model": self.model, "alpha": self.alpha, "status": self.status,
+                "radius": self.radius if ok else None, "energy": self.energy if ok else None,
+                "effective_radius": self.effective_radius if ok else None,
+                "radius_error": self.radius_error if ok else None,
+                "energy_error": self.energy_error if ok else None, "message": self.message}
+
+
+def branch_point(model, alpha, tol=1e-13, curve=None):
+    """R_c(alpha) of the ground state from the undeformed curve: E_0'(R~_*) = 1/alpha.
+
+    E_0 is increasing and concave, so E_0' falls monotonically from +inf (R -> 0) to 0 and the
+    root is unique; it is bracketed from the CFT estimate and polished with Brent's method on
+    the exact derivative. R_c = R~_* - alpha E_0(R~_*) is stationary in R~_*, so its error is
+    dominated by alpha times the error of E_0.
+    """
+    alpha = float(alpha)
+    if not math.isfinite(alpha):
+        raise ValueError(f"alpha must be finite, got {alpha!r}")
+    if alpha <= 0:
+        return BranchPoint(model.name, alpha, "none",
+                           message="the ground state has no branch point for alpha <= 0")
+    curve = curve or UndeformedCurve(model, tol)
+    g = lambda x: curve.derivative(math.exp(x)) - 1.0 / alpha  # noqa: E731 (monotone in x = log R~)
+    x0 = 0.5 * math.log(math.pi * 0.5 * alpha / 6)  # CFT with c = 1/2: E' = pi c / (6 R^2)
+    lo, hi = x0 - 0.5, x0 + 0.5
+    while g(lo) < 0:
+        lo -= 1.0
+    while g(hi) > 0:
+        hi += 1.0
+    x = brentq(g, lo, hi, xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=200)
+    Rt = math.exp(x)
+    E, dE, err = curve(Rt)
+    Rc = Rt - alpha * E
+    return BranchPoint(model.name, alpha, "found", radius=Rc, energy=E, effective_radius=Rt,
+                       radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
+                       message=f"E_0'(R~) = 1/alpha at R~ = {Rt:.15g}")
