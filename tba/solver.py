@@ -298,12 +298,19 @@ class State:
     dL: np.ndarray = field(default=None, repr=False)
     coarse: object = field(default=None, repr=False)
 
-    def derivatives(self, spins=(1,)):
-        """Exact dE/dR and dE/dalpha_s on this grid: J de/dx = -dF/dx with the Newton Jacobian."""
+    def derivatives(self, spins=(1,), second=False):
+        """Exact dE/dR, dE/dalpha_s (and d2E/dR2) on this grid from the linearised equations
+        J de/dx = -dF/dx with the Newton Jacobian."""
         disc, jac = self.disc, self.jac
         out = {}
         de = jac.solve(disc.nu / disc.radius, rtol=1e-13)  # dF/dR = -nu / R
         out["dE_dR"] = float(np.sum(disc.wE * self.dL * de))
+        if second:
+            # d/dR of J e' + F_R = 0: J e'' = -(K + separable)(L'' e'^2), F_R has no eps in it
+            d2L = -self.dL * (1.0 + self.dL) if disc.sign > 0 else -self.dL * (self.dL - 1.0)
+            X = d2L * de * de
+            d2e = jac.solve(-(disc.ops.convolve(X) + disc.separable(X)[1]), rtol=1e-13)
+            out["d2E_dR2"] = float(np.sum(disc.wE * (self.dL * d2e + X)))
         for spin in spins:
             de = jac.solve(-disc.coupling_derivative(self.L, spin), rtol=1e-13)
             out[f"dE_dalpha{spin}"] = float(np.sum(disc.wE * self.dL * de))
@@ -553,20 +560,21 @@ def solve_radii(model, radii, deformation=None, *, tol=1e-12, start=None):
     return results
 
 
-def energy_derivatives(result, spins=(1,)):
+def energy_derivatives(result, spins=(1,), second=False):
     """Exact derivatives of a converged ground-state energy, with error estimates.
 
     The linearised TBA equations J de/dx = -dF/dx are solved with the Newton Jacobian of
     the final grid (no finite differences). Returns a dict with ``dE_dR`` and
-    ``dE_dalpha{s}`` for each spin in ``spins`` (also at alpha_s = 0), and for each key a
+    ``dE_dalpha{s}`` for each spin in ``spins`` (also at alpha_s = 0), ``d2E_dR2`` when
+    ``second`` is true, and for each key a
     ``<key>_error``: the difference from the same derivative on the coarser grid plus a
     rounding allowance, the same rule as for the energy.
     """
     if not result.converged:
         raise ValueError(f"result: derivatives need a converged point, got status {result.status.value}")
     fine = result._state
-    d_fine = fine.derivatives(spins)
-    d_coarse = fine.coarse.derivatives(spins) if fine.coarse is not None else None
+    d_fine = fine.derivatives(spins, second)
+    d_coarse = fine.coarse.derivatives(spins, second) if fine.coarse is not None else None
     out = dict(d_fine)
     for key, value in d_fine.items():
         floor = 64 * _EPS * abs(value) * np.sqrt(fine.eps.size)

@@ -57,6 +57,9 @@ class DiagonalModel:
     statistics : "fermion" or "boson"
     coupling : float or None
         The model's own coupling (sinh-Gordon B), recorded in output files.
+    bulk_energy_density : float or None
+        The vacuum energy per unit length that the TBA energy E_0 leaves out (E = E_0 + f R),
+        where it is known; None otherwise.
     description : str
     """
 
@@ -68,6 +71,7 @@ class DiagonalModel:
     sign: Optional[np.ndarray] = None
     statistics: str = "fermion"
     coupling: Optional[float] = None
+    bulk_energy_density: Optional[float] = None
     description: str = ""
     _kernel_cache: dict = field(default_factory=dict, repr=False, compare=False)
 
@@ -155,7 +159,8 @@ class DiagonalModel:
     def describe(self):
         """A JSON-ready summary written into output files."""
         d = {"name": self.name, "masses": self.masses.tolist(), "statistics": self.statistics,
-             "pole_distance": float(self.pole_distance), "coupling": self.coupling}
+             "pole_distance": float(self.pole_distance), "coupling": self.coupling,
+             "bulk_energy_density": self.bulk_energy_density}
         if self.blocks is not None:
             d["blocks"] = [[{str(x): k for x, k in c.items()} for c in row] for row in self.blocks]
         return d

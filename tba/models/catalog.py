@@ -3,6 +3,7 @@
 Each function returns a `DiagonalModel`; ``MODELS`` maps command-line names to them.
 """
 
+import math
 from fractions import Fraction
 
 import numpy as np
@@ -35,10 +36,19 @@ def sinh_gordon(B):
                          description=f"sinh-Gordon, B = {B!r}")
 
 
+def _ade_bulk(blocks):
+    """Bulk energy density of an ADE theory from the lightest particle's S-matrix:
+    f = -m_1^2 / (8 sum_x n_11(x) sin(pi x)). Formula from memory; checked in
+    tests/test_thermo.py by fitting R E_0(R) at small R (Lee-Yang, E8)."""
+    return -1.0 / (8.0 * sum(k * math.sin(math.pi * float(x)) for x, k in blocks[0][0].items()))
+
+
 def lee_yang():
-    """Scaling Lee-Yang model: S = f_(2/3), c_eff = 2/5 (the A_1 tadpole of the ADE series)."""
+    """Scaling Lee-Yang model: S = f_(2/3), c_eff = 2/5 (the A_1 tadpole of the ADE series).
+    Bulk energy density -m^2 / (4 sqrt 3)."""
     masses, blocks = ade_scattering(TADPOLE_INCIDENCE, TADPOLE_COXETER)
     return DiagonalModel(name="lee-yang", masses=masses, blocks=blocks,
+                         bulk_energy_density=_ade_bulk(blocks),
                          description="scaling Lee-Yang model, S = f_(2/3)")
 
 
@@ -50,6 +60,7 @@ def ising_e8():
     """
     masses, blocks = ade_scattering(E8_INCIDENCE, E8_COXETER)
     return DiagonalModel(name="ising-e8", masses=masses, blocks=blocks,
+                         bulk_energy_density=_ade_bulk(blocks),
                          description="E8 scaling Ising model, 8 particles")
 
 
