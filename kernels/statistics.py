@@ -25,8 +25,11 @@ def _fermion(e):
 def _boson(e):
     if e <= 0.0:
         return math.nan, math.nan
-    x = math.exp(-e)
-    return -math.log1p(-x), -x / (1.0 - x)
+    if e > 0.6931471805599453:  # e^{-e} < 1/2: log1p keeps every digit of the small L
+        x = math.exp(-e)
+        return -math.log1p(-x), -x / (1.0 - x)
+    # 1 - e^{-e} = -expm1(-e) keeps every digit for small e
+    return -math.log(-math.expm1(-e)), -1.0 / math.expm1(e)
 
 
 @numba.njit(cache=True, nogil=True)
@@ -36,6 +39,8 @@ def occupation_terms(eps, sign, L, dL):
     ``sign`` is +1 for fermions and -1 for bosons. Returns the number of
     points where the bosonic L is undefined (eps <= 0), 0 for fermions.
     """
+    if L.size != eps.size or dL.size != eps.size:
+        raise ValueError("L and dL must have the size of eps")
     e_flat = eps.ravel()
     L_flat = L.ravel()
     d_flat = dL.ravel()

@@ -220,7 +220,7 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
     folds = []
     for level in (0, 1):
         grid = choose_grid(model.pole_distance, float(np.min(model.masses)), r_design, tol, level,
-                           cutoff_extra=4.0)
+                           cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1))
         defo = deformation
         fam = _Family(model, defo, radius, grid, parameter)
         seed = None

@@ -7,8 +7,8 @@ a strip |Im t| < d: the error of int f dt behaves like exp(-2 pi d / h). Two eff
 * the pseudo-energies: L = log(1 + e^{-eps}) is singular where eps = i pi (2k+1); for
   the driving term m R cosh t this first happens at |Im t| = pi/2.
 
-At large radius the integrands are sharply peaked (width ~ 1/sqrt(m R)); the rule then
-also asks h <= pi sqrt(2 / (m R X)). The cutoff Lambda is where m R (cosh Lambda - 1)
+At large radius the integrands are sharply peaked (width ~ 1/sqrt(m R)) and exponentially
+small, so the strip bound is taken relative to e^{-m R} (``_large_radius_spacing``). The cutoff Lambda is where m R (cosh Lambda - 1)
 exceeds X, so that the neglected tails are e^{-X} relative to the peak.
 
 X = log(1/tol) + margin grows with the refinement level. Spacings are taken from a fixed
@@ -21,6 +21,9 @@ from dataclasses import dataclass
 import numpy as np
 
 LADDER_STEPS_PER_OCTAVE = 8
+#: ladder steps between refinement levels: h shrinks by 2^(-1/2) per level, so the error of
+#: a level is about the 1.4th power of the previous one and their difference bounds it
+LEVEL_STEPS = 4
 #: extra digits asked of each refinement level, in units of e-folds
 LEVEL_MARGIN = 4.0
 #: N is rounded up to a multiple of this (plus one), so nearby radii share cached operators
@@ -57,16 +60,51 @@ def exponent(tol, level):
     return math.log(1.0 / tol) + LEVEL_MARGIN * level
 
 
-def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0):
+def _large_radius_spacing(mr, X):
+    """Largest h whose trapezoid error for int cosh t e^{-mr cosh t} dt is e^{-X} relative.
+
+    The error is bounded by exp(mr (1 - cos y) - 2 pi y / h) for any strip half-width
+    0 < y <= pi/2: y = pi/2 gives h = pi^2 / (X + mr); the saddle point sin y = 2 pi / (h mr)
+    does better at large mr. Both bounds are valid; the larger h is kept.
+    """
+    h = math.pi ** 2 / (X + mr)
+
+    def excess(h):  # min over y of the exponent, plus X (<= 0 means h is fine)
+        s = 2 * math.pi / (h * mr)
+        if s >= 1:
+            return mr - math.pi ** 2 / h + X
+        y = math.asin(s)
+        return mr * (1 - math.cos(y)) - 2 * math.pi * y / h + X
+
+    lo, hi = h, 4.0
+    if excess(hi) <= 0:
+        return hi
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if excess(mid) <= 0 else (lo, mid)
+    return lo
+
+
+def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, max_spin=1):
     """The grid for a point with effective radius ``r_eff`` (> 0) at relative tolerance ``tol``.
 
-    ``cutoff_extra`` widens the cutoff (in e-folds) when a solve found its tails too large.
+    Level 0 resolves log(1/tol) e-folds; every further level is LEVEL_STEPS ladder steps
+    finer (h / sqrt 2) and cuts off LEVEL_MARGIN e-folds further out, so that successive
+    levels always differ and the coarser one's error dominates their difference. ``cutoff_extra`` widens the cutoff (in
+    e-folds) when a solve found its tails too large. ``max_spin`` is the highest CDD spin:
+    a cosh(s t) term brings the singularities of L to |Im t| = pi / 2s.
     """
-    X = exponent(tol, level)
-    d = min(pole_distance, math.pi / 2)
+    X0 = exponent(tol, 0)
+    d = min(pole_distance, math.pi / (2 * max_spin))
     mr = min_mass * r_eff
-    h = min(2 * math.pi * d / X, math.pi * math.sqrt(2.0 / (mr * X)))
-    h = ladder(h)
+    # strip bound e^{-2 pi d / h} times the integrand's size near the strip edge, which grows
+    # like 2 pi e / h when the best half-width d - h / 2pi is used
+    h = 2 * math.pi * d / X0
+    for _ in range(3):
+        h = 2 * math.pi * d / (X0 + math.log(2 * math.pi * math.e / h))
+    h = min(h, _large_radius_spacing(mr, X0))
+    h = ladder(h) * 2.0 ** (-LEVEL_STEPS * level / LADDER_STEPS_PER_OCTAVE)
+    X = exponent(tol, level)
     lam = math.acosh(1.0 + (X + 2.0 + cutoff_extra) / mr)
     half = math.ceil(lam / h)
     half = N_QUANTUM * math.ceil(half / N_QUANTUM)

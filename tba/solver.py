@@ -27,6 +27,7 @@ has no real solution and is reported as such.
 """
 
 import math
+import numbers
 import time
 from dataclasses import dataclass, field
 
@@ -44,6 +45,9 @@ DENSE_LIMIT = 1200
 #: refinement levels tried before a point is declared not converged
 MAX_LEVEL = 4
 _EPS = np.finfo(float).eps
+#: the smallest relative tolerance offered: a few hundred ulps, where the rounding allowance
+#: of a grid sum of ~10^3 terms still fits
+MIN_TOL = 1e-13
 
 
 class _Operators:
@@ -354,7 +358,7 @@ def newton(disc, e, tol, maxiter=60):
             return _Newton(False, e, L, dL, it, r, dE, f"linear solve failed: {exc}")
         dE = abs(float(np.sum(disc.wE * dL * delta)))
         small = float(np.max(np.abs(delta))) < 1e-6 or r <= floor
-        if small and dE <= 1e-2 * tol * abs(disc.energy(L)):
+        if small and dE <= max(1e-2 * tol, 8 * _EPS) * abs(disc.energy(L)):
             return _Newton(True, e, L, dL, it, r, dE, "converged", jac)
         if it == maxiter:
             break
@@ -381,7 +385,7 @@ def _state(disc, nt, fold=None):
     S, _ = disc.separable(L)
     E = disc.energy(L)
     # rounding: every term of E and of eps carries a relative error of a few ulps
-    rounding = 16 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * nt.e)))
+    rounding = 4 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * nt.e)))
     # tails beyond the cutoff: int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda) / eps'(Lambda)
     edge = np.abs(disc.wE[:, [0, -1]] * L[:, [0, -1]]) / disc.grid.h
     slope = np.maximum(np.abs(nt.e[:, [0, -1]] - nt.e[:, [1, -2]]) / disc.grid.h, 1e-300)
@@ -430,18 +434,16 @@ def _continue_deformation(model, deformation, radius, grid, tol, start=None):
 
 
 def _validate(radius, tol):
-    try:
-        radius = float(radius)
-    except (TypeError, ValueError):
-        raise TypeError(f"radius must be a real number, got {radius!r}") from None
+    if isinstance(radius, bool) or not isinstance(radius, numbers.Real):
+        raise TypeError(f"radius must be a real number, got {radius!r}")
+    radius = float(radius)
     if not (math.isfinite(radius) and radius > 0):
         raise ValueError(f"radius must be finite and positive, got {radius!r}")
-    try:
-        tol = float(tol)
-    except (TypeError, ValueError):
-        raise TypeError(f"tol must be a real number, got {tol!r}") from None
-    if not (math.isfinite(tol) and 1e-15 <= tol < 1e-2):
-        raise ValueError(f"tol must lie in [1e-15, 1e-2), got {tol!r}")
+    if isinstance(tol, bool) or not isinstance(tol, numbers.Real):
+        raise TypeError(f"tol must be a real number, got {tol!r}")
+    tol = float(tol)
+    if not (math.isfinite(tol) and MIN_TOL <= tol < 1e-2):
+        raise ValueError(f"tol must lie in [{MIN_TOL:g}, 1e-2), got {tol!r}")
     return radius, tol
 
 
@@ -484,7 +486,8 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
     level, cutoff_extra = 0, 0.0
     seed = prev_state
     while True:
-        grid = choose_grid(model.pole_distance, min_mass, r_eff, tol, level, cutoff_extra)
+        grid = choose_grid(model.pole_distance, min_mass, r_eff, tol, level, cutoff_extra,
+                           max_spin=max(deformation.couplings, default=1))
         disc = Discretization(model, deformation, radius, grid)
         nt = newton(disc, disc.initial_guess(seed), tol)
         iterations += nt.iterations

@@ -80,6 +80,8 @@ def user_model(masses, blocks=None, kernel=None, pole_distance=None, statistics=
         blocks = ((blocks,),)
     kernel_function = None
     if kernel is not None:
+        if not callable(kernel):
+            raise TypeError(f"kernel must be callable, got {type(kernel).__name__}")
         if pole_distance is None:
             raise ValueError("pole_distance is required with a kernel callable")
         if n == 1:

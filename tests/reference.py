@@ -1,0 +1,265 @@
+"""Outside references for the TBA tests, computed without the ``tba`` solver.
+
+Every helper names its source in its docstring. Nothing here imports ``tba``: the
+helpers take plain numbers (masses, block multiplicities, kernel callables), so that a
+bug in the package cannot leak into its own reference values.
+"""
+
+import math
+
+import mpmath
+import numpy as np
+from scipy.optimize import brentq
+from scipy.special import k0, k1
+
+__all__ = [
+    "free_fermion_ns_energy", "free_fermion_ns_energy_derivative", "free_fermion_ns_terms",
+    "deformed_free_fermion_energy", "deformed_free_fermion_branch",
+    "plateau_matrix", "plateau_solution", "rogers_dilog", "c_eff_dilogarithm",
+    "leading_order_energy", "second_order_energy", "dense_tba_energy",
+]
+
+
+def free_fermion_ns_terms(radius, mass=1.0):
+    """Number of terms used for the Bessel series at ``radius``: about 60/(m R) + 50.
+
+    The series is alternating, (-1)^(k+1) K_1(k m R)/k, and for every k its terms decrease
+    in modulus (K_1 is decreasing, so is 1/k). The truncation error is then at most the
+    first omitted term (Leibniz), K_1(K m R)/(pi K) < e^{-60} times a power: far below
+    double precision at every radius. (Common practice, no source.)
+    """
+    return int(60.0 / (mass * radius)) + 50
+
+
+def free_fermion_ns_energy(radius, mass=1.0):
+    """Free Majorana fermion ground state in the NS (antiperiodic) sector, bulk term excluded:
+
+        E_NS(R) = -(m/pi) sum_{k>=1} (-1)^(k+1) K_1(k m R) / k
+
+    Source: /work/shared/PHYSICS.md section 2 ("checked there to 1e-14"); textbook, e.g.
+    G. Mussardo, Statistical Field Theory (Oxford 2010), from memory. It is the expansion
+    of log(1 + e^{-mR cosh t}) in powers of e^{-mR cosh t} integrated term by term with
+    int cosh t e^{-x cosh t} dt = 2 K_1(x). K_1 is ``scipy.special.k1``; the terms are
+    summed with ``math.fsum`` (exactly rounded sum of the float terms).
+    """
+    mR = mass * radius
+    k = np.arange(1, free_fermion_ns_terms(radius, mass) + 1, dtype=float)
+    terms = (-1.0) ** (k + 1) * k1(k * mR) / k
+    return -(mass / math.pi) * math.fsum(terms.tolist())
+
+
+def free_fermion_ns_energy_derivative(radius, mass=1.0):
+    """dE_NS/dR from the same series, with K_1'(x) = -K_0(x) - K_1(x)/x.
+
+    Source: the series of ``free_fermion_ns_energy``; the Bessel identity is standard
+    (Abramowitz & Stegun 9.6.26, from memory). Used to locate the branch point of the
+    TTbar-deformed free fermion: 1 - alpha E'(R') = 0 (PHYSICS.md section 4).
+    """
+    mR = mass * radius
+    k = np.arange(1, free_fermion_ns_terms(radius, mass) + 1, dtype=float)
+    x = k * mR
+    dk1 = -k0(x) - k1(x) / x
+    # d/dR K_1(k m R) / k = m K_1'(k m R)
+    terms = (-1.0) ** (k + 1) * dk1
+    return -(mass * mass / math.pi) * math.fsum(terms.tolist())
+
+
+def deformed_free_fermion_branch(alpha, mass=1.0):
+    """Branch point of the TTbar-deformed free-fermion ground state, alpha > 0.
+
+    Returns (R'_*, R_c) with E_NS'(R'_*) = 1/alpha and R_c = R'_* - alpha E_NS(R'_*)
+    (PHYSICS.md section 4: dR/dR' = 1 - alpha E'(R') vanishes there). E_NS' decreases
+    monotonically from +inf (R -> 0) to 0, so the root is unique; found with
+    ``scipy.optimize.brentq``.
+    """
+    if alpha <= 0:
+        raise ValueError("the ground state has a branch point only for alpha > 0")
+    f = lambda r: free_fermion_ns_energy_derivative(r, mass) - 1.0 / alpha
+    lo, hi = 1e-3, 1.0
+    while f(hi) > 0:
+        hi *= 2
+    while f(lo) < 0:
+        lo /= 2
+    r_star = brentq(f, lo, hi, xtol=1e-15, rtol=1e-15, maxiter=500)
+    return r_star, r_star - alpha * free_fermion_ns_energy(r_star, mass)
+
+
+def deformed_free_fermion_energy(radius, alpha, mass=1.0):
+    """Ground state of the TTbar-deformed free fermion from the flow relation, or None.
+
+    Solves E = E_NS(R + alpha E) (PHYSICS.md section 4: E_0(R, alpha) = E_0(R + alpha E_0, 0),
+    Smirnov & Zamolodchikov 2017, Cavaglia et al. 2016, from memory) on the branch connected
+    to alpha = 0, as an equation for R' = R + alpha E: g(R') = R' - alpha E_NS(R') - R = 0,
+    solved with ``scipy.optimize.brentq``; then E = E_NS(R') (no cancellation in R' - R).
+    alpha < 0: g increases, bracket [R, R + alpha E_NS(R)]. alpha > 0: g increases on
+    [R'_*, R] (R'_* the branch point); no real solution when g(R'_*) > 0, returns None.
+    """
+    g = lambda r: r - alpha * free_fermion_ns_energy(r, mass) - radius
+    if alpha == 0:
+        return free_fermion_ns_energy(radius, mass)
+    if alpha < 0:
+        lo, hi = radius, radius + alpha * free_fermion_ns_energy(radius, mass)
+    else:
+        lo, hi = deformed_free_fermion_branch(alpha, mass)[0], radius
+        if g(lo) > 0:
+            return None
+    if g(hi) == 0:
+        return free_fermion_ns_energy(hi, mass)
+    r_prime = brentq(g, lo, hi, xtol=1e-300, rtol=1e-15, maxiter=500)
+    return free_fermion_ns_energy(r_prime, mass)
+
+
+# --------------------------------------------------------------------------------------
+# UV: constant (plateau) TBA and the Rogers dilogarithm
+# --------------------------------------------------------------------------------------
+
+def plateau_matrix(blocks):
+    """N_ab = -(1/2pi) int phi_ab(t) dt from block content ``blocks[a][b] = {x: mult}``.
+
+    Derivation (here): in the plateau region eps_a is t-independent, and
+    eps_a = nu_a - (1/2pi) sum_b int phi_ab(t - t') L_b dt' with nu_a negligible gives
+    eps_a = sum_b N_ab L_b. Every block has int phi_x dt = -2pi (PHYSICS.md section 1),
+    so each f_x with multiplicity n contributes +n to N_ab.
+    """
+    n = len(blocks)
+    return np.array([[sum(int(m) for m in dict(blocks[a][b]).values()) for b in range(n)]
+                     for a in range(n)], dtype=int)
+
+
+def plateau_solution(N_ab, dps=40):
+    """Solve y_a = prod_b (1 + 1/y_b)^{N_ab} (the plateau equations) with mpmath.
+
+    In logarithms, eps_a = sum_b N_ab log(1 + e^{-eps_b}), y_a = e^{eps_a}. Damped
+    fixed-point iteration in mpmath to a starting point, then ``mpmath.findroot``
+    (Newton) to ``dps`` digits. Source: Al.B. Zamolodchikov, Nucl. Phys. B342 (1990) 695
+    (from memory), as summarised in PHYSICS.md section 3.
+    """
+    N_ab = np.asarray(N_ab, dtype=int)
+    n = len(N_ab)
+    with mpmath.workdps(dps + 10):
+        eps = [mpmath.mpf(0)] * n
+        for _ in range(200):
+            L = [mpmath.log1p(mpmath.exp(-e)) for e in eps]
+            new = [mpmath.fsum(int(N_ab[a, b]) * L[b] for b in range(n)) for a in range(n)]
+            eps = [(e + f) / 2 for e, f in zip(eps, new)]
+
+        def equations(*e):
+            return [e[a] - mpmath.fsum(int(N_ab[a, b]) * mpmath.log1p(mpmath.exp(-e[b]))
+                                       for b in range(n)) for a in range(n)]
+
+        root = mpmath.findroot(equations, eps, tol=mpmath.mpf(10) ** (-2 * dps))
+        root = [root[a] for a in range(n)] if isinstance(root, mpmath.matrix) else [root]
+        residual = max(abs(v) for v in equations(*root))
+        if residual > mpmath.mpf(10) ** (-dps):
+            raise ArithmeticError(f"plateau equations not solved (residual {residual})")
+        return [mpmath.exp(e) for e in root]
+
+
+def rogers_dilog(x):
+    """Rogers dilogarithm L(x) = Li_2(x) + (1/2) log(x) log(1 - x), 0 < x < 1.
+
+    Source: standard definition (e.g. A.N. Kirillov, Prog. Theor. Phys. Suppl. 118 (1995) 61,
+    from memory), normalised so that L(1) = pi^2/6; Li_2 is ``mpmath.polylog(2, x)``.
+    """
+    x = mpmath.mpf(x)
+    return mpmath.polylog(2, x) + mpmath.log(x) * mpmath.log(1 - x) / 2
+
+
+def c_eff_dilogarithm(blocks, dps=40):
+    """c_eff = (6/pi^2) sum_a L(1/(1 + y_a)) from the plateau solution of ``blocks``.
+
+    Source: PHYSICS.md section 3 (Zamolodchikov 1990, Klassen & Melzer 1990, from memory).
+    Returns an mpmath number.
+    """
+    with mpmath.workdps(dps + 10):
+        ys = plateau_solution(plateau_matrix(blocks), dps)
+        total = mpmath.fsum(rogers_dilog(1 / (1 + y)) for y in ys)
+        return 6 * total / mpmath.pi ** 2
+
+
+# --------------------------------------------------------------------------------------
+# IR: iterating the TBA around the driving term
+# --------------------------------------------------------------------------------------
+
+def leading_order_energy(masses, radius):
+    """E_LO = -sum_a (m_a/pi) K_1(m_a R): first iteration of the TBA, first Bessel term.
+
+    Source: PHYSICS.md section 3 ("common practice").
+    """
+    m = np.asarray(masses, dtype=float)
+    return float(-np.sum(m * k1(m * radius)) / math.pi)
+
+
+def second_order_energy(masses, kernel, radius, h=0.01, x_max=50.0):
+    """E through O(e^{-2 m_1 R}): the Bessel k = 1, 2 terms plus one kernel iteration.
+
+    Derivation (here; common practice, no source): with nu_a = m_a R cosh t,
+    eps_a = nu_a + delta_a, delta_a = -(1/2pi) sum_b phi_ab * L_b, and
+    L(eps) = L(nu) - delta e^{-nu} / (1 + e^{-nu}) + O(delta^2), so to this order
+
+        E = -sum_a (m_a/pi) [K_1(m_a R) - K_1(2 m_a R)/2]
+            - (1/(2pi)^2) sum_ab m_a int int cosh t e^{-m_a R cosh t} phi_ab(t - t') e^{-m_b R cosh t'} dt dt'
+
+    (the k = 2 Bessel term comes from the e^{-2 nu}/2 term of log(1 + e^{-nu})). The
+    neglected terms are O(e^{-3 m_1 R}) (every one carries at least three Boltzmann
+    factors: K_1(k m R) with k >= 3, delta^2 e^{-nu}, delta e^{-2 nu}, and the e^{-2 nu}
+    part of L_b inside delta). Note the minus sign in front of the kernel term: a negative
+    (attractive, e.g. Lee-Yang) kernel raises the energy.
+
+    ``kernel(t)`` returns phi_ab(t) of shape (n, n) + t.shape. The double integral uses
+    the trapezoid rule on a uniform grid of spacing ``h`` that covers m_1 R (cosh t - 1) <=
+    ``x_max``: the integrands are analytic in a strip, so the rule converges exponentially
+    (common practice); ``h`` must be small against the kernel's pole distance.
+    """
+    m = np.asarray(masses, dtype=float)
+    n = m.size
+    lam = math.acosh(1.0 + x_max / (m.min() * radius))
+    t = np.arange(-math.ceil(lam / h), math.ceil(lam / h) + 1) * h
+    N = t.size
+    boltz = np.exp(-np.outer(m, np.cosh(t)) * radius)           # (n, N)
+    offsets = h * np.arange(-(N - 1), N)
+    kern = np.asarray(kernel(offsets), dtype=float).reshape((n, n, 2 * N - 1))
+    # inner[a, i] = h sum_b sum_j phi_ab(t_i - t_j) e^{-nu_b(t_j)}  (plain discrete convolution)
+    inner = np.zeros((n, N))
+    for a in range(n):
+        for b in range(n):
+            inner[a] += h * np.convolve(kern[a, b], boltz[b])[N - 1:2 * N - 1]
+    double = float(np.sum(m[:, None] * np.cosh(t)[None, :] * boltz * inner) * h)
+    bessel = -float(np.sum(m * (k1(m * radius) - k1(2 * m * radius) / 2))) / math.pi
+    return bessel - double / (2 * math.pi) ** 2
+
+
+# --------------------------------------------------------------------------------------
+# a plain dense solve of the ground-state TBA
+# --------------------------------------------------------------------------------------
+
+def dense_tba_energy(masses, kernel, radius, h, x_max=50.0):
+    """E_0 from a deliberately plain discretisation of the ground-state TBA (PHYSICS.md section 1).
+
+    Uniform grid t_k = k h covering m_1 R (cosh t - 1) <= ``x_max``, full dense matrix
+    (h/2pi) phi_ab(t_i - t_j), Newton's method with numpy.linalg.solve from eps = nu until
+    the step is at rounding level, E = -sum_a (m_a/2pi) sum_k h cosh t_k L_a(t_k). The
+    trapezoid rule converges like exp(-2 pi d / h) with d the distance of the nearest
+    singularity (common practice, no source); callers pick ``h`` well below d / 5.
+    """
+    m = np.asarray(masses, dtype=float)
+    n = m.size
+    lam = math.acosh(1.0 + x_max / (m.min() * radius))
+    t = np.arange(-math.ceil(lam / h), math.ceil(lam / h) + 1) * h
+    N = t.size
+    phi = np.asarray(kernel(t[:, None] - t[None, :]), dtype=float).reshape(n, n, N, N)
+    K = (h / (2 * math.pi)) * phi.transpose(0, 2, 1, 3).reshape(n * N, n * N)
+    nu = radius * np.outer(m, np.cosh(t)).reshape(-1)
+    eps = nu.copy()
+    for _ in range(100):
+        L = np.logaddexp(0.0, -eps)
+        dL = -0.5 * (1.0 - np.tanh(eps / 2))  # -1/(1 + e^eps), overflow-free
+        F = eps - nu + K @ L
+        step = np.linalg.solve(np.eye(n * N) + K * dL[None, :], -F)
+        eps = eps + step
+        if np.max(np.abs(step)) <= 1e-14 * max(1.0, float(np.max(np.abs(eps[np.abs(eps) < 50])))):
+            break
+    else:
+        raise ArithmeticError("dense TBA Newton did not converge")
+    L = np.logaddexp(0.0, -eps).reshape(n, N)
+    return -float(np.sum(m[:, None] * np.cosh(t)[None, :] * L)) * h / (2 * math.pi)

@@ -1,0 +1,257 @@
+"""The compiled routines in kernels/ against slow, obviously correct twins (plain loops).
+
+Sources: the formulas in the kernels' own docstrings (kernels/statistics.py,
+kernels/convolution.py); the references below are written independently, with mpmath
+(50 digits) for the occupation functions and explicit Python loops for the convolutions.
+"""
+
+import math
+import warnings
+
+import mpmath
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+from hypothesis.extra import numpy as hnp
+
+# pyproject turns warnings into errors; when a hypothesis test fails, hypothesis imports
+# libcst, whose import of mypy_extensions.TypedDict warns (DeprecationWarning) and turns the
+# failure report into a pytest INTERNALERROR. Import it once here with that warning muted.
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", DeprecationWarning)
+    try:
+        import libcst  # noqa: F401
+    except ImportError:
+        pass
+
+from kernels import (SpectralConvolver, block_toeplitz_matrix, block_toeplitz_matvec,
+                     occupation_terms)
+
+EXTREMES = [-800.0, -745.0, -700.0, -36.7, -1.0, -1e-300, 0.0, 1e-300, 1.0, 36.7, 700.0, 745.0, 800.0]
+
+
+# --------------------------------------------------------------------------------------
+# occupation_terms
+# --------------------------------------------------------------------------------------
+
+def slow_occupation(eps, sign):
+    """L and dL/deps element by element in 50-digit mpmath (kernels/statistics.py docstring):
+
+    fermions: L = log(1 + e^{-eps}),  dL = -1/(1 + e^{eps})
+    bosons:   L = -log(1 - e^{-eps}), dL = -1/(e^{eps} - 1) for eps > 0, NaN otherwise
+    """
+    L = np.empty(eps.shape)
+    dL = np.empty(eps.shape)
+    with mpmath.workdps(50):
+        for idx, e in np.ndenumerate(eps):
+            e = mpmath.mpf(float(e))
+            if sign > 0:
+                L[idx] = float(mpmath.log1p(mpmath.exp(-e)))
+                dL[idx] = float(-1 / (1 + mpmath.exp(e)))
+            elif e <= 0:
+                L[idx] = dL[idx] = math.nan
+            else:
+                # both forms are exact in mpmath; each avoids forming 1 -/+ tiny in 50 digits
+                if e < 1:
+                    L[idx] = float(-mpmath.log(-mpmath.expm1(-e)))
+                else:
+                    L[idx] = float(-mpmath.log1p(-mpmath.exp(-e)))
+                dL[idx] = float(-1 / mpmath.expm1(e))
+    return L, dL
+
+
+def run_occupation(eps, sign):
+    eps = np.ascontiguousarray(eps, dtype=float)
+    L = np.full(eps.shape, -123.0)
+    dL = np.full(eps.shape, -123.0)
+    bad = occupation_terms(eps, sign, L, dL)
+    return L, dL, bad
+
+
+def assert_close(got, want, rtol, atol=0.0):
+    got, want = np.broadcast_arrays(got, want)
+    assert np.array_equal(np.isnan(got), np.isnan(want))
+    ok = ~np.isnan(want)
+    g, w = got[ok], want[ok]
+    same = g == w  # includes equal infinities (dL for subnormal eps overflows in both)
+    with np.errstate(invalid="ignore"):
+        err = np.where(same, 0.0, np.abs(g - w))
+    tol = atol + (rtol if np.ndim(rtol) == 0 else rtol[ok]) * np.abs(w)
+    assert np.all(err <= tol), (g[~(err <= tol)], w[~(err <= tol)])
+
+
+def test_fermion_extremes():
+    # kernels/statistics.py: "evaluated without overflow for any real eps (fermions)"
+    eps = np.array(EXTREMES).reshape(1, -1)
+    L, dL, bad = run_occupation(eps, +1)
+    Lr, dLr = slow_occupation(eps, +1)
+    assert bad == 0
+    assert np.all(np.isfinite(L)) and np.all(np.isfinite(dL))
+    assert_close(L, Lr, 1e-15, 1e-320)
+    assert_close(dL, dLr, 1e-15, 1e-320)
+    assert L[0, 6] == pytest.approx(math.log(2), rel=1e-16) and dL[0, 6] == -0.5
+
+
+
+
+
+def test_boson_extremes():
+    eps = np.array(EXTREMES).reshape(1, -1)
+    L, dL, bad = run_occupation(eps, -1)
+    Lr, dLr = slow_occupation(eps, -1)
+    assert bad == int(np.sum(eps <= 0))  # documented: count of points with eps <= 0
+    assert_close(dL, dLr, 1e-15, 1e-320)
+    small = eps <= 2.0  # large eps: see test_boson_L_large_eps
+    assert_close(L[small], Lr[small], 1e-15, 1e-320)
+
+
+def test_boson_L_large_eps():
+    # L = -log(1 - e^{-eps}) ~ e^{-eps}: must keep its relative accuracy (kernels docstring);
+    # regression: an expm1-only form lost every digit for eps >~ 38
+    eps = np.array([[4.0, 20.0, 36.7, 40.0, 700.0]])
+    L, _, _ = run_occupation(eps, -1)
+    Lr, _ = slow_occupation(eps, -1)
+    assert_close(L, Lr, 1e-14, 1e-320)
+
+
+@settings(max_examples=60, deadline=None)
+@given(hnp.arrays(np.float64, st.tuples(st.integers(1, 3), st.integers(1, 40)),
+                  elements=st.floats(-700, 700, allow_nan=False)))
+def test_fermion_random(eps):
+    # hypothesis: any real eps in [-700, 700], any shape (1..3, 1..40)
+    L, dL, bad = run_occupation(eps, +1)
+    Lr, dLr = slow_occupation(eps, +1)
+    assert bad == 0
+    assert_close(L, Lr, 1e-15, 1e-320)
+    assert_close(dL, dLr, 1e-15, 1e-320)
+
+
+@settings(max_examples=60, deadline=None)
+@given(hnp.arrays(np.float64, st.tuples(st.integers(1, 3), st.integers(1, 40)),
+                  elements=st.one_of(st.floats(0, 700, exclude_min=True), st.floats(-700, 0))))
+def test_boson_random(eps):
+    # hypothesis over eps in [-700, 700]: NaN and a count where eps <= 0; dL everywhere and
+    # L for eps <= 2 to 1e-15 relative (L at larger eps: test_boson_L_large_eps)
+    L, dL, bad = run_occupation(eps, -1)
+    Lr, dLr = slow_occupation(eps, -1)
+    assert bad == int(np.sum(eps <= 0))
+    assert_close(dL, dLr, 2e-15, 1e-320)
+    small = eps <= 2.0
+    assert_close(L[small], Lr[small], 2e-15, 1e-320)
+
+
+def test_boson_tiny_positive_eps():
+    # docstring: "evaluated without overflow for ... eps > 0 (bosons)". Regression: at commit
+    # f20d048 this raised ZeroDivisionError (1 - exp(-eps) == 0 for eps < 1.1e-16) and lost
+    # ~log10(1/eps) digits for small eps
+    eps = np.array([[1e-300, 1e-17, 1e-10, 1e-8, 1e-6]])
+    L, dL, bad = run_occupation(eps, -1)
+    Lr, dLr = slow_occupation(eps, -1)
+    assert bad == 0
+    assert_close(L, Lr, 1e-14)
+    assert_close(dL, dLr, 1e-14)
+
+
+# --------------------------------------------------------------------------------------
+# block-Toeplitz convolution
+# --------------------------------------------------------------------------------------
+
+def slow_matvec(kern, f):
+    """out[a, i] = sum_b sum_j kern[a, b, N - 1 + i - j] f[b, j] (kernels/convolution.py)."""
+    n, N = f.shape
+    out = np.zeros((n, N))
+    for a in range(n):
+        for i in range(N):
+            acc = 0.0
+            for b in range(n):
+                for j in range(N):
+                    acc += kern[a, b, N - 1 + i - j] * f[b, j]
+            out[a, i] = acc
+    return out
+
+
+def slow_matrix(kern, N):
+    n = kern.shape[0]
+    M = np.zeros((n * N, n * N))
+    for a in range(n):
+        for b in range(n):
+            for i in range(N):
+                for j in range(N):
+                    M[a * N + i, b * N + j] = kern[a, b, (N - 1) + (i - j)]
+    return M
+
+
+def random_problem(rng, n, N, scale=1.0):
+    kern = rng.standard_normal((n, n, 2 * N - 1)) * scale
+    f = rng.standard_normal((n, N))
+    return np.ascontiguousarray(kern), np.ascontiguousarray(f)
+
+
+def matvec_tolerance(kern, f):
+    # rounding of a length-nN dot product: a few ulps of sum |kern| |f| (common practice)
+    n, N = f.shape
+    bound = np.abs(slow_matvec(np.abs(kern), np.abs(f)))
+    return 1e-14 * bound + 1e-300
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(1, 4), st.integers(1, 30), st.integers(0, 2**32 - 1))
+def test_matvec_random(n, N, seed):
+    # hypothesis over shapes and data; out is filled in place and returned
+    kern, f = random_problem(np.random.default_rng(seed), n, N)
+    out = np.full((n, N), np.nan)
+    ret = block_toeplitz_matvec(kern, f, out)
+    want = slow_matvec(kern, f)
+    assert np.all(np.abs(out - want) <= matvec_tolerance(kern, f))
+    assert np.array_equal(ret, out)
+
+
+def test_matvec_asymmetric_kernel_orientation():
+    # a kernel that is non-zero at a single offset k shifts f by k: out[i] = f[i - k]
+    N = 7
+    for k in [-3, 0, 2]:
+        kern = np.zeros((1, 1, 2 * N - 1))
+        kern[0, 0, N - 1 + k] = 1.0
+        f = np.arange(1.0, N + 1).reshape(1, N)
+        out = block_toeplitz_matvec(kern, f, np.empty((1, N)))
+        want = np.array([f[0, i - k] if 0 <= i - k < N else 0.0 for i in range(N)])
+        assert np.array_equal(out[0], want)
+
+
+@pytest.mark.parametrize("n, N", [(1, 1), (1, 17), (2, 9), (3, 5), (8, 6)])
+def test_matrix_equals_loops(n, N):
+    kern, f = random_problem(np.random.default_rng(n * 100 + N), n, N)
+    M = block_toeplitz_matrix(kern, N)
+    assert M.shape == (n * N, n * N)
+    assert np.array_equal(M, slow_matrix(kern, N))  # pure copying: exact
+    y = (M @ f.reshape(-1)).reshape(n, N)
+    assert np.all(np.abs(y - slow_matvec(kern, f)) <= matvec_tolerance(kern, f))
+
+
+@pytest.mark.parametrize("n, N", [(1, 1), (1, 2), (1, 33), (2, 16), (3, 50), (8, 65)])
+def test_spectral_convolver_equals_loops(n, N):
+    rng = np.random.default_rng(7 * n + N)
+    kern, f = random_problem(rng, n, N)
+    # add a kernel of very different magnitudes (like TBA kernels with decaying tails)
+    kern *= np.exp(-np.abs(np.arange(-(N - 1), N)) * 0.5)[None, None, :]
+    conv = SpectralConvolver(kern)
+    want = slow_matvec(kern, f)
+    # FFT rounding: ~eps log2(size) relative to sum |kern| |f| (common practice)
+    tol = 1e-13 * np.abs(kern).sum(axis=(1, 2)).max() * np.abs(f).max()
+    got = conv(f)
+    assert got.shape == (n, N)
+    assert np.max(np.abs(got - want)) <= tol
+    out = np.full((n, N), np.nan)
+    ret = conv(f, out=out)
+    assert ret is out
+    assert np.max(np.abs(out - want)) <= tol
+    # reusable: a second function with the same convolver
+    g = rng.standard_normal((n, N))
+    assert np.max(np.abs(conv(g) - slow_matvec(kern, g))) <= 1e-13 * np.abs(kern).sum(axis=(1, 2)).max() * np.abs(g).max()
+
+
+def test_spectral_convolver_rejects_bad_shapes():
+    with pytest.raises(ValueError):
+        SpectralConvolver(np.zeros((2, 2, 6)))  # even width
+    with pytest.raises(ValueError):
+        SpectralConvolver(np.zeros((2, 3, 5)))  # not square in species

@@ -1,0 +1,185 @@
+"""Bad input raises ValueError or TypeError with a message naming the argument.
+
+Source: the public API contract in the docstrings of tba/solver.py, tba/models/catalog.py,
+tba/models/base.py and tba/deformation.py (common practice, no outside source).
+"""
+
+import math
+from fractions import Fraction
+
+import numpy as np
+import pytest
+
+from tba import (CDD, free_fermion, get_model, higher_spin, ising_e8, lee_yang, sinh_gordon,
+                 solve_ground_state, solve_radii, ttbar, user_model)
+
+FF = free_fermion()
+
+
+@pytest.mark.parametrize("radius", [0.0, -1.0, -1e-300, math.nan, math.inf, -math.inf])
+def test_radius_out_of_range(radius):
+    with pytest.raises(ValueError, match="radius"):
+        solve_ground_state(FF, radius)
+
+
+@pytest.mark.parametrize("radius", [None, "abc", "1", True, 1j, [1.0]])
+def test_radius_wrong_type(radius):
+    with pytest.raises(TypeError, match="radius"):
+        solve_ground_state(FF, radius)
+
+
+def test_radius_in_scan_is_validated():
+    with pytest.raises(ValueError, match="radius"):
+        solve_radii(FF, [1.0, -2.0])
+
+
+@pytest.mark.parametrize("tol", [0.0, -1e-12, 1e-16, 1e-14, 1e-2, 0.5, 1.0, math.nan, math.inf])
+def test_tol_out_of_range(tol):
+    # documented range [MIN_TOL = 1e-13, 1e-2) (the ValueError message of tba.solver._validate)
+    with pytest.raises(ValueError, match="tol"):
+        solve_ground_state(FF, 1.0, tol=tol)
+
+
+@pytest.mark.parametrize("tol", [None, "tight", "1e-10", True])
+def test_tol_wrong_type(tol):
+    with pytest.raises(TypeError, match="tol"):
+        solve_ground_state(FF, 1.0, tol=tol)
+
+
+def test_tol_edges_accepted():
+    # the edges of the documented range are accepted, and the tightest one is reached
+    assert solve_ground_state(FF, 1.0, tol=1e-13).converged
+    assert solve_ground_state(FF, 1.0, tol=0.00999).converged
+
+
+@pytest.mark.parametrize("B", [0, 2, -1, 2.5, math.nan, math.inf, -0.0])
+def test_sinh_gordon_coupling_out_of_range(B):
+    # 0 < B < 2 (sinh_gordon docstring; PHYSICS.md section 2)
+    with pytest.raises(ValueError, match="B|coupling"):
+        sinh_gordon(B)
+
+
+@pytest.mark.parametrize("B", [None, "one"])
+def test_sinh_gordon_coupling_wrong_type(B):
+    with pytest.raises(TypeError, match="coupling"):
+        sinh_gordon(B)
+
+
+def test_get_model_unknown_name():
+    with pytest.raises(ValueError, match="model"):
+        get_model("sine-gordon")
+
+
+@pytest.mark.parametrize("name", ["free-fermion", "lee-yang", "ising-e8"])
+def test_get_model_coupling_for_model_without_one(name):
+    with pytest.raises(ValueError, match="coupling"):
+        get_model(name, 0.5)
+
+
+def test_get_model_coupling_required_and_checked():
+    with pytest.raises(ValueError, match="coupling"):
+        get_model("sinh-gordon")
+    with pytest.raises(ValueError, match="coupling"):
+        get_model("sinh-gordon", 3.0)
+    assert get_model("sinh-gordon", 0.6).coupling == 0.6
+    assert get_model("lee-yang").n_species == 1 and get_model("ising-e8").n_species == 8
+
+
+@pytest.mark.parametrize("spin", [2, 4, 0, -1, -3, 1.5, True])
+def test_cdd_bad_spin(spin):
+    # spins are positive odd integers (tba/deformation.py; PHYSICS.md section 4)
+    with pytest.raises(ValueError, match="spin"):
+        CDD({spin: 0.1})
+
+
+def test_higher_spin_even():
+    with pytest.raises(ValueError, match="spin"):
+        higher_spin(2, -0.01)
+
+
+@pytest.mark.parametrize("alpha", [math.nan, math.inf])
+def test_cdd_bad_coupling_value(alpha):
+    with pytest.raises(ValueError, match="alpha"):
+        ttbar(alpha)
+
+
+def test_cdd_bad_coupling_type():
+    with pytest.raises(TypeError, match="alpha"):
+        ttbar("small")
+
+
+def test_deformation_wrong_type():
+    with pytest.raises(TypeError, match="deformation"):
+        solve_ground_state(FF, 1.0, 0.1)
+
+
+def test_user_kernel_without_pole_distance():
+    with pytest.raises(ValueError, match="pole_distance"):
+        user_model(masses=[1], kernel=lambda t: np.zeros_like(t))
+
+
+@pytest.mark.parametrize("d", [0.0, -1.0, math.nan, math.inf])
+def test_user_kernel_bad_pole_distance(d):
+    with pytest.raises(ValueError, match="pole_distance"):
+        user_model(masses=[1], kernel=lambda t: np.zeros_like(t), pole_distance=d)
+
+
+def test_user_kernel_not_callable():
+    # regression: at commit f20d048 user_model wrapped a one-species kernel in a lambda before
+    # the callable check, so kernel=5 was accepted and failed later inside the solver
+    with pytest.raises(TypeError, match="kernel"):
+        user_model(masses=[1], kernel=5, pole_distance=1.0)
+
+
+def test_asymmetric_blocks():
+    blocks = [[{Fraction(1, 3): 1}, {Fraction(1, 5): 1}],
+              [{Fraction(1, 4): 1}, {Fraction(1, 3): 1}]]
+    with pytest.raises(ValueError, match="blocks"):
+        user_model(masses=[1, 2], blocks=blocks)
+
+
+def test_symmetric_blocks_accepted():
+    # the same structure made symmetric is fine (guards the test above against a model that
+    # rejects every two-species input)
+    blocks = [[{Fraction(1, 3): 1}, {Fraction(1, 5): 1}],
+              [{Fraction(1, 5): 1}, {Fraction(1, 3): 1}]]
+    m = user_model(masses=[1, 2], blocks=blocks)
+    assert m.n_species == 2
+
+
+@pytest.mark.parametrize("blocks", [{Fraction(3, 2): 1}, {Fraction(0): 1}, {Fraction(1, 3): 0.5}])
+def test_bad_block_content(blocks):
+    with pytest.raises(ValueError, match="block"):
+        user_model(masses=[1], blocks=blocks)
+
+
+def test_single_dict_blocks_for_several_species():
+    with pytest.raises(ValueError, match="blocks"):
+        user_model(masses=[1, 1.5], blocks={Fraction(1, 3): 1})
+
+
+@pytest.mark.parametrize("masses", [[-1.0], [0.0], [math.nan], []])
+def test_bad_masses(masses):
+    with pytest.raises(ValueError, match="masses"):
+        user_model(masses=masses, blocks={} if len(masses) == 1 else None)
+
+
+def test_blocks_and_kernel_together():
+    with pytest.raises(ValueError, match="blocks|kernel"):
+        user_model(masses=[1], blocks={}, kernel=lambda t: np.zeros_like(t), pole_distance=1.0)
+
+
+def test_bad_statistics():
+    with pytest.raises(ValueError, match="statistics"):
+        user_model(masses=[1], blocks={}, statistics="anyon")
+
+
+def test_higher_spin_for_multi_species_model():
+    with pytest.raises(ValueError, match="spin"):
+        solve_ground_state(ising_e8(), 1.0, higher_spin(3, -0.01))
+
+
+def test_valid_input_still_works():
+    # the checks above must not reject good input
+    assert solve_ground_state(lee_yang(), 1.0, ttbar(0.1), tol=1e-10).converged
+    assert solve_ground_state(FF, np.float64(2.0)).converged
