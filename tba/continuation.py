@@ -130,7 +130,7 @@ def _start(fam, p0, start_state=None):
     nt = newton(disc, disc.initial_guess(start_state), 1e-13)
     if not nt.ok:
         raise RuntimeError(f"continuation could not start at {fam.parameter} = {p0}: {nt.message}")
-    return _point(fam, nt.e, p0, disc, nt.jac, nt.L, None)
+    return _point(fam, nt.e, p0, disc, nt.jacobian(), nt.L, None)
 
 
 @dataclass
@@ -294,7 +294,7 @@ def second_branch(fold, radius):
     nt = newton(disc, point.eps, 1e-13)
     if not nt.ok:
         raise RuntimeError(f"second-branch point did not converge: {nt.message}")
-    return BranchSolution("second-branch", radius, disc.energy(nt.L), nt.jac.fold_indicator(),
+    return BranchSolution("second-branch", radius, disc.energy(nt.L), nt.fold_indicator,
                           nt.residual, nt.e)
 
 

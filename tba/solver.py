@@ -36,6 +36,7 @@ import scipy.linalg
 import scipy.sparse.linalg
 
 from kernels import SpectralConvolver, block_toeplitz_matrix, occupation_terms
+from kernels import newton as _dense
 from tba.deformation import CDD, NO_DEFORMATION
 from tba.grid import Grid, choose_grid
 from tba.result import SolveResult, Status
@@ -305,6 +306,8 @@ class State:
     def derivatives(self, spins=(1,), second=False):
         """Exact dE/dR, dE/dalpha_s (and d2E/dR2) on this grid from the linearised equations
         J de/dx = -dF/dx with the Newton Jacobian."""
+        if self.jac is None:
+            self.jac = self.disc.jacobian(self.dL)
         disc, jac = self.disc, self.jac
         out = {}
         de = jac.solve(disc.nu / disc.radius, rtol=1e-13)  # dF/dR = -nu / R
@@ -332,6 +335,45 @@ class _Newton:
     last_dE: float
     message: str
     jac: object = None
+    disc: object = field(default=None, repr=False)
+    fold: float = None
+
+    def jacobian(self):
+        if self.jac is None:
+            self.jac = self.disc.jacobian(self.dL)
+        return self.jac
+
+    @property
+    def fold_indicator(self):
+        if self.fold is None:
+            self.fold = self.jacobian().fold_indicator()
+        return self.fold
+
+
+_DENSE_MESSAGES = {
+    _dense.CONVERGED: "converged",
+    _dense.MAX_ITERATIONS: "no convergence in {maxiter} Newton steps",
+    _dense.LINE_SEARCH_FAILED: "line search failed",
+    _dense.OUTSIDE_DOMAIN: "initial guess outside the domain of L",
+    _dense.SINGULAR: "linear solve failed: singular Jacobian",
+}
+
+
+def _newton_dense(disc, e, tol, maxiter):
+    """The compiled dense Newton iteration (kernels.newton) on the flattened equations."""
+    ops = disc.ops
+    M = e.size
+    K = ops.matrix if not ops.trivial else np.zeros((1, 1))
+    r = disc.c.size
+    e_, L, dL, it, res, dE, status, fold = _dense.dense_newton(
+        K, disc.nu.reshape(-1), disc.U.reshape(r, M), disc.V.reshape(r, M), disc.c,
+        disc.wE.reshape(-1), np.ascontiguousarray(e, dtype=float).reshape(-1), disc.sign,
+        float(tol), maxiter, ops.trivial)
+    shape = disc.shape
+    return _Newton(status == _dense.CONVERGED, e_.reshape(shape), L.reshape(shape),
+                   dL.reshape(shape), int(it), float(res), float(dE),
+                   _DENSE_MESSAGES[status].format(maxiter=maxiter), disc=disc,
+                   fold=float(fold) if status == _dense.CONVERGED else None)
 
 
 def newton(disc, e, tol, maxiter=60):
@@ -341,8 +383,11 @@ def newton(disc, e, tol, maxiter=60):
     would make, |dE/deps . delta|, is below ``tol |E| / 100`` and delta is small (the
     quadratic regime), the current point is returned without the step and that change
     is its iteration error: an estimate of the distance to the exact discrete solution
-    that needs no extra solve.
+    that needs no extra solve. Dense systems run the same iteration compiled
+    (`kernels.newton.dense_newton`).
     """
+    if disc.ops.dense:
+        return _newton_dense(disc, e, tol, maxiter)
     L, dL, ok = disc.occupation(e)
     if not ok:
         return _Newton(False, e, L, dL, 0, np.inf, np.inf, "initial guess outside the domain of L")
@@ -359,7 +404,7 @@ def newton(disc, e, tol, maxiter=60):
         dE = abs(float(np.sum(disc.wE * dL * delta)))
         small = float(np.max(np.abs(delta))) < 1e-6 or r <= floor
         if small and dE <= max(1e-2 * tol, 8 * _EPS) * abs(disc.energy(L)):
-            return _Newton(True, e, L, dL, it, r, dE, "converged", jac)
+            return _Newton(True, e, L, dL, it, r, dE, "converged", jac, disc)
         if it == maxiter:
             break
         lam = 1.0
@@ -374,7 +419,8 @@ def newton(disc, e, tol, maxiter=60):
             lam *= 0.5
             if lam < 1e-4:
                 if r <= 1e3 * floor:  # at rounding level already: stagnation is convergence
-                    return _Newton(True, e, L, dL, it, r, dE, "converged (rounding level)", jac)
+                    return _Newton(True, e, L, dL, it, r, dE, "converged (rounding level)", jac,
+                                   disc)
                 return _Newton(False, e, L, dL, it, r, dE, "line search failed")
         e, L, dL, F, r = e_new, L_new, dL_new, F_new, r_new
     return _Newton(False, e, L, dL, maxiter, r, dE, f"no convergence in {maxiter} Newton steps")
@@ -391,7 +437,7 @@ def _state(disc, nt, fold=None):
     slope = np.maximum(np.abs(nt.e[:, [0, -1]] - nt.e[:, [1, -2]]) / disc.grid.h, 1e-300)
     tail = float(np.sum(edge / slope))
     if fold is None:
-        fold = nt.jac.fold_indicator() if nt.jac is not None else np.nan
+        fold = nt.fold_indicator
     return State(grid=disc.grid, radius=disc.radius, deformation=disc.deformation, eps=nt.e,
                  dressing=disc.dressing(L), scalars=S, energy=E,
                  momentum=float(np.sum(disc.wP * L)), iteration_error=nt.last_dE,
@@ -416,7 +462,7 @@ def _continue_deformation(model, deformation, radius, grid, tol, start=None):
         disc = Discretization(model, deformation.scaled(trial), radius, grid)
         out = newton(disc, e, tol)
         iterations += out.iterations
-        d = out.jac.fold_indicator() if out.ok else np.nan
+        d = out.fold_indicator if out.ok else np.nan
         if out.ok and d > 0:
             lam, e, nt = trial, out.e, out
             history.append((lam, d))
@@ -496,7 +542,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         elif states and nt.ok:
             fold = states[-1].fold_indicator  # same branch as the coarser level: checked there
         else:
-            fold = nt.jac.fold_indicator() if nt.ok else np.nan
+            fold = nt.fold_indicator if nt.ok else np.nan
         if not (nt.ok and fold > 0) and not deformation.is_zero:
             nt, message, lam_fold, its = _continue_deformation(model, deformation, radius, grid,
                                                                tol, seed)
@@ -509,7 +555,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
                                                f"requested couplings ({message})")
                 return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                    message=message)
-            fold = nt.jac.fold_indicator()
+            fold = nt.fold_indicator
         if not nt.ok:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=nt.message)
