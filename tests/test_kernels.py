@@ -255,3 +255,49 @@ def test_spectral_convolver_rejects_bad_shapes():
         SpectralConvolver(np.zeros((2, 2, 6)))  # even width
     with pytest.raises(ValueError):
         SpectralConvolver(np.zeros((2, 3, 5)))  # not square in species
+
+
+# --------------------------------------------------------------------------------------
+# compiled dense Newton iteration
+# --------------------------------------------------------------------------------------
+
+
+def slow_newton(K, nu, U, V, c, e):
+    """Obviously correct Newton iteration (numpy, dense Jacobian built in full, no Woodbury)."""
+    for _ in range(100):
+        L = np.log1p(np.exp(-e))
+        dL = -1.0 / (1.0 + np.exp(e))
+        F = e - nu + K @ L + U.T @ (c * (V @ L))
+        J = np.eye(e.size) + K * dL[None, :] + (U.T * c) @ (V * dL[None, :])
+        delta = np.linalg.solve(J, -F)
+        e = e + delta
+        if np.max(np.abs(delta)) < 1e-14:
+            break
+    return e
+
+
+@pytest.mark.parametrize("alpha", [0.0, 0.3, -0.4])
+def test_dense_newton_equals_slow_newton(alpha):
+    # a TBA-like system: Lee-Yang kernel phi(t) = -2 sin(2pi/3) cosh t / (sinh^2 t + 3/4)
+    # and a TTbar-like rank-2 term (common practice, no source: the two solvers must agree)
+    from kernels.newton import CONVERGED, dense_newton
+
+    N, h, R = 41, 0.3, 0.7
+    t = h * (np.arange(N) - (N - 1) / 2)
+    d = t[:, None] - t[None, :]
+    s = math.sin(2 * math.pi / 3)
+    K = h / (2 * math.pi) * (-2 * s * np.cosh(d) / (np.sinh(d) ** 2 + s * s))
+    nu = R * np.cosh(t)
+    U = np.stack([np.cosh(t), np.sinh(t)])
+    V = h * U
+    c = np.array([alpha, -alpha]) / (2 * math.pi)
+    wE = -(h / (2 * math.pi)) * np.cosh(t)
+    e, L, dL, it, res, dE, status, fold = dense_newton(K, nu, U, V, c, wE, nu.copy(), 1, 1e-13,
+                                                       60, False)
+    assert status == CONVERGED
+    want = slow_newton(K, nu, U, V, c, nu.copy())
+    assert np.max(np.abs(e - want)) < 1e-12
+    # the fold indicator is det J / det J0 (Woodbury capacitance)
+    J = np.eye(N) + K * dL[None, :]
+    full = J + (U.T * c) @ (V * dL[None, :])
+    assert fold == pytest.approx(np.linalg.det(full) / np.linalg.det(J), rel=1e-10)
