@@ -28,7 +28,7 @@ import scipy.sparse.linalg
 
 from tba.deformation import CDD
 from tba.grid import choose_grid
-from tba.solver import Discretization, newton, solve_ground_state
+from tba.solver import Discretization, _interpolate, newton, solve_ground_state
 
 PARAMETERS = ("radius", "alpha")
 
@@ -249,14 +249,21 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
 
 @dataclass
 class BranchSolution:
-    """A solution off the physical branch, labelled as what it is."""
+    """A solution off the physical branch, labelled as what it is.
+
+    ``error`` bounds |energy - exact| (two grids designed for this point's own effective
+    radius, as for physical points); ``effective_radius`` is R + alpha E (complex for the pair).
+    """
 
     label: str  # "second-branch" or "complex-pair"
     radius: float
     energy: complex
+    error: float
+    effective_radius: complex
     fold_indicator: complex
     residual: float
-    eps: np.ndarray = field(repr=False)
+    grid: object = field(repr=False, default=None)
+    eps: np.ndarray = field(repr=False, default=None)
 
     @property
     def conjugate_energy(self):
@@ -294,8 +301,67 @@ def second_branch(fold, radius):
     nt = newton(disc, point.eps, 1e-13)
     if not nt.ok:
         raise RuntimeError(f"second-branch point did not converge: {nt.message}")
-    return BranchSolution("second-branch", radius, disc.energy(nt.L), nt.fold_indicator,
-                          nt.residual, nt.e)
+    return _polish("second-branch", fam, radius, disc, nt.e)
+
+
+def _transfer(disc_from, eps, disc_to):
+    """eps on another grid: interpolate the kernel part, rebuild driving and CDD terms."""
+    L = ComplexEquations.occupation(eps)[0] if np.iscomplexobj(eps) else disc_from.occupation(eps)[0]
+    S = np.einsum("rij,ij->r", disc_from.V, L)
+    sep = np.einsum("r,rij->ij", disc_from.c * S, disc_from.U)
+    g = eps - disc_from.nu - sep
+    g_to = _interpolate(disc_from.grid, g.real, disc_to.grid.t)
+    if np.iscomplexobj(g):
+        g_to = g_to + 1j * _interpolate(disc_from.grid, g.imag, disc_to.grid.t)
+    return disc_to.nu + g_to + np.einsum("r,rij->ij", disc_to.c * S, disc_to.U)
+
+
+def _polish(label, fam, radius, disc, eps):
+    """Re-solve an off-branch solution on two grids designed for its own effective radius.
+
+    The continuation's grid was designed near the fold; away from it the effective radius
+    R + alpha E shrinks (second branch) or turns complex (the pair), which asks for a wider
+    cutoff or a finer spacing. The two levels give the error estimate, as for physical points.
+    """
+    is_complex = np.iscomplexobj(eps)
+    eqs = ComplexEquations(disc) if is_complex else None
+    L = eqs.occupation(eps)[0] if is_complex else disc.occupation(eps)[0]
+    E = complex(np.sum(disc.wE * L)) if is_complex else disc.energy(L)
+    alpha = fam.deformation.alpha
+    r_eff = radius + alpha * E if fam.deformation.is_ttbar else complex(radius)
+    strip = math.pi / 2 - abs(np.angle(r_eff))
+    if strip <= 0.05:
+        raise RuntimeError(f"effective radius {r_eff:.6g} too far from the real axis to resolve")
+    model, deformation = fam.model, fam.deformation
+    energies, out = [], None
+    for level in (0, 1):
+        grid = choose_grid(model.pole_distance, float(np.min(model.masses)), abs(r_eff), 1e-12,
+                           level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
+                           strip=strip)
+        new = Discretization(model, deformation, radius, grid)
+        e0 = _transfer(disc, eps, new)
+        if is_complex:
+            eqs = ComplexEquations(new)
+            e1, L1, dL1, res, ok = eqs.newton(e0)
+            if not ok:
+                raise RuntimeError(f"{label} point did not converge on the refined grid")
+            energy, fold = eqs.energy(L1), complex(np.nan)
+        else:
+            nt = newton(new, e0, 1e-13)
+            if not nt.ok:
+                raise RuntimeError(f"{label} point did not converge on the refined grid: {nt.message}")
+            e1, L1, res, energy, fold = nt.e, nt.L, nt.residual, new.energy(nt.L), nt.fold_indicator
+        energies.append(energy)
+        disc, eps = new, e1
+        out = (energy, fold, res, grid, e1)
+    energy, fold, res, grid, e1 = out
+    scale = float(np.sum(np.abs(disc.wE * (ComplexEquations.occupation(e1)[0] if is_complex
+                                             else disc.occupation(e1)[0]))))
+    error = abs(energies[1] - energies[0]) + 64 * np.finfo(float).eps * scale
+    if not is_complex and fold > 0:
+        raise RuntimeError("the refined solution fell back onto the physical branch")
+    r_eff = radius + alpha * energy if deformation.is_ttbar else radius
+    return BranchSolution(label, radius, energy, error, r_eff, fold, res, grid, e1)
 
 
 class ComplexEquations:
@@ -314,7 +380,11 @@ class ComplexEquations:
     def occupation(e):
         pos = e.real >= 0
         x = np.exp(np.where(pos, -e, e))
-        L = np.where(pos, np.log1p(x), -e + np.log1p(x))
+        # numpy's complex log1p drops the real part of tiny arguments: series there
+        small = np.abs(x) < 1e-4
+        log1p = np.where(small, x * (1 - x * (1 / 2 - x * (1 / 3 - x * (1 / 4 - x / 5)))),
+                         np.log1p(np.where(small, 0, x)))
+        L = np.where(pos, log1p, -e + log1p)
         dL = np.where(pos, -x / (1 + x), -1 / (1 + x))
         return L, dL
 
@@ -394,12 +464,11 @@ def complex_pair(fold, radius):
         raise RuntimeError("fold curvature not available")
     s = 1j * math.sqrt(2 * (fold.value - radius) / curvature)
     e0 = fold.point.eps + s * fold.point.tangent[0]
-    eqs = ComplexEquations(fam.disc(radius))
+    disc = fam.disc(radius)
+    eqs = ComplexEquations(disc)
     e, L, dL, res, ok = eqs.newton(e0)
     if not ok:
         raise RuntimeError(f"complex Newton did not converge at R = {radius}")
-    E = eqs.energy(L)
-    if E.imag < 0:
-        e, E = np.conj(e), np.conj(E)
-    det = complex(np.nan)
-    return BranchSolution("complex-pair", radius, E, det, res, e)
+    if eqs.energy(L).imag < 0:
+        e = np.conj(e)
+    return _polish("complex-pair", fam, radius, disc, e)

@@ -85,17 +85,20 @@ def _large_radius_spacing(mr, X):
     return lo
 
 
-def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, max_spin=1):
+def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, max_spin=1,
+                strip=math.pi / 2):
     """The grid for a point with effective radius ``r_eff`` (> 0) at relative tolerance ``tol``.
 
     Level 0 resolves log(1/tol) e-folds; every further level is LEVEL_STEPS ladder steps
     finer (h / sqrt 2) and cuts off LEVEL_MARGIN e-folds further out, so that successive
-    levels always differ and the coarser one's error dominates their difference. ``cutoff_extra`` widens the cutoff (in
-    e-folds) when a solve found its tails too large. ``max_spin`` is the highest CDD spin:
-    a cosh(s t) term brings the singularities of L to |Im t| = pi / 2s.
+    levels always differ and the coarser one's error dominates their difference.
+    ``cutoff_extra`` widens the cutoff (in e-folds) when a solve found its tails too large.
+    ``max_spin`` is the highest CDD spin: a cosh(s t) term brings the singularities of L to
+    |Im t| = pi / 2s. ``strip`` is where L's singularities lie for the driving term alone:
+    pi/2 for a real radius, pi/2 - |arg R| for a complex one.
     """
     X0 = exponent(tol, 0)
-    d = min(pole_distance, math.pi / (2 * max_spin))
+    d = min(pole_distance, strip / max_spin)
     mr = min_mass * r_eff
     # strip bound e^{-2 pi d / h} times the integrand's size near the strip edge, which grows
     # like 2 pi e / h when the best half-width d - h / 2pi is used
