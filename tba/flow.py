@@ -60,14 +60,8 @@ class FlowPrediction:
     error: float
 
 
-def predict(level, radius, alpha, k=0, guess=None):
-    """Deformed level at (R, alpha) from an undeformed one by characteristics.
-
-    ``level(Rt)`` returns (E(Rt, 0), dE/dR(Rt, 0), error of E); ``k`` is the momentum
-    quantum number (P R = 2 pi k). The root R~ is the one continuously connected to
-    alpha = 0 (R~ = R), found by Newton's method on R(R~) = radius.
-    """
-    R = float(radius)
+def _characteristic(level, k, alpha):
+    """R~ -> (R, E, beta, error of E, dE~/dR~) along the characteristic through R~."""
 
     def radius_of(Rt):
         E_u, dE_u, err = level(Rt)
@@ -76,23 +70,91 @@ def predict(level, radius, alpha, k=0, guess=None):
         E = E_u * math.cosh(beta) + P_u * math.sinh(beta)
         return Rt * math.cosh(beta) - alpha * E, E, beta, err, dE_u
 
-    Rt = guess if guess is not None else R
-    for _ in range(100):
+    return radius_of
+
+
+def _solve_characteristic(radius_of, R, Rt, k, alpha):
+    """Newton's method on R(R~) = R from R~ = Rt, staying where R~ > 0 and the boost exists."""
+    for _ in range(200):
         R_of, E, beta, err, dE_u = radius_of(Rt)
         if k == 0:
             slope = 1 - alpha * dE_u
         else:  # numerical slope of R(R~); the boost makes the closed form long
             h = 1e-6 * Rt
-            slope = (radius_of(Rt + h)[0] - radius_of(Rt - h)[0]) / (2 * h)
+            try:
+                slope = (radius_of(Rt + h)[0] - radius_of(Rt - h)[0]) / (2 * h)
+            except ValueError:  # next to the edge of the boost's domain: one-sided
+                slope = (radius_of(Rt + h)[0] - R_of) / h
         step = (R_of - R) / slope
-        Rt_new = Rt - step
-        while Rt_new <= 0:
-            step /= 2
+        while True:
             Rt_new = Rt - step
+            try:
+                if Rt_new > 0:
+                    radius_of(Rt_new)
+                    break
+            except ValueError:
+                pass
+            step /= 2
+            if abs(step) < 1e-14 * Rt:
+                raise ValueError(f"no real flow prediction at R = {R}, alpha = {alpha}")
         Rt = Rt_new
         if abs(step) <= 1e-15 * Rt:
-            break
-    R_of, E, beta, err, dE_u = radius_of(Rt)
+            return Rt
+    raise ValueError(f"flow prediction did not converge at R = {R}, alpha = {alpha}")
+
+
+def _bracket_characteristic(radius_of, R, Rt, alpha):
+    """Fallback for Newton: the root of R(R~) = R nearest to Rt, bracketed on a log grid."""
+    grid = Rt * np.exp(np.linspace(-2.0, 2.0, 401))
+    values = []
+    for x in grid:
+        try:
+            values.append(radius_of(x)[0] - R)
+        except ValueError:
+            values.append(np.nan)
+    values = np.array(values)
+    best = None
+    for i in range(grid.size - 1):
+        a, b = values[i], values[i + 1]
+        if np.isfinite(a) and np.isfinite(b) and a * b <= 0:
+            root = brentq(lambda x: radius_of(x)[0] - R, grid[i], grid[i + 1], xtol=1e-15 * grid[i],
+                          rtol=4 * np.finfo(float).eps)
+            if best is None or abs(math.log(root / Rt)) < abs(math.log(best / Rt)):
+                best = root
+    if best is None:
+        raise ValueError(f"no real flow prediction at R = {R}, alpha = {alpha}")
+    return best
+
+
+def predict(level, radius, alpha, k=0, guess=None, steps=4):
+    """Deformed level at (R, alpha) from an undeformed one by characteristics.
+
+    ``level(Rt)`` returns (E(Rt, 0), dE/dR(Rt, 0), error of E); ``k`` is the momentum
+    quantum number (P R = 2 pi k). The root R~ is the one continuously connected to
+    alpha = 0 (where R~ = R): alpha is switched on in ``steps`` steps (more when a step
+    fails), each solved by Newton's method on R(R~) = radius from the previous R~.
+    Raises ValueError where no real prediction exists.
+    """
+    R = float(radius)
+    Rt = R if guess is None else float(guess)
+    if guess is not None:
+        steps = 1
+    done, frac = 0.0, 1.0 / steps
+    while done < 1.0:
+        trial = min(1.0, done + frac)
+        radius_of = _characteristic(level, k, alpha * trial)
+        try:
+            Rt = _solve_characteristic(radius_of, R, Rt, k, alpha * trial)
+            done = trial
+        except ValueError:
+            try:  # Newton wandered (the boost's domain is narrow): bracket the nearest root
+                Rt = _bracket_characteristic(radius_of, R, Rt, alpha * trial)
+                done = trial
+            except ValueError:
+                frac /= 4
+                if frac < 1e-6:
+                    raise
+    R_of, E, beta, err, dE_u = _characteristic(level, k, alpha)(Rt)
     P = 2 * math.pi * k / R
     # an error err in E(R~) moves R~ by alpha err / slope and E by E' that amount
     slope = 1 - alpha * dE_u

@@ -86,7 +86,7 @@ def _large_radius_spacing(mr, X):
 
 
 def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, max_spin=1,
-                strip=math.pi / 2):
+                strip=math.pi / 2, shift=0.0):
     """The grid for a point with effective radius ``r_eff`` (> 0) at relative tolerance ``tol``.
 
     Level 0 resolves log(1/tol) e-folds; every further level is LEVEL_STEPS ladder steps
@@ -95,7 +95,8 @@ def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, 
     ``cutoff_extra`` widens the cutoff (in e-folds) when a solve found its tails too large.
     ``max_spin`` is the highest CDD spin: a cosh(s t) term brings the singularities of L to
     |Im t| = pi / 2s. ``strip`` is where L's singularities lie for the driving term alone:
-    pi/2 for a real radius, pi/2 - |arg R| for a complex one.
+    pi/2 for a real radius, pi/2 - |arg R| for a complex one. ``shift`` widens the grid by a
+    boost rapidity: states with momentum have a driving term m R~ cosh(t - beta).
     """
     X0 = exponent(tol, 0)
     d = min(pole_distance, strip / max_spin)
@@ -108,7 +109,7 @@ def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, 
     h = min(h, _large_radius_spacing(mr, X0))
     h = ladder(h) * 2.0 ** (-LEVEL_STEPS * level / LADDER_STEPS_PER_OCTAVE)
     X = exponent(tol, level)
-    lam = math.acosh(1.0 + (X + 2.0 + cutoff_extra) / mr)
+    lam = math.acosh(1.0 + (X + 2.0 + cutoff_extra) / mr) + abs(shift)
     half = math.ceil(lam / h)
     half = N_QUANTUM * math.ceil(half / N_QUANTUM)
     return Grid(h=h, N=2 * half + 1)

@@ -52,8 +52,13 @@ class SolveResult:
     effective_radius: float = np.nan
     fold_indicator: float = np.nan
     grid: Optional[object] = None
-    rapidities: Optional[np.ndarray] = field(default=None, repr=False)
+    #: the rapidity grid t_i and the pseudo-energies eps_a(t_i) on it (shape n_species x N)
+    rapidity_grid: Optional[np.ndarray] = field(default=None, repr=False)
     pseudo_energies: Optional[np.ndarray] = field(default=None, repr=False)
+    #: excited states: the Bethe quantum numbers I_k naming the level and the particle
+    #: rapidities t_k; empty for the ground state
+    state: tuple = ()
+    rapidities: tuple = ()
     #: data for warm starts and derivatives, not part of the public contract
     _state: Optional[object] = field(default=None, repr=False)
 
@@ -85,4 +90,12 @@ class SolveResult:
             "status": self.status.value,
             "iterations": int(self.iterations),
             "message": self.message,
+            **({"state": [_number(n) for n in self.state], "momentum": self.momentum,
+                "rapidities": [float(t) for t in self.rapidities] if ok else None}
+               if self.state else {}),
         }
+
+
+def _number(n):
+    """A quantum number for JSON: an int when integral, else a float (half-odd: x.5)."""
+    return int(n) if float(n).is_integer() else float(n)

@@ -588,7 +588,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
                        iterations=iterations, residual=fine.residual,
                        effective_radius=_effective_radius(fine, radius, deformation) or np.nan,
                        fold_indicator=fine.fold_indicator, grid=fine.grid,
-                       rapidities=fine.grid.t, pseudo_energies=fine.eps, _state=fine)
+                       rapidity_grid=fine.grid.t, pseudo_energies=fine.eps, _state=fine)
 
 
 def _effective_radius(state, radius, deformation):

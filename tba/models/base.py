@@ -156,6 +156,47 @@ class DiagonalModel:
                     out[a, b] *= _blocks.block_s(x, t) ** mult
         return out
 
+    # -- what excited states with real rapidities need (single species, block models) ----
+    def _block_sum(self, fn, u):
+        u = np.asarray(u, dtype=float)
+        out = np.zeros(u.shape)
+        for x, mult in self.blocks[0][0].items():
+            out += mult * fn(x, u)
+        return out
+
+    def source(self, u):
+        """Real part of log S(u - i pi/2) (the constant log S(-i pi/2 + ...) sign is separate)."""
+        return self._block_sum(_blocks.block_source, u)
+
+    def shifted_kernel(self, u):
+        """psi(u) = phi(u + i pi/2) / i = d/du of `source`."""
+        return self._block_sum(_blocks.block_kernel_shifted, u)
+
+    def shifted_kernel_derivative(self, u):
+        return self._block_sum(_blocks.block_kernel_shifted_derivative, u)
+
+    def phase(self, u):
+        """delta(u) = -i log(-S(u)): odd, delta(0) = 0 (models with S(0) = -1), delta' = phi."""
+        return self._block_sum(_blocks.block_phase, u)
+
+    @property
+    def source_sign(self):
+        """kappa = S(u - i pi/2) / exp(source(u)) = S(0) (-1)^(number of blocks): +1 or -1."""
+        nblocks = sum(abs(k) for k in self.blocks[0][0].values())
+        return int(self.sign[0, 0]) * (-1) ** nblocks
+
+    @property
+    def has_bound_states(self):
+        """A block with positive multiplicity puts a pole of S in the physical strip."""
+        return any(k > 0 for row in self.blocks for c in row for k in c.values())
+
+    @property
+    def excited_strip(self):
+        """Distance from the real axis of the nearest singularity of psi and of the sources:
+        pi/2 - pi x over the blocks (x <= 1/2); infinite without blocks."""
+        xs = [float(x) for x in self.blocks[0][0]]
+        return min((np.pi / 2 - np.pi * x for x in xs), default=np.inf)
+
     def describe(self):
         """A JSON-ready summary written into output files."""
         d = {"name": self.name, "masses": self.masses.tolist(), "statistics": self.statistics,

@@ -38,10 +38,35 @@ def block_kernel(x, t):
 
 
 def block_kernel_shifted(x, u):
-    """psi_x(u) defined by phi_x(u + i pi/2) = i psi_x(u): -2 sin(pi x) sinh u / (cosh^2 u - sin^2(pi x))."""
+    """psi_x(u) defined by phi_x(u + i pi/2) = i psi_x(u): 2 sin(pi x) sinh u / (cosh^2 u - sin^2(pi x)).
+
+    It is also d/du log f_x(u - i pi/2): the derivative of `block_source`.
+    """
     s = np.sin(np.pi * float(x))
     u = np.asarray(u, dtype=float)
-    return -2.0 * s * np.sinh(u) / (np.cosh(u) ** 2 - s * s)
+    return 2.0 * s * np.sinh(u) / (np.cosh(u) ** 2 - s * s)
+
+
+def block_kernel_shifted_derivative(x, u):
+    """d psi_x / du = 2 sin(pi x) cosh u (1 - sin^2(pi x) - sinh^2 u) / (cosh^2 u - sin^2(pi x))^2."""
+    s = np.sin(np.pi * float(x))
+    u = np.asarray(u, dtype=float)
+    return 2.0 * s * np.cosh(u) * (1 - s * s - np.sinh(u) ** 2) / (np.cosh(u) ** 2 - s * s) ** 2
+
+
+def block_source(x, u):
+    """log f_x(u - i pi/2) = log((cosh u - sin(pi x)) / (cosh u + sin(pi x))), real for real u."""
+    s = np.sin(np.pi * float(x))
+    u = np.asarray(u, dtype=float)
+    with np.errstate(divide="ignore"):
+        return np.log((np.cosh(u) - s) / (np.cosh(u) + s))
+
+
+def block_phase(x, u):
+    """delta_x(u) = -i log(-f_x(u)) = -2 arctan(sinh u / sin(pi x)): odd, delta_x(0) = 0,
+    d delta_x / du = phi_x(u)."""
+    s = np.sin(np.pi * float(x))
+    return -2.0 * np.arctan(np.sinh(np.asarray(u, dtype=float)) / s)
 
 
 def block_transform(x, k):

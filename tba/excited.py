@@ -1,0 +1,469 @@
+"""Excited states with real particle rapidities (single-species models without bound states).
+
+For a state of N particles with rapidities t_1..t_N (same conventions as the ground state):
+
+    eps(t) = m R cosh t + sum_j D(t - t_j) - (1/2pi) int phi(t - t') L(t') dt'
+    L(t)   = log(1 + sigma e^{-eps(t)}),      sigma = kappa^N
+    m R sinh t_k + sum_{j != k} delta(t_k - t_j) - (1/2pi) int psi(t_k - t') L(t') dt' = 2 pi I_k
+    E = sum_j m cosh t_j - (m/2pi) int cosh t L,   P = sum_j m sinh t_j - (m/2pi) int sinh t L
+
+with log S(u - i pi/2) = log kappa + D(u) (kappa = +-1, D real), delta(u) = -i log(-S(u))
+(odd, delta(0) = 0) and psi(u) = phi(u + i pi/2) / i = D'(u). These follow from
+eps(t_j + i pi/2) = i pi (2 n_j + 1): the constant i pi of log S(0) = log(-1) per particle is
+what makes I_k half-odd for even N and integer for odd N (I_k = n_k + (1 - N)/2). The sign
+kappa is +1 for sinh-Gordon and -1 for the free fermion, whose sources are then i pi each: for
+odd N they flip the sign inside the logarithm and give the periodic (Ramond) sector with
+integer momenta; for even N the antiperiodic (Neveu-Schwarz) sector with half-odd ones. At
+large R the equations reduce to the Bethe-Yang equations m R sinh t_k + sum delta = 2 pi I_k.
+
+A CDD factor exp(i alpha_s q^2 sinh(s u)) adds alpha_s q^2 (-1)^((s-1)/2) cosh(s u) to D,
+alpha_s q^2 sinh(s u) to delta and the separable kernel alpha_s s q^2 cosh(s(t - t')) to phi
+(q = m for s = 1, q = 1 otherwise).
+
+Requirements (checked): one species, S(0) = -1, block content with non-positive
+multiplicities only (no pole in the physical strip, hence no bound states) and the singularities
+of psi at |Im u| = pi/2 - pi x not too close to the real axis (sinh-Gordon with B < 1.9).
+"""
+
+import math
+import numbers
+from dataclasses import dataclass, field
+from fractions import Fraction
+
+import numpy as np
+import scipy.linalg
+
+from tba.deformation import CDD, NO_DEFORMATION
+from tba.grid import choose_grid
+from tba.result import SolveResult, Status
+from tba.solver import MIN_TOL, Discretization, _interpolate
+
+_EPS = np.finfo(float).eps
+#: radius where states start from the Bethe-Yang equations before continuing to smaller R
+BETHE_YANG_RADIUS = 12.0
+#: psi's singularities closer to the real axis than this are refused
+MIN_STRIP = 0.15
+
+
+def parse_state(numbers_):
+    """Quantum numbers from ints, floats, Fractions or strings like "1/2" and "-3/2"."""
+    out = []
+    for n in numbers_:
+        if isinstance(n, str):
+            try:
+                n = Fraction(n.strip())
+            except ValueError:
+                raise ValueError(f"state: not a number or fraction: {n!r}") from None
+        elif isinstance(n, bool) or not isinstance(n, (numbers.Real, Fraction)):
+            raise TypeError(f"state: quantum numbers must be real numbers, got {n!r}")
+        out.append(Fraction(n).limit_denominator(1000))
+    if not out:
+        raise ValueError("state: at least one quantum number is needed (the ground state has none)")
+    N = len(out)
+    for n in out:
+        if N % 2 == 0 and n.denominator != 2:
+            raise ValueError(f"state: with {N} particles the quantum numbers are half-odd, got {n}")
+        if N % 2 == 1 and n.denominator != 1:
+            raise ValueError(f"state: with {N} particle(s) the quantum numbers are integers, got {n}")
+    if len(set(out)) != N:
+        raise ValueError("state: quantum numbers must be distinct (S(0) = -1 excludes equal ones)")
+    return tuple(sorted(out))
+
+
+def check_model(model):
+    if model.n_species != 1:
+        raise ValueError(f"model: excited states need a single-species model ({model.name} has "
+                         f"{model.n_species})")
+    if model.blocks is None:
+        raise ValueError("model: excited states need a model given by block content")
+    if model.sign[0, 0] != -1:
+        raise ValueError("model: excited states need S(0) = -1")
+    if model.has_bound_states:
+        raise ValueError(f"model: {model.name} has bound states (a block with positive "
+                         f"multiplicity); real-rapidity excited states do not apply")
+    if model.excited_strip < MIN_STRIP:
+        raise ValueError(f"model: singularities of psi at {model.excited_strip:.3g} from the real "
+                         f"axis are too close for the trapezoid rule (sinh-Gordon B >= 1.9)")
+
+
+class Scattering:
+    """The functions of a rapidity difference u that excited states need, CDD terms included:
+    the source D(u) (real part of log S(u - i pi/2)), psi = D', psi', the phase delta(u) =
+    -i log(-S(u)) and delta' = phi."""
+
+    def __init__(self, model, deformation):
+        self.model = model
+        m = float(model.masses[0])
+        self.cdd = [(s, a * (m * m if s == 1 else 1.0)) for s, a in deformation.couplings.items()]
+
+    def _cdd(self, u, fn, power, odd_sign):
+        out = 0.0
+        for s, a in self.cdd:
+            sign = (-1) ** ((s - 1) // 2) if odd_sign else 1
+            out = out + a * sign * s ** power * fn(s * u)
+        return out
+
+    def D(self, u):
+        u = np.clip(u, -700.0, 700.0)
+        return self.model.source(u) + self._cdd(u, np.cosh, 0, True)
+
+    def psi(self, u):  # = D'
+        u = np.clip(u, -700.0, 700.0)
+        return self.model.shifted_kernel(u) + self._cdd(u, np.sinh, 1, True)
+
+    def dpsi(self, u):
+        u = np.clip(u, -700.0, 700.0)
+        return self.model.shifted_kernel_derivative(u) + self._cdd(u, np.cosh, 2, True)
+
+    def delta(self, u):
+        u = np.clip(u, -700.0, 700.0)
+        return self.model.phase(u) + self._cdd(u, np.sinh, 0, False)
+
+    def ddelta(self, u):
+        u = np.clip(u, -700.0, 700.0)
+        return self.model.kernel(u)[0, 0] + self._cdd(u, np.cosh, 1, False)
+
+
+class ExcitedEquations:
+    """The discretised excited-state equations for fixed quantum numbers."""
+
+    def __init__(self, model, deformation, radius, grid, state):
+        self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
+        self.state = state
+        self.I = np.array([float(n) for n in state])
+        self.Np = len(state)
+        self.disc = Discretization(model, deformation, radius, grid)
+        self.m = float(model.masses[0])
+        self.sigma = model.source_sign ** self.Np
+        self.N = grid.N
+        sc = Scattering(model, deformation)
+        self.D, self.psi, self.dpsi, self.delta, self.ddelta = sc.D, sc.psi, sc.dpsi, sc.delta, sc.ddelta
+
+    # -- the equations ------------------------------------------------------------------------
+    def occupation(self, eps):
+        """L = log(1 + sigma e^{-eps}) and dL/deps; finite only where 1 + sigma e^{-eps} > 0."""
+        with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+            if self.sigma > 0:
+                x = np.exp(-np.abs(eps))
+                L = np.where(eps > 0, np.log1p(x), -eps + np.log1p(x))
+                dL = np.where(eps > 0, -x / (1 + x), -1 / (1 + x))
+            else:
+                x = np.exp(-eps)
+                L = np.log1p(-x)
+                dL = x / (1 - x)
+        ok = bool(np.all(np.isfinite(L)))
+        return L, dL, ok
+
+    def sources(self, t):
+        """sum_j D(t_grid - t_j) on the grid."""
+        tg = self.grid.t
+        return sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
+
+    def residual(self, eps, t, L):
+        d = self.disc
+        F = eps - d.nu[0] - self.sources(t) + d.ops.convolve(L[None, :])[0] + d.separable(L[None, :])[1][0]
+        h = self.grid.h
+        tg = self.grid.t
+        Q = np.empty(self.Np)
+        for k in range(self.Np):
+            others = np.delete(t, k)
+            Q[k] = (self.m * self.radius * math.sinh(t[k]) + np.sum(self.delta(t[k] - others))
+                    - (h / (2 * np.pi)) * np.dot(self.psi(t[k] - tg), L) - 2 * np.pi * self.I[k])
+        return F, Q
+
+    def jacobian(self, eps, t, L, dL):
+        d = self.disc
+        N, Np, h = self.N, self.Np, self.grid.h
+        tg = self.grid.t
+        J = np.zeros((N + Np, N + Np))
+        Jee = np.eye(N)
+        if not d.ops.trivial:
+            Jee += d.ops.matrix * dL[None, :]
+        for k in range(d.c.size):
+            Jee += d.c[k] * np.outer(d.U[k, 0], d.V[k, 0] * dL)
+        J[:N, :N] = Jee
+        for j in range(Np):
+            J[:N, N + j] = self.psi(tg - t[j])  # d/dt_j of -D(t - t_j)
+        for k in range(Np):
+            J[N + k, :N] = -(h / (2 * np.pi)) * self.psi(t[k] - tg) * dL
+            others = np.delete(np.arange(Np), k)
+            J[N + k, N + k] = (self.m * self.radius * math.cosh(t[k])
+                               + np.sum(self.ddelta(t[k] - t[others]))
+                               - (h / (2 * np.pi)) * np.dot(self.dpsi(t[k] - tg), L))
+            for j in others:
+                J[N + k, N + j] = -self.ddelta(t[k] - t[j])
+        return J
+
+    def energy(self, t, L):
+        d = self.disc
+        E = self.m * float(np.sum(np.cosh(t))) + float(np.sum(d.wE[0] * L))
+        P = self.m * float(np.sum(np.sinh(t))) + float(np.sum(d.wP[0] * L))
+        return E, P
+
+    def initial_guess(self, t, from_state=None):
+        """eps from a solved neighbour (interpolating its kernel part) or from sources alone."""
+        eps = self.disc.nu[0] + self.sources(t)
+        if from_state is not None:
+            g = from_state.dressing
+            if from_state.grid != self.grid:
+                g = _interpolate(from_state.grid, g[None, :], self.grid.t)[0]
+            eps = eps + g
+            if self.disc.c.size and from_state.scalars.size == self.disc.c.size:
+                eps -= np.einsum("r,ri->i", self.disc.c * from_state.scalars, self.disc.U[:, 0])
+        return eps
+
+
+@dataclass
+class ExcitedState:
+    """A solved excited state on one grid."""
+
+    grid: object
+    radius: float
+    state: tuple
+    eps: np.ndarray
+    rapidities: np.ndarray
+    dressing: np.ndarray
+    scalars: np.ndarray
+    energy: float
+    momentum: float
+    iteration_error: float
+    residual: float
+    iterations: int
+    rounding_error: float
+    #: sign of det J: constant along a branch, flips at a fold
+    det_sign: float
+    #: smallest over largest LU pivot of the Jacobian: vanishes at a fold
+    jac_scale: float = field(default=np.nan)
+    #: the same level undeformed at this radius (warm starts for neighbours)
+    undeformed: object = field(default=None, repr=False)
+
+
+def _newton(eqs, eps, t, tol, maxiter=60):
+    """Newton's method with backtracking on (eps, rapidities). Returns (ExcitedState|None, msg)."""
+    N = eqs.N
+    L, dL, ok = eqs.occupation(eps)
+    if not ok:
+        return None, "initial guess outside the domain of L", 0
+    F, Q = eqs.residual(eps, t, L)
+    r = max(np.max(np.abs(F)), np.max(np.abs(Q)))
+    floor = 64 * _EPS * max(1.0, float(np.max(np.abs(eqs.disc.nu))))
+    for it in range(maxiter + 1):
+        J = eqs.jacobian(eps, t, L, dL)
+        try:
+            lu = scipy.linalg.lu_factor(J, check_finite=False)
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            return None, f"linear solve failed: {exc}", it
+        step = scipy.linalg.lu_solve(lu, -np.concatenate([F, Q]), check_finite=False)
+        if not np.all(np.isfinite(step)):
+            return None, "singular Jacobian", it
+        de, dt = step[:N], step[N:]
+        E, P = eqs.energy(t, L)
+        dE = abs(eqs.m * float(np.dot(np.sinh(t), dt)) + float(np.sum(eqs.disc.wE[0] * dL * de)))
+        small = max(np.max(np.abs(de)), np.max(np.abs(dt), initial=0.0)) < 1e-6 or r <= floor
+        if small and dE <= max(1e-2 * tol, 8 * _EPS) * max(abs(E), eqs.m):
+            d = eqs.disc
+            S, _ = d.separable(L[None, :])
+            diag = np.abs(np.diag(lu[0]))
+            rounding = 4 * _EPS * (float(np.sum(np.abs(d.wE[0] * L)))
+                                   + float(np.sum(np.abs(d.wE[0] * dL * eps)))
+                                   + eqs.m * float(np.sum(np.cosh(t))))
+            return ExcitedState(grid=eqs.grid, radius=eqs.radius, state=eqs.state, eps=eps,
+                                rapidities=t.copy(), dressing=-d.ops.convolve(L[None, :])[0],
+                                scalars=S, energy=E, momentum=P, iteration_error=dE, residual=r,
+                                iterations=it, rounding_error=rounding,
+                                det_sign=float(np.prod(np.sign(np.diag(lu[0])))
+                                               * (-1) ** int(np.sum(lu[1] != np.arange(lu[1].size)))),
+                                jac_scale=float(np.min(np.abs(diag)) / np.max(np.abs(diag)))), "converged", it
+        if it == maxiter:
+            break
+        lam = 1.0
+        while True:
+            eps_new, t_new = eps + lam * de, t + lam * dt
+            L_new, dL_new, ok = eqs.occupation(eps_new)
+            if ok:
+                F_new, Q_new = eqs.residual(eps_new, t_new, L_new)
+                r_new = max(np.max(np.abs(F_new)), np.max(np.abs(Q_new)))
+                if r_new <= (1 - 0.25 * lam) * r or r_new <= floor:
+                    break
+            lam *= 0.5
+            if lam < 1e-4:
+                return None, "line search failed", it
+        eps, t, L, dL, F, Q, r = eps_new, t_new, L_new, dL_new, F_new, Q_new, r_new
+    return None, f"no convergence in {maxiter} Newton steps", maxiter
+
+
+def bethe_yang(model, radius, state, deformation=NO_DEFORMATION):
+    """Rapidities from m R sinh t_k + sum_{j != k} delta(t_k - t_j) = 2 pi I_k (large-R limit)."""
+    check_model(model)
+    I = np.array([float(n) for n in parse_state(state)])
+    sc = Scattering(model, deformation)
+    m, R, Np = float(model.masses[0]), float(radius), I.size
+    t = np.arcsinh(2 * np.pi * I / (m * R))
+    for _ in range(100):
+        Q = np.array([m * R * math.sinh(t[k]) + np.sum(sc.delta(t[k] - np.delete(t, k)))
+                      - 2 * np.pi * I[k] for k in range(Np)])
+        J = np.zeros((Np, Np))
+        for k in range(Np):
+            others = np.delete(np.arange(Np), k)
+            J[k, k] = m * R * math.cosh(t[k]) + np.sum(sc.ddelta(t[k] - t[others]))
+            for j in others:
+                J[k, j] = -sc.ddelta(t[k] - t[j])
+        step = np.linalg.solve(J, -Q)
+        t = t + step
+        if np.max(np.abs(step)) < 1e-15 * max(1.0, float(np.max(np.abs(t)))):
+            break
+    return t
+
+
+def bethe_yang_energy(model, radius, state, deformation=NO_DEFORMATION):
+    """E and P of the Bethe-Yang solution (no finite-size corrections beyond the phases)."""
+    t = bethe_yang(model, radius, state, deformation)
+    m = float(model.masses[0])
+    return m * float(np.sum(np.cosh(t))), m * float(np.sum(np.sinh(t)))
+
+
+def _grid(model, deformation, r_eff, tol, level):
+    """Grid for a driving term m R~ cosh(t - beta): r_eff = (R~, beta)."""
+    strip = min(math.pi / 2, model.excited_strip)
+    Rt, beta = r_eff
+    return choose_grid(model.pole_distance, float(model.masses[0]), max(Rt, 1e-3), tol, level,
+                       cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
+                       strip=strip, shift=beta)
+
+
+def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff):
+    grid = _grid(model, deformation, r_eff, tol, level)
+    eqs = ExcitedEquations(model, deformation, radius, grid, state)
+    t0 = seed.rapidities if seed is not None else bethe_yang(model, radius, state, deformation)
+    return _newton(eqs, eqs.initial_guess(t0, seed), t0, tol)
+
+
+def _effective_radius(deformation, radius, E, P=0.0):
+    """(R~, beta) of the driving term m (R + alpha E) cosh t - m alpha P sinh t = m R~ cosh(t - beta)
+    (TTbar only; other deformations keep R)."""
+    if not deformation.is_ttbar:
+        return radius, 0.0
+    a = deformation.alpha
+    c, s = radius + a * E, a * P
+    if c <= abs(s):
+        return max(c, 1e-3), 0.0  # no real solution nearby: let the solve fail cleanly
+    return math.sqrt(c * c - s * s), math.atanh(s / c)
+
+
+def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=None):
+    """The excited level named by ``state`` (Bethe quantum numbers I_k) at radius R.
+
+    The undeformed level is followed in R from the Bethe-Yang solution at large R (or from
+    ``start``, a converged result for the same state); the deformation is then switched on
+    at fixed R, as the flow in alpha does. The point is solved on two grids for the error
+    estimate. Status NO_REAL_SOLUTION when the level meets its branch point before the
+    requested coupling (positive levels for alpha < 0).
+    """
+    from tba.solver import _validate
+
+    check_model(model)
+    state = parse_state(state)
+    radius, tol = _validate(radius, tol)
+    deformation = NO_DEFORMATION if deformation is None else deformation
+    base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
+                coupling=model.coupling, state=state)
+    prev = start._state if (isinstance(start, SolveResult) and start.converged
+                            and tuple(start.state) == state) else None
+    iterations = 0
+    # -- the undeformed level at R: continuation in R ---------------------------------------------
+    seed = prev.undeformed if prev is not None else None
+    if seed is None:
+        R0 = max(radius, BETHE_YANG_RADIUS / float(model.masses[0]))
+        seed, msg, its = _solve_level(model, NO_DEFORMATION, R0, state, tol, 0, None, (R0, 0.0))
+        iterations += its
+        if seed is None:
+            return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                               message=f"no start from the Bethe-Yang solution at R = {R0:g}: {msg}")
+    seed, msg, its = _follow(model, NO_DEFORMATION, state, tol, seed, "radius", radius)
+    iterations += its
+    if seed is None:
+        return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations, message=msg)
+    undeformed = seed
+    # -- switch the deformation on at fixed R ------------------------------------------------------
+    if not deformation.is_zero:
+        seed, msg, its = _follow(model, deformation, state, tol, seed, "coupling", 1.0)
+        iterations += its
+        if seed is None:
+            status = Status.NO_REAL_SOLUTION if msg.startswith("no real") else Status.NOT_CONVERGED
+            return SolveResult(**base, status=status, iterations=iterations, message=msg)
+    # -- two levels at the target ----------------------------------------------------------------
+    states = []
+    for level in (0, 1, 2, 3):
+        r_eff = _effective_radius(deformation, radius, seed.energy, seed.momentum)
+        new, msg, its = _solve_level(model, deformation, radius, state, tol, level, seed, r_eff)
+        iterations += its
+        if new is not None and new.det_sign != seed.det_sign:
+            new, msg = None, "the solution left the branch (det J changed sign)"
+        if new is None:
+            return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                               message=f"refinement level {level}: {msg}")
+        states.append(new)
+        seed = new
+        if len(states) >= 2:
+            fine, coarse = states[-1], states[-2]
+            error = (abs(fine.energy - coarse.energy) + fine.iteration_error + coarse.iteration_error
+                     + fine.rounding_error)
+            if error <= tol * max(abs(fine.energy), float(model.masses[0])):
+                fine.undeformed = undeformed
+                return SolveResult(**base, status=Status.CONVERGED, energy=fine.energy, error=error,
+                                   momentum=fine.momentum, message="converged",
+                                   iterations=iterations, residual=fine.residual,
+                                   effective_radius=_effective_radius(
+                                       deformation, radius, fine.energy, fine.momentum)[0],
+                                   grid=fine.grid, rapidity_grid=fine.grid.t,
+                                   pseudo_energies=fine.eps[None, :],
+                                   rapidities=tuple(float(t) for t in fine.rapidities), _state=fine)
+    return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                       message=f"error estimate {error:.3g} above the tolerance after 4 levels")
+
+
+def _follow(model, deformation, state, tol, seed, parameter, target):
+    """Continue a solved level in R (parameter="radius", deformation fixed) or in the scale
+    lambda of the deformation's couplings (parameter="coupling", from seed at lambda = 0 to
+    ``target``), on level-0 grids. Steps that change the sign of det J (crossing a fold) are
+    refused. Returns (state or None, message, Newton iterations)."""
+    its_total = 0
+    if parameter == "radius":
+        now = seed.radius
+        value = lambda p: (deformation, p)  # noqa: E731
+    else:
+        now = 0.0
+        value = lambda p: (deformation.scaled(p), seed.radius)  # noqa: E731
+    step = (target - now) / 4 if parameter == "radius" else 0.25
+    history = [(now, seed.jac_scale)]
+    while now != target:
+        trial = target if abs(target - now) <= abs(step) else now + step
+        defo, R = value(trial)
+        r_eff = _effective_radius(defo, R, seed.energy, seed.momentum)
+        new, msg, its = _solve_level(model, defo, R, state, tol, 0, seed, r_eff)
+        its_total += its
+        if new is not None and new.det_sign != seed.det_sign:
+            new, msg = None, "the solution left the branch (det J changed sign)"
+        if new is not None:
+            seed, now = new, trial
+            history.append((now, new.jac_scale))
+            step *= 1.5
+            continue
+        step *= 0.5
+        if abs(step) < 1e-9 * max(abs(now), 1e-3):
+            return None, _stalled(parameter, history, target, now, msg), its_total
+    return seed, "converged", its_total
+
+
+def _stalled(parameter, history, target, now, msg):
+    """Why a continuation could not go on: a fold (branch point) or a failure."""
+    if len(history) >= 2 and parameter == "coupling":
+        (p1, s1), (p2, s2) = history[-2], history[-1]
+        # near a fold the smallest pivot ratio of the Jacobian vanishes like sqrt(p_c - p)
+        slope = (s2 * s2 - s1 * s1) / (p2 - p1)
+        p_c = p2 - s2 * s2 / slope if slope < 0 else math.nan
+        if math.isfinite(p_c) and p_c < target:
+            return (f"no real solution: the level meets its branch point at about {p_c:.6g} "
+                    f"times the requested couplings")
+    name = "R" if parameter == "radius" else "the coupling scale"
+    return f"continuation in {name} stalled at {now:.12g}: {msg}"
