@@ -230,6 +230,8 @@ class ExcitedState:
     residual: float
     iterations: int
     rounding_error: float
+    #: exact dE/dR at fixed couplings and quantum numbers (linearised equations)
+    dE_dR: float
     #: sign of det J: constant along a branch, flips at a fold
     det_sign: float
     #: smallest over largest LU pivot of the Jacobian: vanishes at a fold
@@ -267,7 +269,12 @@ def _newton(eqs, eps, t, tol, maxiter=60):
             rounding = 4 * _EPS * (float(np.sum(np.abs(d.wE[0] * L)))
                                    + float(np.sum(np.abs(d.wE[0] * dL * eps)))
                                    + eqs.m * float(np.sum(np.cosh(t))))
+            # exact dE/dR from the linearised equations: J dx/dR = -(dF/dR, dQ/dR)
+            dx = scipy.linalg.lu_solve(lu, -np.concatenate([-eqs.disc.nu[0] / eqs.radius,
+                                                            eqs.m * np.sinh(t)]), check_finite=False)
+            dE_dR = eqs.m * float(np.dot(np.sinh(t), dx[N:])) + float(np.sum(eqs.disc.wE[0] * dL * dx[:N]))
             return ExcitedState(grid=eqs.grid, radius=eqs.radius, state=eqs.state, eps=eps,
+                                dE_dR=dE_dR,
                                 rapidities=t.copy(), dressing=-d.ops.convolve(L[None, :])[0],
                                 scalars=S, energy=E, momentum=P, iteration_error=dE, residual=r,
                                 iterations=it, rounding_error=rounding,

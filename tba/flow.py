@@ -194,6 +194,62 @@ def predict_ground_state(model, radius, alpha, tol=1e-13, curve=None):
     return predict(curve, radius, alpha)
 
 
+class ExcitedCurve:
+    """An undeformed excited level E_n(R, 0), named by its Bethe quantum numbers, by TBA on
+    demand (warm starts, cache, exact dE/dR)."""
+
+    def __init__(self, model, state, tol=1e-13):
+        from tba.excited import parse_state
+
+        self.model, self.state, self.tol = model, parse_state(state), tol
+        self.momentum_number = sum(self.state)
+        self._cache = {}
+        self._last = None
+
+    def __call__(self, radius):
+        from tba.excited import solve_excited
+
+        R = float(radius)
+        res = self._cache.get(R)
+        if res is None:
+            res = solve_excited(self.model, R, self.state, tol=self.tol, start=self._last)
+            res.raise_for_status()
+            self._cache[R] = self._last = res
+        return res.energy, res._state.dE_dR, res.error
+
+
+def level_branch_point(level, alpha, k=0, radius_range=(1e-2, 20.0)):
+    """Branch radius of a deformed level from its undeformed curve: the minimum over R~ of
+    R(R~) along the characteristics (alpha < 0 for positive levels, alpha > 0 for the ground
+    state). R(R~) is stationary there, so R_c is insensitive to the position of R~_*.
+    Returns (R_c, E(R_c), R~_*)."""
+    from scipy.optimize import minimize_scalar
+
+    radius_of = _characteristic(level, k, alpha)
+
+    def R_of(x):
+        try:
+            return radius_of(math.exp(x))[0]
+        except ValueError:
+            return math.inf
+
+    lo, hi = (math.log(r) for r in radius_range)
+    # walk down from the large-R end until R(R~) turns up again: that brackets the minimum
+    xs, values = [hi], [R_of(hi)]
+    while True:
+        x = xs[-1] - 0.25
+        if x < lo:
+            raise ValueError("the level has no branch point inside radius_range")
+        xs.append(x)
+        values.append(R_of(x))
+        if len(values) >= 3 and values[-1] > values[-2] < values[-3]:
+            break
+    best = minimize_scalar(R_of, bracket=(xs[-1], xs[-2], xs[-3]), method="brent", tol=1e-10)
+    Rt = math.exp(best.x)
+    R_c, E, beta, err, dE = radius_of(Rt)
+    return R_c, E, Rt
+
+
 # -- the ground state's branch point ---------------------------------------------------------------
 
 @dataclass

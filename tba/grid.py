@@ -79,7 +79,7 @@ def _large_radius_spacing(mr, X):
     lo, hi = h, 4.0
     if excess(hi) <= 0:
         return hi
-    for _ in range(60):
+    for _ in range(32):  # relative 1e-9: far finer than the ladder that rounds h afterwards
         mid = 0.5 * (lo + hi)
         lo, hi = (mid, hi) if excess(mid) <= 0 else (lo, mid)
     return lo

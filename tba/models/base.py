@@ -132,12 +132,12 @@ class DiagonalModel:
             if out.shape != (n, n) + t.shape:
                 raise ValueError(f"kernel_function returned shape {out.shape}, expected {(n, n) + t.shape}")
             return out
+        # each distinct block once, combined with the multiplicity matrix of every pair
+        xs = sorted({x for row in self.blocks for c in row for x in c}, key=float)
         out = np.zeros((n, n) + t.shape)
-        for a in range(n):
-            for b in range(a, n):
-                for x, mult in self.blocks[a][b].items():
-                    out[a, b] += mult * _blocks.block_kernel(x, t)
-                out[b, a] = out[a, b]
+        for x in xs:
+            mult = np.array([[c.get(x, 0) for c in row] for row in self.blocks], dtype=float)
+            out += mult.reshape((n, n) + (1,) * t.ndim) * _blocks.block_kernel(x, t)
         return out
 
     def s_matrix(self, t):
