@@ -22,7 +22,8 @@ alpha_s q^2 sinh(s u) to delta and the separable kernel alpha_s s q^2 cosh(s(t -
 
 Requirements (checked): one species, S(0) = -1, block content with non-positive
 multiplicities only (no pole in the physical strip, hence no bound states) and the singularities
-of psi at |Im u| = pi/2 - pi x not too close to the real axis (sinh-Gordon with B < 1.9).
+of psi at |Im u| = pi/2 - pi x not too close to the real axis (for sinh-Gordon, B not within
+0.096 of the self-dual point B = 1, where they reach the real axis).
 """
 
 import math
@@ -83,7 +84,7 @@ def check_model(model):
                          f"multiplicity); real-rapidity excited states do not apply")
     if model.excited_strip < MIN_STRIP:
         raise ValueError(f"model: singularities of psi at {model.excited_strip:.3g} from the real "
-                         f"axis are too close for the trapezoid rule (sinh-Gordon B >= 1.9)")
+                         f"axis are too close for the trapezoid rule (sinh-Gordon with |B - 1| < 0.096)")
 
 
 class Scattering:
@@ -160,6 +161,7 @@ class ExcitedEquations:
         return sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
 
     def residual(self, eps, t, L):
+        t = np.clip(t, -700.0, 700.0)  # a wild Newton trial must not overflow
         d = self.disc
         F = eps - d.nu[0] - self.sources(t) + d.ops.convolve(L[None, :])[0] + d.separable(L[None, :])[1][0]
         h = self.grid.h
@@ -172,6 +174,7 @@ class ExcitedEquations:
         return F, Q
 
     def jacobian(self, eps, t, L, dL):
+        t = np.clip(t, -700.0, 700.0)
         d = self.disc
         N, Np, h = self.N, self.Np, self.grid.h
         tg = self.grid.t
@@ -195,6 +198,7 @@ class ExcitedEquations:
         return J
 
     def energy(self, t, L):
+        t = np.clip(t, -700.0, 700.0)
         d = self.disc
         E = self.m * float(np.sum(np.cosh(t))) + float(np.sum(d.wE[0] * L))
         P = self.m * float(np.sum(np.sinh(t))) + float(np.sum(d.wP[0] * L))

@@ -24,6 +24,7 @@ import numpy as np
 from scipy.optimize import brentq
 
 from tba.deformation import NO_DEFORMATION
+from tba.result import SolveError
 from tba.solver import energy_derivatives, solve_ground_state
 
 
@@ -64,7 +65,10 @@ def _characteristic(level, k, alpha):
     """R~ -> (R, E, beta, error of E, dE~/dR~) along the characteristic through R~."""
 
     def radius_of(Rt):
-        E_u, dE_u, err = level(Rt)
+        try:
+            E_u, dE_u, err = level(Rt)
+        except SolveError as exc:  # a radius where the level itself has no trusted value
+            raise ValueError(str(exc)) from None
         P_u = 2 * math.pi * k / Rt
         beta = math.atanh(alpha * P_u / (Rt - alpha * E_u)) if k else 0.0
         E = E_u * math.cosh(beta) + P_u * math.sinh(beta)
@@ -103,9 +107,19 @@ def _solve_characteristic(radius_of, R, Rt, k, alpha):
     raise ValueError(f"flow prediction did not converge at R = {R}, alpha = {alpha}")
 
 
+def _slope(radius_of, Rt):
+    """dR/dR~ along the characteristic (centred, or one-sided next to the boost's domain edge)."""
+    h = 1e-6 * Rt
+    try:
+        return (radius_of(Rt + h)[0] - radius_of(Rt - h)[0]) / (2 * h)
+    except ValueError:
+        return (radius_of(Rt + h)[0] - radius_of(Rt)[0]) / h
+
+
 def _bracket_characteristic(radius_of, R, Rt, alpha):
-    """Fallback for Newton: the root of R(R~) = R nearest to Rt, bracketed on a log grid."""
-    grid = Rt * np.exp(np.linspace(-2.0, 2.0, 401))
+    """Fallback for Newton: the root of R(R~) = R nearest to Rt, bracketed on a log grid close
+    to Rt (a root far away belongs to another branch)."""
+    grid = Rt * np.exp(np.linspace(-0.3, 0.3, 121))
     values = []
     for x in grid:
         try:
@@ -144,16 +158,21 @@ def predict(level, radius, alpha, k=0, guess=None, steps=4):
         trial = min(1.0, done + frac)
         radius_of = _characteristic(level, k, alpha * trial)
         try:
-            Rt = _solve_characteristic(radius_of, R, Rt, k, alpha * trial)
-            done = trial
+            try:
+                new = _solve_characteristic(radius_of, R, Rt, k, alpha * trial)
+            except ValueError:  # Newton wandered (the boost's domain is narrow): bracket
+                new = _bracket_characteristic(radius_of, R, Rt, alpha * trial)
+            # the branch connected to alpha = 0 has dR/dR~ > 0 (= 1 there): a root with a
+            # negative slope lies past a fold, on another branch
+            if _slope(radius_of, new) <= 0:
+                raise ValueError(f"no real flow prediction at R = {R}, alpha = {alpha}: fold")
+            if abs(math.log(new / Rt)) > 0.25:  # a jump, not a continuation: another branch
+                raise ValueError(f"no continuous flow prediction at R = {R}, alpha = {alpha}")
+            Rt, done = new, trial
         except ValueError:
-            try:  # Newton wandered (the boost's domain is narrow): bracket the nearest root
-                Rt = _bracket_characteristic(radius_of, R, Rt, alpha * trial)
-                done = trial
-            except ValueError:
-                frac /= 4
-                if frac < 1e-6:
-                    raise
+            frac /= 4
+            if frac < 1e-6:
+                raise
     R_of, E, beta, err, dE_u = _characteristic(level, k, alpha)(Rt)
     P = 2 * math.pi * k / R
     # an error err in E(R~) moves R~ by alpha err / slope and E by E' that amount
@@ -218,14 +237,15 @@ class ExcitedCurve:
         return res.energy, res._state.dE_dR, res.error
 
 
-def level_branch_point(level, alpha, k=0, radius_range=(1e-2, 20.0)):
-    """Branch radius of a deformed level from its undeformed curve: the minimum over R~ of
-    R(R~) along the characteristics (alpha < 0 for positive levels, alpha > 0 for the ground
-    state). R(R~) is stationary there, so R_c is insensitive to the position of R~_*.
+def level_branch_point(level, alpha, radius_range=(1e-2, 20.0)):
+    """Branch radius of a deformed level with P = 0 from its undeformed curve: the minimum
+    over R~ of R(R~) = R~ - alpha E(R~) (alpha < 0 for positive levels, alpha > 0 for the
+    ground state). R(R~) is stationary there, so R_c is insensitive to the position of R~_*.
+    (With P != 0 the boost's domain ends where R(R~) -> 0 and there is no such minimum.)
     Returns (R_c, E(R_c), R~_*)."""
     from scipy.optimize import minimize_scalar
 
-    radius_of = _characteristic(level, k, alpha)
+    radius_of = _characteristic(level, 0, alpha)
 
     def R_of(x):
         try:

@@ -34,7 +34,9 @@ def block_kernel(x, t):
     """phi_x(t) = -i d/dt log f_x(t), real."""
     s = np.sin(np.pi * float(x))
     t = np.asarray(t, dtype=float)
-    return -2.0 * s * np.cosh(t) / (np.sinh(t) ** 2 + s * s)
+    with np.errstate(over="ignore"):  # cosh overflows to inf for |t| > 710: the kernel is 0 there
+        sech = 1.0 / np.cosh(t)
+    return -2.0 * s * sech / (np.tanh(t) ** 2 + (s * sech) ** 2)
 
 
 def block_kernel_shifted(x, u):
@@ -44,14 +46,19 @@ def block_kernel_shifted(x, u):
     """
     s = np.sin(np.pi * float(x))
     u = np.asarray(u, dtype=float)
-    return 2.0 * s * np.sinh(u) / (np.cosh(u) ** 2 - s * s)
+    with np.errstate(over="ignore"):
+        sech = 1.0 / np.cosh(u)
+    return 2.0 * s * np.tanh(u) * sech / (1.0 - (s * sech) ** 2)  # no overflow at large |u|
 
 
 def block_kernel_shifted_derivative(x, u):
     """d psi_x / du = 2 sin(pi x) cosh u (1 - sin^2(pi x) - sinh^2 u) / (cosh^2 u - sin^2(pi x))^2."""
     s = np.sin(np.pi * float(x))
     u = np.asarray(u, dtype=float)
-    return 2.0 * s * np.cosh(u) * (1 - s * s - np.sinh(u) ** 2) / (np.cosh(u) ** 2 - s * s) ** 2
+    with np.errstate(over="ignore"):
+        sech = 1.0 / np.cosh(u)
+    tanh = np.tanh(u)
+    return 2.0 * s * sech * ((1 - s * s) * sech ** 2 - tanh ** 2) / (1.0 - (s * sech) ** 2) ** 2
 
 
 def block_source(x, u):

@@ -1,0 +1,198 @@
+"""Excited states with real rapidities: free fermion (exact), sinh-Gordon, deformations."""
+
+import math
+from fractions import Fraction
+
+import numpy as np
+import pytest
+from scipy.special import k1, kvp
+
+from tba import Status, free_fermion, lee_yang, sinh_gordon, ttbar, user_model
+from tba.excited import bethe_yang_energy, parse_state, solve_excited
+from tba.flow import ExcitedCurve, level_branch_point, predict
+
+FF = free_fermion()
+SG = sinh_gordon(0.6)
+
+
+def free_fermion_level(state):
+    """Exact free-fermion level (textbook, e.g. Mussardo, Statistical Field Theory (2010)):
+    E = E_sector(R) + sum_j cosh t_j with R sinh t_j = 2 pi n_j; NS sector (half-odd n_j) for an
+    even particle number, R sector (integer n_j) for an odd one (PHYSICS.md section 2), with
+    E_NS = -(1/pi) sum (-1)^(k+1) K_1(kR)/k, E_R = +(1/pi) sum K_1(kR)/k (scipy.special.k1).
+    Returns (R -> (E, dE/dR, 0), momentum quantum number)."""
+    n = np.array([float(Fraction(x)) for x in state])
+    ns = len(n) % 2 == 0
+
+    def level(R):
+        k = np.arange(1, int(60 / R) + 50)
+        signs = (-1.0) ** (k + 1) if ns else -np.ones(k.size)
+        E = -math.fsum(signs * k1(k * R) / k) / math.pi
+        dE = -math.fsum(signs * kvp(1, k * R)) / math.pi
+        p = 2 * math.pi * n / R
+        E += float(np.sum(np.sqrt(1 + p * p)))
+        dE += float(np.sum(-p * p / R / np.sqrt(1 + p * p)))
+        return E, dE, 0.0
+
+    return level, float(np.sum(n))
+
+
+FF_STATES = [("1/2", "-1/2"), ("1/2", "3/2"), ("-3/2", "1/2"), ("1/2", "-1/2", "3/2", "-3/2"),
+             ("0",), ("1",), ("-2",), ("-1", "0", "1"), ("0", "1", "2"), ("-1", "0", "2"),
+             ("1/2", "5/2")]
+
+
+@pytest.mark.parametrize("state", FF_STATES, ids=lambda s: ",".join(s))
+@pytest.mark.parametrize("R", [0.4, 1.5, 5.0])
+def test_free_fermion_exact_spectrum(state, R):
+    # exact free-fermion spectrum, both sectors, P = 0 and P != 0 (see free_fermion_level)
+    level, k = free_fermion_level(state)
+    res = solve_excited(FF, R, state)
+    assert res.converged, res.message
+    E, _, _ = level(R)
+    assert abs(res.energy - E) <= 1e-12 * abs(E)
+    assert abs(res.energy - E) <= res.error  # the error estimate bounds the true error
+    assert res.momentum == pytest.approx(2 * math.pi * k / R, rel=1e-12, abs=1e-12)
+
+
+@pytest.mark.parametrize("state", [("1/2", "-1/2"), ("1/2", "3/2"), ("1",), ("-1", "0", "2")],
+                         ids=lambda s: ",".join(s))
+@pytest.mark.parametrize("alpha", [-0.1, 0.1, 0.3])
+@pytest.mark.parametrize("R", [1.0, 3.0])
+def test_free_fermion_deformed_follows_flow(state, alpha, R):
+    # Burgers flow with the P^2/R term solved by characteristics (Smirnov & Zamolodchikov,
+    # Nucl. Phys. B915 (2017) 363; the boosted effective radius of PHYSICS.md section 5),
+    # applied to the exact undeformed level
+    level, k = free_fermion_level(state)
+    res = solve_excited(FF, R, state, ttbar(alpha))
+    if res.status is Status.NO_REAL_SOLUTION:
+        with pytest.raises(ValueError):  # the prediction has no real value either
+            predict(level, R, alpha, k=k)
+        return
+    assert res.converged, res.message
+    p = predict(level, R, alpha, k=k)
+    assert abs(res.energy - p.energy) <= 1e-11 * abs(p.energy)
+    assert res.momentum == pytest.approx(p.momentum, rel=1e-12, abs=1e-12)
+
+
+def test_free_fermion_positive_level_has_no_real_solution_below_branch_point():
+    # alpha < 0 pushes positive levels into a branch point (PHYSICS.md section 4)
+    res = solve_excited(FF, 1.0, ("1/2", "-1/2"), ttbar(-0.1))
+    assert res.status is Status.NO_REAL_SOLUTION
+    assert math.isnan(res.energy) and res.as_record()["energy"] is None
+
+
+def _status_bisection(model, state, alpha, lo, hi, rel=2e-10):
+    """Smallest radius with a real solution, by bisection on the solver's status."""
+    while hi - lo > rel * hi:
+        mid = 0.5 * (lo + hi)
+        if solve_excited(model, mid, state, ttbar(alpha)).converged:
+            hi = mid
+        else:
+            lo = mid
+    return hi
+
+
+def test_branch_radius_from_solver_matches_undeformed_curve_free_fermion():
+    # alpha < 0: the branch radius predicted from the undeformed curve, min over R~ of
+    # R~ - alpha E(R~) (PHYSICS.md section 4), against where the solver stops finding a real
+    # solution; exact free-fermion level as the curve
+    state, alpha = ("1/2", "-1/2"), -0.1
+    level, _ = free_fermion_level(state)
+    R_c, _, _ = level_branch_point(level, alpha)
+    found = _status_bisection(FF, state, alpha, 0.99 * R_c, 1.01 * R_c)
+    assert abs(found - R_c) <= 1e-8 * R_c
+
+
+@pytest.mark.slow
+def test_branch_radius_from_solver_matches_undeformed_curve_sinh_gordon():
+    # same check for an interacting positive level: the curve is the model's own TBA level
+    state, alpha = ("-3/2", "3/2"), -0.1
+    R_c, _, _ = level_branch_point(ExcitedCurve(SG, state), alpha)
+    found = _status_bisection(SG, state, alpha, 0.99 * R_c, 1.01 * R_c)
+    assert abs(found - R_c) <= 1e-8 * R_c
+
+
+def test_sinh_gordon_approaches_bethe_yang_exponentially():
+    # finite-size corrections beyond Bethe-Yang are O(e^{-mR}) (Luscher 1986; PHYSICS.md
+    # section 5: the difference falls by ~10 per 2 units of R between R = 4 and 10)
+    state = ("1/2", "-1/2")
+    radii = [4.0, 6.0, 8.0, 10.0]
+    diffs = []
+    for R in radii:
+        res = solve_excited(SG, R, state)
+        assert res.converged
+        diffs.append(abs(res.energy - bethe_yang_energy(SG, R, state)[0]))
+    ratios = [diffs[i] / diffs[i + 1] for i in range(len(diffs) - 1)]
+    for r in ratios:
+        assert 5.0 < r < 15.0  # e^{2} = 7.4 up to powers of R
+    for R, d in zip(radii, diffs):
+        assert d < 20 * math.exp(-R)
+
+
+@pytest.mark.parametrize("state", [("1/2", "-1/2"), ("1/2", "3/2"), ("-1", "0", "1"), ("-1", "0", "2")],
+                         ids=lambda s: ",".join(s))
+@pytest.mark.parametrize("alpha", [-0.1, 0.1])
+def test_sinh_gordon_deformed_follows_flow_from_own_levels(state, alpha):
+    # deformed 2- and 3-particle levels against the flow prediction built from the model's own
+    # undeformed levels (characteristics, PHYSICS.md sections 4-5)
+    # (radii where every one of these levels is real; where levels stop being real is tested
+    # by the branch-radius tests)
+    curve = ExcitedCurve(SG, state)
+    for R in (2.0, 3.0):
+        res = solve_excited(SG, R, state, ttbar(alpha))
+        assert res.converged, res.message
+        p = predict(curve, R, alpha, k=float(sum(curve.state)))
+        assert abs(res.energy - p.energy) <= 1e-10 * abs(p.energy)
+
+
+def test_labels_stay_attached_along_a_scan():
+    # warm-started radii keep the quantum numbers; the result equals a cold solve
+    state = ("1/2", "3/2")
+    start = None
+    for R in (3.0, 2.0, 1.2):
+        warm = solve_excited(SG, R, state, ttbar(0.1), start=start)
+        cold = solve_excited(SG, R, state, ttbar(0.1))
+        assert warm.state == cold.state == parse_state(state)
+        assert warm.energy == pytest.approx(cold.energy, rel=1e-12)
+        start = warm
+
+
+def test_exact_radius_derivative_matches_finite_difference():
+    # dE/dR from the linearised equations vs a centred difference (common practice, no source)
+    curve = ExcitedCurve(SG, ("1/2", "3/2"))
+    E, dE, _ = curve(2.0)
+    h = 1e-4
+    fd = (curve(2.0 + h)[0] - curve(2.0 - h)[0]) / (2 * h)
+    assert dE == pytest.approx(fd, rel=1e-7)
+
+
+def test_json_record_carries_state_momentum_and_rapidities():
+    res = solve_excited(FF, 2.0, ("1/2", "3/2"))
+    rec = res.as_record()
+    assert rec["state"] == [0.5, 1.5]
+    assert rec["momentum"] == pytest.approx(2 * math.pi * 2 / 2.0)
+    # free fermion: R sinh t_j = 2 pi n_j exactly (textbook)
+    assert rec["rapidities"] == pytest.approx([math.asinh(math.pi * 0.5), math.asinh(math.pi * 1.5)],
+                                              rel=1e-13)
+
+
+@pytest.mark.parametrize("state, match", [
+    (("1/2",), "integers"),
+    (("1", "2"), "half-odd"),
+    (("1/2", "1/2"), "distinct"),
+    ((), "at least one"),
+    (("x",), "fraction"),
+])
+def test_bad_states_are_refused(state, match):
+    with pytest.raises(ValueError, match=match):
+        solve_excited(FF, 1.0, state)
+
+
+def test_models_outside_the_real_rapidity_scheme_are_refused():
+    with pytest.raises(ValueError, match="bound states"):
+        solve_excited(lee_yang(), 1.0, ("0",))
+    with pytest.raises(ValueError, match="kernel callable|block content"):
+        solve_excited(user_model([1.0], kernel=lambda t: 0 * t, pole_distance=1.0), 1.0, ("0",))
+    with pytest.raises(ValueError, match="too close"):
+        solve_excited(sinh_gordon(0.99), 1.0, ("0",))
