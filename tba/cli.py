@@ -1,20 +1,31 @@
-"""Command line: ``tba solve`` and ``tba demo``.
+"""Command line: ``tba solve``, ``tba run``, ``tba report``, ``tba plot``, ``tba export``,
+``tba demo``, and (from ``tba.cli_flow``) ``tba branch-point`` and ``tba flow-check``.
 
-Bad input prints one line on stderr naming the argument and exits with code 2. Points are
-printed as soon as they are solved, so an interrupted run keeps what it has shown.
+Bad input (arguments, run files, output files of another run) prints one line on stderr
+naming the argument or key and exits with code 2. ``tba solve`` prints points as soon as
+they are solved; ``tba run`` writes each finished chunk to its HDF5 file, so an
+interrupted run keeps what it has written and the same command resumes it (exit code 130
+after Ctrl-C).
 """
 
 import argparse
+import csv
 import json
 import math
 import sys
+from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 
 from tba import __version__
 from tba.deformation import CDD
 from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
-from tba.solver import solve_ground_state
+from tba.report import format_report
+from tba.runfile import RunFileError, demo_run_path, load_run
+from tba.scan import ScanInterrupted, run_scan
+from tba.solver import MIN_TOL, solve_ground_state
+from tba.storage import NOT_COMPUTED, StoreError, read_store
 
 CONVENTIONS = """\
 conventions:
@@ -87,6 +98,13 @@ def parse_cdd(tokens, alpha):
     return CDD(couplings)
 
 
+def _tolerance(text):
+    tol = _finite("--tol", text)
+    if not MIN_TOL <= tol < 1e-2:
+        raise UsageError(f"argument --tol: must lie in [{MIN_TOL:g}, 1e-2), got {text}")
+    return tol
+
+
 def _build_model(args):
     if args.model not in MODELS:
         raise UsageError(f"argument --model: unknown model {args.model!r} (choose from {', '.join(MODELS)})")
@@ -115,49 +133,188 @@ def table_row(rec):
             f"{rec['iterations']:>3}  {rec['status']}")
 
 
+STATE_HEADER = f"{'state':<16} {'R':>12} {'alpha':>9} {'E':>22} {'error':>8} {'P':>14}  status"
+
+
+def state_row(rec):
+    state = ",".join(str(Fraction(n)) for n in rec["state"])
+    return (f"{state:<16} {rec['radius']:>12.6g} {rec['alpha']:>9.4g} "
+            f"{_fmt(rec['energy'], '22.15g'):>22} {_fmt(rec['error'], '8.1e'):>8} "
+            f"{_fmt(rec['momentum'], '14.8g'):>14}  {rec['status']}")
+
+
+def _state(text, model):
+    """--state N1,N2,...: Bethe quantum numbers (decimals or fractions like 1/2,-1/2)."""
+    from tba.excited import check_model, parse_state
+
+    try:
+        check_model(model)
+        return parse_state(text.split(","))
+    except (ValueError, TypeError) as exc:
+        raise UsageError(f"argument --state: {str(exc).split(': ', 1)[-1]}") from None
+
+
 def cmd_solve(args, out):
     model = _build_model(args)
     radii = parse_radii(args.radius)
     alpha = _finite("--alpha", args.alpha)
     deformation = parse_cdd(args.cdd, alpha)
-    tol = _finite("--tol", args.tol)
-    if not 1e-15 <= tol < 1e-2:
-        raise UsageError(f"argument --tol: must lie in [1e-15, 1e-2), got {args.tol}")
+    tol = _tolerance(args.tol)
+    state = _state(args.state, model) if args.state is not None else None
+    if state is not None:
+        from tba.excited import solve_excited
+
+        solve = lambda R, start: solve_excited(model, R, state, deformation, tol=tol,  # noqa: E731
+                                               start=start)
+        header, row = STATE_HEADER, state_row
+    else:
+        solve = lambda R, start: solve_ground_state(model, R, deformation, tol=tol,  # noqa: E731
+                                                    start=start)
+        header, row = TABLE_HEADER, table_row
     if not args.json:
-        print(TABLE_HEADER, file=out, flush=True)
+        print(header, file=out, flush=True)
     start = None
     for R in radii:
-        res = solve_ground_state(model, R, deformation, tol=tol, start=start)
+        res = solve(R, start)
         if res.converged:
             start = res
         rec = res.as_record()
-        print(json.dumps(rec) if args.json else table_row(rec), file=out, flush=True)
+        print(json.dumps(rec) if args.json else row(rec), file=out, flush=True)
     return 0
 
 
-DEMO_POINTS = [  # (model, coupling, alpha, radii): a small scan of our own
-    ("sinh-gordon", 0.6, 0.1, "0.3:3:10"),
-    ("sinh-gordon", 0.6, -0.1, "0.3:3:10"),
-    ("ising-e8", None, 0.05, "0.2:3:8"),
-    ("ising-e8", None, -0.05, "0.2:3:8"),
-]
+def _workers(text):
+    if text is None:
+        return None
+    try:
+        n = int(text)
+    except ValueError:
+        raise UsageError(f"argument --workers: expected a positive integer, got {text!r}") from None
+    if n < 1:
+        raise UsageError(f"argument --workers: expected a positive integer, got {text!r}")
+    return n
+
+
+def _load_run(path):
+    try:
+        return load_run(path)
+    except RunFileError as exc:
+        raise UsageError(f"{path}: {exc}" if exc.key else str(exc)) from None
+
+
+def _scan(run, out_path, args, run_file, log):
+    try:
+        return run_scan(run, out_path, workers=_workers(args.workers), force=args.force,
+                        log=log, run_file=run_file)
+    except StoreError as exc:
+        raise UsageError(str(exc)) from None
+
+
+def cmd_run(args, out):
+    """Run a scan from a run file into its HDF5 store; resumes an interrupted one."""
+    run = _load_run(args.runfile)
+    out_path = Path(args.out).resolve() if args.out else Path(run.output)
+    run = run.with_output(out_path)
+    if args.dry_run:
+        chunks = run.chunks()
+        print(run.to_json(), file=out)
+        print(f"{run.n_points} points in {len(chunks)} chunks of up to {run.chunk_size} radii; "
+              f"output {out_path}", file=out)
+        return 0
+    _scan(run, out_path, args, Path(args.runfile).resolve(), sys.stderr)
+    return 0
+
+
+def _read(path):
+    try:
+        return read_store(path)
+    except StoreError as exc:
+        raise UsageError(str(exc)) from None
+
+
+def cmd_report(args, out):
+    print(format_report(_read(args.file)), file=out)
+    return 0
+
+
+def _figure_path(text):
+    from tba.plotting import FORMATS  # matplotlib is imported only by the commands that draw
+
+    suffix = Path(text).suffix.lower().lstrip(".")
+    if suffix not in FORMATS:
+        raise UsageError(f"argument -o: the figure name must end in {', '.join('.' + f for f in FORMATS)}, "
+                         f"got {text!r}")
+    return Path(text)
+
+
+def cmd_plot(args, out):
+    from tba.plotting import save_figure
+
+    path = _figure_path(args.output)
+    data = _read(args.file)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    save_figure(data, path)
+    print(f"wrote {path}", file=out)
+    return 0
+
+
+EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "couplings", "energy", "error", "status",
+               "iterations", "message", "state"]
+
+
+def cmd_export(args, out):
+    data = _read(args.file)
+    records = list(data.records())
+    skipped = int(np.count_nonzero(data["status"] == NOT_COMPUTED))
+    target = open(args.output, "w", newline="", encoding="utf-8") if args.output else out
+    try:
+        if args.json:
+            for rec in records:
+                print(json.dumps(rec), file=target)
+        else:
+            writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n")
+            writer.writeheader()
+            for rec in records:
+                writer.writerow({**rec, "couplings": json.dumps(rec["couplings"]),
+                                 "coupling": "" if rec["coupling"] is None else rec["coupling"],
+                                 "energy": "" if rec["energy"] is None else rec["energy"],
+                                 "error": "" if rec["error"] is None else rec["error"]})
+    finally:
+        if target is not out:
+            target.close()
+    if skipped:
+        print(f"tba export: {skipped} points not computed yet were left out", file=sys.stderr)
+    return 0
 
 
 def cmd_demo(args, out):
-    """A built-in scan: two interacting models, both signs of alpha, printed as a table."""
-    print("Ground-state energies of sinh-Gordon (B = 0.6) and the E8 theory with a TTbar CDD\n"
-          "factor of both signs; on the alpha > 0 side the smallest radii lie past the branch\n"
-          "point and have no real solution.\n", file=out)
-    print(TABLE_HEADER, file=out, flush=True)
-    for model, coupling, alpha, radii in DEMO_POINTS:
-        ns = argparse.Namespace(model=model, coupling=None if coupling is None else str(coupling),
-                                radius=[radii], alpha=str(alpha), cdd=None, tol="1e-12", json=False)
-        model_obj = _build_model(ns)
-        start = None
-        for R in parse_radii(ns.radius):
-            res = solve_ground_state(model_obj, R, parse_cdd(None, alpha), tol=1e-12, start=start)
-            start = res if res.converged else start
-            print(table_row(res.as_record()), file=out, flush=True)
+    """The built-in demonstration: runs/demo.toml into runs/out/ (or ./tba-demo-out/)."""
+    from tba.plotting import save_figure
+
+    run_file, in_repo = demo_run_path()
+    run = _load_run(run_file)
+    if args.out_dir:
+        out_dir = Path(args.out_dir).resolve()
+    else:
+        out_dir = run_file.parent / "out" if in_repo else Path.cwd() / "tba-demo-out"
+    h5, figure = out_dir / "demo.h5", out_dir / "demo.png"
+    run = run.with_output(h5)
+    print(f"tba demo: {run.description}\n"
+          f"  run file {run_file}; output {h5} and {figure}\n"
+          f"  (on the alpha > 0 side the smallest radii lie past the branch point: "
+          f"no real solution there)\n", file=out, flush=True)
+    try:
+        run_scan(run, h5, workers=_workers(args.workers), force=args.force, run_file=run_file)
+    except StoreError as exc:
+        if not exc.foreign:
+            raise UsageError(str(exc)) from None
+        # the demo owns its output file: one from another run or version is replaced
+        print(f"tba demo: note: {exc}; replacing it", file=sys.stderr)
+        _scan(run, h5, argparse.Namespace(workers=args.workers, force=True), run_file, None)
+    data = _read(h5)
+    save_figure(data, figure)
+    print(format_report(data), file=out)
+    print(f"\nfigure: {figure}", file=out)
     return 0
 
 
@@ -181,11 +338,61 @@ def build_parser():
                        help="extra CDD factor of odd spin S >= 3 with coupling A (repeatable)")
     solve.add_argument("--tol", default="1e-12", metavar="T",
                        help="relative accuracy asked of each energy (default 1e-12)")
+    solve.add_argument("--state", metavar="N1,N2,...",
+                       help="an excited level by its Bethe quantum numbers (half-odd for an even "
+                       "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0); "
+                       "single-species models without bound states")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
     solve.set_defaults(func=cmd_solve)
+    run = sub.add_parser("run", help="run a scan from a TOML run file (resumable)",
+                         description="Solve every point of a run file and write them to an HDF5 "
+                         "file, chunk by chunk, in parallel. Running the same command again after "
+                         "an interruption computes only the missing chunks; a complete file is "
+                         "not recomputed; the file of a different run is never overwritten "
+                         "(exit 2) unless --force.", epilog=CONVENTIONS,
+                         formatter_class=argparse.RawDescriptionHelpFormatter)
+    run.add_argument("runfile", metavar="RUNFILE", help="TOML run file (see runs/)")
+    run.add_argument("--out", metavar="FILE", help="HDF5 output (default: the run file's output, "
+                     "relative to the run file's directory)")
+    run.add_argument("--workers", metavar="N", help="worker processes (default: the usable cores)")
+    run.add_argument("--force", action="store_true",
+                     help="replace an output file written by a different run or version")
+    run.add_argument("--dry-run", action="store_true",
+                     help="print the resolved run and the number of chunks, compute nothing")
+    run.set_defaults(func=cmd_run)
+    report = sub.add_parser("report", help="summary of a scan file",
+                            description="Progress, points per status, worst error estimate, "
+                            "flow residuals and the last real point per alpha > 0.")
+    report.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
+    report.set_defaults(func=cmd_report)
+    plot = sub.add_parser("plot", help="figure of a scan file",
+                          description="E(R) per alpha with the flow prediction overlaid, the flow "
+                          "residual (log scale) and c_eff = -6 R E / pi, one column per model.")
+    plot.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
+    plot.add_argument("-o", "--output", required=True, metavar="FIG",
+                      help="figure file: .png, .pdf or .svg")
+    plot.set_defaults(func=cmd_plot)
+    export = sub.add_parser("export", help="one record per point, JSON lines or CSV",
+                            description="The keys of tba solve --json plus state; points not "
+                            "computed yet are left out.")
+    fmt = export.add_mutually_exclusive_group(required=True)
+    fmt.add_argument("--json", action="store_true", help="one JSON object per line")
+    fmt.add_argument("--csv", action="store_true", help="CSV with a header line")
+    export.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
+    export.add_argument("-o", "--output", metavar="OUT", help="write here instead of stdout")
+    export.set_defaults(func=cmd_export)
     demo = sub.add_parser("demo", help="run the built-in demonstration scan",
-                          description="Sinh-Gordon (B = 0.6) and the E8 theory at both signs of alpha.")
+                          description="Runs runs/demo.toml (sinh-Gordon B = 0.6 and E8, alpha in "
+                          "{-0.1, 0.05, 0.1}) into runs/out/ when run from the source tree, else "
+                          "into ./tba-demo-out/; writes demo.h5 and demo.png and prints the report. "
+                          "A complete demo.h5 is reused; one from another run is replaced.")
+    demo.add_argument("--workers", metavar="N", help="worker processes (default: the usable cores)")
+    demo.add_argument("--force", action="store_true", help="recompute from scratch")
+    demo.add_argument("--out-dir", metavar="DIR", help="write demo.h5 and demo.png here")
     demo.set_defaults(func=cmd_demo)
+    from tba.cli_flow import add_flow_commands
+
+    add_flow_commands(sub, "{" + ",".join(MODELS) + "}", CONVENTIONS)
     return parser
 
 
@@ -195,8 +402,11 @@ def main(argv=None):
         args = parser.parse_args(argv)
         return args.func(args, sys.stdout)
     except UsageError as exc:
-        print(f"tba: error: {exc}", file=sys.stderr)
+        print(f"tba: error: {' '.join(str(exc).split())}", file=sys.stderr)
         return 2
+    except ScanInterrupted as exc:
+        print(f"tba: {exc}", file=sys.stderr)
+        return 130
     except KeyboardInterrupt:
         print("tba: interrupted; the points printed above are complete", file=sys.stderr)
         return 130

@@ -207,6 +207,7 @@ class _Jacobian:
         self.CVd = disc.c[:, None] * (disc.V * dL).reshape(r, n * N)
         self.Uf = disc.U.reshape(r, n * N)
         self._cap = self._Z = None
+        self._cap_rtol = np.inf
         if disc.ops.dense:
             J0 = np.eye(self.size)
             if not disc.ops.trivial:
@@ -232,8 +233,8 @@ class _Jacobian:
         return y
 
     @staticmethod
-    def _gmres(op, b, rtol):
-        x, info = scipy.sparse.linalg.gmres(op, b, rtol=rtol, atol=0.0, restart=60, maxiter=20)
+    def _gmres(op, b, rtol, maxiter=20):
+        x, info = scipy.sparse.linalg.gmres(op, b, rtol=rtol, atol=0.0, restart=60, maxiter=maxiter)
         if info != 0:
             raise np.linalg.LinAlgError(f"GMRES did not converge (info={info})")
         return x
@@ -241,7 +242,15 @@ class _Jacobian:
     def solve(self, rhs, rtol=1e-13):
         b = rhs.reshape(-1)
         if not self.disc.ops.dense:
-            return self._gmres(self._op, b, rtol).reshape(self.disc.shape)
+            try:  # GMRES on J converges in a few dozen steps away from folds
+                return self._gmres(self._op, b, rtol, maxiter=2).reshape(self.disc.shape)
+            except np.linalg.LinAlgError:
+                if self.disc.c.size == 0:
+                    raise
+            # near a fold J is ill conditioned: Woodbury with the well-conditioned J0
+            Z, cap = self._capacitance(rtol=1e-13)
+            y = self.solve0(b, rtol)
+            return (y - Z @ np.linalg.solve(cap, self.CVd @ y)).reshape(self.disc.shape)
         y = scipy.linalg.lu_solve(self._lu, b, check_finite=False)
         if self._cap is not None:
             y = y - self._Z @ np.linalg.solve(self._cap, self.CVd @ y)
@@ -253,13 +262,14 @@ class _Jacobian:
             return scipy.linalg.lu_solve(self._lu, b, check_finite=False)
         return self._gmres(self._op0, b, rtol)
 
-    def _capacitance(self):
-        if self._cap is None:
+    def _capacitance(self, rtol=1e-10):
+        """(Z = J0^{-1} U^T, cap = 1 + C (V L')^T Z). With GMRES, 1e-10 is plenty for the fold
+        indicator (a sign and a size); solves near a fold ask for more and get it."""
+        if self._cap is None or rtol < self._cap_rtol:
             r = self.disc.c.size
-            # the dense route is exact; GMRES needs far fewer steps at 1e-10, and the fold
-            # indicator is a sign and a size, not a number anyone reads to 13 digits
-            self._Z = np.stack([self.solve0(self.Uf[k], 1e-10) for k in range(r)], axis=1)
+            self._Z = np.stack([self.solve0(self.Uf[k], rtol) for k in range(r)], axis=1)
             self._cap = np.eye(r) + self.CVd @ self._Z
+            self._cap_rtol = 0.0 if self.disc.ops.dense else rtol
         return self._Z, self._cap
 
     def fold_indicator(self):
@@ -476,7 +486,7 @@ def _continue_deformation(model, deformation, radius, grid, tol, start=None):
     while lam < 1.0:
         trial = min(1.0, lam + step)
         disc = Discretization(model, deformation.scaled(trial), radius, grid)
-        out = newton(disc, e, tol)
+        out = newton(disc, e, tol, maxiter=20)  # from a close neighbour: a few steps, or a fold
         iterations += out.iterations
         d = out.fold_indicator if out.ok else np.nan
         if out.ok and d > 0:
@@ -485,14 +495,27 @@ def _continue_deformation(model, deformation, radius, grid, tol, start=None):
             step = min(2 * step, 1.0)
             if lam == 1.0:
                 return nt, "converged", None, iterations
-        else:
-            step *= 0.5
-            if step < 1e-9:
-                break
+            continue
+        step *= 0.5
+        fold = _fold_estimate(history)
+        # a fold well before the requested coupling settles it; near lambda = 1 keep
+        # refining, the requested point may lie just before the fold
+        if step < 1e-9 or (step < 1e-3 and fold is not None and fold < 1.0 - 50 * step):
+            break
+    fold = _fold_estimate(history)
+    d2 = history[-1][1]
+    return (None, f"continuation stopped at {lam:.12g} of the coupling (fold indicator {d2:.3g})",
+            fold, iterations)
+
+
+def _fold_estimate(history):
+    """Where the fold indicator d vanishes, from its last two values: near a fold d^2 is
+    linear in the coupling (square-root branch point)."""
+    if len(history) < 2:
+        return None
     (l1, d1), (l2, d2) = history[-2], history[-1]
     slope = (d2 * d2 - d1 * d1) / (l2 - l1)
-    fold = l2 - d2 * d2 / slope if slope < 0 else None
-    return None, f"continuation stopped at {lam:.12g} of the coupling (fold indicator {d2:.3g})", fold, iterations
+    return l2 - d2 * d2 / slope if slope < 0 else None
 
 
 def _validate(radius, tol):

@@ -1,0 +1,119 @@
+"""Command-line subcommands about the flow: ``tba branch-point`` and ``tba flow-check``.
+
+Registered by ``tba.cli.build_parser``; they reuse its argument checks (one-line errors,
+exit code 2).
+"""
+
+import argparse
+import json
+import math
+
+from tba.deformation import ttbar
+from tba.flow import BranchPoint, branch_point
+from tba.solver import flow_residual, solve_ground_state
+
+
+def _fmt(x, spec):
+    return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else format(x, spec)
+
+
+def cmd_branch_point(args, out):
+    from tba.cli import UsageError, _build_model, _finite, _tolerance
+
+    model = _build_model(args)
+    alpha = _finite("--alpha", args.alpha)
+    tol = _tolerance(args.tol)
+    if args.method == "continuation":
+        from tba.continuation import locate_fold
+
+        if alpha <= 0:
+            bp = branch_point(model, alpha, tol)  # status "none" with its reason
+        else:
+            try:
+                fold = locate_fold(model, ttbar(alpha), tol=tol)
+            except RuntimeError as exc:
+                raise UsageError(f"argument --method: continuation failed: {exc}") from None
+            bp = BranchPoint(
+                model.name, alpha, "found", radius=fold.value, energy=fold.energy,
+                radius_error=fold.value_error, energy_error=fold.energy_error,
+                message=f"fold located by pseudo-arclength continuation in {fold.steps} steps")
+    else:
+        bp = branch_point(model, alpha, tol)
+    rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": args.method}
+    if args.json:
+        print(json.dumps(rec), file=out)
+    elif bp.status == "found":
+        print(f"{model.name} (B = {_fmt(model.coupling, 'g')}), alpha = {alpha:g}: branch point at "
+              f"R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, E_0(R_c) = {bp.energy:.15g} "
+              f"+- {bp.energy_error:.1e} (T_H = {1 / bp.radius:.12g}); status {bp.status}", file=out)
+    else:
+        print(f"{model.name}, alpha = {alpha:g}: status {bp.status}: {bp.message}", file=out)
+    return 0
+
+
+FLOW_HEADER = (f"{'R':>10} {'alpha':>8} {'E':>22} {'dE/dR':>14} {'dE/dalpha':>14} "
+               f"{'residual/|E E_R|':>16} {'error/|E E_R|':>13}  status")
+
+
+def cmd_flow_check(args, out):
+    from tba.cli import _build_model, _finite, _tolerance, parse_radii
+
+    model = _build_model(args)
+    radii = parse_radii(args.radius)
+    alphas = [_finite("--alpha", a) for a in args.alpha]
+    tol = _tolerance(args.tol)
+    if not args.json:
+        print(FLOW_HEADER, file=out, flush=True)
+    for alpha in alphas:
+        start = None
+        for R in radii:
+            res = solve_ground_state(model, R, ttbar(alpha), tol=tol, start=start)
+            rec = {"model": model.name, "coupling": model.coupling, "radius": R, "alpha": alpha,
+                   "status": res.status.value, "energy": None, "dE_dR": None, "dE_dalpha": None,
+                   "residual": None, "residual_error": None, "scale": None}
+            if res.converged:
+                start = res
+                f = flow_residual(res)
+                rec.update(energy=res.energy, dE_dR=f["dE_dR"], dE_dalpha=f["dE_dalpha1"],
+                           residual=f["residual"], residual_error=f["error"], scale=f["scale"])
+            if args.json:
+                print(json.dumps(rec), file=out, flush=True)
+                continue
+            rel = (lambda k: rec[k] / rec["scale"] if rec[k] is not None and rec["scale"] else None)
+            print(f"{R:>10.6g} {alpha:>8.4g} {_fmt(rec['energy'], '22.15g'):>22} "
+                  f"{_fmt(rec['dE_dR'], '14.8g'):>14} {_fmt(rec['dE_dalpha'], '14.8g'):>14} "
+                  f"{_fmt(rel('residual'), '16.2e'):>16} {_fmt(rel('residual_error'), '13.1e'):>13}"
+                  f"  {rec['status']}", file=out, flush=True)
+    return 0
+
+
+def add_flow_commands(sub, model_help, conventions):
+    """Register the subcommands on the ``tba`` subparsers object."""
+    fmt = argparse.RawDescriptionHelpFormatter
+    bp = sub.add_parser("branch-point", help="the ground state's branch point R_c(alpha)",
+                        description="Radius where the deformed ground state stops being real "
+                        "(alpha > 0): E_0'(R~) = 1/alpha on the undeformed curve, or the fold "
+                        "of the deformed equations by continuation.",
+                        epilog=conventions, formatter_class=fmt)
+    bp.add_argument("--model", required=True, metavar=model_help, help="the S-matrix")
+    bp.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+    bp.add_argument("--alpha", required=True, metavar="A", help="TTbar coupling")
+    bp.add_argument("--method", choices=("curve", "continuation"), default="curve",
+                    help="undeformed curve (default) or pseudo-arclength continuation")
+    bp.add_argument("--tol", default="1e-12", metavar="T", help="relative accuracy (default 1e-12)")
+    bp.add_argument("--json", action="store_true", help="one JSON object")
+    bp.set_defaults(func=cmd_branch_point)
+
+    fc = sub.add_parser("flow-check", help="Burgers-flow residuals over radii and alphas",
+                        description="For each radius and alpha: E, the exact derivatives dE/dR and "
+                        "dE/dalpha from the linearised TBA, and the flow residual "
+                        "dE/dalpha - E dE/dR (P = 0) relative to |E dE/dR|.",
+                        epilog=conventions, formatter_class=fmt)
+    fc.add_argument("--model", required=True, metavar=model_help, help="the S-matrix")
+    fc.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+    fc.add_argument("--radius", required=True, nargs="+", metavar="R",
+                    help="radii: numbers and/or START:STOP:COUNT")
+    fc.add_argument("--alpha", required=True, nargs="+", metavar="A", help="TTbar couplings")
+    fc.add_argument("--tol", default="1e-12", metavar="T", help="relative accuracy (default 1e-12)")
+    fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
+    fc.set_defaults(func=cmd_flow_check)

@@ -1,0 +1,476 @@
+"""Run files: what a scan computes, read from TOML, checked strictly, fully resolved.
+
+A run file names the models, the deformation couplings, the radii, the states, the
+solver tolerance, the output file and how the scan is cut into chunks::
+
+    # What this run computes, and how long it takes.
+    description = "sinh-Gordon with both signs of alpha"   # optional; also name = "..."
+    output = "out/sinh-gordon.h5"       # relative to this file's directory
+
+    [[models]]
+    name = "sinh-gordon"                # free-fermion, sinh-gordon, lee-yang, ising-e8
+    coupling = 0.6                      # sinh-gordon only, B in (0, 2)
+
+    [deformation]
+    alphas = [-0.1, 0.05, 0.1]          # TTbar couplings (spin 1)
+    higher_spin = { 3 = -0.01 }         # optional: odd spin >= 3 -> alpha_s, at every alpha
+
+    [radii]                             # or: radii = [0.5, 1.0, {start = 2, stop = 4, count = 3}]
+    start = 0.3
+    stop = 4.0
+    count = 24
+    spacing = "log"                     # "linear" (default) or "log"
+
+    [solver]
+    tol = 1e-12                         # relative accuracy of every energy
+
+    [scan]
+    chunk_size = 8                      # consecutive radii solved as one warm-started chain
+    flow_check = true                   # undeformed solve at R + alpha E for every point
+    sweep = "descending"                # order of the radii inside a chunk
+
+Strict: an unknown key, a missing key, a value of the wrong type or out of range raises
+`RunFileError` (a ValueError) whose message starts with the dotted key, for example
+``models[0].coupling: expected a number, got a string ('0.6')``.
+
+The resolved run (`RunSpec`) has every default filled in and the radii written out, sorted
+and without duplicates (alphas likewise); models keep their order. ``RunSpec.to_dict()``
+is itself a valid run description, so ``resolve_run(spec.to_dict())`` gives ``spec`` back.
+Its `identity` (everything that changes the numbers: models, deformation, radii, states,
+solver, scan) decides whether an existing output file belongs to the same run.
+"""
+
+import hashlib
+import json
+import math
+import os
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from tba import solver as _solver
+from tba.deformation import CDD
+from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
+
+#: states the scan can compute; excited states are planned (the store has a ``state`` axis)
+STATES = ("ground",)
+SWEEPS = ("descending", "ascending")
+SPACINGS = ("linear", "log")
+DEFAULTS = {
+    "description": "",
+    "states": ["ground"],
+    "solver": {"tol": 1e-12},
+    "scan": {"chunk_size": 8, "flow_check": True, "sweep": "descending"},
+}
+#: top-level keys of the resolved run that change the numbers (the run's identity)
+IDENTITY_KEYS = ("models", "deformation", "radii", "states", "solver", "scan")
+
+
+class RunFileError(ValueError):
+    """A run file that cannot be run; the message starts with the dotted key."""
+
+    def __init__(self, key, problem):
+        self.key = key
+        super().__init__(f"{key}: {problem}" if key else problem)
+
+
+_MISSING = object()
+
+
+def _kind(value):
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, int):
+        return "an integer"
+    if isinstance(value, float):
+        return "a number"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, (list, tuple)):
+        return "an array"
+    if isinstance(value, dict):
+        return "a table"
+    if value is None:
+        return "null"
+    return f"a {type(value).__name__}"
+
+
+def _got(value):
+    text = repr(value)
+    return f"{_kind(value)} ({text if len(text) <= 40 else text[:37] + '...'})"
+
+
+def _number(key, value):
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise RunFileError(key, f"expected a number, got {_got(value)}")
+    value = float(value)
+    if not math.isfinite(value):
+        raise RunFileError(key, f"must be finite, got {value!r}")
+    return value
+
+
+def _integer(key, value):
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise RunFileError(key, f"expected an integer, got {_got(value)}")
+    return value
+
+
+def _string(key, value):
+    if not isinstance(value, str):
+        raise RunFileError(key, f"expected a string, got {_got(value)}")
+    return value
+
+
+def _boolean(key, value):
+    if not isinstance(value, bool):
+        raise RunFileError(key, f"expected a boolean (true or false), got {_got(value)}")
+    return value
+
+
+def _array(key, value):
+    if not isinstance(value, (list, tuple)):
+        raise RunFileError(key, f"expected an array, got {_got(value)}")
+    return list(value)
+
+
+class _Table:
+    """Reads the keys of one table once each; `finish` rejects the keys nobody read."""
+
+    def __init__(self, key, value):
+        if not isinstance(value, dict):
+            raise RunFileError(key, f"expected a table, got {_got(value)}")
+        self.prefix = f"{key}." if key else ""
+        self.data = value
+        self.read = set()
+
+    def key(self, name):
+        return f"{self.prefix}{name}"
+
+    def get(self, name, default=_MISSING):
+        self.read.add(name)
+        if name in self.data:
+            return self.data[name]
+        if default is _MISSING:
+            raise RunFileError(self.key(name), "missing (required key)")
+        return default
+
+    def finish(self, allowed_hint=None):
+        unknown = [k for k in self.data if k not in self.read]
+        if unknown:
+            allowed = ", ".join(sorted(self.read)) if allowed_hint is None else allowed_hint
+            raise RunFileError(self.key(unknown[0]), f"unknown key (allowed here: {allowed})")
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """One model of the scan: a command-line model name and its coupling (or None)."""
+
+    name: str
+    coupling: float | None = None
+
+    @property
+    def label(self):
+        """Coordinate label in output files, e.g. ``sinh-gordon B=0.6``."""
+        return self.name if self.coupling is None else f"{self.name} B={self.coupling!r}"
+
+    def build(self):
+        return get_model(self.name, self.coupling)
+
+
+@dataclass(frozen=True)
+class Chunk:
+    """One task of a scan: radii ``radius_start:radius_stop`` (indices into the sorted radii)
+    of one model, alpha and state, solved as one warm-started chain."""
+
+    index: int
+    model: int
+    alpha: int
+    state: int
+    radius_start: int
+    radius_stop: int
+
+    @property
+    def size(self):
+        return self.radius_stop - self.radius_start
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """A fully resolved run: every default filled in, radii and alphas sorted and unique."""
+
+    models: tuple
+    alphas: tuple
+    radii: tuple
+    higher_spin: tuple = ()  # ((spin, alpha_s), ...) sorted by spin
+    states: tuple = ("ground",)
+    tol: float = 1e-12
+    chunk_size: int = 8
+    flow_check: bool = True
+    sweep: str = "descending"
+    name: str = "run"
+    description: str = ""
+    output: str | None = None
+
+    @property
+    def shape(self):
+        """(models, alphas, radii, states): the shape of every data set in the store."""
+        return (len(self.models), len(self.alphas), len(self.radii), len(self.states))
+
+    @property
+    def n_points(self):
+        return math.prod(self.shape)
+
+    def deformation(self, alpha):
+        """The CDD factor at TTbar coupling ``alpha`` (with the run's higher-spin terms)."""
+        couplings = {1: alpha} if alpha else {}
+        couplings.update(dict(self.higher_spin))
+        return CDD(couplings)
+
+    @property
+    def ttbar_only(self):
+        """True without higher-spin terms: then E(R, alpha) = E(R + alpha E, 0) is exact."""
+        return not self.higher_spin
+
+    def to_dict(self):
+        """The resolved run as a JSON-ready dict (also a valid input of `resolve_run`)."""
+        return {
+            "name": self.name,
+            "description": self.description,
+            "output": self.output,
+            "models": [{"name": m.name, "coupling": m.coupling} for m in self.models],
+            "deformation": {"alphas": list(self.alphas),
+                            "higher_spin": {str(s): a for s, a in self.higher_spin}},
+            "radii": list(self.radii),
+            "states": list(self.states),
+            "solver": {"tol": self.tol},
+            "scan": {"chunk_size": self.chunk_size, "flow_check": self.flow_check,
+                     "sweep": self.sweep},
+        }
+
+    def to_json(self):
+        return json.dumps(self.to_dict(), indent=1)
+
+    def identity(self):
+        """The part of the resolved run that determines the numbers."""
+        d = self.to_dict()
+        return {k: d[k] for k in IDENTITY_KEYS}
+
+    @property
+    def run_id(self):
+        """sha256 of the identity (canonical JSON): equal ids mean the same numbers."""
+        text = json.dumps(self.identity(), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(text.encode()).hexdigest()
+
+    def chunks(self):
+        """The scan's tasks: for every (model, alpha, state), the radii cut into consecutive
+        blocks of ``chunk_size``. A pure function of the resolved run (never of the number
+        of workers), so that resumed and parallel runs give the numbers of a serial one."""
+        out = []
+        n = len(self.radii)
+        for m in range(len(self.models)):
+            for a in range(len(self.alphas)):
+                for s in range(len(self.states)):
+                    for start in range(0, n, self.chunk_size):
+                        out.append(Chunk(len(out), m, a, s, start, min(start + self.chunk_size, n)))
+        return out
+
+    def with_output(self, output):
+        return RunSpec(**{**self.__dict__, "output": None if output is None else str(output)})
+
+
+def differing_keys(a, b):
+    """Top-level identity keys in which two resolved-run dicts differ."""
+    return [k for k in IDENTITY_KEYS if a.get(k) != b.get(k)]
+
+
+# -- reading ------------------------------------------------------------------------------------
+
+def load_run(path):
+    """Read and resolve a TOML run file; relative ``output`` paths are taken from its directory."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise RunFileError("", f"{path}: no such run file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise RunFileError("", f"{path}: cannot read it ({exc})") from None
+    return loads_run(text, base_dir=path.parent, name=path.stem)
+
+
+def loads_run(text, base_dir=None, name="run"):
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise RunFileError("", f"not valid TOML: {exc}") from None
+    return resolve_run(data, base_dir=base_dir, name=name)
+
+
+def resolve_run(data, base_dir=None, name="run"):
+    """Check a run description (a dict as read from TOML) and fill in the defaults."""
+    top = _Table("", data)
+    description = _string("description", top.get("description", DEFAULTS["description"]))
+    name = _string("name", top.get("name", name))
+    output = top.get("output")
+    if output is not None:
+        output = _string("output", output)
+        if not output.strip():
+            raise RunFileError("output", "must not be empty")
+        output = Path(output).expanduser()
+        if not output.is_absolute() and base_dir is not None:
+            output = Path(base_dir) / output
+        output = os.path.abspath(output)
+    models = _models(top.get("models"))
+    alphas, higher_spin = _deformation(top.get("deformation"), models)
+    radii = _radii(top.get("radii"))
+    states = _states(top.get("states", DEFAULTS["states"]))
+    solver = _Table("solver", top.get("solver", {}))
+    tol = _number("solver.tol", solver.get("tol", DEFAULTS["solver"]["tol"]))
+    min_tol = getattr(_solver, "MIN_TOL", 1e-15)  # the solver's own limit
+    if not min_tol <= tol < 1e-2:
+        raise RunFileError("solver.tol", f"must lie in [{min_tol:g}, 1e-2), got {tol!r}")
+    solver.finish()
+    scan = _Table("scan", top.get("scan", {}))
+    d = DEFAULTS["scan"]
+    chunk_size = _integer("scan.chunk_size", scan.get("chunk_size", d["chunk_size"]))
+    if chunk_size < 1:
+        raise RunFileError("scan.chunk_size", f"must be at least 1, got {chunk_size}")
+    flow_check = _boolean("scan.flow_check", scan.get("flow_check", d["flow_check"]))
+    sweep = _string("scan.sweep", scan.get("sweep", d["sweep"]))
+    if sweep not in SWEEPS:
+        raise RunFileError("scan.sweep", f"must be one of {', '.join(SWEEPS)}, got {sweep!r}")
+    scan.finish()
+    top.finish()
+    return RunSpec(models=models, alphas=alphas, radii=radii, higher_spin=higher_spin,
+                   states=states, tol=tol, chunk_size=chunk_size, flow_check=flow_check,
+                   sweep=sweep, name=name, description=description, output=output)
+
+
+def _models(value):
+    items = _array("models", value)
+    if not items:
+        raise RunFileError("models", "needs at least one model")
+    specs = []
+    for i, item in enumerate(items):
+        key = f"models[{i}]"
+        t = _Table(key, item)
+        name = _string(t.key("name"), t.get("name"))
+        if name not in MODELS:
+            raise RunFileError(t.key("name"), f"unknown model {name!r} (choose from {', '.join(MODELS)})")
+        coupling = t.get("coupling", None)
+        if name in MODELS_WITH_COUPLING:
+            if coupling is None:
+                raise RunFileError(t.key("coupling"), f"missing (required for {name})")
+            coupling = _number(t.key("coupling"), coupling)
+            if not 0 < coupling < 2:
+                raise RunFileError(t.key("coupling"), f"B must lie in (0, 2), got {coupling!r}")
+        elif coupling is not None:
+            raise RunFileError(t.key("coupling"), f"model {name} has no coupling")
+        t.finish()
+        spec = ModelSpec(name, coupling)
+        if spec in specs:
+            raise RunFileError(key, f"repeats models[{specs.index(spec)}] ({spec.label})")
+        specs.append(spec)
+    return tuple(specs)
+
+
+def _deformation(value, models):
+    if value is None:
+        _missing("deformation")
+    t = _Table("deformation", value)
+    raw = _array("deformation.alphas", t.get("alphas"))
+    if not raw:
+        raise RunFileError("deformation.alphas", "needs at least one value (0 for undeformed)")
+    alphas = tuple(sorted({_number(f"deformation.alphas[{i}]", a) + 0.0 for i, a in enumerate(raw)}))
+    hs = _Table("deformation.higher_spin", t.get("higher_spin", {}))
+    higher = {}
+    for spin_text, a in hs.data.items():
+        key = hs.key(spin_text)
+        hs.read.add(spin_text)
+        try:
+            spin = int(spin_text)
+        except ValueError:
+            raise RunFileError(key, "spin must be an odd integer >= 3") from None
+        if spin < 3 or spin % 2 == 0 or str(spin) != spin_text.strip():
+            raise RunFileError(key, f"spin must be an odd integer >= 3, got {spin_text!r}")
+        a = _number(key, a)
+        if a != 0.0:
+            higher[spin] = a
+    if higher:
+        for i, m in enumerate(models):
+            n = m.build().n_species
+            if n != 1:
+                raise RunFileError("deformation.higher_spin",
+                                   f"higher-spin CDD factors need single-species models; "
+                                   f"models[{i}] ({m.name}) has {n} species")
+    t.finish()
+    return alphas, tuple(sorted(higher.items()))
+
+
+def _missing(key):
+    raise RunFileError(key, "missing (required key)")
+
+
+def _radius(key, value):
+    R = _number(key, value)
+    if R <= 0:
+        raise RunFileError(key, f"radius must be positive, got {R!r}")
+    return R
+
+
+def _range(key, value):
+    t = _Table(key, value)
+    start = _radius(t.key("start"), t.get("start"))
+    stop = _radius(t.key("stop"), t.get("stop"))
+    count = _integer(t.key("count"), t.get("count"))
+    spacing = _string(t.key("spacing"), t.get("spacing", "linear"))
+    t.finish()
+    if spacing not in SPACINGS:
+        raise RunFileError(t.key("spacing"), f"must be one of {', '.join(SPACINGS)}, got {spacing!r}")
+    if count < 1 or (count == 1 and start != stop):
+        raise RunFileError(t.key("count"), f"must be >= 2 for a range (1 only if start == stop), got {count}")
+    values = np.geomspace(start, stop, count) if spacing == "log" else np.linspace(start, stop, count)
+    return [float(v) for v in values]
+
+
+def _radii(value):
+    if value is None:
+        _missing("radii")
+    if isinstance(value, dict):
+        values = _range("radii", value)
+    else:
+        items = _array("radii", value)
+        if not items:
+            raise RunFileError("radii", "needs at least one radius")
+        values = []
+        for i, item in enumerate(items):
+            key = f"radii[{i}]"
+            values.extend(_range(key, item) if isinstance(item, dict) else [_radius(key, item)])
+    return tuple(sorted(set(values)))
+
+
+def _states(value):
+    items = _array("states", value)
+    if not items:
+        raise RunFileError("states", "needs at least one state")
+    states = []
+    for i, s in enumerate(items):
+        s = _string(f"states[{i}]", s)
+        if s not in STATES:
+            raise RunFileError(f"states[{i}]", f"unknown state {s!r} (available: {', '.join(STATES)})")
+        if s in states:
+            raise RunFileError(f"states[{i}]", f"repeats {s!r}")
+        states.append(s)
+    return tuple(states)
+
+
+def demo_run_path():
+    """The demo run file: ``runs/demo.toml`` of the source tree when the package runs from
+    it (editable install, or the repository on sys.path), else the copy shipped in the
+    package (``tba/data/demo.toml``). Returns (path, in_repository)."""
+    package = Path(__file__).resolve().parent
+    repo_file = package.parent / "runs" / "demo.toml"
+    if repo_file.is_file() and (package.parent / "pyproject.toml").is_file():
+        return repo_file, True
+    return package / "data" / "demo.toml", False

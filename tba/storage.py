@@ -1,0 +1,502 @@
+"""The HDF5 store of a scan: layout, creation, resumable chunk writes, reading back.
+
+Layout (schema version 1; readable with plain h5py, and with xarray through
+``xarray.open_dataset(path, engine="h5netcdf")`` or ``engine="netcdf4"``)::
+
+    /                          root attributes: schema, schema_version, package,
+                               package_version, git_commit, created, title, run (the
+                               resolved run as JSON), run_id, run_file, models (JSON),
+                               conventions, units, status_legend, flow_status_legend, layout
+    /model   (model)           dimension scale: label "name" or "name B=coupling"
+    /alpha   (alpha)           dimension scale: TTbar coupling (sorted)
+    /radius  (radius)          dimension scale: circumference R (sorted)
+    /state   (state)           dimension scale: "ground" (excited states later)
+    /model_name, /model_coupling (model)         the model axis split into name and B (NaN: none)
+    /energy, /error, /status, /iterations, /message,
+    /flow_radius, /flow_prediction, /flow_error, /flow_residual, /flow_status
+                               (model, alpha, radius, state), one value per point
+    /progress/chunk (chunk)    dimension scale: chunk index
+    /progress/{model_index, alpha_index, state_index, radius_start, radius_stop}
+                               the chunk table (a pure function of the resolved run)
+    /progress/done (chunk)     1 once the chunk's values are written (the resume mask)
+    /progress/invocation (chunk)  which invocation of ``tba run`` computed it (0: not yet)
+    /progress/seconds (chunk)  wall time of the chunk in its worker
+    /progress attrs            history (JSON list, one entry per invocation of tba run,
+                               written when it starts and when it ends)
+
+``message`` is a fixed-length UTF-8 string (256 bytes): h5py's ``.asstr()`` and xarray's
+netcdf4 engine give str, the h5netcdf engine gives bytes (``.astype(str)``).
+
+A missing value is NaN (or "" / 0) together with a status code that says why
+(``status_legend``, ``flow_status_legend`` and the CF ``flag_values``/``flag_meanings``
+of the status variables). The group ``/branch_points`` is reserved for the branch-point
+data of a later schema version.
+
+Only the scan driver writes: it creates the file complete with every point "not
+computed" (under a temporary name, then renamed), and writes each finished chunk's
+values, flushes, sets its ``done`` flag and flushes again. Chunk writes overwrite bytes in
+place and never change the file's metadata, so a kill loses at most the chunks in flight.
+"""
+
+import datetime
+import json
+import math
+import os
+import platform
+import subprocess
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+from tba.result import STATUS_CODES
+from tba.runfile import RunSpec, differing_keys, resolve_run
+
+SCHEMA = "tba-flow scan"
+SCHEMA_VERSION = 1
+#: status code of a point that has not been computed yet
+NOT_COMPUTED = -1
+#: extra codes of flow_status (fixed numbers, apart from the solver's STATUS_CODES)
+FLOW_OFF = 10
+FLOW_NOT_APPLICABLE = 11
+FLOW_NO_ENERGY = 12
+
+STATUS_MEANINGS = {NOT_COMPUTED: ("not-computed", "the point has not been computed yet"),
+                   **{code: (s.value, {"converged": "energy and error estimate are valid",
+                                       "no-real-solution": "past the branch point: no real "
+                                                           "solution on the branch of the "
+                                                           "undeformed theory",
+                                       "not-converged": "the error estimate did not reach "
+                                                        "the tolerance; no energy stored",
+                                       }.get(s.value, s.value))
+                      for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])}}
+FLOW_MEANINGS = {
+    NOT_COMPUTED: ("not-computed", "the point has not been computed yet"),
+    **{code: (s.value, f"undeformed solve at R + alpha E: {s.value}")
+       for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])},
+    FLOW_OFF: ("off", "flow_check = false in the run"),
+    FLOW_NOT_APPLICABLE: ("not-applicable", "alpha = 0, or higher-spin CDD factors present "
+                                            "(the relation is exact for TTbar alone)"),
+    FLOW_NO_ENERGY: ("no-energy", "the deformed point has no energy to check"),
+}
+
+CONVENTIONS = """\
+Units: the lightest mass m_1 = 1; R is the circumference of the space circle; hbar = c = 1.
+energy is the TBA ground-state energy E(R, alpha) WITHOUT the bulk term f R.
+Deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t) (phi_ab += alpha m_a m_b cosh t),
+higher odd spins s: exp(i alpha_s sinh(s t)) (single-species models).
+Then d/dalpha E = E dE/dR + P^2/R, and for the ground state (P = 0, TTbar only)
+E(R, alpha) = E_0(R + alpha E, 0): flow_prediction is E_0 solved at flow_radius = R + alpha E,
+flow_residual = |energy - flow_prediction|, flow_error the undeformed solve's error estimate.
+alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
+error estimates |energy - exact| and is meant to bound it; tol is relative."""
+
+UNITS = ("radius, flow_radius: 1/m_1; energy, error, flow_prediction, flow_error, "
+         "flow_residual: m_1; alpha: 1/m_1^2; m_1 = lightest mass = 1")
+
+LAYOUT = ("data sets (model, alpha, radius, state): energy error status iterations message "
+          "flow_radius flow_prediction flow_error flow_residual flow_status; /progress: chunk "
+          "table and done mask; /branch_points: reserved for a later schema")
+
+#: messages are stored as fixed-length UTF-8 strings, so that writing a chunk only overwrites
+#: bytes at fixed places in the file and never changes its metadata (see `Store.write_chunk`)
+MESSAGE_BYTES = 256
+MESSAGE_DTYPE = h5py.string_dtype("utf-8", MESSAGE_BYTES)
+
+#: name -> (dtype, fill value, attributes) of the per-point data sets
+POINT_VARIABLES = {
+    "energy": ("f8", np.nan, {"long_name": "ground-state energy E(R, alpha), bulk term excluded",
+                              "units": "m_1"}),
+    "error": ("f8", np.nan, {"long_name": "error estimate of energy (meant to bound it)",
+                             "units": "m_1"}),
+    "status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the point (see flag_meanings)"}),
+    "iterations": ("i4", 0, {"long_name": "Newton iterations spent on the point, all grids"}),
+    "message": ("str", "", {"long_name": f"solver message (UTF-8, at most {MESSAGE_BYTES} bytes)"}),
+    "flow_radius": ("f8", np.nan, {"long_name": "R + alpha E, radius of the undeformed solve "
+                                                "of the flow check", "units": "1/m_1"}),
+    "flow_prediction": ("f8", np.nan, {"long_name": "flow prediction E_0(R + alpha E, 0)",
+                                       "units": "m_1"}),
+    "flow_error": ("f8", np.nan, {"long_name": "error estimate of flow_prediction",
+                                  "units": "m_1"}),
+    "flow_residual": ("f8", np.nan, {"long_name": "flow residual |E(R, alpha) - E_0(R + alpha E, 0)|",
+                                     "units": "m_1"}),
+    "flow_status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the flow check "
+                                                      "(see flag_meanings)"}),
+}
+DIMS = ("model", "alpha", "radius", "state")
+PROGRESS_FIELDS = ("model_index", "alpha_index", "state_index", "radius_start", "radius_stop")
+
+
+class StoreError(Exception):
+    """An output file that cannot be used as asked (one line, exit code 2 on the command line).
+
+    ``foreign`` is true when the file exists but belongs to something else (another run,
+    schema or package version, or not a store at all): ``force`` would replace it."""
+
+    def __init__(self, message, foreign=False):
+        super().__init__(message)
+        self.foreign = foreign
+
+
+# -- provenance ---------------------------------------------------------------------------------
+
+def git_commit():
+    """``git rev-parse HEAD`` of the source tree the package runs from, else "unknown"."""
+    root = Path(__file__).resolve().parent.parent
+    if not (root / ".git").exists() or not (root / "pyproject.toml").is_file():
+        return "unknown"
+    try:
+        out = subprocess.run(["git", "-C", str(root), "rev-parse", "HEAD"], capture_output=True,
+                             text=True, timeout=10)
+    except (OSError, subprocess.SubprocessError):
+        return "unknown"
+    commit = out.stdout.strip()
+    return commit if out.returncode == 0 and commit else "unknown"
+
+
+def package_version():
+    from tba import __version__
+    return __version__
+
+
+def _now():
+    return datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
+
+
+def _legend(meanings):
+    return "; ".join(f"{code} {name}: {text}" for code, (name, text) in sorted(meanings.items()))
+
+
+def _flags(meanings):
+    codes = sorted(meanings)
+    return {"flag_values": np.array(codes, dtype="i1"),
+            "flag_meanings": " ".join(meanings[c][0] for c in codes),
+            "legend": _legend(meanings)}
+
+
+# -- writing ------------------------------------------------------------------------------------
+
+def _encode(text):
+    """UTF-8 bytes of at most MESSAGE_BYTES, cut at a character boundary ("..." marks a cut)."""
+    raw = str(text).encode("utf-8")
+    if len(raw) > MESSAGE_BYTES:
+        raw = raw[:MESSAGE_BYTES - 3].decode("utf-8", "ignore").encode("utf-8") + b"..."
+    return raw
+
+
+def _full(shape, kind, fill):
+    if kind == "str":
+        return np.full(shape, _encode(fill), dtype=MESSAGE_DTYPE)
+    return np.full(shape, fill, dtype=kind)
+
+
+def _as_stored(kind, values):
+    if kind == "str":
+        return np.array([_encode(v) for v in np.ravel(values)], dtype=MESSAGE_DTYPE).reshape(np.shape(values))
+    return np.asarray(values, dtype=kind)
+
+
+def _write_layout(f, run, run_file, models_info):
+    s = h5py.string_dtype()  # variable-length: coordinates and fixed metadata only
+    f.attrs.update({
+        "schema": SCHEMA, "schema_version": SCHEMA_VERSION,
+        "package": "tba-flow", "package_version": package_version(), "git_commit": git_commit(),
+        "created": _now(), "title": run.description or run.name,
+        "run": run.to_json(), "run_id": run.run_id, "run_file": str(run_file or ""),
+        "models": json.dumps(models_info), "conventions": CONVENTIONS, "units": UNITS,
+        "status_legend": _legend(STATUS_MEANINGS), "flow_status_legend": _legend(FLOW_MEANINGS),
+        "layout": LAYOUT,
+    })
+    scales = {
+        "model": f.create_dataset("model", data=np.array([m.label for m in run.models], dtype=object),
+                                  dtype=s),
+        "alpha": f.create_dataset("alpha", data=np.array(run.alphas, dtype="f8")),
+        "radius": f.create_dataset("radius", data=np.array(run.radii, dtype="f8")),
+        "state": f.create_dataset("state", data=np.array(run.states, dtype=object), dtype=s),
+    }
+    scales["model"].attrs["long_name"] = "model and coupling"
+    scales["alpha"].attrs.update({"long_name": "TTbar coupling alpha (spin-1 CDD factor)",
+                                  "units": "1/m_1^2"})
+    scales["radius"].attrs.update({"long_name": "circumference R of the space circle",
+                                   "units": "1/m_1"})
+    scales["state"].attrs["long_name"] = "state (ground only in schema 1)"
+    for name, ds in scales.items():
+        ds.make_scale(name)
+    names = f.create_dataset("model_name", data=np.array([m.name for m in run.models], dtype=object),
+                             dtype=s)
+    couplings = f.create_dataset("model_coupling", data=np.array(
+        [np.nan if m.coupling is None else m.coupling for m in run.models], dtype="f8"))
+    names.attrs["long_name"] = "model name (tba solve --model)"
+    couplings.attrs["long_name"] = "model coupling (sinh-Gordon B; NaN: the model has none)"
+    for ds in (names, couplings):
+        ds.dims[0].attach_scale(scales["model"])
+    for name, (kind, fill, attrs) in POINT_VARIABLES.items():
+        ds = f.create_dataset(name, data=_full(run.shape, kind, fill))
+        ds.attrs.update(attrs)
+        if name == "status":
+            ds.attrs.update(_flags(STATUS_MEANINGS))
+        elif name == "flow_status":
+            ds.attrs.update(_flags(FLOW_MEANINGS))
+        for i, dim in enumerate(DIMS):
+            ds.dims[i].attach_scale(scales[dim])
+    chunks = run.chunks()
+    g = f.create_group("progress")
+    g.attrs.update({"chunk_size": run.chunk_size, "n_chunks": len(chunks), "history": "[]",
+                    "long_name": "scan bookkeeping: chunk table and resume mask"})
+    scale = g.create_dataset("chunk", data=np.arange(len(chunks), dtype="i4"))
+    scale.make_scale("chunk")
+    table = {
+        "model_index": [c.model for c in chunks], "alpha_index": [c.alpha for c in chunks],
+        "state_index": [c.state for c in chunks], "radius_start": [c.radius_start for c in chunks],
+        "radius_stop": [c.radius_stop for c in chunks],
+    }
+    for name, values in table.items():
+        g.create_dataset(name, data=np.array(values, dtype="i4"))
+    g.create_dataset("done", data=np.zeros(len(chunks), dtype="u1")).attrs["long_name"] = \
+        "1 once the chunk's values are written"
+    g.create_dataset("invocation", data=np.zeros(len(chunks), dtype="i4")).attrs["long_name"] = \
+        "invocation of tba run that computed the chunk (index into history, from 1; 0: not yet)"
+    g.create_dataset("seconds", data=np.full(len(chunks), np.nan)).attrs["long_name"] = \
+        "wall time of the chunk in its worker"
+    for name in (*table, "done", "invocation", "seconds"):
+        g[name].dims[0].attach_scale(scale)
+        if name in table:
+            g[name].attrs["long_name"] = f"chunk table: {name.replace('_', ' ')}"
+
+
+class Store:
+    """An open store, written by the scan driver only."""
+
+    def __init__(self, path, f, run):
+        self.path, self.f, self.run = Path(path), f, run
+        self._history = json.loads(f["progress"].attrs["history"])
+        self._invocation = None
+
+    @property
+    def done(self):
+        return self.f["progress/done"][...].astype(bool)
+
+    @property
+    def history(self):
+        return list(self._history)
+
+    def begin_invocation(self, workers, pending):
+        entry = {"invocation": len(self._history) + 1, "started": _now(), "finished": None,
+                 "package_version": package_version(), "git_commit": git_commit(),
+                 "host": platform.node(), "workers": workers, "chunks_pending": pending,
+                 "chunks_computed": 0}
+        self._history.append(entry)
+        self._invocation = entry
+        self._save_history()
+        return entry["invocation"]
+
+    def end_invocation(self, interrupted=False):
+        if self._invocation is not None:
+            self._invocation["finished"] = _now()
+            if interrupted:
+                self._invocation["interrupted"] = True
+            self._save_history()
+
+    def _save_history(self):
+        self.f["progress"].attrs["history"] = json.dumps(self._history)
+        self.f.flush()
+
+    def write_chunk(self, chunk, values, seconds):
+        """Write one finished chunk (arrays over its radii, ascending), flush, then mark it done
+        and flush again.
+
+        Every data set has a fixed size and type and was allocated when the file was created,
+        so this overwrites bytes in place and leaves the file's metadata alone: a kill at any
+        moment leaves a readable file in which this chunk is either done or not.
+        """
+        sl = (chunk.model, chunk.alpha, slice(chunk.radius_start, chunk.radius_stop), chunk.state)
+        for name, (kind, _, _) in POINT_VARIABLES.items():
+            self.f[name][sl] = _as_stored(kind, values[name])
+        g = self.f["progress"]
+        g["invocation"][chunk.index] = self._invocation["invocation"] if self._invocation else 0
+        g["seconds"][chunk.index] = seconds
+        self.f.flush()
+        g["done"][chunk.index] = 1
+        self.f.flush()
+        if self._invocation is not None:
+            self._invocation["chunks_computed"] += 1  # saved with the history at the end
+
+    def close(self):
+        if self.f:
+            self.f.close()
+            self.f = None
+
+
+def _open(path, mode):
+    try:
+        return h5py.File(path, mode)
+    except OSError as exc:
+        text = str(exc)
+        if "lock" in text:
+            raise StoreError(f"{path}: in use by another process (another tba run?)") from None
+        raise StoreError(f"{path}: not a readable HDF5 file ({text.splitlines()[0]}); "
+                         f"refusing to touch it (use --force to replace it)", foreign=True) from None
+
+
+def create_store(path, run, run_file=None):
+    """Write a new store with every point 'not computed' (atomically: temporary file, rename;
+    an existing file at ``path`` is replaced)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    models_info = [m.build().describe() for m in run.models]
+    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    try:
+        with h5py.File(tmp, "w") as f:
+            _write_layout(f, run, run_file, models_info)
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def check_store(path, run):
+    """Read-only check that ``path`` is a store of the same run; returns its done mask."""
+    with _open(path, "r") as f:
+        if f.attrs.get("schema") != SCHEMA:
+            raise StoreError(f"{path}: exists and is not a tba-flow scan file; refusing to "
+                             f"overwrite it (use --force to replace it, or --out)", foreign=True)
+        version = int(f.attrs.get("schema_version", -1))
+        if version != SCHEMA_VERSION:
+            raise StoreError(f"{path}: schema version {version}, this tba writes "
+                             f"{SCHEMA_VERSION}; use --force to replace it, or --out", foreign=True)
+        if f.attrs.get("run_id") != run.run_id:
+            old = json.loads(f.attrs["run"])
+            keys = differing_keys(old, run.to_dict()) or ["run_id"]
+            raise StoreError(f"{path}: written by a different run (differs in: {', '.join(keys)}); "
+                             f"refusing to overwrite it (use --force to replace it, or --out)", foreign=True)
+        stored = f.attrs.get("package_version")
+        if stored != package_version():
+            raise StoreError(f"{path}: written by tba {stored}, this is tba {package_version()}; "
+                             f"resuming would mix versions (use --force to start again, or --out)", foreign=True)
+        g = f["progress"]
+        table = np.stack([g[name][...] for name in PROGRESS_FIELDS], axis=1)
+        expected = np.array([[c.model, c.alpha, c.state, c.radius_start, c.radius_stop]
+                             for c in run.chunks()], dtype=table.dtype).reshape(table.shape)
+        if table.shape != expected.shape or not np.array_equal(table, expected):
+            raise StoreError(f"{path}: its chunk table does not match the run; use --force or --out", foreign=True)
+        return g["done"][...].astype(bool), str(f.attrs.get("git_commit", "unknown"))
+
+
+def prepare_store(path, run, force=False, run_file=None):
+    """Make sure ``path`` is a store of ``run``: check an existing one (read-only) or create
+    it. Returns (done mask, created, note). Nothing is written to an existing file here.
+
+    An existing file of another run, another schema or another package version, or a file
+    that is not a store, is never overwritten unless ``force`` (`StoreError`).
+    """
+    path = Path(path)
+    if path.is_dir():
+        raise StoreError(f"{path}: is a directory")
+    if path.exists() and not force:
+        done, commit = check_store(path, run)
+        note = None
+        if commit != git_commit():
+            note = (f"{path} was started at commit {commit[:12]}, this is {git_commit()[:12]}; "
+                    f"each invocation is recorded in the /progress history attribute")
+        return done, False, note
+    create_store(path, run, run_file)
+    return np.zeros(len(run.chunks()), dtype=bool), True, None
+
+
+def open_store(path, run):
+    """Open a checked store for writing (`prepare_store` first)."""
+    return Store(path, _open(path, "r+"), run)
+
+
+# -- reading ------------------------------------------------------------------------------------
+
+@dataclass
+class StoreData:
+    """A store read into memory (plain numpy arrays), for reports, plots and exports."""
+
+    path: Path
+    attrs: dict
+    run: RunSpec
+    model: list
+    model_name: list
+    model_coupling: list
+    alpha: np.ndarray
+    radius: np.ndarray
+    state: list
+    data: dict = field(default_factory=dict)
+    progress: dict = field(default_factory=dict)
+    history: list = field(default_factory=list)
+
+    def __getitem__(self, name):
+        return self.data[name]
+
+    @property
+    def n_chunks(self):
+        return len(self.progress["done"])
+
+    @property
+    def complete(self):
+        return bool(np.all(self.progress["done"]))
+
+    def records(self, include_not_computed=False):
+        """One dict per point with the keys of ``tba solve --json`` plus ``state``."""
+        st = self.data["status"]
+        names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
+        for m in range(len(self.model)):
+            for a, alpha in enumerate(self.alpha):
+                couplings = dict(self.run.deformation(float(alpha)).couplings)
+                for r, R in enumerate(self.radius):
+                    for s, state in enumerate(self.state):
+                        i = (m, a, r, s)
+                        code = int(st[i])
+                        if code == NOT_COMPUTED and not include_not_computed:
+                            continue
+                        ok = names.get(code) == "converged"
+                        yield {
+                            "model": self.model_name[m],
+                            "coupling": self.model_coupling[m],
+                            "radius": float(R),
+                            "alpha": float(alpha),
+                            "couplings": {str(k): v for k, v in couplings.items()},
+                            "energy": float(self.data["energy"][i]) if ok else None,
+                            "error": float(self.data["error"][i]) if ok else None,
+                            "status": names.get(code, str(code)),
+                            "iterations": int(self.data["iterations"][i]),
+                            "message": self.data["message"][i],
+                            "state": state,
+                        }
+
+
+def _strings(ds):
+    return np.array(ds.asstr()[...], dtype=object)
+
+
+def read_store(path):
+    """Read a whole store (any tba-flow scan file of this schema) into a `StoreData`."""
+    path = Path(path)
+    if not path.exists():
+        raise StoreError(f"{path}: no such file")
+    try:
+        f = h5py.File(path, "r", locking=False)
+    except OSError as exc:
+        raise StoreError(f"{path}: not a readable HDF5 file ({str(exc).splitlines()[0]})") from None
+    with f:
+        if f.attrs.get("schema") != SCHEMA:
+            raise StoreError(f"{path}: not a tba-flow scan file")
+        version = int(f.attrs.get("schema_version", -1))
+        if version != SCHEMA_VERSION:
+            raise StoreError(f"{path}: schema version {version}; this tba reads {SCHEMA_VERSION}")
+        attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
+        run = resolve_run(json.loads(attrs["run"]), name=json.loads(attrs["run"]).get("name", "run"))
+        data = {}
+        for name, (kind, _, _) in POINT_VARIABLES.items():
+            data[name] = _strings(f[name]) if kind == "str" else f[name][...]
+        g = f["progress"]
+        progress = {name: g[name][...] for name in (*PROGRESS_FIELDS, "done", "invocation", "seconds")}
+        couplings = [None if math.isnan(c) else float(c) for c in f["model_coupling"][...]]
+        return StoreData(path=path, attrs=attrs, run=run, model=list(_strings(f["model"])),
+                         model_name=list(_strings(f["model_name"])), model_coupling=couplings,
+                         alpha=f["alpha"][...], radius=f["radius"][...],
+                         state=list(_strings(f["state"])), data=data, progress=progress,
+                         history=json.loads(g.attrs["history"]))

@@ -1,0 +1,109 @@
+"""The figure of a scan, checked through matplotlib's objects (labels, legends, lines), not pixels."""
+
+import io
+
+import numpy as np
+import pytest
+
+from tba.cli import main
+from tba.plotting import LABELS, plot_store
+from tba.runfile import loads_run
+from tba.scan import run_scan
+from tba.storage import read_store
+
+# Lee-Yang and the free fermion; alpha = 0.5 at R = 0.3 lies past the branch point of both
+# (CFT estimate sqrt(2 pi c alpha / 3) ~ 0.65-0.72, PHYSICS.md section 4), alpha = 0 has no
+# flow check, alpha = -0.2 has one.
+RUN = """\
+# plotting test
+output = "plot.h5"
+
+[[models]]
+name = "lee-yang"
+
+[[models]]
+name = "free-fermion"
+
+[deformation]
+alphas = [-0.2, 0, 0.5]
+
+[radii]
+start = 0.3
+stop = 3.0
+count = 6
+spacing = "log"
+
+[solver]
+tol = 1e-10
+
+[scan]
+chunk_size = 6
+"""
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory):
+    run = loads_run(RUN, base_dir=tmp_path_factory.mktemp("plot"))
+    run_scan(run, workers=1, log=io.StringIO())
+    return read_store(run.output)
+
+
+def _legend_texts(ax):
+    legend = ax.get_legend()
+    return [t.get_text() for t in legend.get_texts()] if legend else []
+
+
+def test_panels_labels_legends_and_lines(data):
+    fig = plot_store(data)
+    axes = np.array(fig.axes).reshape(3, 2)
+    assert [ax.get_title() for ax in axes[0]] == ["lee-yang", "free-fermion"]
+    alphas = [r"$\alpha = -0.2$", r"$\alpha = 0$", r"$\alpha = 0.5$"]
+    for m in range(2):
+        ax_e, ax_r, ax_c = axes[:, m]
+        assert ax_e.get_ylabel() == LABELS["energy"] and "E(R" in ax_e.get_ylabel()
+        assert ax_r.get_ylabel() == LABELS["residual"] and "residual" in ax_r.get_ylabel()
+        assert ax_c.get_ylabel() == LABELS["ceff"] and "c_" in ax_c.get_ylabel()
+        assert ax_c.get_xlabel() == LABELS["radius"]
+        assert ax_e.get_xscale() == ax_c.get_xscale() == "log"  # radii span a factor 10
+        # energy: one line per alpha, one prediction per deformed alpha, one last-real marker
+        # (alpha = 0.5 has no real solution at R = 0.3, a real one further up)
+        assert _legend_texts(ax_e) == alphas + [LABELS["prediction"], LABELS["last_real"]]
+        assert len(ax_e.get_lines()) == 3 + 2 + 1
+        star = [ln for ln in ax_e.get_lines() if ln.get_marker() == "*"]
+        assert len(star) == 1
+        r_star = star[0].get_xdata()[0]
+        assert r_star > data.radius[0]
+        # residual on a log scale: residual and error estimate per deformed alpha
+        assert ax_r.get_yscale() == "log"
+        assert len(ax_r.get_lines()) == 2 * 2
+        assert _legend_texts(ax_r) == ["residual", LABELS["estimate"]]
+        # c_eff: one line per alpha
+        assert _legend_texts(ax_c) == alphas
+        assert len(ax_c.get_lines()) == 3
+    # c_eff = -6 R E / pi of the first point of Lee-Yang at alpha = 0 (data check)
+    line = axes[2, 0].get_lines()[1]
+    E = data["energy"][0, 1, :, 0]
+    np.testing.assert_allclose(line.get_ydata(), -6 * data.radius * E / np.pi)
+
+
+def test_plot_command_writes_png_and_pdf(data, tmp_path, capsys):
+    for name in ("fig.png", "sub/fig.pdf"):
+        out = tmp_path / name
+        assert main(["plot", str(data.path), "-o", str(out)]) == 0
+        assert out.stat().st_size > 1000
+    assert (tmp_path / "fig.png").read_bytes()[:4] == b"\x89PNG"
+    assert (tmp_path / "sub" / "fig.pdf").read_bytes()[:4] == b"%PDF"
+    capsys.readouterr()
+    assert main(["plot", str(data.path), "-o", str(tmp_path / "fig.jpeg")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "-o" in err[0]
+
+
+def test_figure_without_flow_checks(tmp_path):
+    run = loads_run(RUN.replace("alphas = [-0.2, 0, 0.5]", "alphas = [0]").replace("count = 6", "count = 2"),
+                    base_dir=tmp_path)
+    run_scan(run, workers=1, log=io.StringIO())
+    fig = plot_store(read_store(run.output))
+    ax_r = np.array(fig.axes).reshape(3, 2)[1, 0]
+    assert ax_r.get_yscale() == "linear" and len(ax_r.get_lines()) == 0
+    assert "no flow residuals" in ax_r.texts[0].get_text()

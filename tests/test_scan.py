@@ -1,0 +1,227 @@
+"""Scans: chunks, determinism (serial = parallel), flow checks, and the run / report / export /
+demo commands end to end."""
+
+import csv
+import io
+import json
+import subprocess
+import sys
+
+import h5py
+import numpy as np
+import pytest
+
+import tba.cli
+from tba.cli import main
+from tba.result import STATUS_CODES, Status
+from tba.runfile import loads_run
+from tba.scan import run_scan, solve_chunk
+from tba.storage import FLOW_NOT_APPLICABLE, FLOW_OFF, POINT_VARIABLES, read_store
+
+RUN = """\
+# tiny scan for the tests: Lee-Yang and the free fermion, a few radii
+description = "tiny scan"
+output = "scan.h5"
+
+[[models]]
+name = "lee-yang"
+
+[[models]]
+name = "free-fermion"
+
+[deformation]
+alphas = [-0.1, 0.3]
+
+[radii]
+start = 0.4
+stop = 2.0
+count = 5
+
+[solver]
+tol = 1e-10
+
+[scan]
+chunk_size = 2
+"""
+NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
+SOLVE_KEYS = {"model", "coupling", "radius", "alpha", "couplings", "energy", "error", "status",
+              "iterations", "message"}
+
+
+def _write(tmp_path, text=RUN, name="scan.toml"):
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+def _same_numbers(a, b):
+    for name in NUMBERS:
+        assert np.array_equal(a[name], b[name], equal_nan=True), name
+
+
+def test_a_chunk_is_deterministic(tmp_path):
+    run = loads_run(RUN, base_dir=tmp_path)
+    chunk = run.chunks()[1]
+    _, first, _ = solve_chunk(run, chunk)
+    _, again, _ = solve_chunk(run, chunk)
+    for name in NUMBERS:
+        assert np.array_equal(first[name], again[name], equal_nan=True)
+    assert first["status"].shape == (chunk.size,)
+
+
+def test_parallel_equals_serial(tmp_path):
+    run = loads_run(RUN, base_dir=tmp_path)
+    serial = run_scan(run, tmp_path / "serial.h5", workers=1, log=io.StringIO())
+    parallel = run_scan(run, tmp_path / "parallel.h5", workers=2, log=io.StringIO())
+    assert serial.complete and parallel.complete and parallel.workers == 2
+    _same_numbers(read_store(tmp_path / "serial.h5"), read_store(tmp_path / "parallel.h5"))
+
+
+def test_flow_residuals_are_small_and_statuses_say_why(tmp_path):
+    run = loads_run(RUN, base_dir=tmp_path)
+    run_scan(run, workers=1, log=io.StringIO())
+    d = read_store(run.output)
+    ok = d["flow_status"] == STATUS_CODES[Status.CONVERGED]
+    assert ok.sum() >= 15
+    # E(R, alpha) = E_0(R + alpha E, 0) exactly for the TTbar ground state (PHYSICS.md section 4):
+    # the residual must lie within the error estimates of both solves (plus the propagated
+    # |alpha E_0'| error, which is below the deformed point's own estimate away from the fold)
+    bound = 2 * d["error"] + d["flow_error"] + 1e-15
+    assert np.all(d["flow_residual"][ok] <= bound[ok])
+    # higher-spin factors: the relation is not exact, so not applicable; flow_check = false: off
+    hs = loads_run(RUN.replace("alphas = [-0.1, 0.3]", "alphas = [0.1]\nhigher_spin = { 3 = 0.01 }")
+                   .replace('name = "free-fermion"', 'name = "sinh-gordon"\ncoupling = 1.0'),
+                   base_dir=tmp_path)
+    _, values, _ = solve_chunk(hs, hs.chunks()[0])
+    assert (values["flow_status"] == FLOW_NOT_APPLICABLE).all()
+    off = loads_run(RUN + "flow_check = false\n", base_dir=tmp_path)
+    _, values, _ = solve_chunk(off, off.chunks()[0])
+    assert (values["flow_status"] == FLOW_OFF).all() and np.isnan(values["flow_residual"]).all()
+
+
+def test_sweep_direction_changes_nothing_physical(tmp_path):
+    down = loads_run(RUN, base_dir=tmp_path)
+    up = loads_run(RUN + 'sweep = "ascending"\n', base_dir=tmp_path)
+    assert up.run_id != down.run_id
+    _, a, _ = solve_chunk(down, down.chunks()[0])
+    _, b, _ = solve_chunk(up, up.chunks()[0])
+    assert np.allclose(a["energy"], b["energy"], rtol=1e-10, atol=0)
+
+
+def test_run_report_export_end_to_end(tmp_path, capsys):
+    runfile = _write(tmp_path)
+    assert main(["run", str(runfile), "--workers", "1"]) == 0
+    err = capsys.readouterr().err
+    assert "computed 12 chunks (0 were already done)" in err
+    h5 = tmp_path / "scan.h5"
+    assert h5.exists()
+    # again: a complete file is not recomputed
+    assert main(["run", str(runfile)]) == 0
+    assert "nothing to compute" in capsys.readouterr().err
+
+    assert main(["report", str(h5)]) == 0
+    report = capsys.readouterr().out
+    assert "converged" in report and "12 of 12 done (complete)" in report
+    assert "flow residual" in report and "worst error estimate" in report
+    assert "last real point" in report
+    for line in report.splitlines():
+        if line.strip().startswith("lee-yang") and "checked" not in line:
+            assert "-0.1" in line or "0.3" in line
+
+    assert main(["export", str(h5), "--json"]) == 0
+    records = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert len(records) == 20
+    assert all(set(r) == SOLVE_KEYS | {"state"} for r in records)
+    assert {r["status"] for r in records} <= {"converged", "no-real-solution"}
+
+    out = tmp_path / "scan.csv"
+    assert main(["export", str(h5), "--csv", "-o", str(out)]) == 0
+    with out.open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 20 and set(rows[0]) == SOLVE_KEYS | {"state"}
+    for rec, row in zip(records, rows):
+        assert row["energy"] == ("" if rec["energy"] is None else repr(rec["energy"]))
+        assert float(row["radius"]) == rec["radius"] and json.loads(row["couplings"]) == rec["couplings"]
+
+
+def test_export_matches_tba_solve_for_the_same_chain(tmp_path, capsys):
+    # one chunk holding all radii, swept downwards, is the chain `tba solve` runs when given
+    # the radii in decreasing order: the numbers agree bit for bit and the keys are the same
+    text = RUN.replace("chunk_size = 2", "chunk_size = 5").replace("alphas = [-0.1, 0.3]", "alphas = [0.3]")
+    runfile = _write(tmp_path, text)
+    assert main(["run", str(runfile), "--workers", "1"]) == 0
+    capsys.readouterr()
+    assert main(["export", str(tmp_path / "scan.h5"), "--json"]) == 0
+    exported = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    radii = sorted({r["radius"] for r in exported}, reverse=True)
+    assert main(["solve", "--model", "lee-yang", "--alpha", "0.3", "--tol", "1e-10", "--json",
+                 "--radius", *map(repr, radii)]) == 0
+    solved = {r["radius"]: r for r in map(json.loads, capsys.readouterr().out.splitlines())}
+    for rec in (r for r in exported if r["model"] == "lee-yang"):
+        ref = solved[rec["radius"]]
+        assert set(ref) == set(rec) - {"state"}
+        for key in SOLVE_KEYS - {"message"}:
+            assert rec[key] == ref[key], key
+
+
+def test_out_option_and_bad_workers(tmp_path, capsys):
+    runfile = _write(tmp_path, RUN.replace("count = 5", "count = 2"))
+    assert main(["run", str(runfile), "--workers", "0"]) == 2
+    assert "--workers" in capsys.readouterr().err
+    other = tmp_path / "sub" / "elsewhere.h5"
+    assert main(["run", str(runfile), "--out", str(other), "--workers", "1"]) == 0
+    assert other.exists() and not (tmp_path / "scan.h5").exists()
+    # a different run into the same file: refused, exit 2, one line; --force replaces it
+    runfile2 = _write(tmp_path, RUN.replace("count = 5", "count = 3"), "other.toml")
+    capsys.readouterr()
+    assert main(["run", str(runfile2), "--out", str(other)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "different run" in err[0] and "radii" in err[0]
+    assert main(["run", str(runfile2), "--out", str(other), "--force", "--workers", "1"]) == 0
+    assert len(read_store(other).radius) == 3
+
+
+def test_report_and_export_reject_bad_files(tmp_path, capsys):
+    bad = tmp_path / "x.h5"
+    bad.write_text("nope")
+    for args in (["report", str(bad)], ["export", str(bad), "--json"], ["report", str(tmp_path / "none.h5")]):
+        assert main(args) == 2
+        assert len(capsys.readouterr().err.strip().splitlines()) == 1
+
+
+DEMO_LIKE = RUN.replace('output = "scan.h5"', 'output = "out/demo.h5"')
+
+
+def test_demo_code_path_with_a_tiny_run(tmp_path, capsys, monkeypatch):
+    # `tba demo` with its run file swapped for a tiny one: same code path, seconds instead of ~10 s
+    runfile = _write(tmp_path, DEMO_LIKE, "demo.toml")
+    monkeypatch.setattr(tba.cli, "demo_run_path", lambda: (runfile, False))
+    monkeypatch.chdir(tmp_path)
+    assert main(["demo", "--workers", "1"]) == 0
+    out = capsys.readouterr().out
+    # outside the source tree the demo writes to ./tba-demo-out/
+    h5, png = tmp_path / "tba-demo-out" / "demo.h5", tmp_path / "tba-demo-out" / "demo.png"
+    assert h5.exists() and png.exists() and str(png) in out
+    assert "points per status" in out and "flow residual" in out
+    with h5py.File(h5, "r") as f:
+        assert f.attrs["run_file"] == str(runfile)
+        assert json.loads(f.attrs["run"])["output"] == str(h5)
+        assert f["energy"].dims[2].keys() == ["radius"]
+    xr = pytest.importorskip("xarray")
+    pytest.importorskip("h5netcdf")
+    with xr.open_dataset(h5, engine="h5netcdf") as ds:
+        assert dict(ds.sizes) == {"model": 2, "alpha": 2, "radius": 5, "state": 1}
+        assert ds.attrs["package_version"] and "conventions" in ds.attrs
+    # a second demo reuses the complete file; one from another run is replaced, with a note
+    assert main(["demo"]) == 0
+    assert "nothing to compute" in capsys.readouterr().err
+    runfile.write_text(DEMO_LIKE.replace("count = 5", "count = 3"))
+    assert main(["demo", "--workers", "1"]) == 0
+    assert "replacing it" in capsys.readouterr().err
+    assert len(read_store(h5).radius) == 3
+
+
+def test_demo_in_a_fresh_process_help():
+    proc = subprocess.run([sys.executable, "-m", "tba", "demo", "--help"], capture_output=True,
+                          text=True, timeout=120)
+    assert proc.returncode == 0 and "runs/demo.toml" in proc.stdout
