@@ -43,7 +43,8 @@ def cmd_branch_point(args, out):
     if args.json:
         print(json.dumps(rec), file=out)
     elif bp.status == "found":
-        print(f"{model.name} (B = {_fmt(model.coupling, 'g')}), alpha = {alpha:g}: branch point at "
+        name = model.name if model.coupling is None else f"{model.name} (B = {model.coupling:g})"
+        print(f"{name}, alpha = {alpha:g}: branch point at "
               f"R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, E_0(R_c) = {bp.energy:.15g} "
               f"+- {bp.energy_error:.1e} (T_H = {1 / bp.radius:.12g}); status {bp.status}", file=out)
     else:

@@ -95,3 +95,59 @@ def test_demo_runs_and_shows_both_statuses(capsys):
     out = capsys.readouterr().out
     assert "converged" in out and "no-real-solution" in out
     assert "not-converged" not in out
+
+
+def test_state_option_json_contract():
+    # free fermion, R sector (one particle, integer n): E = E_R(R) + cosh t, R sinh t = 2 pi n
+    # (textbook; E_R = (1/pi) sum_k K_1(kR)/k, scipy.special.k1)
+    proc = run("solve", "--model", "free-fermion", "--radius", "2", "--state", "1", "--json")
+    assert proc.returncode == 0, proc.stderr
+    rec = json.loads(proc.stdout)
+    assert rec["status"] == "converged" and rec["state"] == [1]
+    e_r = sum(k1(k * 2.0) / k for k in range(1, 200)) / math.pi
+    exact = e_r + math.cosh(math.asinh(math.pi))
+    assert abs(rec["energy"] - exact) <= rec["error"] <= 1e-12 * exact
+    assert rec["momentum"] == pytest.approx(math.pi, rel=1e-12)
+    assert rec["rapidities"] == pytest.approx([math.asinh(math.pi)], rel=1e-12)
+
+
+@pytest.mark.parametrize("args, name", [
+    (["--model", "free-fermion", "--radius", "1", "--state", "1/2"], "--state"),
+    (["--model", "lee-yang", "--radius", "1", "--state", "0"], "--state"),
+    (["--model", "free-fermion", "--radius", "1", "--state", "a,b"], "--state"),
+])
+def test_bad_state_one_line_exit_2(args, name, capsys):
+    assert main(["solve", *args]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and name in err[0], err
+
+
+def test_branch_point_json():
+    # free fermion at alpha = 0.2: R_c from the exact curve E_NS'(R~) = 1/alpha,
+    # R_c = R~ - alpha E_NS(R~) (PHYSICS.md section 4; Bessel series via scipy.special.k1)
+    proc = run("branch-point", "--model", "free-fermion", "--alpha", "0.2", "--json")
+    assert proc.returncode == 0, proc.stderr
+    rec = json.loads(proc.stdout)
+    assert rec["status"] == "found"
+    from scipy.optimize import brentq
+    from scipy.special import kvp
+
+    def dE(R):
+        return -sum((-1) ** (k + 1) * kvp(1, k * R) for k in range(1, int(60 / R) + 50)) / math.pi
+    Rt = brentq(lambda R: dE(R) - 5.0, 0.05, 5.0, xtol=1e-15)
+    R_c = Rt - 0.2 * free_fermion_exact(Rt)
+    assert rec["radius"] == pytest.approx(R_c, rel=1e-11)
+    assert rec["energy"] == pytest.approx(free_fermion_exact(Rt), rel=1e-11)
+    proc = run("branch-point", "--model", "free-fermion", "--alpha", "-0.2", "--json")
+    assert json.loads(proc.stdout)["status"] == "none"
+
+
+def test_flow_check_residuals_are_small(capsys):
+    # the Burgers equation d_alpha E = E d_R E holds for the ground state (PHYSICS.md section 4)
+    assert main(["flow-check", "--model", "lee-yang", "--radius", "1", "2", "--alpha", "-0.1",
+                 "0.2", "--json"]) == 0
+    recs = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert len(recs) == 4
+    for r in recs:
+        assert r["status"] == "converged"
+        assert abs(r["residual"]) <= 1e-10 * r["scale"]
