@@ -318,6 +318,18 @@ def cmd_demo(args, out):
     return 0
 
 
+def add_model_arguments(parser):
+    """--model and --coupling, shared by every command that solves one model."""
+    parser.add_argument("--model", required=True, metavar="{" + ",".join(MODELS) + "}",
+                        help="the S-matrix")
+    parser.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+
+
+def add_tol_argument(parser):
+    parser.add_argument("--tol", default="1e-12", metavar="T",
+                        help="relative accuracy asked of each energy (default 1e-12)")
+
+
 def build_parser():
     parser = _Parser(prog="tba", description="TBA ground-state energies of integrable S-matrices "
                      "with CDD (TTbar) deformations.", epilog=CONVENTIONS,
@@ -328,16 +340,13 @@ def build_parser():
                            description="Solve the ground-state TBA at the given radii (in order, "
                            "each warm-started from the previous one).", epilog=CONVENTIONS,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
-    solve.add_argument("--model", required=True, metavar="{" + ",".join(MODELS) + "}",
-                       help="the S-matrix")
-    solve.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+    add_model_arguments(solve)
     solve.add_argument("--radius", required=True, nargs="+", metavar="R",
                        help="radii: numbers and/or START:STOP:COUNT (both ends included)")
     solve.add_argument("--alpha", default="0", metavar="A", help="TTbar coupling (default 0)")
     solve.add_argument("--cdd", action="append", metavar="S:A",
                        help="extra CDD factor of odd spin S >= 3 with coupling A (repeatable)")
-    solve.add_argument("--tol", default="1e-12", metavar="T",
-                       help="relative accuracy asked of each energy (default 1e-12)")
+    add_tol_argument(solve)
     solve.add_argument("--state", metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "
                        "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0); "
@@ -392,7 +401,7 @@ def build_parser():
     demo.set_defaults(func=cmd_demo)
     from tba.cli_flow import add_flow_commands
 
-    add_flow_commands(sub, "{" + ",".join(MODELS) + "}", CONVENTIONS)
+    add_flow_commands(sub, CONVENTIONS)
     return parser
 
 

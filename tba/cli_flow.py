@@ -88,20 +88,21 @@ def cmd_flow_check(args, out):
     return 0
 
 
-def add_flow_commands(sub, model_help, conventions):
+def add_flow_commands(sub, conventions):
     """Register the subcommands on the ``tba`` subparsers object."""
+    from tba.cli import add_model_arguments, add_tol_argument
+
     fmt = argparse.RawDescriptionHelpFormatter
     bp = sub.add_parser("branch-point", help="the ground state's branch point R_c(alpha)",
                         description="Radius where the deformed ground state stops being real "
                         "(alpha > 0): E_0'(R~) = 1/alpha on the undeformed curve, or the fold "
                         "of the deformed equations by continuation.",
                         epilog=conventions, formatter_class=fmt)
-    bp.add_argument("--model", required=True, metavar=model_help, help="the S-matrix")
-    bp.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+    add_model_arguments(bp)
     bp.add_argument("--alpha", required=True, metavar="A", help="TTbar coupling")
     bp.add_argument("--method", choices=("curve", "continuation"), default="curve",
                     help="undeformed curve (default) or pseudo-arclength continuation")
-    bp.add_argument("--tol", default="1e-12", metavar="T", help="relative accuracy (default 1e-12)")
+    add_tol_argument(bp)
     bp.add_argument("--json", action="store_true", help="one JSON object")
     bp.set_defaults(func=cmd_branch_point)
 
@@ -110,11 +111,10 @@ def add_flow_commands(sub, model_help, conventions):
                         "dE/dalpha from the linearised TBA, and the flow residual "
                         "dE/dalpha - E dE/dR (P = 0) relative to |E dE/dR|.",
                         epilog=conventions, formatter_class=fmt)
-    fc.add_argument("--model", required=True, metavar=model_help, help="the S-matrix")
-    fc.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+    add_model_arguments(fc)
     fc.add_argument("--radius", required=True, nargs="+", metavar="R",
                     help="radii: numbers and/or START:STOP:COUNT")
     fc.add_argument("--alpha", required=True, nargs="+", metavar="A", help="TTbar couplings")
-    fc.add_argument("--tol", default="1e-12", metavar="T", help="relative accuracy (default 1e-12)")
+    add_tol_argument(fc)
     fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
     fc.set_defaults(func=cmd_flow_check)
