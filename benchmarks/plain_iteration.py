@@ -1,6 +1,6 @@
 """The plain TBA script people write today: the baseline of ``bench_scan.py``.
 
-Conventions (the project's, /work/shared/PHYSICS.md sections 1 and 4):
+Conventions (the project's, see README.md, Conventions):
 
     eps_a(t) = m_a R cosh t - sum_b (1/2pi) int phi_ab(t - t') L_b(t') dt',  L = log(1 + e^{-eps})
     phi_ab  -> phi_ab + alpha m_a m_b cosh(t - t')       (CDD factor S -> S exp(+i alpha m_a m_b sinh t))

@@ -37,7 +37,7 @@ def free_fermion_ns_energy(radius, mass=1.0):
 
         E_NS(R) = -(m/pi) sum_{k>=1} (-1)^(k+1) K_1(k m R) / k
 
-    Source: /work/shared/PHYSICS.md section 2 ("checked there to 1e-14"); textbook, e.g.
+    Source: textbook, e.g.
     G. Mussardo, Statistical Field Theory (Oxford 2010), from memory. It is the expansion
     of log(1 + e^{-mR cosh t}) in powers of e^{-mR cosh t} integrated term by term with
     int cosh t e^{-x cosh t} dt = 2 K_1(x). K_1 is ``scipy.special.k1``; the terms are
