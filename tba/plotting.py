@@ -4,8 +4,10 @@ global backend state).
 One column per model, three rows sharing the radius axis:
 
 1. E(R, alpha) per alpha (lines with dots), the flow prediction E_0(R + alpha E, 0)
-   overlaid (black crosses), and the last real point of each alpha > 0 curve whose next
-   smaller radius has no real solution (open star: the branch point lies just below);
+   overlaid (black crosses), and the stored branch point of each alpha > 0 curve (open
+   diamond at (R_c, E(R_c)) on a vertical dotted line at R_c, in the curve's colour); where
+   no branch point is stored, the last real point of a curve whose next smaller radius has
+   no real solution (open star: the branch point lies just below);
 2. the flow residual |E - E_0(R + alpha E, 0)| per alpha on a log scale (solid; residuals
    that are exactly zero cannot be shown there), with the sum of the two error estimates
    (dotted);
@@ -19,6 +21,7 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter
 
 from tba.report import CONVERGED, last_real_points
+from tba.storage import BP_FOUND
 
 LABELS = {
     "energy": r"ground-state energy $E(R,\alpha)$",
@@ -27,6 +30,7 @@ LABELS = {
     "radius": r"radius $R$",
     "prediction": r"flow prediction $E_0(R+\alpha E, 0)$",
     "last_real": "last real point (branch point below)",
+    "branch_point": r"branch point $(R_c, E(R_c))$",
     "estimate": "error estimates (sum)",
 }
 FORMATS = ("png", "pdf", "svg")
@@ -46,6 +50,8 @@ def plot_store(data, state="ground"):
     R = np.asarray(data.radius, dtype=float)
     log_r = R.size > 1 and R.max() / R.min() >= 5
     last = [p for p in last_real_points(data) if p.state == s and p.bracketed]
+    found = (data.branch["status"] == BP_FOUND) if state == "ground" else \
+        np.zeros((len(data.model), len(data.alpha)), dtype=bool)
     for m, label in enumerate(data.model):
         ax_e, ax_r, ax_c = axes[:, m]
         ax_e.set_title(label)
@@ -69,11 +75,20 @@ def plot_store(data, state="ground"):
                 ax_r.plot(R, est, ":", lw=1.0, color=color, label="_nolegend_")
         marked = False
         for p in last:
-            if p.model != m:
+            if p.model != m or found[m, p.alpha]:
                 continue
             ax_e.plot([p.radius], [p.energy], ls="none", marker="*", ms=13, mfc="none",
                       mew=1.3, color=f"C{p.alpha % 10}",
                       label=LABELS["last_real"] if not marked else "_nolegend_")
+            marked = True
+        marked = False
+        for a in np.flatnonzero(found[m]):
+            color = f"C{a % 10}"
+            Rc, Ec = float(data.branch["branch_radius"][m, a]), float(data.branch["energy"][m, a])
+            ax_e.axvline(Rc, ls=":", lw=1.0, color=color, label="_nolegend_")
+            # a one-point line with the dotted style: the legend shows marker and dotted line
+            ax_e.plot([Rc], [Ec], ls=":", lw=1.0, marker="D", ms=6, mfc="none", mew=1.3,
+                      color=color, label=LABELS["branch_point"] if not marked else "_nolegend_")
             marked = True
         ax_e.set_ylabel(LABELS["energy"])
         handles, labels = ax_e.get_legend_handles_labels()

@@ -1,5 +1,8 @@
 """Text report of a scan store (``tba report``): progress, statuses, error estimates, flow
-residuals and, on the alpha > 0 side, the last radius with a real solution."""
+residuals and, on the alpha > 0 side, the ground state's branch points R_c (with E(R_c) and
+the Hagedorn temperature 1/R_c) checked against the scan: the last radius with a real
+solution must lie at or above R_c, and the next radius down, when it has no real solution,
+below."""
 
 import math
 from dataclasses import dataclass
@@ -7,7 +10,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from tba.result import STATUS_CODES, Status
-from tba.storage import FLOW_MEANINGS, STATUS_MEANINGS
+from tba.storage import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS,
+                         NOT_COMPUTED, STATUS_MEANINGS)
 
 CONVERGED = STATUS_CODES[Status.CONVERGED]
 NO_REAL = STATUS_CODES[Status.NO_REAL_SOLUTION]
@@ -48,6 +52,94 @@ def last_real_points(data):
                 out.append(LastRealPoint(m, a, s, i, float(data.radius[i]),
                                          float(data["energy"][m, a, i, s]), bool(bracketed),
                                          float(data.radius[i - 1]) if bracketed else math.nan))
+    return out
+
+
+@dataclass
+class BranchCheck:
+    """The stored branch point of one (model, alpha > 0) curve of the ground state, and
+    whether the scan agrees with it.
+
+    ``consistent`` is True when every check that applies holds (the last real radius is
+    >= R_c; the next radius down, if computed and without a real solution, is < R_c; both
+    within ``radius_error``), False when one fails, None when nothing could be checked;
+    ``why`` says what was (not) checked."""
+
+    model: int
+    alpha: int
+    status: str
+    radius: float = math.nan
+    radius_error: float = math.nan
+    energy: float = math.nan
+    message: str = ""
+    last_real: float = math.nan
+    below: float = math.nan
+    below_status: str = ""
+    consistent: bool | None = None
+    why: str = ""
+
+    @property
+    def hagedorn_temperature(self):
+        return 1.0 / self.radius if self.radius > 0 else math.nan
+
+
+def branch_checks(data, state="ground"):
+    """One `BranchCheck` per (model, alpha > 0), for ``state`` (the branch points are those
+    of the ground state). The last real radius and the one below it are filled in whether
+    or not a branch point is stored."""
+    names = {code: name for code, (name, _) in BRANCH_MEANINGS.items()}
+    point_names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
+    s = data.state.index(state) if state in data.state else None
+    out = []
+    for m in range(len(data.model)):
+        for a, alpha in enumerate(data.alpha):
+            if alpha <= 0:
+                continue
+            code = int(data.branch["status"][m, a])
+            c = BranchCheck(m, a, names.get(code, str(code)), message=str(data.branch["message"][m, a]))
+            out.append(c)
+            if code == BP_FOUND:
+                c.radius = float(data.branch["branch_radius"][m, a])
+                c.radius_error = float(data.branch["branch_radius_error"][m, a])
+                c.energy = float(data.branch["energy"][m, a])
+            if s is None:
+                c.why = f"no {state} state in the scan"
+                continue
+            st = data["status"][m, a, :, s]
+            ok = np.flatnonzero(st == CONVERGED)
+            computed = np.flatnonzero(st != NOT_COMPUTED)
+            # the radius just below the smallest real one (the largest radius if none is real)
+            if ok.size:
+                c.last_real = float(data.radius[ok[0]])
+                j = int(ok[0]) - 1
+            else:
+                j = len(data.radius) - 1 if computed.size else -1
+            if j >= 0:
+                c.below = float(data.radius[j])
+                c.below_status = point_names.get(int(st[j]), str(int(st[j])))
+            if code != BP_FOUND:
+                c.why = "no branch point stored"
+                continue
+            tol = c.radius_error if math.isfinite(c.radius_error) else 0.0
+            checks, failures = [], []
+            if ok.size:
+                checks.append("last real R >= R_c")
+                if c.last_real < c.radius - tol:
+                    failures.append(f"last real R = {c.last_real:.6g} < R_c")
+            if j >= 0 and st[j] == NO_REAL:
+                checks.append("next R down < R_c")
+                if c.below >= c.radius + tol:
+                    failures.append(f"R = {c.below:.6g} has no real solution but is >= R_c")
+            if failures:
+                c.consistent, c.why = False, "; ".join(failures)
+            elif checks:
+                c.consistent, c.why = True, " and ".join(checks)
+                if j < 0:
+                    c.why += " (real down to the smallest radius)"
+            elif not computed.size:
+                c.why = "no point of the curve computed yet"
+            else:
+                c.why = f"next R down is {c.below_status}"
     return out
 
 
@@ -153,18 +245,59 @@ def _format_report(data):
                  "residual is largest, or why nothing was checked)")
     lines.append("")
 
-    lines.append("branch points (alpha > 0): not computed by this schema; last real point per curve:")
-    rows = []
-    for p in last_real_points(data):
-        where = (f"between {p.below:.4g} and {p.radius:.4g}" if p.bracketed
-                 else "not bracketed: real down to the smallest radius")
-        rows.append([data.model[p.model], f"{data.alpha[p.alpha]:g}", f"{p.radius:.6g}",
-                     f"{p.energy:.12g}", where])
-    if rows:
-        lines.append(_table(["model", "alpha", "last real R", "E there", "branch point"], rows))
-    else:
-        lines.append("  (no alpha > 0 curve with a converged point)")
+    lines.extend(_branch_section(data))
     return "\n".join(lines)
+
+
+def _branch_section(data):
+    lines = ["branch points of the ground state (alpha > 0): R_c from E_0'(R~) = 1/alpha, "
+             "E(R_c) = E_0(R~), Hagedorn temperature T_H = 1/R_c; last real point per curve:"]
+    checks = branch_checks(data)
+    if not checks:
+        lines.append("  (no alpha > 0 in the run)")
+    else:
+        rows = []
+        for c in checks:
+            found = c.status == "found"
+            mark = {True: "yes", False: "NO", None: "-"}[c.consistent]
+            below = "-" if math.isnan(c.below) else f"{c.below:.6g} ({c.below_status})"
+            rows.append([data.model[c.model], f"{data.alpha[c.alpha]:g}", c.status,
+                         f"{c.radius:.12g}" if found else "-",
+                         f"{c.radius_error:.2g}" if found else "-",
+                         f"{c.energy:.12g}" if found else "-",
+                         f"{c.hagedorn_temperature:.6g}" if found else "-",
+                         _g(c.last_real, ".6g"), below, mark])
+        lines.append(_table(["model", "alpha", "status", "R_c", "+- error", "E(R_c)", "T_H",
+                             "last real R", "next R down", "consistent"], rows))
+        for c in checks:
+            if c.status not in ("found", "not-computed"):
+                lines.append(f"  {data.model[c.model]}, alpha = {data.alpha[c.alpha]:g}: "
+                             f"{c.status}: {c.message}")
+        none = int(np.count_nonzero(data.branch["status"] == BP_NONE))
+        if none:
+            lines.append(f"  (alpha <= 0: no branch point on this side; status none for {none} "
+                         f"(model, alpha) pair(s))")
+        missing = sum(c.status == "not-computed" for c in checks)
+        if missing:
+            why = ("this file has schema version 1, which stored no branch points"
+                   if data.schema_version < 2 else
+                   "scan.branch_points = false, or tba run has not finished: run it again "
+                   "with branch_points = true to add them")
+            lines.append(f"  {missing} branch point(s) not computed ({why})")
+        checked = [c for c in checks if c.consistent is not None]
+        failed = [c for c in checked if not c.consistent]
+        rule = "last real R >= R_c, and the next R down < R_c where it has no real solution"
+        if not checked:
+            lines.append(f"consistency with the scan ({rule}): nothing to check")
+        elif not failed:
+            lines.append(f"consistency with the scan ({rule}): holds for all {len(checked)} "
+                         f"checked curve(s)")
+        else:
+            lines.append(f"consistency with the scan ({rule}): FAILS for {len(failed)} of "
+                         f"{len(checked)} checked curve(s)")
+            for c in failed:
+                lines.append(f"  {data.model[c.model]}, alpha = {data.alpha[c.alpha]:g}: {c.why}")
+    return lines
 
 
 def _where(data, index):
@@ -173,4 +306,5 @@ def _where(data, index):
     return f"{data.model[m]}, alpha = {data.alpha[a]:g}, R = {data.radius[r]:.6g}{state}"
 
 
-__all__ = ["format_report", "last_real_points", "LastRealPoint", "status_counts"]
+__all__ = ["format_report", "last_real_points", "LastRealPoint", "branch_checks", "BranchCheck",
+           "status_counts"]

@@ -28,6 +28,7 @@ solver tolerance, the output file and how the scan is cut into chunks::
     chunk_size = 8                      # consecutive radii solved as one warm-started chain
     flow_check = true                   # undeformed solve at R + alpha E for every point
     sweep = "descending"                # order of the radii inside a chunk
+    branch_points = true                # R_c(alpha) of the ground state, once per model and alpha
 
 Strict: an unknown key, a missing key, a value of the wrong type or out of range raises
 `RunFileError` (a ValueError) whose message starts with the dotted key, for example
@@ -38,6 +39,9 @@ and without duplicates (alphas likewise); models keep their order. ``RunSpec.to_
 is itself a valid run description, so ``resolve_run(spec.to_dict())`` gives ``spec`` back.
 Its `identity` (everything that changes the numbers: models, deformation, radii, states,
 solver, scan) decides whether an existing output file belongs to the same run.
+``scan.branch_points`` is not part of it: it says whether the branch points are computed,
+not what they are (they depend on the models, alphas, higher-spin terms and tol only), so a
+run resumed with ``branch_points = true`` adds them to a file begun without them.
 """
 
 import hashlib
@@ -62,10 +66,12 @@ DEFAULTS = {
     "description": "",
     "states": ["ground"],
     "solver": {"tol": 1e-12},
-    "scan": {"chunk_size": 8, "flow_check": True, "sweep": "descending"},
+    "scan": {"chunk_size": 8, "flow_check": True, "sweep": "descending", "branch_points": True},
 }
 #: top-level keys of the resolved run that change the numbers (the run's identity)
 IDENTITY_KEYS = ("models", "deformation", "radii", "states", "solver", "scan")
+#: keys of [scan] that say what is computed, not what the numbers are: not in the identity
+NOT_IDENTITY_SCAN_KEYS = ("branch_points",)
 
 
 class RunFileError(ValueError):
@@ -209,6 +215,7 @@ class RunSpec:
     chunk_size: int = 8
     flow_check: bool = True
     sweep: str = "descending"
+    branch_points: bool = True
     name: str = "run"
     description: str = ""
     output: str | None = None
@@ -246,16 +253,16 @@ class RunSpec:
             "states": list(self.states),
             "solver": {"tol": self.tol},
             "scan": {"chunk_size": self.chunk_size, "flow_check": self.flow_check,
-                     "sweep": self.sweep},
+                     "sweep": self.sweep, "branch_points": self.branch_points},
         }
 
     def to_json(self):
         return json.dumps(self.to_dict(), indent=1)
 
     def identity(self):
-        """The part of the resolved run that determines the numbers."""
-        d = self.to_dict()
-        return {k: d[k] for k in IDENTITY_KEYS}
+        """The part of the resolved run that determines the numbers (``scan.branch_points``
+        excluded: it decides whether branch points are computed, not their values)."""
+        return identity_of(self.to_dict())
 
     @property
     def run_id(self):
@@ -280,8 +287,17 @@ class RunSpec:
         return RunSpec(**{**self.__dict__, "output": None if output is None else str(output)})
 
 
+def identity_of(d):
+    """The identity part of a resolved-run dict (`RunSpec.identity`)."""
+    out = {k: d.get(k) for k in IDENTITY_KEYS}
+    if isinstance(out.get("scan"), dict):
+        out["scan"] = {k: v for k, v in out["scan"].items() if k not in NOT_IDENTITY_SCAN_KEYS}
+    return out
+
+
 def differing_keys(a, b):
     """Top-level identity keys in which two resolved-run dicts differ."""
+    a, b = identity_of(a), identity_of(b)
     return [k for k in IDENTITY_KEYS if a.get(k) != b.get(k)]
 
 
@@ -340,11 +356,13 @@ def resolve_run(data, base_dir=None, name="run"):
     sweep = _string("scan.sweep", scan.get("sweep", d["sweep"]))
     if sweep not in SWEEPS:
         raise RunFileError("scan.sweep", f"must be one of {', '.join(SWEEPS)}, got {sweep!r}")
+    branch_points = _boolean("scan.branch_points", scan.get("branch_points", d["branch_points"]))
     scan.finish()
     top.finish()
     return RunSpec(models=models, alphas=alphas, radii=radii, higher_spin=higher_spin,
                    states=states, tol=tol, chunk_size=chunk_size, flow_check=flow_check,
-                   sweep=sweep, name=name, description=description, output=output)
+                   sweep=sweep, branch_points=branch_points, name=name, description=description,
+                   output=output)
 
 
 def _models(value):

@@ -12,6 +12,14 @@ and no higher-spin factor, the undeformed ground state is solved at R' = R + alp
 prediction E_0(R', 0) and the flow residual |E(R, alpha) - E_0(R', 0)| are stored (the
 relation E(R, alpha) = E_0(R + alpha E, 0) is exact for the TTbar-deformed ground state).
 
+Branch points (``branch_points = true``, the default): after the chunks, the driver computes
+the ground state's branch point R_c(alpha) once per model and alpha (`solve_branch_point`:
+`tba.flow.branch_point` at the run's tol, a few undeformed solves, 0.01-1 s each) and
+writes each as it is found. alpha <= 0 has none; with higher-spin factors they are not
+applicable; an exception is stored as "failed" with its message and never loses the scan.
+Each is a function of (model, alpha, tol) alone, computed from scratch, so resumed runs
+agree bit for bit; stored ones are never computed again.
+
 `run_scan` is the driver: the only writer of the store. Chunks go to a
 ``ProcessPoolExecutor`` (one task per chunk; in-process when one worker suffices); each
 finished chunk is written and flushed as it arrives.
@@ -31,9 +39,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from tba.deformation import NO_DEFORMATION
+from tba.flow import branch_point
 from tba.result import STATUS_CODES
 from tba.solver import solve_ground_state
-from tba.storage import (FLOW_NO_ENERGY, FLOW_NOT_APPLICABLE, FLOW_OFF, POINT_VARIABLES,
+from tba.storage import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
+                         FLOW_NOT_APPLICABLE, FLOW_OFF, NOT_COMPUTED, POINT_VARIABLES,
                          open_store, prepare_store)
 
 _MODEL_CACHE = {}
@@ -98,6 +108,31 @@ def solve_chunk(run, chunk):
                 values["flow_error"][i] = res0.error
                 values["flow_residual"][i] = abs(res.energy - res0.energy)
     return chunk, values, time.perf_counter() - t0
+
+
+def solve_branch_point(run, model_index, alpha_index):
+    """The ground state's branch point of one (model, alpha) of the run, as the values of
+    `tba.storage.BRANCH_VARIABLES` (scalars; the missing ones are left out). Never raises
+    an Exception: a failure comes back with status "failed" and the error as message."""
+    alpha = run.alphas[alpha_index]
+    if not run.ttbar_only:
+        spins = ", ".join(f"{s}" for s, _ in run.higher_spin)
+        return {"status": BP_NOT_APPLICABLE,
+                "message": f"higher-spin CDD factors (spin {spins}): R_c from E_0'(R~) = 1/alpha "
+                           f"holds for TTbar alone"}
+    try:
+        bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
+    except Exception as exc:  # noqa: BLE001 (stored, never lost: the scan's points are kept)
+        text = str(exc).splitlines()[0] if str(exc) else ""
+        return {"status": BP_FAILED, "message": f"{type(exc).__name__}: {text}".rstrip(": ")}
+    code = BP_CODES.get(bp.status)
+    if code is None:
+        return {"status": BP_FAILED, "message": f"unexpected status {bp.status!r}: {bp.message}"}
+    values = {"status": code, "message": bp.message}
+    if code == BP_FOUND:
+        values.update(branch_radius=bp.radius, branch_radius_error=bp.radius_error, energy=bp.energy,
+                      energy_error=bp.energy_error, effective_radius=bp.effective_radius)
+    return values
 
 
 # -- worker processes ---------------------------------------------------------------------------
@@ -182,10 +217,16 @@ class ScanSummary:
     points_total: int
     seconds: float
     workers: int
+    branch_points_pending: int = 0  # to compute in this invocation (0 with branch_points = false)
+    branch_points_computed: int = 0
+
+    @property
+    def chunks_complete(self):
+        return self.chunks_before + self.chunks_computed == self.chunks_total
 
     @property
     def complete(self):
-        return self.chunks_before + self.chunks_computed == self.chunks_total
+        return self.chunks_complete and self.branch_points_computed >= self.branch_points_pending
 
 
 class ScanInterrupted(Exception):
@@ -194,8 +235,12 @@ class ScanInterrupted(Exception):
     def __init__(self, summary):
         self.summary = summary
         s = summary
-        super().__init__(f"interrupted; {s.chunks_before + s.chunks_computed} of {s.chunks_total} "
-                         f"chunks are saved in {s.path}; run the same command again to resume")
+        saved = f"{s.chunks_before + s.chunks_computed} of {s.chunks_total} chunks"
+        if s.chunks_complete and s.branch_points_pending:
+            saved = (f"all {s.chunks_total} chunks and {s.branch_points_computed} of "
+                     f"{s.branch_points_pending} pending branch points")
+        super().__init__(f"interrupted; {saved} are saved in {s.path}; run the same command "
+                         f"again to resume")
 
 
 def _progress_bar(total, desc, enabled):
@@ -209,7 +254,8 @@ def _progress_bar(total, desc, enabled):
 
 def run_scan(run, path=None, *, workers=None, force=False, progress=None, log=None,
              run_file=None):
-    """Compute every chunk of ``run`` not yet in the store at ``path`` (default ``run.output``).
+    """Compute every chunk of ``run`` not yet in the store at ``path`` (default ``run.output``),
+    then the branch points not yet stored (``run.branch_points``).
 
     Resumes an existing store of the same run; never overwrites the file of another run
     unless ``force`` (`tba.storage.StoreError`). ``workers`` defaults to the usable cores;
@@ -224,49 +270,78 @@ def run_scan(run, path=None, *, workers=None, force=False, progress=None, log=No
     if path is None:
         raise ValueError("no output path: give one in the run file or as an argument")
     t0 = time.perf_counter()
-    done, created, note = prepare_store(path, run, force=force, run_file=run_file)
+    done, created, note, branch_status = prepare_store(path, run, force=force, run_file=run_file)
     if note:
         print(f"tba run: note: {note}", file=log)
     chunks = run.chunks()
     pending = [c for c in chunks if not done[c.index]]
+    branch_pending = []
+    if run.branch_points:
+        branch_pending = [(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))
+                          if branch_status[m, a] == NOT_COMPUTED]
     workers = default_workers() if workers is None else int(workers)
     workers = max(1, min(workers, len(pending)))
     summary = ScanSummary(str(path), len(chunks), len(chunks) - len(pending), 0, run.n_points,
-                          0.0, workers)
-    if not pending:
+                          0.0, workers, len(branch_pending))
+    if not pending and not branch_pending:
         print(f"tba run: {path} is complete ({len(chunks)} chunks); nothing to compute", file=log)
         return summary
     verb = "writing" if created else "resuming"
-    print(f"tba run: {verb} {path}: {len(pending)} of {len(chunks)} chunks to compute, "
-          f"{workers} worker{'s' if workers > 1 else ''}", file=log, flush=True)
+    if pending:
+        print(f"tba run: {verb} {path}: {len(pending)} of {len(chunks)} chunks to compute, "
+              f"{workers} worker{'s' if workers > 1 else ''}", file=log, flush=True)
+    else:
+        print(f"tba run: {verb} {path}: all {len(chunks)} chunks are done; "
+              f"{_count(len(branch_pending), 'branch point')} to compute", file=log, flush=True)
     store = open_store(path, run)
     bar = None
     try:
-        store.begin_invocation(workers, len(pending))
-        bar = _progress_bar(sum(c.size for c in pending), run.name, progress)
-        results = _results(run, pending, workers)
+        store.begin_invocation(workers, len(pending), len(branch_pending))
         try:
-            for chunk, values, seconds in results:
-                store.write_chunk(chunk, values, seconds)
-                summary.chunks_computed += 1
+            if pending:
+                bar = _progress_bar(sum(c.size for c in pending), run.name, progress)
+                results = _results(run, pending, workers)
+                try:
+                    for chunk, values, seconds in results:
+                        store.write_chunk(chunk, values, seconds)
+                        summary.chunks_computed += 1
+                        if bar is not None:
+                            bar.update(chunk.size)
+                finally:
+                    results.close()  # stops the worker pool if we leave early
                 if bar is not None:
-                    bar.update(chunk.size)
+                    bar.close()
+                    bar = None
+            for m, a in branch_pending:
+                values = solve_branch_point(run, m, a)
+                store.write_branch_point(m, a, values)
+                summary.branch_points_computed += 1
+                if values["status"] == BP_FAILED:
+                    print(f"tba run: branch point of {run.models[m].label} at alpha = "
+                          f"{run.alphas[a]:g} failed (stored as failed): {values['message']}",
+                          file=log, flush=True)
         except KeyboardInterrupt:
-            results.close()  # stops the worker pool
             store.end_invocation(interrupted=True)
             summary.seconds = time.perf_counter() - t0
             raise ScanInterrupted(summary) from None
-        finally:
-            results.close()  # stops the worker pool if we leave early
         store.end_invocation()
     finally:
         if bar is not None:
             bar.close()
         store.close()
     summary.seconds = time.perf_counter() - t0
+    extra = ""
+    if summary.branch_points_computed:
+        extra = f" and {_count(summary.branch_points_computed, 'branch point')}"
+    off = "" if run.branch_points else " (branch points off: scan.branch_points = false)"
     print(f"tba run: computed {summary.chunks_computed} chunks ({summary.chunks_before} were "
-          f"already done) in {summary.seconds:.1f} s; {path} is complete", file=log, flush=True)
+          f"already done){extra} in {summary.seconds:.1f} s; {path} is complete{off}",
+          file=log, flush=True)
     return summary
+
+
+def _count(n, word):
+    return f"{n} {word}{'' if n == 1 else 's'}"
 
 
 def _results(run, pending, workers):

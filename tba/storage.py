@@ -1,12 +1,13 @@
 """The HDF5 store of a scan: layout, creation, resumable chunk writes, reading back.
 
-Layout (schema version 1; readable with plain h5py, and with xarray through
+Layout (schema version 2; readable with plain h5py, and with xarray through
 ``xarray.open_dataset(path, engine="h5netcdf")`` or ``engine="netcdf4"``)::
 
     /                          root attributes: schema, schema_version, package,
                                package_version, git_commit, created, title, run (the
                                resolved run as JSON), run_id, run_file, models (JSON),
-                               conventions, units, status_legend, flow_status_legend, layout
+                               conventions, units, status_legend, flow_status_legend,
+                               branch_point_status_legend, layout
     /model   (model)           dimension scale: label "name" or "name B=coupling"
     /alpha   (alpha)           dimension scale: TTbar coupling (sorted)
     /radius  (radius)          dimension scale: circumference R (sorted)
@@ -23,19 +24,37 @@ Layout (schema version 1; readable with plain h5py, and with xarray through
     /progress/seconds (chunk)  wall time of the chunk in its worker
     /progress attrs            history (JSON list, one entry per invocation of tba run,
                                written when it starts and when it ends)
+    /branch_points/{branch_radius, branch_radius_error, energy, energy_error,
+                    effective_radius, status, message}
+                               (model, alpha), attached to the /model and /alpha scales: the
+                               ground state's branch point R_c(alpha), E(R_c), R~_* and their
+                               errors (`tba.flow.branch_point` at the run's tol); status 0
+                               found, 1 none (alpha <= 0), 2 not-applicable (higher-spin
+                               factors in the run), 3 failed (message: the exception),
+                               -1 not computed
 
 ``message`` is a fixed-length UTF-8 string (256 bytes): h5py's ``.asstr()`` and xarray's
 netcdf4 engine give str, the h5netcdf engine gives bytes (``.astype(str)``).
 
+The branch points with xarray: ``xarray.open_datatree(path, engine="h5netcdf")
+["branch_points"]`` (the group inherits the model and alpha coordinates of the root), or
+``xarray.open_dataset(path, engine="h5netcdf", group="branch_points")`` (dims model and
+alpha, without their coordinate values).
+
 A missing value is NaN (or "" / 0) together with a status code that says why
 (``status_legend``, ``flow_status_legend`` and the CF ``flag_values``/``flag_meanings``
-of the status variables). The group ``/branch_points`` is reserved for the branch-point
-data of a later schema version.
+of the status variables).
+
+Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it. Files of schema 1 are
+still read (their branch points count as not computed) but never resumed.
 
 Only the scan driver writes: it creates the file complete with every point "not
 computed" (under a temporary name, then renamed), and writes each finished chunk's
-values, flushes, sets its ``done`` flag and flushes again. Chunk writes overwrite bytes in
-place and never change the file's metadata, so a kill loses at most the chunks in flight.
+values, flushes, sets its ``done`` flag and flushes again. After the last chunk it computes
+the branch points (``scan.branch_points``), each written the same way: values, flush,
+status, flush; a status other than -1 means stored, and is never computed again. Chunk and
+branch-point writes overwrite bytes in place and never change the file's metadata, so a kill
+loses at most the chunks (or the branch point) in flight.
 """
 
 import datetime
@@ -54,13 +73,21 @@ from tba.result import STATUS_CODES
 from tba.runfile import RunSpec, differing_keys, resolve_run
 
 SCHEMA = "tba-flow scan"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+#: schema versions `read_store` understands (only SCHEMA_VERSION is ever resumed)
+READABLE_VERSIONS = (1, 2)
 #: status code of a point that has not been computed yet
 NOT_COMPUTED = -1
 #: extra codes of flow_status (fixed numbers, apart from the solver's STATUS_CODES)
 FLOW_OFF = 10
 FLOW_NOT_APPLICABLE = 11
 FLOW_NO_ENERGY = 12
+#: codes of /branch_points/status
+BP_FOUND = 0
+BP_NONE = 1
+BP_NOT_APPLICABLE = 2
+BP_FAILED = 3
+BP_CODES = {"found": BP_FOUND, "none": BP_NONE}  # tba.flow.BranchPoint.status -> code
 
 STATUS_MEANINGS = {NOT_COMPUTED: ("not-computed", "the point has not been computed yet"),
                    **{code: (s.value, {"converged": "energy and error estimate are valid",
@@ -80,6 +107,14 @@ FLOW_MEANINGS = {
                                             "(the relation is exact for TTbar alone)"),
     FLOW_NO_ENERGY: ("no-energy", "the deformed point has no energy to check"),
 }
+BRANCH_MEANINGS = {
+    NOT_COMPUTED: ("not-computed", "not computed yet (or scan.branch_points = false)"),
+    BP_FOUND: ("found", "R_c from E_0'(R~) = 1/alpha; branch_radius, energy, errors valid"),
+    BP_NONE: ("none", "alpha <= 0: no branch point on this side"),
+    BP_NOT_APPLICABLE: ("not-applicable", "higher-spin CDD factors in the run (R_c from the "
+                                          "undeformed curve holds for TTbar alone)"),
+    BP_FAILED: ("failed", "the computation raised an error (see message)"),
+}
 
 CONVENTIONS = """\
 Units: the lightest mass m_1 = 1; R is the circumference of the space circle; hbar = c = 1.
@@ -90,14 +125,19 @@ Then d/dalpha E = E dE/dR + P^2/R, and for the ground state (P = 0, TTbar only)
 E(R, alpha) = E_0(R + alpha E, 0): flow_prediction is E_0 solved at flow_radius = R + alpha E,
 flow_residual = |energy - flow_prediction|, flow_error the undeformed solve's error estimate.
 alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
+/branch_points: R_c(alpha) = R~ - alpha E_0(R~) where E_0'(R~) = 1/alpha (TTbar only);
+energy there E(R_c, alpha) = E_0(R~); Hagedorn temperature T_H = 1/R_c.
 error estimates |energy - exact| and is meant to bound it; tol is relative."""
 
-UNITS = ("radius, flow_radius: 1/m_1; energy, error, flow_prediction, flow_error, "
-         "flow_residual: m_1; alpha: 1/m_1^2; m_1 = lightest mass = 1")
+UNITS = ("radius, flow_radius, branch_points/{branch_radius, branch_radius_error, "
+         "effective_radius}: 1/m_1; "
+         "energy, error, flow_prediction, flow_error, flow_residual, "
+         "branch_points/{energy, energy_error}: m_1; alpha: 1/m_1^2; m_1 = lightest mass = 1")
 
 LAYOUT = ("data sets (model, alpha, radius, state): energy error status iterations message "
           "flow_radius flow_prediction flow_error flow_residual flow_status; /progress: chunk "
-          "table and done mask; /branch_points: reserved for a later schema")
+          "table and done mask; /branch_points (model, alpha): branch_radius "
+          "branch_radius_error energy energy_error effective_radius status message")
 
 #: messages are stored as fixed-length UTF-8 strings, so that writing a chunk only overwrites
 #: bytes at fixed places in the file and never changes its metadata (see `Store.write_chunk`)
@@ -125,6 +165,26 @@ POINT_VARIABLES = {
                                                       "(see flag_meanings)"}),
 }
 DIMS = ("model", "alpha", "radius", "state")
+#: name -> (dtype, fill value, attributes) of the data sets in /branch_points (model, alpha).
+#: R_c is "branch_radius", not "radius": xarray's DataTree gives a group the coordinates of
+#: its parents, and the root coordinate "radius" would hide a variable of that name.
+BRANCH_VARIABLES = {
+    "branch_radius": ("f8", np.nan, {"long_name": "branch radius R_c of the ground state "
+                                                  "(alpha > 0)", "units": "1/m_1"}),
+    "branch_radius_error": ("f8", np.nan, {"long_name": "error estimate of R_c",
+                                           "units": "1/m_1"}),
+    "energy": ("f8", np.nan, {"long_name": "ground-state energy at the branch point, "
+                                           "E(R_c, alpha) = E_0(R~, 0), bulk term excluded",
+                              "units": "m_1"}),
+    "energy_error": ("f8", np.nan, {"long_name": "error estimate of energy", "units": "m_1"}),
+    "effective_radius": ("f8", np.nan, {"long_name": "R~ with E_0'(R~) = 1/alpha (undeformed "
+                                                     "radius of the branch point)",
+                                        "units": "1/m_1"}),
+    "status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the branch-point computation "
+                                                 "(see flag_meanings)"}),
+    "message": ("str", "", {"long_name": f"message (UTF-8, at most {MESSAGE_BYTES} bytes)"}),
+}
+BRANCH_DIMS = ("model", "alpha")
 PROGRESS_FIELDS = ("model_index", "alpha_index", "state_index", "radius_start", "radius_stop")
 
 
@@ -206,7 +266,7 @@ def _write_layout(f, run, run_file, models_info):
         "run": run.to_json(), "run_id": run.run_id, "run_file": str(run_file or ""),
         "models": json.dumps(models_info), "conventions": CONVENTIONS, "units": UNITS,
         "status_legend": _legend(STATUS_MEANINGS), "flow_status_legend": _legend(FLOW_MEANINGS),
-        "layout": LAYOUT,
+        "branch_point_status_legend": _legend(BRANCH_MEANINGS), "layout": LAYOUT,
     })
     scales = {
         "model": f.create_dataset("model", data=np.array([m.label for m in run.models], dtype=object),
@@ -220,7 +280,7 @@ def _write_layout(f, run, run_file, models_info):
                                   "units": "1/m_1^2"})
     scales["radius"].attrs.update({"long_name": "circumference R of the space circle",
                                    "units": "1/m_1"})
-    scales["state"].attrs["long_name"] = "state (ground only in schema 1)"
+    scales["state"].attrs["long_name"] = "state (ground only so far)"
     for name, ds in scales.items():
         ds.make_scale(name)
     names = f.create_dataset("model_name", data=np.array([m.name for m in run.models], dtype=object),
@@ -239,6 +299,21 @@ def _write_layout(f, run, run_file, models_info):
         elif name == "flow_status":
             ds.attrs.update(_flags(FLOW_MEANINGS))
         for i, dim in enumerate(DIMS):
+            ds.dims[i].attach_scale(scales[dim])
+    bp = f.create_group("branch_points")
+    bp.attrs.update({
+        "long_name": "branch point R_c(alpha) of the ground state (tba.flow.branch_point)",
+        "method": "E_0'(R~) = 1/alpha on the undeformed TBA curve (Brent's method on the exact "
+                  "derivative); R_c = R~ - alpha E_0(R~); at the run's tol",
+        "legend": _legend(BRANCH_MEANINGS),
+    })
+    shape = (len(run.models), len(run.alphas))
+    for name, (kind, fill, attrs) in BRANCH_VARIABLES.items():
+        ds = bp.create_dataset(name, data=_full(shape, kind, fill))
+        ds.attrs.update(attrs)
+        if name == "status":
+            ds.attrs.update(_flags(BRANCH_MEANINGS))
+        for i, dim in enumerate(BRANCH_DIMS):
             ds.dims[i].attach_scale(scales[dim])
     chunks = run.chunks()
     g = f.create_group("progress")
@@ -278,14 +353,20 @@ class Store:
         return self.f["progress/done"][...].astype(bool)
 
     @property
+    def branch_status(self):
+        """/branch_points/status (model, alpha); -1 where not computed yet."""
+        return self.f["branch_points/status"][...]
+
+    @property
     def history(self):
         return list(self._history)
 
-    def begin_invocation(self, workers, pending):
+    def begin_invocation(self, workers, pending, branch_points_pending=0):
         entry = {"invocation": len(self._history) + 1, "started": _now(), "finished": None,
                  "package_version": package_version(), "git_commit": git_commit(),
                  "host": platform.node(), "workers": workers, "chunks_pending": pending,
-                 "chunks_computed": 0}
+                 "chunks_computed": 0, "branch_points_pending": branch_points_pending,
+                 "branch_points_computed": 0}
         self._history.append(entry)
         self._invocation = entry
         self._save_history()
@@ -322,6 +403,20 @@ class Store:
         if self._invocation is not None:
             self._invocation["chunks_computed"] += 1  # saved with the history at the end
 
+    def write_branch_point(self, model, alpha, values):
+        """Write the branch point of (model index, alpha index): ``values`` maps the names of
+        `BRANCH_VARIABLES` to scalars. Values first, flush, then the status (which marks it
+        stored), flush: in place, like `write_chunk`."""
+        g = self.f["branch_points"]
+        for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+            if name != "status":
+                g[name][model, alpha] = _as_stored(kind, values.get(name, fill))
+        self.f.flush()
+        g["status"][model, alpha] = values["status"]
+        self.f.flush()
+        if self._invocation is not None:
+            self._invocation["branch_points_computed"] += 1
+
     def close(self):
         if self.f:
             self.f.close()
@@ -356,7 +451,9 @@ def create_store(path, run, run_file=None):
 
 
 def check_store(path, run):
-    """Read-only check that ``path`` is a store of the same run; returns its done mask."""
+    """Read-only check that ``path`` is a store of the same run (and of this schema version:
+    files of other versions are refused). Returns (done mask, git commit, branch-point
+    status array (model, alpha))."""
     with _open(path, "r") as f:
         if f.attrs.get("schema") != SCHEMA:
             raise StoreError(f"{path}: exists and is not a tba-flow scan file; refusing to "
@@ -364,7 +461,8 @@ def check_store(path, run):
         version = int(f.attrs.get("schema_version", -1))
         if version != SCHEMA_VERSION:
             raise StoreError(f"{path}: schema version {version}, this tba writes "
-                             f"{SCHEMA_VERSION}; use --force to replace it, or --out", foreign=True)
+                             f"{SCHEMA_VERSION} and cannot resume it; use --force to replace it, "
+                             f"or --out", foreign=True)
         if f.attrs.get("run_id") != run.run_id:
             old = json.loads(f.attrs["run"])
             keys = differing_keys(old, run.to_dict()) or ["run_id"]
@@ -380,12 +478,17 @@ def check_store(path, run):
                              for c in run.chunks()], dtype=table.dtype).reshape(table.shape)
         if table.shape != expected.shape or not np.array_equal(table, expected):
             raise StoreError(f"{path}: its chunk table does not match the run; use --force or --out", foreign=True)
-        return g["done"][...].astype(bool), str(f.attrs.get("git_commit", "unknown"))
+        status = f["branch_points/status"][...] if "branch_points/status" in f else None
+        if status is None or status.shape != (len(run.models), len(run.alphas)):
+            raise StoreError(f"{path}: its /branch_points do not match the run; use --force or --out",
+                             foreign=True)
+        return g["done"][...].astype(bool), str(f.attrs.get("git_commit", "unknown")), status
 
 
 def prepare_store(path, run, force=False, run_file=None):
     """Make sure ``path`` is a store of ``run``: check an existing one (read-only) or create
-    it. Returns (done mask, created, note). Nothing is written to an existing file here.
+    it. Returns (done mask, created, note, branch-point status (model, alpha)). Nothing is
+    written to an existing file here.
 
     An existing file of another run, another schema or another package version, or a file
     that is not a store, is never overwritten unless ``force`` (`StoreError`).
@@ -394,14 +497,15 @@ def prepare_store(path, run, force=False, run_file=None):
     if path.is_dir():
         raise StoreError(f"{path}: is a directory")
     if path.exists() and not force:
-        done, commit = check_store(path, run)
+        done, commit, branch_status = check_store(path, run)
         note = None
         if commit != git_commit():
             note = (f"{path} was started at commit {commit[:12]}, this is {git_commit()[:12]}; "
                     f"each invocation is recorded in the /progress history attribute")
-        return done, False, note
+        return done, False, note, branch_status
     create_store(path, run, run_file)
-    return np.zeros(len(run.chunks()), dtype=bool), True, None
+    return (np.zeros(len(run.chunks()), dtype=bool), True, None,
+            np.full((len(run.models), len(run.alphas)), NOT_COMPUTED, dtype="i1"))
 
 
 def open_store(path, run):
@@ -427,6 +531,9 @@ class StoreData:
     data: dict = field(default_factory=dict)
     progress: dict = field(default_factory=dict)
     history: list = field(default_factory=list)
+    #: /branch_points arrays (model, alpha), names of `BRANCH_VARIABLES` (schema 1: not computed)
+    branch: dict = field(default_factory=dict)
+    schema_version: int = SCHEMA_VERSION
 
     def __getitem__(self, name):
         return self.data[name]
@@ -473,7 +580,8 @@ def _strings(ds):
 
 
 def read_store(path):
-    """Read a whole store (any tba-flow scan file of this schema) into a `StoreData`."""
+    """Read a whole store (any tba-flow scan file of a `READABLE_VERSIONS` schema) into a
+    `StoreData`; a schema-1 file has no branch points (all "not computed")."""
     path = Path(path)
     if not path.exists():
         raise StoreError(f"{path}: no such file")
@@ -485,8 +593,9 @@ def read_store(path):
         if f.attrs.get("schema") != SCHEMA:
             raise StoreError(f"{path}: not a tba-flow scan file")
         version = int(f.attrs.get("schema_version", -1))
-        if version != SCHEMA_VERSION:
-            raise StoreError(f"{path}: schema version {version}; this tba reads {SCHEMA_VERSION}")
+        if version not in READABLE_VERSIONS:
+            raise StoreError(f"{path}: schema version {version}; this tba reads "
+                             f"{', '.join(map(str, READABLE_VERSIONS))}")
         attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
         run = resolve_run(json.loads(attrs["run"]), name=json.loads(attrs["run"]).get("name", "run"))
         data = {}
@@ -495,8 +604,17 @@ def read_store(path):
         g = f["progress"]
         progress = {name: g[name][...] for name in (*PROGRESS_FIELDS, "done", "invocation", "seconds")}
         couplings = [None if math.isnan(c) else float(c) for c in f["model_coupling"][...]]
+        shape = (len(run.models), len(run.alphas))
+        branch = {}
+        for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+            key = f"branch_points/{name}"
+            if key in f:
+                branch[name] = _strings(f[key]) if kind == "str" else f[key][...]
+            else:  # schema 1: the group was reserved, empty
+                branch[name] = np.full(shape, fill, dtype=object if kind == "str" else kind)
         return StoreData(path=path, attrs=attrs, run=run, model=list(_strings(f["model"])),
                          model_name=list(_strings(f["model_name"])), model_coupling=couplings,
                          alpha=f["alpha"][...], radius=f["radius"][...],
                          state=list(_strings(f["state"])), data=data, progress=progress,
-                         history=json.loads(g.attrs["history"]))
+                         history=json.loads(g.attrs["history"]), branch=branch,
+                         schema_version=version)

@@ -1,5 +1,6 @@
 """The figure of a scan, checked through matplotlib's objects (labels, legends, lines), not pixels."""
 
+import dataclasses
 import io
 
 import numpy as np
@@ -7,6 +8,7 @@ import pytest
 
 from tba.cli import main
 from tba.plotting import LABELS, plot_store
+from tba.report import CONVERGED
 from tba.runfile import loads_run
 from tba.scan import run_scan
 from tba.storage import read_store
@@ -65,14 +67,23 @@ def test_panels_labels_legends_and_lines(data):
         assert ax_c.get_ylabel() == LABELS["ceff"] and "c_" in ax_c.get_ylabel()
         assert ax_c.get_xlabel() == LABELS["radius"]
         assert ax_e.get_xscale() == ax_c.get_xscale() == "log"  # radii span a factor 10
-        # energy: one line per alpha, one prediction per deformed alpha, one last-real marker
-        # (alpha = 0.5 has no real solution at R = 0.3, a real one further up)
-        assert _legend_texts(ax_e) == alphas + [LABELS["prediction"], LABELS["last_real"]]
-        assert len(ax_e.get_lines()) == 3 + 2 + 1
-        star = [ln for ln in ax_e.get_lines() if ln.get_marker() == "*"]
-        assert len(star) == 1
-        r_star = star[0].get_xdata()[0]
-        assert r_star > data.radius[0]
+        # energy: one line per alpha, one prediction per deformed alpha, and the branch point
+        # of alpha = 0.5 (no real solution at R = 0.3, a real one further up): a dotted
+        # vertical line at R_c and a diamond at (R_c, E(R_c)) in the colour of its curve
+        assert _legend_texts(ax_e) == alphas + [LABELS["prediction"], LABELS["branch_point"]]
+        assert len(ax_e.get_lines()) == 3 + 2 + 2
+        Rc, Ec = data.branch["branch_radius"][m, 2], data.branch["energy"][m, 2]
+        diamond = [ln for ln in ax_e.get_lines() if ln.get_marker() == "D"]
+        assert len(diamond) == 1
+        assert list(diamond[0].get_xdata()) == [Rc] and list(diamond[0].get_ydata()) == [Ec]
+        vertical = [ln for ln in ax_e.get_lines() if ln.get_linestyle() == ":" and ln.get_marker() != "D"]
+        assert len(vertical) == 1 and list(vertical[0].get_xdata()) == [Rc, Rc]
+        curve = next(ln for ln in ax_e.get_lines() if ln.get_label() == alphas[2])
+        assert vertical[0].get_color() == diamond[0].get_color() == curve.get_color()
+        # between the last real point of the curve and the next radius down
+        last = _last_real(data, m)
+        assert data.radius[last - 1] < Rc <= data.radius[last]
+        assert not [ln for ln in ax_e.get_lines() if ln.get_marker() == "*"]
         # residual on a log scale: residual and error estimate per deformed alpha
         assert ax_r.get_yscale() == "log"
         assert len(ax_r.get_lines()) == 2 * 2
@@ -84,6 +95,24 @@ def test_panels_labels_legends_and_lines(data):
     line = axes[2, 0].get_lines()[1]
     E = data["energy"][0, 1, :, 0]
     np.testing.assert_allclose(line.get_ydata(), -6 * data.radius * E / np.pi)
+
+
+def _last_real(data, m, a=2):
+    """Index of the smallest radius with a real solution (alpha index a)."""
+    return int(np.flatnonzero(data["status"][m, a, :, 0] == CONVERGED)[0])
+
+
+def test_without_branch_points_the_last_real_point_is_marked(data):
+    # a store whose branch points are not computed (scan.branch_points = false): the last real
+    # point of the alpha = 0.5 curve (the branch point lies just below) gets an open star
+    branch = {k: v.copy() for k, v in data.branch.items()}
+    branch["status"][...] = -1
+    fig = plot_store(dataclasses.replace(data, branch=branch))
+    ax_e = np.array(fig.axes).reshape(3, 2)[0, 0]
+    assert _legend_texts(ax_e)[-1] == LABELS["last_real"]
+    star = [ln for ln in ax_e.get_lines() if ln.get_marker() == "*"]
+    assert len(star) == 1 and star[0].get_xdata()[0] == data.radius[_last_real(data, 0)] > data.radius[0]
+    assert not [ln for ln in ax_e.get_lines() if ln.get_marker() == "D"]
 
 
 def test_plot_command_writes_png_and_pdf(data, tmp_path, capsys):

@@ -1,5 +1,6 @@
 """Resuming: a scan killed with SIGKILL (or interrupted with Ctrl-C) and run again ends with
-the numbers of an uninterrupted run, and computes only the chunks that were missing."""
+the numbers of an uninterrupted run, and computes only the chunks (and branch points) that
+were missing."""
 
 import io
 import os
@@ -14,9 +15,11 @@ import h5py
 import numpy as np
 import pytest
 
-from tba.runfile import load_run
-from tba.scan import run_scan
-from tba.storage import POINT_VARIABLES, read_store
+import tba.scan
+from tba.flow import branch_point
+from tba.runfile import load_run, loads_run
+from tba.scan import ScanInterrupted, run_scan
+from tba.storage import BP_FOUND, BP_NONE, BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
 
 # Free fermion at alpha = 0.5 has no real ground state below R ~ 0.6 (PHYSICS.md section 4,
 # CFT estimate 0.72): each of those points costs the solver a continuation (~0.1 s), which
@@ -44,6 +47,7 @@ tol = 1e-10
 chunk_size = 2
 """
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
+BRANCH_NUMBERS = [name for name, (kind, _, _) in BRANCH_VARIABLES.items() if kind != "str"]
 
 
 def _start(runfile, workers):
@@ -88,6 +92,9 @@ def reference(tmp_path_factory):
 def _same_numbers(a, b):
     for name in NUMBERS:
         assert np.array_equal(a[name], b[name], equal_nan=True), name
+    for name in BRANCH_NUMBERS:
+        assert np.array_equal(a.branch[name], b.branch[name], equal_nan=True), name
+    assert list(a.branch["status"].ravel()) == [BP_NONE, BP_FOUND]  # alpha = -0.3, 0.5
 
 
 def test_sigkill_then_rerun_gives_the_uninterrupted_numbers(tmp_path, reference):
@@ -172,3 +179,75 @@ def test_ctrl_c_with_workers_saves_and_resumes(tmp_path, reference):
     assert rerun.returncode == 0, rerun.stderr
     assert f"computed {total - saved} chunks ({saved} were already done)" in rerun.stderr
     _same_numbers(read_store(path), reference)
+
+
+# in-process runs: a tiny scan, two models, branch points at alpha = 0.4 and 0.6
+SMALL = RUN.format(count=3).replace("alphas = [-0.3, 0.5]", "alphas = [-0.3, 0.4, 0.6]") \
+    .replace("[deformation]", '[[models]]\nname = "lee-yang"\n\n[deformation]')
+
+
+class _Counting:
+    """tba.flow.branch_point with a call log; raises KeyboardInterrupt on call ``interrupt``."""
+
+    def __init__(self, interrupt=None):
+        self.calls, self.interrupt = [], interrupt
+
+    def __call__(self, model, alpha, tol):
+        self.calls.append((model.name, alpha))
+        if len(self.calls) == self.interrupt:
+            raise KeyboardInterrupt
+        return branch_point(model, alpha, tol=tol)
+
+
+def test_branch_points_are_added_later_and_never_recomputed(tmp_path, monkeypatch):
+    calls = _Counting()
+    monkeypatch.setattr(tba.scan, "branch_point", calls)
+    off = loads_run(SMALL + "branch_points = false\n", base_dir=tmp_path)
+    log = io.StringIO()
+    summary = run_scan(off, workers=1, log=log)
+    assert summary.complete and summary.branch_points_computed == 0 and calls.calls == []
+    assert "branch points off" in log.getvalue()
+    first = read_store(off.output)
+    assert (first.branch["status"] == NOT_COMPUTED).all() and np.isnan(first.branch["energy"]).all()
+    # the same run with branch_points = true (same run_id): only the branch points are computed
+    on = loads_run(SMALL, base_dir=tmp_path)
+    assert on.run_id == off.run_id
+    log = io.StringIO()
+    summary = run_scan(on, workers=1, log=log)
+    assert summary.chunks_computed == 0 and summary.branch_points_computed == 6
+    assert "computed 0 chunks (12 were already done) and 6 branch points" in log.getvalue()
+    assert sorted(calls.calls) == sorted((m, a) for m in ("free-fermion", "lee-yang")
+                                         for a in (-0.3, 0.4, 0.6))
+    data = read_store(on.output)
+    for name in NUMBERS:  # the points are untouched
+        assert np.array_equal(data[name], first[name], equal_nan=True), name
+    assert (data.branch["status"][:, 0] == BP_NONE).all() and (data.branch["status"][:, 1:] == BP_FOUND).all()
+    assert data.history[1]["branch_points_computed"] == 6 and data.history[1]["chunks_computed"] == 0
+    # stored: never computed again (also with branch_points = false)
+    before = Path(on.output).read_bytes()
+    for run in (on, off):
+        summary = run_scan(run, workers=1, log=io.StringIO())
+        assert summary.chunks_computed == summary.branch_points_computed == 0
+    assert len(calls.calls) == 6 and Path(on.output).read_bytes() == before
+
+
+def test_interrupted_during_branch_points_resumes_the_rest(tmp_path, monkeypatch):
+    reference = loads_run(SMALL, base_dir=tmp_path / "ref")
+    run_scan(reference, workers=1, log=io.StringIO())
+    calls = _Counting(interrupt=4)
+    monkeypatch.setattr(tba.scan, "branch_point", calls)
+    run = loads_run(SMALL, base_dir=tmp_path)
+    with pytest.raises(ScanInterrupted, match="all 12 chunks and 3 of 6 pending branch points are saved"):
+        run_scan(run, workers=1, log=io.StringIO())
+    data = read_store(run.output)
+    assert data.complete and (data.branch["status"] != NOT_COMPUTED).sum() == 3
+    assert data.history[0].get("interrupted") is True
+    calls.interrupt = None
+    summary = run_scan(run, workers=1, log=io.StringIO())
+    assert summary.chunks_computed == 0 and summary.branch_points_computed == 3
+    assert len(calls.calls) == 7 and calls.calls[3] == calls.calls[4]  # the interrupted one again
+    # the same numbers as an uninterrupted run: each branch point depends on (model, alpha, tol)
+    ref = read_store(reference.output)
+    data = read_store(run.output)
+    for name in BRANCH_NUMBERS:
+        assert np.array_equal(data.branch[name], ref.branch[name], equal_nan=True), name

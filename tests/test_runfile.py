@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from tba.cli import main
-from tba.runfile import RunFileError, demo_run_path, load_run, loads_run, resolve_run
+from tba.runfile import RunFileError, demo_run_path, differing_keys, load_run, loads_run, resolve_run
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -48,7 +48,8 @@ def test_defaults_are_filled_in_and_written_out(tmp_path):
     d = run.to_dict()
     assert d["states"] == ["ground"]
     assert d["solver"] == {"tol": 1e-12}
-    assert d["scan"] == {"chunk_size": 8, "flow_check": True, "sweep": "descending"}
+    assert d["scan"] == {"chunk_size": 8, "flow_check": True, "sweep": "descending",
+                         "branch_points": True}
     assert d["deformation"] == {"alphas": [-0.1, 0.0, 0.1], "higher_spin": {}}
     assert d["radii"] == [0.5, 1.0, 1.5, 2.0]
     assert d["models"] == [{"name": "sinh-gordon", "coupling": 0.6}, {"name": "lee-yang", "coupling": None}]
@@ -65,10 +66,19 @@ def test_radii_lists_ranges_sorted_and_merged():
     assert loads_run(with_radii("radii = [1]")).radii == (1.0,)
 
 
-def test_identity_ignores_output_and_description_only():
+def test_identity_ignores_output_description_and_branch_points_only():
     a = loads_run(GOOD)
     b = loads_run('description = "another text"\nname = "b"\n' + GOOD.replace('out/tiny.h5', 'b.h5'))
     assert a.run_id == b.run_id and a != b
+    # scan.branch_points says whether branch points are computed, not what they are: a file
+    # begun without them is resumed with them (tests/test_resume.py)
+    c = loads_run(GOOD + "[scan]\nbranch_points = false\n")
+    assert c.branch_points is False and a.branch_points is True
+    assert c.run_id == a.run_id and c.to_dict()["scan"]["branch_points"] is False
+    assert resolve_run(json.loads(c.to_json())) == c
+    assert differing_keys(c.to_dict(), a.to_dict()) == []
+    assert differing_keys(loads_run(GOOD + "[scan]\nchunk_size = 3\nbranch_points = false\n").to_dict(),
+                          a.to_dict()) == ["scan"]
     for change in ['count = 4', 'count = 5'], ['alphas = [0.1, -0.1, 0]', 'alphas = [0.1]'], \
             ['coupling = 0.6', 'coupling = 0.7']:
         assert loads_run(GOOD.replace(*change)).run_id != a.run_id
@@ -112,6 +122,7 @@ BAD = [
     ("bad tolerance", '[radii]', '[solver]\ntol = 0.5\n\n[radii]', "solver.tol"),
     ("bad chunk size", '[radii]', '[scan]\nchunk_size = 0\n\n[radii]', "scan.chunk_size"),
     ("bad flow check", '[radii]', '[scan]\nflow_check = "yes"\n\n[radii]', "scan.flow_check"),
+    ("bad branch points", '[radii]', '[scan]\nbranch_points = 1\n\n[radii]', "scan.branch_points"),
 ]
 
 

@@ -15,8 +15,9 @@ import tba.cli
 from tba.cli import main
 from tba.result import STATUS_CODES, Status
 from tba.runfile import loads_run
-from tba.scan import run_scan, solve_chunk
-from tba.storage import FLOW_NOT_APPLICABLE, FLOW_OFF, POINT_VARIABLES, read_store
+from tba.scan import run_scan, solve_branch_point, solve_chunk
+from tba.storage import (BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, BRANCH_VARIABLES, FLOW_NOT_APPLICABLE,
+                         FLOW_OFF, POINT_VARIABLES, read_store)
 
 RUN = """\
 # tiny scan for the tests: Lee-Yang and the free fermion, a few radii
@@ -57,6 +58,9 @@ def _write(tmp_path, text=RUN, name="scan.toml"):
 def _same_numbers(a, b):
     for name in NUMBERS:
         assert np.array_equal(a[name], b[name], equal_nan=True), name
+    for name, (kind, _, _) in BRANCH_VARIABLES.items():
+        if kind != "str":
+            assert np.array_equal(a.branch[name], b.branch[name], equal_nan=True), name
 
 
 def test_a_chunk_is_deterministic(tmp_path):
@@ -94,6 +98,9 @@ def test_flow_residuals_are_small_and_statuses_say_why(tmp_path):
                    base_dir=tmp_path)
     _, values, _ = solve_chunk(hs, hs.chunks()[0])
     assert (values["flow_status"] == FLOW_NOT_APPLICABLE).all()
+    # ... and so is the branch point from the undeformed curve (nothing is solved for it)
+    bp = solve_branch_point(hs, 1, 0)
+    assert bp["status"] == BP_NOT_APPLICABLE and "spin 3" in bp["message"] and "branch_radius" not in bp
     off = loads_run(RUN + "flow_check = false\n", base_dir=tmp_path)
     _, values, _ = solve_chunk(off, off.chunks()[0])
     assert (values["flow_status"] == FLOW_OFF).all() and np.isnan(values["flow_residual"]).all()
@@ -112,7 +119,7 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     runfile = _write(tmp_path)
     assert main(["run", str(runfile), "--workers", "1"]) == 0
     err = capsys.readouterr().err
-    assert "computed 12 chunks (0 were already done)" in err
+    assert "computed 12 chunks (0 were already done) and 4 branch points" in err
     h5 = tmp_path / "scan.h5"
     assert h5.exists()
     # again: a complete file is not recomputed
@@ -123,7 +130,35 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     report = capsys.readouterr().out
     assert "converged" in report and "12 of 12 done (complete)" in report
     assert "flow residual" in report and "worst error estimate" in report
-    assert "last real point" in report
+    # branch points at alpha = 0.3 (R_c ~ 0.48 for Lee-Yang, 0.53 for the free fermion, by
+    # the CFT estimate sqrt(2 pi c alpha / 3), PHYSICS.md section 4), with T_H = 1/R_c and the
+    # check against the scan's last real point
+    assert "branch points of the ground state" in report and "last real point" in report
+    assert "T_H = 1/R_c" in report
+    d = read_store(h5)
+    assert (d.branch["status"][:, 0] == BP_NONE).all() and (d.branch["status"][:, 1] == BP_FOUND).all()
+    lines = report.splitlines()
+    table = lines.index(next(ln for ln in lines if ln.startswith("branch points of the ground state")))
+    for m, label in enumerate(d.model):
+        row = next(ln for ln in lines[table:] if ln.strip().startswith(label)).split()
+        Rc = d.branch["branch_radius"][m, 1]
+        assert row[1:3] == ["0.3", "found"] and float(row[3]) == pytest.approx(Rc, rel=1e-11)
+        assert float(row[5]) == pytest.approx(d.branch["energy"][m, 1], rel=1e-11)
+        assert float(row[6]) == pytest.approx(1 / Rc, rel=1e-5)
+        assert row[-1] == "yes"
+    assert ("consistency with the scan (last real R >= R_c, and the next R down < R_c where it has "
+            "no real solution): holds for all 2 checked curve(s)") in report
+    # the check can fail: an R_c above the last real radius, or below the next one down
+    from tba.report import format_report
+    real = d["status"][:, 1, :, 0] == STATUS_CODES[Status.CONVERGED]
+    last = [d.radius[np.flatnonzero(r)[0]] for r in real]
+    d.branch["branch_radius"][0, 1] = last[0] * 1.01
+    d.branch["branch_radius"][1, 1] = 0.5 * d.radius[0]
+    bad = format_report(d)
+    assert "FAILS for 2 of 2 checked curve(s)" in bad
+    assert f"lee-yang, alpha = 0.3: last real R = {last[0]:.6g} < R_c" in bad
+    assert not real[1, 0]  # the free fermion at R = 0.4 < R_c: no real solution, so it must lie below R_c
+    assert f"free-fermion, alpha = 0.3: R = {d.radius[0]:.6g} has no real solution but is >= R_c" in bad
     for line in report.splitlines():
         if line.strip().startswith("lee-yang") and "checked" not in line:
             assert "-0.1" in line or "0.3" in line

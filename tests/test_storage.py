@@ -2,6 +2,7 @@
 outside source, missing values, and protection of existing files."""
 
 import hashlib
+import importlib.util
 import io
 import json
 import math
@@ -10,14 +11,17 @@ from pathlib import Path
 import h5py
 import numpy as np
 import pytest
-from scipy.special import k1
+from scipy.optimize import brentq
+from scipy.special import k0, k1
 
 import tba
 from tba.result import STATUS_CODES, Status
 from tba.runfile import loads_run
 from tba.scan import run_scan
-from tba.storage import (FLOW_NOT_APPLICABLE, NOT_COMPUTED, POINT_VARIABLES, SCHEMA_VERSION,
-                         StoreError, check_store, git_commit, read_store)
+from tba.report import format_report
+from tba.storage import (BP_FAILED, BP_FOUND, BP_NONE, BRANCH_VARIABLES, FLOW_NOT_APPLICABLE,
+                         NOT_COMPUTED, POINT_VARIABLES, SCHEMA_VERSION, StoreError, check_store,
+                         git_commit, read_store)
 
 TINY = """\
 # tiny store for the tests
@@ -55,6 +59,22 @@ def free_fermion_ns(R):
     return -math.fsum(((-1.0) ** (k + 1) * k1(k * R) / k).tolist()) / math.pi
 
 
+def free_fermion_ns_slope(R):
+    # dE/dR of the series above, term by term: d/dR K_1(kR)/k = K_1'(kR) = -K_0(kR) - K_1(kR)/(kR)
+    # (DLMF 10.29.2), with scipy.special.k0 and k1
+    k = np.arange(1, int(60 / R) + 50)
+    return math.fsum(((-1.0) ** (k + 1) * (k0(k * R) + k1(k * R) / (k * R))).tolist()) / math.pi
+
+
+def free_fermion_branch_point(alpha):
+    """Exact R_c of the TTbar-deformed free-fermion ground state from the Bessel series:
+    E_0'(R~) = 1/alpha, R_c = R~ - alpha E_0(R~) (characteristics of the Burgers flow,
+    PHYSICS.md section 4; E_0 from Mussardo, Statistical Field Theory (2010))."""
+    Rt = brentq(lambda R: free_fermion_ns_slope(R) - 1 / alpha, 0.02, 5.0, xtol=1e-15,
+                rtol=4 * np.finfo(float).eps)
+    return Rt - alpha * free_fermion_ns(Rt), free_fermion_ns(Rt), Rt
+
+
 @pytest.fixture(scope="module")
 def store(tmp_path_factory):
     d = tmp_path_factory.mktemp("store")
@@ -78,6 +98,8 @@ def test_root_attributes_with_h5py(store):
         assert "exp(i alpha m_a m_b sinh t)" in a["conventions"]
         assert "m_1" in a["units"]
         assert "-1 not-computed" in a["status_legend"] and "0 converged" in a["status_legend"]
+        for text in ("-1 not-computed", "0 found", "1 none", "2 not-applicable", "3 failed"):
+            assert text in a["branch_point_status_legend"]
         assert [m["name"] for m in json.loads(a["models"])] == ["free-fermion", "lee-yang"]
 
 
@@ -135,6 +157,71 @@ def _check_xarray(ds, run):
     # fixed-length UTF-8 messages: str with netcdf4, bytes with h5netcdf
     message = ds["message"].sel(model="free-fermion", alpha=0.0, state="ground").values[0]
     assert (message.decode() if isinstance(message, bytes) else message).startswith("converged")
+
+
+def test_branch_points_with_h5py(store):
+    path, run = store
+    with h5py.File(path, "r") as f:
+        g = f["branch_points"]
+        assert set(g) == set(BRANCH_VARIABLES)
+        for name in BRANCH_VARIABLES:
+            ds = g[name]
+            assert ds.shape == (2, 3)  # (model, alpha)
+            assert [ds.dims[i].keys()[0] for i in range(2)] == ["model", "alpha"]
+            assert ds.dims[0][0] == f["model"] and ds.dims[1][0] == f["alpha"]  # the root scales
+        st = g["status"]
+        assert st.dtype == np.int8
+        codes = dict(zip(st.attrs["flag_meanings"].split(), st.attrs["flag_values"]))
+        assert codes == {"not-computed": -1, "found": 0, "none": 1, "not-applicable": 2, "failed": 3}
+        assert g["branch_radius"].attrs["units"] == "1/m_1" and g["energy"].attrs["units"] == "m_1"
+        # alphas -0.2, 0: none (no branch point on this side), NaN; 0.5: found
+        status = st[...]
+        assert (status[:, :2] == BP_NONE).all() and (status[:, 2] == BP_FOUND).all()
+        for name in ("branch_radius", "branch_radius_error", "energy", "energy_error",
+                     "effective_radius"):
+            assert np.isnan(g[name][:, :2]).all() and np.isfinite(g[name][:, 2]).all()
+        messages = g["message"].asstr()[...]
+        assert all("no branch point" in m for m in messages[:, :2].ravel())
+        # stored fields agree with each other: R_c = R~ - alpha E_0(R~); within the scan's radii
+        Rc, Rt, E = g["branch_radius"][:, 2], g["effective_radius"][:, 2], g["energy"][:, 2]
+        assert np.array_equal(Rc, Rt - 0.5 * E)
+        assert ((0.3 < Rc) & (Rc < 0.9)).all()  # R = 0.3 has no real solution, R = 0.9 has
+        assert (g["branch_radius_error"][:, 2] <= 1e-10 * Rc).all()
+
+
+def test_free_fermion_branch_point_against_bessel_series(store):
+    # exact R_c from the Bessel series (free_fermion_branch_point above), to 1e-10
+    path, run = store
+    data = read_store(path)
+    Rc, E, Rt = free_fermion_branch_point(0.5)
+    assert data.branch["status"][0, 2] == BP_FOUND
+    assert abs(data.branch["branch_radius"][0, 2] - Rc) <= 1e-10
+    assert abs(data.branch["energy"][0, 2] - E) <= 1e-10
+    assert abs(data.branch["effective_radius"][0, 2] - Rt) <= 1e-8  # R_c is stationary in R~
+    assert abs(data.branch["branch_radius"][0, 2] - Rc) <= data.branch["branch_radius_error"][0, 2]
+    assert Rc == pytest.approx(0.6933232406401, abs=1e-12)  # the value from the series, once
+
+
+def test_branch_points_with_xarray(store):
+    xr = pytest.importorskip("xarray")
+    pytest.importorskip("h5netcdf")
+    path, run = store
+    # netCDF4 is not a dependency; checked when installed
+    engines = ["h5netcdf"] + (["netcdf4"] if importlib.util.find_spec("netCDF4") else [])
+    for engine in engines:
+        with xr.open_dataset(path, engine=engine, group="branch_points") as ds:
+            assert dict(ds.sizes) == {"model": 2, "alpha": 3}
+            for name in BRANCH_VARIABLES:
+                assert ds[name].dims == ("model", "alpha")
+            assert ds["status"].dtype == np.int8
+            assert np.isnan(ds["branch_radius"].values[:, :2]).all()
+    if hasattr(xr, "open_datatree"):  # the group inherits the root's model and alpha coordinates
+        with xr.open_datatree(path, engine="h5netcdf") as tree:
+            bp = tree["branch_points"]
+            assert list(bp["model"].values) == ["free-fermion", "lee-yang"]
+            assert bp["branch_radius"].dims == ("model", "alpha")
+            Rc = bp["branch_radius"].sel(model="free-fermion", alpha=0.5).item()
+        assert Rc == read_store(path).branch["branch_radius"][0, 2]
 
 
 def test_free_fermion_energies_against_bessel_series(store):
@@ -248,3 +335,64 @@ def test_long_messages_are_cut_at_a_character_boundary():
     assert len(raw) <= MESSAGE_BYTES and raw.endswith(b"...")
     assert raw.decode("utf-8").startswith("éé")
     assert _encode("converged in 0.01 s") == b"converged in 0.01 s"
+
+
+def _as_schema_1(path):
+    """Turn a store into what schema 1 wrote: version 1, an empty reserved /branch_points."""
+    with h5py.File(path, "r+") as f:
+        f.attrs["schema_version"] = 1
+        del f["branch_points"]
+        f.create_group("branch_points")
+
+
+def test_schema_1_files_are_refused_for_resume_but_read(tmp_path, capsys):
+    from tba.cli import main
+    run = loads_run(TINY.replace("count = 4", "count = 2"), base_dir=tmp_path)
+    run_scan(run, workers=1, log=io.StringIO())
+    _as_schema_1(run.output)
+    before = _sha(run.output)
+    with pytest.raises(StoreError, match="schema version 1, this tba writes 2") as info:
+        run_scan(run, workers=1, log=io.StringIO())
+    assert info.value.foreign and "\n" not in str(info.value)
+    runfile = tmp_path / "tiny.toml"
+    runfile.write_text(TINY.replace("count = 4", "count = 2"))
+    capsys.readouterr()
+    assert main(["run", str(runfile), "--workers", "1"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "schema version 1" in err[0] and "--force" in err[0]
+    assert _sha(run.output) == before
+    # still readable: report and plot work, the branch points count as not computed
+    data = read_store(run.output)
+    assert data.schema_version == 1 and (data.branch["status"] == NOT_COMPUTED).all()
+    assert "schema version 1, which stored no branch points" in format_report(data)
+    assert _sha(run.output) == before
+    # --force starts again with this schema
+    assert main(["run", str(runfile), "--workers", "1", "--force"]) == 0
+    assert read_store(run.output).schema_version == SCHEMA_VERSION
+
+
+def test_a_failing_branch_point_is_stored_and_keeps_the_scan(tmp_path, monkeypatch):
+    import tba.scan
+
+    def broken(model, alpha, tol):
+        if model.name == "lee-yang":
+            raise RuntimeError("no luck\nsecond line")
+        return tba.flow.branch_point(model, alpha, tol=tol)
+
+    monkeypatch.setattr(tba.scan, "branch_point", broken)
+    run = loads_run(TINY.replace("count = 4", "count = 2").replace("alphas = [-0.2, 0, 0.5]",
+                                                                  "alphas = [0.5]"), base_dir=tmp_path)
+    log = io.StringIO()
+    summary = run_scan(run, workers=1, log=log)
+    assert summary.complete and summary.branch_points_computed == 2
+    assert "failed (stored as failed): RuntimeError: no luck" in log.getvalue()
+    data = read_store(run.output)
+    assert data.complete and (data["status"] != NOT_COMPUTED).all()
+    assert list(data.branch["status"][:, 0]) == [BP_FOUND, BP_FAILED]
+    assert data.branch["message"][1, 0] == "RuntimeError: no luck"
+    assert np.isnan(data.branch["branch_radius"][1, 0])
+    report = format_report(data)
+    assert "lee-yang, alpha = 0.5: failed: RuntimeError: no luck" in report
+    # a failure is stored, hence not tried again on the next run
+    summary = run_scan(run, workers=1, log=io.StringIO())
+    assert summary.chunks_computed == 0 and summary.branch_points_computed == 0
