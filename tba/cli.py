@@ -148,6 +148,11 @@ def _state(text, model):
     from tba.excited import check_model, parse_state
 
     try:
+        if model.name == "lee-yang":  # only the one-particle state, through its own equations
+            state = parse_state(text.split(","))
+            if state != (0,):
+                raise ValueError("lee-yang: only the one-particle state 0 is available")
+            return state
         check_model(model)
         return parse_state(text.split(","))
     except (ValueError, TypeError) as exc:
@@ -161,7 +166,13 @@ def cmd_solve(args, out):
     deformation = parse_cdd(args.cdd, alpha)
     tol = _tolerance(args.tol)
     state = _state(args.state, model) if args.state is not None else None
-    if state is not None:
+    if state is not None and model.name == "lee-yang":
+        from tba.excited import solve_lee_yang_one_particle
+
+        solve = lambda R, start: solve_lee_yang_one_particle(R, deformation, tol=tol,  # noqa: E731
+                                                             start=start)
+        header, row = STATE_HEADER, state_row
+    elif state is not None:
         from tba.excited import solve_excited
 
         solve = lambda R, start: solve_excited(model, R, state, deformation, tol=tol,  # noqa: E731

@@ -478,3 +478,198 @@ def _stalled(parameter, history, target, now, msg):
                     f"times the requested couplings")
     name = "R" if parameter == "radius" else "the coupling scale"
     return f"continuation in {name} stalled at {now:.12g}: {msg}"
+
+
+# -- the Lee-Yang one-particle state -------------------------------------------------------------
+
+_LY_S = math.sin(2 * math.pi / 3)  # the block f_(2/3): sin(pi x) = sqrt(3)/2
+#: as R decreases y grows from pi/6 towards pi/3 (reached near R ~ 2.3), where the source's
+#: zero crosses the real axis; the form solved here stops there
+_LY_Y_MAX = math.pi / 3 - 0.15
+
+
+def _ly_logS(u):
+    """log f_(2/3)(u) for complex u (principal branch)."""
+    sh = np.sinh(u)
+    return np.log((sh + 1j * _LY_S) / (sh - 1j * _LY_S))
+
+
+def _ly_phi(u):
+    """phi(u) = -2 s cosh u / (sinh^2 u + s^2) for complex u."""
+    return -2 * _LY_S * np.cosh(u) / (np.sinh(u) ** 2 + _LY_S ** 2)
+
+
+class LeeYangOneParticle:
+    """The zero-momentum one-particle state of the Lee-Yang model (Dorey & Tateo, Nucl. Phys.
+    B482 (1996) 639), optionally TTbar-deformed, for R down to ~2.5: below, the singularities
+    approach |Im t| = pi/3 and the equations take another form (not implemented; such points
+    come back not-converged with that message).
+
+    Two singularities of L = log(1 + e^{-eps}) sit at theta = +-i y off the real axis
+    (y -> pi/6 as R -> infinity); they add sources to the TBA:
+
+        eps(t) = m R cosh t + log S(t - i y) - log S(t + i y) - (1/2pi) int phi(t - t') L(t') dt'
+        eps(i y) = i pi:    R cos y - log S(2 i y) - (1/2pi) int Re phi(i y - t') L(t') dt' = 0
+        E = 2 m sin y - (m/2pi) int cosh t L dt
+
+    (the source is real, 2 Re log S(t - i y); S(2 i y) > 0 needs y > pi/6). With
+    exp(i alpha sinh t) the sources gain 2 alpha sin y cosh t, log S(2 i y) gains -alpha sin 2y
+    and phi gains alpha cosh: the equations become the undeformed ones at R + alpha E. The
+    unknown for y is z = log(y - pi/6), smooth even where y - pi/6 ~ e^{-R sqrt(3)/2}.
+    """
+
+    def __init__(self, model, deformation, radius, grid):
+        self.disc = Discretization(model, deformation, radius, grid)
+        self.alpha = deformation.alpha
+        self.radius = radius
+        self.grid = grid
+        self.N = grid.N
+
+    def parts(self, eps, z):
+        y = math.pi / 6 + math.exp(z)
+        t, h, a = self.grid.t, self.grid.h, self.alpha
+        d = self.disc
+        L, dL, ok = d.occupation(eps[None, :])
+        L, dL = L[0], dL[0]
+        source = 2 * np.real(_ly_logS(t - 1j * y)) + 2 * a * math.sin(y) * np.cosh(t)
+        F = eps - d.nu[0] - source + d.ops.convolve(L[None, :])[0] + d.separable(L[None, :])[1][0]
+        phi_y = np.real(_ly_phi(1j * y - t)) + a * math.cos(y) * np.cosh(t)
+        G = (self.radius * math.cos(y) - float(np.real(_ly_logS(2j * y))) + a * math.sin(2 * y)
+             - (h / (2 * np.pi)) * float(np.dot(phi_y, L)))
+        return F, G, L, dL, ok, y
+
+    def energy(self, y, L):
+        return 2 * math.sin(y) + float(np.sum(self.disc.wE[0] * L))
+
+    def jacobian(self, eps, z, L, dL):
+        d = self.disc
+        N = self.N
+        J = np.zeros((N + 1, N + 1))
+        Jee = np.eye(N)
+        if not d.ops.trivial:
+            Jee += d.ops.matrix * dL[None, :]
+        for k in range(d.c.size):
+            Jee += d.c[k] * np.outer(d.U[k, 0], d.V[k, 0] * dL)
+        J[:N, :N] = Jee
+        y = math.pi / 6 + math.exp(z)
+        t, h, a = self.grid.t, self.grid.h, self.alpha
+        dy_dz = math.exp(z)
+        # d source / dy = 2 Re phi(t - i y) (+ CDD 2 alpha cos y cosh t)
+        J[:N, N] = -(2 * np.real(_ly_phi(t - 1j * y)) + 2 * a * math.cos(y) * np.cosh(t)) * dy_dz
+        phi_y = np.real(_ly_phi(1j * y - t)) + a * math.cos(y) * np.cosh(t)
+        J[N, :N] = -(h / (2 * np.pi)) * phi_y * dL
+        step = 1e-7
+        J[N, N] = (self.parts(eps, z + step)[1] - self.parts(eps, z - step)[1]) / (2 * step)
+        return J
+
+
+def _ly_solve_level(model, deformation, radius, tol, level, seed):
+    """Newton on (eps, z) on one grid; seed = (grid, eps, z, energy) or None (large-R start)."""
+    if seed is None:
+        z = math.log(math.sqrt(3) * math.exp(-radius * math.sqrt(3) / 2))
+        r_eff, y = radius, math.pi / 6
+    else:
+        z = seed["z"]
+        y = math.pi / 6 + math.exp(z)
+        r_eff = radius + deformation.alpha * seed["energy"] if deformation.is_ttbar else radius
+    if y > _LY_Y_MAX:
+        return None, (f"the singularities reached |Im t| = {y:.4f}, near pi/3 where a zero of "
+                      f"S(t - i y) meets the real axis and the equations change form (not "
+                      f"implemented)")
+    strip = min(math.pi / 2, model.pole_distance, abs(math.pi / 3 - y), y)
+    grid = choose_grid(model.pole_distance, 1.0, max(r_eff, 1e-3), tol, level, cutoff_extra=4.0,
+                       max_spin=max(deformation.couplings, default=1), strip=strip)
+    eqs = LeeYangOneParticle(model, deformation, radius, grid)
+    if not eqs.disc.ops.dense:
+        return None, f"grid of {grid.N} points: beyond the dense solver of this state"
+    if seed is None:
+        t = grid.t
+        eps = eqs.disc.nu[0] + 2 * np.real(_ly_logS(t - 1j * y))
+    else:
+        g = seed["eps"] - seed["nu_source"]
+        g = g if seed["grid"] == grid else _interpolate(seed["grid"], g[None, :], grid.t)[0]
+        eps = eqs.disc.nu[0] + 2 * np.real(_ly_logS(grid.t - 1j * y)) + g
+    F, G, L, dL, ok, y = eqs.parts(eps, z)
+    if not ok:
+        return None, "initial guess outside the domain of L"
+    r = max(float(np.max(np.abs(F))), abs(G))
+    for it in range(60):
+        J = eqs.jacobian(eps, z, L, dL)
+        step = np.linalg.solve(J, -np.concatenate([F, [G]]))
+        de, dz = step[:-1], step[-1]
+        E = eqs.energy(y, L)
+        dE = abs(float(np.sum(eqs.disc.wE[0] * dL * de)) + 2 * math.cos(y) * math.exp(z) * dz)
+        if y > _LY_Y_MAX:
+            return None, f"the singularities moved to |Im t| = {y:.4f}, too close to pi/3"
+        if (float(np.max(np.abs(step))) < 1e-6 and dE <= max(1e-2 * tol, 8 * _EPS) * max(abs(E), 1.0)):
+            rounding = 4 * _EPS * (float(np.sum(np.abs(eqs.disc.wE[0] * L)))
+                                   + float(np.sum(np.abs(eqs.disc.wE[0] * dL * eps))) + 2.0)
+            source = eps - eqs.disc.nu[0] - 2 * np.real(_ly_logS(grid.t - 1j * y))
+            return {"grid": grid, "eps": eps, "z": z, "y": y, "energy": E, "iteration_error": dE,
+                    "rounding": rounding, "residual": r, "nu_source": eps - source}, "converged"
+        lam = 1.0
+        while True:
+            F2, G2, L2, dL2, ok, y2 = eqs.parts(eps + lam * de, z + lam * dz)
+            r2 = max(float(np.max(np.abs(F2))), abs(G2)) if ok else math.inf
+            if r2 <= (1 - 0.25 * lam) * r or r2 < 1e-13:
+                break
+            lam *= 0.5
+            if lam < 1e-4:
+                return None, "line search failed"
+        eps, z, F, G, L, dL, y, r = eps + lam * de, z + lam * dz, F2, G2, L2, dL2, y2, r2
+    return None, "no convergence in 60 Newton steps"
+
+
+def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=None):
+    """E_1(R) of the Lee-Yang zero-momentum one-particle state (see `LeeYangOneParticle`).
+
+    Continued in R from R = 12 (or from ``start``, a converged result of this function), then
+    solved on two grids for the error estimate. Returns a SolveResult with state ("1",)."""
+    from tba.models import lee_yang
+    from tba.solver import _validate
+
+    radius, tol = _validate(radius, tol)
+    deformation = NO_DEFORMATION if deformation is None else deformation
+    model = lee_yang()
+    base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
+                coupling=None, state=(Fraction(0),))
+    seed = start._state if isinstance(start, SolveResult) and start.converged else None
+    if seed is None:
+        R0 = max(radius, BETHE_YANG_RADIUS)
+        seed, msg = _ly_solve_level(model, deformation, R0, tol, 0, None)
+        if seed is None:
+            return SolveResult(**base, status=Status.NOT_CONVERGED, message=f"start at R = {R0}: {msg}")
+        seed["radius"] = R0
+    R_now = seed.get("radius", radius)
+    step = (radius - R_now) / 4
+    while R_now != radius:
+        trial = radius if abs(radius - R_now) <= abs(step) else R_now + step
+        new, msg = _ly_solve_level(model, deformation, trial, tol, 0, seed)
+        if new is not None:
+            new["radius"] = trial
+            seed, R_now = new, trial
+            step *= 1.5
+        else:
+            step *= 0.5
+            if abs(step) < 1e-9 * R_now:
+                return SolveResult(**base, status=Status.NOT_CONVERGED,
+                                   message=f"continuation in R stalled at {R_now:.12g}: {msg}")
+    states = []
+    for level in (0, 1, 2, 3):
+        new, msg = _ly_solve_level(model, deformation, radius, tol, level, seed)
+        if new is None:
+            return SolveResult(**base, status=Status.NOT_CONVERGED, message=f"level {level}: {msg}")
+        new["radius"] = radius
+        states.append(new)
+        seed = new
+        if len(states) >= 2:
+            f, c = states[-1], states[-2]
+            error = abs(f["energy"] - c["energy"]) + f["iteration_error"] + c["iteration_error"] + f["rounding"]
+            if error <= tol * max(abs(f["energy"]), 1.0):
+                # no particle on the real axis: the state is carried by the singularities +-i y
+                return SolveResult(**base, status=Status.CONVERGED, energy=f["energy"], error=error,
+                                   momentum=0.0, grid=f["grid"], rapidity_grid=f["grid"].t,
+                                   message=f"converged; singularities at t = +-{f['y']:.15g} i",
+                                   pseudo_energies=f["eps"][None, :], _state=f)
+    return SolveResult(**base, status=Status.NOT_CONVERGED,
+                       message=f"error estimate {error:.3g} above the tolerance after 4 levels")

@@ -196,3 +196,46 @@ def test_models_outside_the_real_rapidity_scheme_are_refused():
         solve_excited(user_model([1.0], kernel=lambda t: 0 * t, pole_distance=1.0), 1.0, ("0",))
     with pytest.raises(ValueError, match="too close"):
         solve_excited(sinh_gordon(0.99), 1.0, ("0",))
+
+
+# -- Lee-Yang one-particle state ---------------------------------------------------------------
+
+def test_lee_yang_one_particle_mass_gap_and_mu_term():
+    # E_1 - E_0 -> m at large R (PHYSICS.md section 5), approached through the mu-term of the
+    # bound-state pole of S at 2 pi i / 3: ~ e^{-m R sin(pi/3)} = e^{-sqrt(3) m R / 2}
+    # (Luscher 1986; Klassen & Melzer 1991 - from memory)
+    from tba.excited import solve_lee_yang_one_particle
+    from tba import solve_ground_state
+
+    gaps = {}
+    for R in (8.0, 10.0, 12.0):
+        e1 = solve_lee_yang_one_particle(R)
+        e0 = solve_ground_state(lee_yang(), R)
+        assert e1.converged and e0.converged
+        gaps[R] = e1.energy - e0.energy - 1.0
+    assert abs(gaps[12.0]) < 1e-4
+    for a, b in ((8.0, 10.0), (10.0, 12.0)):
+        assert gaps[a] / gaps[b] == pytest.approx(math.exp(math.sqrt(3)), rel=0.15)
+
+
+@pytest.mark.parametrize("alpha", [-0.1, 0.1])
+@pytest.mark.parametrize("R", [4.0, 6.0])
+def test_lee_yang_one_particle_deformed_follows_flow(alpha, R):
+    # P = 0: E(R, alpha) = E(R + alpha E, 0) (PHYSICS.md section 4)
+    from tba.excited import solve_lee_yang_one_particle
+
+    res = solve_lee_yang_one_particle(R, ttbar(alpha))
+    assert res.converged, res.message
+    ref = solve_lee_yang_one_particle(R + alpha * res.energy)
+    assert abs(res.energy - ref.energy) <= 1e-10 * res.energy
+    assert abs(res.energy - ref.energy) <= res.error + ref.error
+
+
+def test_lee_yang_one_particle_stops_honestly_at_small_radius():
+    # below R ~ 2.6 the singularities near |Im t| = pi/3 change the form of the equations,
+    # which is not implemented: the point must say so instead of returning a number
+    from tba.excited import solve_lee_yang_one_particle
+
+    res = solve_lee_yang_one_particle(1.0)
+    assert res.status is Status.NOT_CONVERGED and math.isnan(res.energy)
+    assert "pi/3" in res.message
