@@ -125,6 +125,16 @@ class Scattering:
         return self.model.kernel(u)[0, 0] + self._cdd(u, np.cosh, 1, False)
 
 
+def _pseudo_energy_jacobian(disc, dL):
+    """d(eps equations)/d eps for one species on a dense grid: 1 + (K + CDD terms) diag(L')."""
+    J = np.eye(disc.shape[1])
+    if not disc.ops.trivial:
+        J += disc.ops.matrix * dL[None, :]
+    for k in range(disc.c.size):
+        J += disc.c[k] * np.outer(disc.U[k, 0], disc.V[k, 0] * dL)
+    return J
+
+
 class ExcitedEquations:
     """The discretised excited-state equations for fixed quantum numbers."""
 
@@ -179,12 +189,7 @@ class ExcitedEquations:
         N, Np, h = self.N, self.Np, self.grid.h
         tg = self.grid.t
         J = np.zeros((N + Np, N + Np))
-        Jee = np.eye(N)
-        if not d.ops.trivial:
-            Jee += d.ops.matrix * dL[None, :]
-        for k in range(d.c.size):
-            Jee += d.c[k] * np.outer(d.U[k, 0], d.V[k, 0] * dL)
-        J[:N, :N] = Jee
+        J[:N, :N] = _pseudo_energy_jacobian(d, dL)
         for j in range(Np):
             J[:N, N + j] = self.psi(tg - t[j])  # d/dt_j of -D(t - t_j)
         for k in range(Np):
@@ -345,6 +350,8 @@ def _grid(model, deformation, r_eff, tol, level):
 def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff):
     grid = _grid(model, deformation, r_eff, tol, level)
     eqs = ExcitedEquations(model, deformation, radius, grid, state)
+    if not eqs.disc.ops.dense:
+        return None, f"grid of {grid.N} points: beyond the dense excited-state solver", 0
     t0 = seed.rapidities if seed is not None else bethe_yang(model, radius, state, deformation)
     return _newton(eqs, eqs.initial_guess(t0, seed), t0, tol)
 
@@ -545,12 +552,7 @@ class LeeYangOneParticle:
         d = self.disc
         N = self.N
         J = np.zeros((N + 1, N + 1))
-        Jee = np.eye(N)
-        if not d.ops.trivial:
-            Jee += d.ops.matrix * dL[None, :]
-        for k in range(d.c.size):
-            Jee += d.c[k] * np.outer(d.U[k, 0], d.V[k, 0] * dL)
-        J[:N, :N] = Jee
+        J[:N, :N] = _pseudo_energy_jacobian(d, dL)
         y = math.pi / 6 + math.exp(z)
         t, h, a = self.grid.t, self.grid.h, self.alpha
         dy_dz = math.exp(z)
