@@ -113,7 +113,8 @@ def test_state_option_json_contract():
 
 @pytest.mark.parametrize("args, name", [
     (["--model", "free-fermion", "--radius", "1", "--state", "1/2"], "--state"),
-    (["--model", "lee-yang", "--radius", "1", "--state", "0"], "--state"),
+    (["--model", "lee-yang", "--radius", "1", "--state", "1"], "--state"),
+    (["--model", "ising-e8", "--radius", "1", "--state", "0"], "--state"),
     (["--model", "free-fermion", "--radius", "1", "--state", "a,b"], "--state"),
 ])
 def test_bad_state_one_line_exit_2(args, name, capsys):
