@@ -90,7 +90,8 @@ class SolveResult:
             "status": self.status.value,
             "iterations": int(self.iterations),
             "message": self.message,
-            **({"state": [_number(n) for n in self.state], "momentum": self.momentum,
+            **({"state": [_number(n) for n in self.state],
+                "momentum": float(self.momentum) if ok else None,
                 "rapidities": [float(t) for t in self.rapidities] if ok else None}
                if self.state else {}),
         }
