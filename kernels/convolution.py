@@ -9,9 +9,11 @@ into a block-Toeplitz product. The kernel is passed as samples on all offsets,
 
     out[a, i] = sum_b sum_j kern[a, b, N - 1 + i - j] * f[b, j].
 
-Two ways to apply it: a direct compiled loop (cheap for small N) and an FFT
-product (``SpectralConvolver``, O(N log N), for large N). The solver measures
-which is faster for the problem at hand (see ``tba.solver``).
+Three forms: the dense matrix (``block_toeplitz_matrix``, which the solver multiplies
+and factorises for small systems), an FFT product (``SpectralConvolver``, O(N log N), for
+large ones: the crossover ``DENSE_LIMIT`` in ``tba.solver`` was measured), and a direct
+compiled loop (``block_toeplitz_matvec``), the plain reference the other two are tested
+against.
 """
 
 import numba

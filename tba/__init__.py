@@ -17,7 +17,7 @@ from tba.models import (
     sinh_gordon,
     user_model,
 )
-from tba.result import SolveError, SolveResult, Status, TBAWarning
+from tba.result import SolveError, SolveResult, Status
 from tba.solver import solve_ground_state, solve_radii
 
 __version__ = "0.1.0"
@@ -25,6 +25,6 @@ __version__ = "0.1.0"
 __all__ = [
     "CDD", "NO_DEFORMATION", "higher_spin", "ttbar",
     "DiagonalModel", "free_fermion", "get_model", "ising_e8", "lee_yang", "sinh_gordon", "user_model",
-    "SolveError", "SolveResult", "Status", "TBAWarning",
+    "SolveError", "SolveResult", "Status",
     "solve_ground_state", "solve_radii",
 ]

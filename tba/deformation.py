@@ -78,11 +78,6 @@ class CDD:
                              f"({model.name} has {model.n_species} species)")
         return np.ones(1)
 
-    def separable_terms(self, model):
-        """Yield (spin, coefficient, q) with kernel coefficient * q_a q_b cosh(spin (t - t'))."""
-        for s, a in self.couplings.items():
-            yield s, a * s, self.charges(model, s)
-
     def describe(self):
         return {"convention": "S -> S exp(i alpha_s q_a q_b sinh(s t)); spin 1: q = m (TTbar)",
                 "couplings": {str(s): a for s, a in self.couplings.items()}}

@@ -1,4 +1,4 @@
-"""What a solve returns: status codes, the result object and the package's warning class."""
+"""What a solve returns: status codes and the result object."""
 
 import enum
 from dataclasses import dataclass, field
@@ -20,10 +20,6 @@ class Status(str, enum.Enum):
 
 #: Integer codes stored in HDF5 files next to the energies.
 STATUS_CODES = {Status.CONVERGED: 0, Status.NO_REAL_SOLUTION: 1, Status.NOT_CONVERGED: 2}
-
-
-class TBAWarning(UserWarning):
-    """Warnings issued by the tba package."""
 
 
 class SolveError(RuntimeError):
