@@ -167,7 +167,7 @@ def cmd_solve(args, out):
     tol = _tolerance(args.tol)
     state = _state(args.state, model) if args.state is not None else None
     if state is not None and model.name == "lee-yang":
-        from tba.excited import solve_lee_yang_one_particle
+        from tba.lee_yang_state import solve_lee_yang_one_particle
 
         solve = lambda R, start: solve_lee_yang_one_particle(R, deformation, tol=tol,  # noqa: E731
                                                              start=start)
