@@ -24,7 +24,7 @@ from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
 from tba.report import format_report
 from tba.runfile import RunFileError, demo_run_path, load_run
 from tba.scan import ScanInterrupted, run_scan
-from tba.solver import MIN_TOL, solve_ground_state
+from tba.solver import MIN_TOL
 from tba.storage import NOT_COMPUTED, StoreError, read_store
 
 CONVENTIONS = """\
@@ -143,18 +143,16 @@ def state_row(rec):
             f"{_fmt(rec['momentum'], '14.8g'):>14}  {rec['status']}")
 
 
-def _state(text, model):
-    """--state N1,N2,...: Bethe quantum numbers (decimals or fractions like 1/2,-1/2)."""
-    from tba.excited import check_model, parse_state
+def _state(text, model, deformation):
+    """--state N1,N2,...: Bethe quantum numbers (decimals or fractions like 1/2,-1/2), or ground."""
+    from tba.levels import parse_level, unavailable
 
     try:
-        if model.name == "lee-yang":  # only the one-particle state, through its own equations
-            state = parse_state(text.split(","))
-            if state != (0,):
-                raise ValueError("lee-yang: only the one-particle state 0 is available")
-            return state
-        check_model(model)
-        return parse_state(text.split(","))
+        level = parse_level(text)
+        why = unavailable(model, level, deformation)
+        if why is not None:
+            raise ValueError(why)
+        return level
     except (ValueError, TypeError) as exc:
         raise UsageError(f"argument --state: {str(exc).split(': ', 1)[-1]}") from None
 
@@ -165,23 +163,12 @@ def cmd_solve(args, out):
     alpha = _finite("--alpha", args.alpha)
     deformation = parse_cdd(args.cdd, alpha)
     tol = _tolerance(args.tol)
-    state = _state(args.state, model) if args.state is not None else None
-    if state is not None and model.name == "lee-yang":
-        from tba.lee_yang_state import solve_lee_yang_one_particle
+    state = _state(args.state, model, deformation) if args.state is not None else "ground"
+    from tba.levels import solve_level
 
-        solve = lambda R, start: solve_lee_yang_one_particle(R, deformation, tol=tol,  # noqa: E731
-                                                             start=start)
-        header, row = STATE_HEADER, state_row
-    elif state is not None:
-        from tba.excited import solve_excited
-
-        solve = lambda R, start: solve_excited(model, R, state, deformation, tol=tol,  # noqa: E731
-                                               start=start)
-        header, row = STATE_HEADER, state_row
-    else:
-        solve = lambda R, start: solve_ground_state(model, R, deformation, tol=tol,  # noqa: E731
-                                                    start=start)
-        header, row = TABLE_HEADER, table_row
+    solve = lambda R, start: solve_level(model, R, state, deformation, tol=tol,  # noqa: E731
+                                         start=start)
+    header, row = (TABLE_HEADER, table_row) if state == "ground" else (STATE_HEADER, state_row)
     if not args.json:
         print(header, file=out, flush=True)
     start = None

@@ -1,0 +1,70 @@
+"""Levels by name: the ground state, or an excited state named by its Bethe quantum numbers.
+
+One place that turns a level's name into the right solver, shared by `tba solve --state` and by
+scans (run files' ``states``). Names:
+
+* ``"ground"``: `tba.solver.solve_ground_state` (every model, every deformation);
+* quantum numbers, e.g. ``"-1/2,1/2"`` or ``"0"``: real-rapidity excited states
+  (`tba.excited.solve_excited`: single-species models without bound states) and, for the
+  Lee-Yang model, its zero-momentum one-particle state ``"0"``
+  (`tba.lee_yang_state.solve_lee_yang_one_particle`, TTbar factor only).
+
+`level_name` writes a level in canonical form (quantum numbers sorted, as fractions), so that
+"1/2,-1/2", "-0.5, 0.5" and ["1/2", "-1/2"] name the same level.
+"""
+
+from fractions import Fraction
+
+from tba.excited import check_model, parse_state, solve_excited
+from tba.solver import solve_ground_state
+
+GROUND = "ground"
+
+
+def parse_level(text):
+    """``"ground"`` or a tuple of Fractions (sorted) from a name like ``"1/2,-1/2"``."""
+    if isinstance(text, str):
+        if text.strip() == GROUND:
+            return GROUND
+        text = text.split(",")
+    return parse_state(text)
+
+
+def level_name(level):
+    """The canonical name of a level: ``"ground"`` or the sorted quantum numbers, e.g. "-1/2,1/2"."""
+    level = parse_level(level)
+    return GROUND if level == GROUND else ",".join(str(Fraction(n)) for n in level)
+
+
+def unavailable(model, level, deformation=None):
+    """Why ``level`` cannot be computed for ``model`` (with ``deformation``), or None."""
+    level = parse_level(level)
+    if level == GROUND:
+        return None
+    if model.name == "lee-yang":
+        if level != (0,):
+            return "lee-yang has one excited level here: its one-particle state 0"
+        if deformation is not None and not deformation.is_zero and not deformation.is_ttbar:
+            return "the lee-yang one-particle state takes the TTbar factor (spin 1) only"
+        return None
+    try:
+        check_model(model)
+    except ValueError as exc:
+        return str(exc).split(": ", 1)[-1]
+    return None
+
+
+def solve_level(model, radius, level, deformation=None, *, tol=1e-12, start=None):
+    """Solve ``level`` (a name or quantum numbers) of ``model`` at ``radius``: a SolveResult.
+    Raises ValueError when the level does not exist for the model (see `unavailable`)."""
+    level = parse_level(level)
+    if level == GROUND:
+        return solve_ground_state(model, radius, deformation, tol=tol, start=start)
+    why = unavailable(model, level, deformation)
+    if why is not None:
+        raise ValueError(f"state: {why}")
+    if model.name == "lee-yang":
+        from tba.lee_yang_state import solve_lee_yang_one_particle
+
+        return solve_lee_yang_one_particle(radius, deformation, tol=tol, start=start)
+    return solve_excited(model, radius, level, deformation, tol=tol, start=start)
