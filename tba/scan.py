@@ -386,16 +386,16 @@ class ScanInterrupted(Exception):
 
 
 class ScanFailed(Exception):
-    """Chunks whose tasks failed (on a cluster: a chunk whose workers kept dying, until the
-    scheduler gave up on it). Everything else was computed and saved; running the same
-    command again retries the failed chunks only."""
+    """Tasks that failed (on a cluster: a chunk whose workers kept dying until the scheduler
+    gave up on it, or an exception in a task). Everything else was computed and saved;
+    running the same command again retries only what is missing."""
 
     def __init__(self, summary):
         self.summary = summary
         failed = summary.failed
         first = failed[0]
         more = f" (and {len(failed) - 1} more)" if len(failed) > 1 else ""
-        super().__init__(f"{_count(len(failed), 'chunk')} failed: {first.what}: {first.error}{more}; "
+        super().__init__(f"{_count(len(failed), 'task')} failed: {first.what}: {first.error}{more}; "
                          f"{summary.saved()} are saved in {summary.path}; run the same command "
                          f"again to retry the missing ones")
 
@@ -521,7 +521,11 @@ def _drive(run, path, backend, pending, branch_pending, summary, progress, log):
                                   f"{values['message']}", file=log, flush=True)
                     else:
                         summary.failed.append(item)
-                        print(f"tba run: {item.what} failed: {item.error}", file=log, flush=True)
+                        if len(summary.failed) <= _FAILURES_SHOWN:
+                            print(f"tba run: {item.what} failed: {item.error}", file=log, flush=True)
+                        elif len(summary.failed) == _FAILURES_SHOWN + 1:
+                            print("tba run: more tasks failed (counted at the end)", file=log,
+                                  flush=True)
             finally:
                 results.close()  # stops the workers if we leave early
         except KeyboardInterrupt:
@@ -532,6 +536,10 @@ def _drive(run, path, backend, pending, branch_pending, summary, progress, log):
         if bar is not None:
             bar.close()
         store.close()
+
+
+#: failures printed as they happen (a broken worker installation fails every task)
+_FAILURES_SHOWN = 5
 
 
 def _count(n, word):
