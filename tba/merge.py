@@ -218,7 +218,11 @@ def merge_stores(paths, out, force=False):
             if table.shape != expected.shape or not np.array_equal(table, expected):
                 raise StoreError(f"{p}: its chunk table does not match its run; refusing to merge")
         if out.exists() and not force and out not in seen:
-            check_store(out, run)  # a full store of the same run: merged in, else refused
+            try:  # a full store of the same run is merged in; anything else is left alone
+                check_store(out, run)
+            except StoreError as exc:
+                raise StoreError(f"{str(exc).split('; ')[0]}; refusing to overwrite it with the "
+                                 f"merge (use --force to replace it, or another --out)") from None
             files.insert(0, _read_file(out))
             inputs.insert(0, out)
         merged = _Merged(run)
