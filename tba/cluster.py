@@ -79,6 +79,28 @@ def parse_cluster(text):
     return n
 
 
+def local_cluster(n_workers):
+    """The ``LocalCluster`` of ``--cluster local:N``: N single-threaded worker processes.
+
+    * The workers ignore Ctrl-C from birth (the driver stops them), and exit when the
+      driver dies.
+    * One BLAS thread each (dask's ``distributed.nanny.pre-spawn-environ`` default), but
+      without its ``MALLOC_TRIM_THRESHOLD_``: setting it switches off glibc's adaptive mmap
+      threshold, and every larger numpy temporary then costs fresh pages; measured here,
+      the solver ran about 35% slower with it (E8 scan of benchmarks/bench_cluster.py).
+    * The scheduler's HTTP server (health checks; the dashboard if bokeh is installed)
+      takes a free loopback port: never the fixed 8787 another cluster may hold, never
+      reachable from other machines.
+    """
+    import dask
+    from distributed import LocalCluster
+
+    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}), \
+            _children_ignore_ctrl_c():
+        return LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
+                            dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR)
+
+
 # -- the tasks (run on the workers) --------------------------------------------------------------
 
 def _check_version(version):
@@ -121,15 +143,10 @@ class DaskBackend(Backend):
         self.threads = 0
 
     def start(self):
-        from distributed import Client, LocalCluster
+        from distributed import Client
 
         if self.client is None and self.local_workers is not None:
-            # worker processes ignore Ctrl-C from birth (the driver stops them); dask gives each
-            # one BLAS thread (distributed.nanny.pre-spawn-environ)
-            with _children_ignore_ctrl_c():
-                self._cluster = LocalCluster(n_workers=self.local_workers, threads_per_worker=1,
-                                             processes=True, dashboard_address=None,
-                                             silence_logs=logging.ERROR)
+            self._cluster = local_cluster(self.local_workers)
             self.client = self._owned_client = Client(self._cluster)
         elif self.client is None:
             where = self.scheduler

@@ -22,7 +22,7 @@ distributed = pytest.importorskip("distributed")
 
 import tba.cluster  # noqa: E402
 from tba.cli import main  # noqa: E402
-from tba.cluster import DaskBackend  # noqa: E402
+from tba.cluster import DaskBackend, local_cluster  # noqa: E402
 from tba.runfile import load_run  # noqa: E402
 from tba.scan import ScanFailed, run_scan  # noqa: E402
 from tba.storage import BRANCH_VARIABLES, POINT_VARIABLES, read_store  # noqa: E402
@@ -88,8 +88,7 @@ def reference(runfile):
 def cluster():
     """A LocalCluster of 2 single-threaded worker processes (each restarted by its nanny
     when killed) and a client."""
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as lc, distributed.Client(lc) as client:
+    with local_cluster(2) as lc, distributed.Client(lc) as client:
         yield lc, client
 
 
