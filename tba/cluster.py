@@ -29,8 +29,9 @@ Decisions:
   KilledWorker: the driver reports it, goes on writing everything else, and raises
   `tba.scan.ScanFailed` at the end, so running the same command again retries only what
   is missing. Any other exception in a task is handled the same way.
-* Branch points (``scan.branch_points``) are tasks too, queued behind the chunks
-  (``priority=-1``): a few undeformed solves each, they fill the tail of the scan.
+* Branch points (``scan.branch_points``) are tasks too, at a lower priority than the chunks
+  (``priority=-1``; the scheduler may still start them early): a few undeformed solves
+  each, in parallel with the chunks instead of one after the other at the end.
 * Every task checks that its worker runs the driver's tba version: workers of another
   installation would give other numbers under the same run identity.
 * Ctrl-C or an error in the driver cancels the scan's tasks on the cluster; a local

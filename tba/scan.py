@@ -16,7 +16,7 @@ Branch points (``branch_points = true``, the default): the ground state's branch
 R_c(alpha) once per model and alpha (`solve_branch_point`: `tba.flow.branch_point` at the
 run's tol, a few undeformed solves, 0.01-1 s each), each written as it is found. Local
 backends compute them in the driver after the chunks; a dask cluster gets them as tasks
-queued behind the chunks. alpha <= 0 has none; with higher-spin factors they are not
+at a lower priority than the chunks. alpha <= 0 has none; with higher-spin factors they are not
 applicable; an exception is stored as "failed" with its message and never loses the scan.
 Each is a function of (model, alpha, tol) alone, computed from scratch, so resumed runs
 agree bit for bit; stored ones are never computed again.
