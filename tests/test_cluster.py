@@ -6,6 +6,7 @@ Everywhere here the serial run of the same resolved run file is the reference: a
 a pure function of (run, chunk), so any executor must give its numbers bit for bit."""
 
 import io
+import json
 import os
 import re
 import signal
@@ -202,6 +203,10 @@ def test_a_killed_driver_is_resumed_from_its_file(runfile, reference, tmp_path, 
     saved = int(read_store(out).progress["done"].sum())  # readable after kill -9
     assert 1 <= saved < TOTAL
 
+    # resumed through a scheduler file (as dask scheduler --scheduler-file writes it)
+    scheduler_file = tmp_path / "scheduler.json"
+    scheduler_file.write_text(json.dumps({"address": lc.scheduler_address}))
+    args[args.index("--scheduler") + 1] = str(scheduler_file)
     log = io.StringIO()
     sys_err, sys.stderr = sys.stderr, log
     try:
