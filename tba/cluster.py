@@ -24,7 +24,8 @@ Decisions:
   nothing: it may run on a login node.
 * Worker death: the scheduler reschedules the tasks of a lost worker (a ``local:N``
   worker is restarted by its nanny); the driver just waits, and a recomputed chunk is the
-  same pure function of (run, chunk). A task that was on ``allowed-failures + 1`` workers
+  same pure function of (run, chunk). So is a result lost with its worker after the task
+  finished but before the driver fetched it: the scheduler computes it again. A task that was on ``allowed-failures + 1`` workers
   that died (dask's ``distributed.scheduler.allowed-failures``, default 3) comes back as
   KilledWorker: the driver reports it, goes on writing everything else, and raises
   `tba.scan.ScanFailed` at the end, so running the same command again retries only what
@@ -40,6 +41,7 @@ Decisions:
 
 import logging
 import os
+import time
 import uuid
 
 from tba.scan import (Backend, BranchDone, ChunkDone, TaskFailed, _children_ignore_ctrl_c,
@@ -100,6 +102,10 @@ def local_cluster(n_workers):
             _children_ignore_ctrl_c():
         return LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
                             dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR)
+
+
+#: statuses of a future that the driver acts on; any other ("lost", "pending") means wait
+_DONE = ("finished", "error", "cancelled")
 
 
 # -- the tasks (run on the workers) --------------------------------------------------------------
@@ -186,6 +192,9 @@ class DaskBackend(Backend):
                                       key=f"tba-chunk-{chunks[0].index}-{token}")
                 pending[pilot] = chunks[0]
                 wait([pilot])
+                while pilot.status not in _DONE:  # lost with its worker: computed again
+                    time.sleep(0.05)
+                    wait([pilot])
                 yield self._collect(run, pilot, pending.pop(pilot))
             for chunk in chunks[1:]:
                 future = client.submit(_chunk_task, run_future, chunk, version, pure=False,
@@ -195,7 +204,13 @@ class DaskBackend(Backend):
                 future = client.submit(_branch_task, run_future, m, a, version, pure=False,
                                        priority=-1, key=f"tba-branch-{m}-{a}-{token}")
                 pending[future] = (m, a)
-            for future in as_completed(list(pending)):
+            done = as_completed(list(pending))
+            for future in done:
+                if future.status not in _DONE:
+                    # finished, but its worker died before the result was fetched: the
+                    # scheduler computes it again (the future is still wanted); wait for that
+                    done.add(future)
+                    continue
                 yield self._collect(run, future, pending.pop(future))
         finally:
             left = list(pending) + [run_future]
@@ -222,6 +237,8 @@ class DaskBackend(Backend):
         except BaseException as err:  # noqa: BLE001 (cancelled: the scheduler dropped it)
             exc = err
         future.release()
+        if exc is None:
+            exc = RuntimeError(f"task {future.key} ended with status {future.status!r}")
         if isinstance(what, tuple):
             m, a = what
             return TaskFailed(f"branch point of {run.models[m].label} at alpha = {run.alphas[a]:g}",
