@@ -15,18 +15,17 @@ import sys
 import threading
 import time
 
+import distributed  # the test extra installs it: these tests must run, never be skipped
 import h5py
 import numpy as np
 import pytest
 
-distributed = pytest.importorskip("distributed")
-
-import tba.cluster  # noqa: E402
-from tba.cli import main  # noqa: E402
-from tba.cluster import DaskBackend, local_cluster  # noqa: E402
-from tba.runfile import load_run  # noqa: E402
-from tba.scan import ScanFailed, run_scan  # noqa: E402
-from tba.storage import BRANCH_VARIABLES, POINT_VARIABLES, read_store  # noqa: E402
+import tba.cluster
+from tba.cli import main
+from tba.cluster import DaskBackend, local_cluster
+from tba.runfile import load_run
+from tba.scan import ScanFailed, run_scan
+from tba.storage import BRANCH_VARIABLES, POINT_VARIABLES, read_store
 
 # E8 chunks take ~0.1 s each (long enough for a worker to die in the middle of one), the
 # free fermion's a few ms; alpha = 0.05 has a branch point per model, -0.05 none.
