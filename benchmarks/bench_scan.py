@@ -377,8 +377,12 @@ def main(argv=None):
         cold = cold_start(1 if args.quick else 7)
     info["loadavg_end"] = os.getloadavg()
     print_table(rows, cold)
+    kept = {}  # keys other benchmarks write into the same file (bench_cluster.py: "cluster")
+    if os.path.exists(args.json):
+        with open(args.json) as f:
+            kept = {k: v for k, v in json.load(f).items() if k not in ("info", "scans", "cold_start")}
     with open(args.json, "w") as f:
-        json.dump({"info": info, "scans": rows, "cold_start": cold}, f, indent=1)
+        json.dump({"info": info, "scans": rows, "cold_start": cold, **kept}, f, indent=1)
     print(f"\nwrote {args.json}")
 
 

@@ -1,11 +1,13 @@
-"""Command line: ``tba solve``, ``tba run``, ``tba report``, ``tba plot``, ``tba export``,
-``tba demo``, and (from ``tba.cli_flow``) ``tba branch-point`` and ``tba flow-check``.
+"""Command line: ``tba solve``, ``tba run``, ``tba merge``, ``tba report``, ``tba plot``,
+``tba export``, ``tba demo``, and (from ``tba.cli_flow``) ``tba branch-point`` and
+``tba flow-check``.
 
-Bad input (arguments, run files, output files of another run) prints one line on stderr
-naming the argument or key and exits with code 2. ``tba solve`` prints points as soon as
-they are solved; ``tba run`` writes each finished chunk to its HDF5 file, so an
+Bad input (arguments, run files, output files of another run, shards that do not belong
+together, a cluster that cannot be reached or a missing dask) prints one line on stderr
+naming the argument, key or file and exits with code 2. ``tba solve`` prints points as
+soon as they are solved; ``tba run`` writes each finished chunk to its HDF5 file, so an
 interrupted run keeps what it has written and the same command resumes it (exit code 130
-after Ctrl-C).
+after Ctrl-C; exit code 1 when a cluster gave up on some tasks, with everything else saved).
 """
 
 import argparse
@@ -22,8 +24,8 @@ from tba import __version__
 from tba.deformation import CDD
 from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
 from tba.report import format_report
-from tba.runfile import RunFileError, demo_run_path, load_run
-from tba.scan import ScanInterrupted, run_scan
+from tba.runfile import RunFileError, demo_run_path, load_run, parse_shard
+from tba.scan import ScanFailed, ScanInterrupted, run_scan
 from tba.solver import MIN_TOL
 from tba.storage import NOT_COMPUTED, StoreError, read_store
 
@@ -200,26 +202,94 @@ def _load_run(path):
         raise UsageError(f"{path}: {exc}" if exc.key else str(exc)) from None
 
 
-def _scan(run, out_path, args, run_file, log):
+def _scan(run, out_path, args, run_file, log, backend=None, shard=None):
+    from tba.cluster import ClusterError  # dask itself is imported only for a cluster
+
+    workers = None if backend is not None else _workers(args.workers)
     try:
-        return run_scan(run, out_path, workers=_workers(args.workers), force=args.force,
-                        log=log, run_file=run_file)
-    except StoreError as exc:
+        return run_scan(run, out_path, workers=workers, backend=backend, shard=shard,
+                        force=args.force, log=log, run_file=run_file)
+    except (StoreError, ClusterError) as exc:
+        raise UsageError(str(exc)) from None
+
+
+def _shard(text):
+    if text is None:
+        return None
+    try:
+        return parse_shard(text)
+    except ValueError as exc:
+        raise UsageError(f"argument --shard: {exc}") from None
+
+
+def _backend(args):
+    """--scheduler ADDRESS or --cluster local:N: a `tba.cluster.DaskBackend` (checks that dask
+    can be imported, before any file is touched); None for local worker processes."""
+    if args.scheduler is None and args.cluster is None:
+        return None
+    from tba.cluster import ClusterError, DaskBackend, parse_cluster
+
+    try:
+        if args.cluster is not None:
+            try:
+                n = parse_cluster(args.cluster)
+            except ValueError as exc:
+                raise UsageError(f"argument --cluster: {exc}") from None
+            return DaskBackend(local_workers=n)
+        if not args.scheduler.strip():
+            raise UsageError("argument --scheduler: expected an address (tcp://host:port) or "
+                             "a scheduler file")
+        return DaskBackend(args.scheduler)
+    except ClusterError as exc:
         raise UsageError(str(exc)) from None
 
 
 def cmd_run(args, out):
     """Run a scan from a run file into its HDF5 store; resumes an interrupted one."""
     run = _load_run(args.runfile)
-    out_path = Path(args.out).resolve() if args.out else Path(run.output)
+    shard = _shard(args.shard)
+    if args.out:
+        out_path = Path(args.out).resolve()
+    elif shard is not None:  # never the full store's name: a shard holds only its chunks
+        full = Path(run.output)
+        out_path = full.with_name(f"{full.stem}.part-{shard.index}-of-{shard.count}{full.suffix}")
+    else:
+        out_path = Path(run.output)
     run = run.with_output(out_path)
+    backend = _backend(args)
     if args.dry_run:
         chunks = run.chunks()
         print(run.to_json(), file=out)
         print(f"{run.n_points} points in {len(chunks)} chunks of up to {run.chunk_size} radii; "
               f"output {out_path}", file=out)
+        if shard is not None:
+            mine = shard.chunks(run)
+            pairs = len(shard.branch_pairs(run)) if run.branch_points else 0
+            print(f"shard {shard.label}: {len(mine)} chunks ({sum(c.size for c in mine)} points) "
+                  f"and {pairs} branch points", file=out)
         return 0
-    _scan(run, out_path, args, Path(args.runfile).resolve(), sys.stderr)
+    _scan(run, out_path, args, Path(args.runfile).resolve(), sys.stderr, backend, shard)
+    return 0
+
+
+def cmd_merge(args, out):
+    """Combine shard files (or stores) of one run into a full store."""
+    from tba.merge import merge_stores
+
+    try:
+        summary = merge_stores(args.files, args.out, force=args.force)
+    except StoreError as exc:
+        raise UsageError(str(exc)) from None
+    s = summary
+    branch = f" and {s.branch_present} of {s.branch_total} branch points" if s.branch_total else ""
+    state = "complete" if s.complete else "incomplete"
+    print(f"tba merge: wrote {s.path} from {len(s.files)} file(s): {s.chunks_present} of "
+          f"{s.chunks_total} chunks{branch}; {state}", file=sys.stderr)
+    for line in s.missing:
+        print(f"tba merge: missing: {line}", file=sys.stderr)
+    if not s.complete:
+        print(f"tba merge: run tba run RUNFILE --out {s.path} to compute what is missing "
+              f"(or merge the missing shards into it)", file=sys.stderr)
     return 0
 
 
@@ -280,7 +350,10 @@ def cmd_export(args, out):
     finally:
         if target is not out:
             target.close()
-    if skipped:
+    if data.shard is not None:
+        print(f"tba export: {args.file} is shard {data.shard.label} of a run (partial): only "
+              f"its points; combine the shards with tba merge", file=sys.stderr)
+    elif skipped:
         print(f"tba export: {skipped} points not computed yet were left out", file=sys.stderr)
     return 0
 
@@ -360,13 +433,38 @@ def build_parser():
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("runfile", metavar="RUNFILE", help="TOML run file (see runs/)")
     run.add_argument("--out", metavar="FILE", help="HDF5 output (default: the run file's output, "
-                     "relative to the run file's directory)")
-    run.add_argument("--workers", metavar="N", help="worker processes (default: the usable cores)")
+                     "relative to the run file's directory; with --shard I/N that name with "
+                     ".part-I-of-N before the suffix)")
+    where = run.add_mutually_exclusive_group()
+    where.add_argument("--workers", metavar="N",
+                       help="worker processes on this machine (default: the usable cores)")
+    where.add_argument("--scheduler", metavar="ADDRESS",
+                       help="run the chunks on an existing dask.distributed cluster: the "
+                       "scheduler's address (tcp://host:8786) or its scheduler file; needs "
+                       "the cluster extra (pip install 'tba-flow[cluster]')")
+    where.add_argument("--cluster", metavar="local:N",
+                       help="start a dask LocalCluster of N single-threaded worker processes "
+                       "for this run (needs the cluster extra)")
+    run.add_argument("--shard", metavar="I/N",
+                     help="compute only shard I of N (every N-th chunk, 1 <= I <= N) into a shard "
+                     "file, for job arrays; combine the shards with tba merge")
     run.add_argument("--force", action="store_true",
                      help="replace an output file written by a different run or version")
     run.add_argument("--dry-run", action="store_true",
                      help="print the resolved run and the number of chunks, compute nothing")
     run.set_defaults(func=cmd_run)
+    merge = sub.add_parser("merge", help="combine the shards of a run into one file",
+                           description="Merge shard files of one run (tba run --shard I/N), or "
+                           "partial stores of it, into a full store. Files of different runs or "
+                           "tba versions, and chunks stored twice with different numbers, are "
+                           "refused (exit 2). An existing --out of the same run is merged in; "
+                           "what is still missing is listed, and tba run RUNFILE --out FILE "
+                           "computes it.")
+    merge.add_argument("files", nargs="+", metavar="FILE", help="shard files (or stores) of one run")
+    merge.add_argument("--out", required=True, metavar="FILE", help="the merged HDF5 file")
+    merge.add_argument("--force", action="store_true",
+                       help="replace an --out that is a file of another run, or a shard")
+    merge.set_defaults(func=cmd_merge)
     report = sub.add_parser("report", help="summary of a scan file",
                             description="Progress, points per status, worst error estimate, "
                             "flow residuals and the last real point per alpha > 0.")
@@ -414,6 +512,9 @@ def main(argv=None):
     except ScanInterrupted as exc:
         print(f"tba: {exc}", file=sys.stderr)
         return 130
+    except ScanFailed as exc:
+        print(f"tba: error: {exc}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("tba: interrupted; the points printed above are complete", file=sys.stderr)
         return 130

@@ -115,7 +115,10 @@ def plot_store(data, state="ground"):
                 ax.xaxis.set_minor_formatter(FuncFormatter(
                     lambda x, _: f"{x:g}" if f"{x:.0e}"[0] in "235" else ""))
             ax.grid(True, alpha=0.3)
-    fig.suptitle(data.attrs.get("title", data.run.name), fontsize="medium")
+    title = data.attrs.get("title", data.run.name)
+    if data.shard is not None:
+        title += f" (shard {data.shard.label}: partial, its points only)"
+    fig.suptitle(title, fontsize="medium")
     return fig
 
 

@@ -192,9 +192,18 @@ def _format_report(data):
                  f"({R.min():.4g} .. {R.max():.4g}) x {len(data.state)} state(s) = "
                  f"{run.n_points} points; tol {run.tol:g}")
     done = data.progress["done"].astype(bool)
+    if data.shard is not None:
+        owned = data.owned
+        mine = int(owned.sum())
+        state = ("all done" if done[owned].all() else
+                 f"{int(done[owned].sum())} done: run the same tba run --shard again to resume")
+        lines.append(f"  PARTIAL: shard {data.shard.label} of run {attrs.get('run_id', '')[:12]}; it "
+                     f"holds only its {mine} of the run's {done.size} chunks ({state}) and its "
+                     f"branch points; combine the shards with tba merge")
     lines.append(f"  chunks: {int(done.sum())} of {done.size} done"
-                 + (" (complete)" if done.all() else " (incomplete: run the same tba run again "
-                                                      "to resume)"))
+                 + (" (complete)" if done.all() else
+                    " (partial: a shard)" if data.shard is not None else
+                    " (incomplete: run the same tba run again to resume)"))
     lines.append("")
 
     status = data["status"]
@@ -281,6 +290,8 @@ def _branch_section(data):
         if missing:
             why = ("this file has schema version 1, which stored no branch points"
                    if data.schema_version < 2 else
+                   f"this is shard {data.shard.label}: the other shards compute the rest"
+                   if data.shard is not None else
                    "scan.branch_points = false, or tba run has not finished: run it again "
                    "with branch_points = true to add them")
             lines.append(f"  {missing} branch point(s) not computed ({why})")

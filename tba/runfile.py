@@ -287,6 +287,58 @@ class RunSpec:
         return RunSpec(**{**self.__dict__, "output": None if output is None else str(output)})
 
 
+@dataclass(frozen=True)
+class Shard:
+    """Shard ``index`` of ``count`` (1 <= index <= count) of a run, for job arrays without a
+    scheduler: it owns every ``count``-th chunk, starting with chunk ``index - 1``, and the
+    (model, alpha) branch points whose row-major number ``model * len(alphas) + alpha`` is
+    ``index - 1`` modulo ``count``.
+
+    Round robin rather than contiguous blocks: chunks of one curve lie next to each other in
+    the chunk table, and neighbouring curves cost about the same, so every shard gets a
+    fair share of the cheap and the expensive curves (E8 next to the free fermion, points
+    past a branch point next to easy ones). Like the chunks, the split is a pure function of
+    the resolved run and (index, count), so the shards of one run never overlap and together
+    hold every chunk and every branch point exactly once."""
+
+    index: int
+    count: int
+
+    def __post_init__(self):
+        if not (isinstance(self.index, int) and isinstance(self.count, int)
+                and 1 <= self.index <= self.count):
+            raise ValueError(f"shard: expected I/N with 1 <= I <= N, got {self.index}/{self.count}")
+
+    @property
+    def label(self):
+        return f"{self.index}/{self.count}"
+
+    def owns(self, chunk):
+        return chunk.index % self.count == self.index - 1
+
+    def chunks(self, run):
+        """The chunks of ``run`` that belong to this shard, in chunk-table order."""
+        return [c for c in run.chunks() if self.owns(c)]
+
+    def owns_pair(self, run, model, alpha):
+        return (model * len(run.alphas) + alpha) % self.count == self.index - 1
+
+    def branch_pairs(self, run):
+        return [(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))
+                if self.owns_pair(run, m, a)]
+
+
+def parse_shard(text):
+    """``I/N`` (the form of ``tba run --shard``) -> `Shard`; ValueError naming the problem."""
+    index, sep, count = str(text).strip().partition("/")
+    try:
+        if not sep:
+            raise ValueError
+        return Shard(int(index), int(count))
+    except ValueError:
+        raise ValueError(f"expected I/N with integers 1 <= I <= N (shard I of N), got {text!r}") from None
+
+
 def identity_of(d):
     """The identity part of a resolved-run dict (`RunSpec.identity`)."""
     out = {k: d.get(k) for k in IDENTITY_KEYS}

@@ -12,17 +12,21 @@ and no higher-spin factor, the undeformed ground state is solved at R' = R + alp
 prediction E_0(R', 0) and the flow residual |E(R, alpha) - E_0(R', 0)| are stored (the
 relation E(R, alpha) = E_0(R + alpha E, 0) is exact for the TTbar-deformed ground state).
 
-Branch points (``branch_points = true``, the default): after the chunks, the driver computes
-the ground state's branch point R_c(alpha) once per model and alpha (`solve_branch_point`:
-`tba.flow.branch_point` at the run's tol, a few undeformed solves, 0.01-1 s each) and
-writes each as it is found. alpha <= 0 has none; with higher-spin factors they are not
+Branch points (``branch_points = true``, the default): the ground state's branch point
+R_c(alpha) once per model and alpha (`solve_branch_point`: `tba.flow.branch_point` at the
+run's tol, a few undeformed solves, 0.01-1 s each), each written as it is found. Local
+backends compute them in the driver after the chunks; a dask cluster gets them as tasks
+at a lower priority than the chunks. alpha <= 0 has none; with higher-spin factors they are not
 applicable; an exception is stored as "failed" with its message and never loses the scan.
 Each is a function of (model, alpha, tol) alone, computed from scratch, so resumed runs
 agree bit for bit; stored ones are never computed again.
 
-`run_scan` is the driver: the only writer of the store. Chunks go to a
-``ProcessPoolExecutor`` (one task per chunk; in-process when one worker suffices); each
-finished chunk is written and flushed as it arrives.
+`run_scan` is the driver: the only writer of the store. Where the chunks are computed is a
+`Backend`: `InProcess` (one worker), `ProcessPool` (local processes, one task per chunk) or
+`tba.cluster.DaskBackend` (an existing dask.distributed cluster, or a local one); every
+backend hands back results as they finish, and the driver writes and flushes each as it
+arrives. A shard (`tba.runfile.Shard`, ``tba run --shard I/N``) computes every N-th chunk
+into a shard file; `tba.merge` combines the shards.
 """
 
 import contextlib
@@ -34,13 +38,15 @@ import sys
 import threading
 import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 
 from tba.deformation import NO_DEFORMATION
 from tba.flow import branch_point
 from tba.result import STATUS_CODES
+from tba.runfile import Chunk, Shard
 from tba.solver import solve_ground_state
 from tba.storage import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
                          FLOW_NOT_APPLICABLE, FLOW_OFF, NOT_COMPUTED, POINT_VARIABLES,
@@ -206,12 +212,140 @@ def default_workers():
         return os.cpu_count() or 1
 
 
+# -- backends: where chunks are computed -------------------------------------------------------
+
+@dataclass
+class ChunkDone:
+    """A solved chunk, as `solve_chunk` returns it."""
+
+    chunk: Chunk
+    values: dict
+    seconds: float
+
+
+@dataclass
+class BranchDone:
+    """A branch point, as `solve_branch_point` returns it."""
+
+    model: int
+    alpha: int
+    values: dict
+
+
+@dataclass
+class TaskFailed:
+    """A chunk whose task could not be completed (a cluster gave up on it); ``what`` names
+    the chunk, ``error`` says why, on one line."""
+
+    what: str
+    error: str
+    chunk: Chunk | None = None
+
+
+def describe_chunk(run, chunk):
+    """``chunk 5 (free-fermion, alpha = 0.5, R = 0.3 .. 0.42)``: for messages."""
+    state = f", {run.states[chunk.state]}" if len(run.states) > 1 else ""
+    return (f"chunk {chunk.index} ({run.models[chunk.model].label}, alpha = "
+            f"{run.alphas[chunk.alpha]:g}, R = {run.radii[chunk.radius_start]:.6g} .. "
+            f"{run.radii[chunk.radius_stop - 1]:.6g}{state})")
+
+
+def one_line(exc):
+    """``Type: first line of the message``."""
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+    return f"{type(exc).__name__}: {text}".rstrip(": ")
+
+
+class Backend:
+    """Where the chunks (and branch points) of a scan are computed.
+
+    `run_scan` stays the only writer of the store; a backend only computes and hands the
+    results back in any order, as `ChunkDone`, `BranchDone` or `TaskFailed`. Any backend
+    gives the same numbers, because a chunk is a pure function of (run, chunk) and a branch
+    point of (run, model, alpha). Life cycle: `start` (only when there is something to
+    compute), `compute` (a generator, closed early on Ctrl-C), `close` (always).
+    """
+
+    #: worker processes (for the log line and the store's history), known after `start`
+    workers = 1
+
+    def start(self):
+        pass
+
+    def describe(self):
+        return f"{self.workers} worker{'s' if self.workers != 1 else ''}"
+
+    def compute(self, run, chunks, branch_pairs):
+        raise NotImplementedError
+
+    def close(self):
+        pass
+
+
+def _branch_points_here(run, pairs):
+    for m, a in pairs:
+        yield BranchDone(m, a, solve_branch_point(run, m, a))
+
+
+class InProcess(Backend):
+    """One chunk after the other in the driver's process, then the branch points."""
+
+    def compute(self, run, chunks, branch_pairs):
+        for chunk in chunks:
+            yield ChunkDone(*solve_chunk(run, chunk))
+        yield from _branch_points_here(run, branch_pairs)
+
+
+class ProcessPool(Backend):
+    """A ``ProcessPoolExecutor`` of spawned processes on this machine (one task per chunk,
+    one BLAS thread per worker); the branch points are computed in the driver after the
+    chunks (a few undeformed solves each).
+
+    The first chunk is still solved in the driver, before the pool starts: on a fresh
+    install that compiles the numba kernels once and caches them on disk, instead of once
+    per worker at the same time.
+    """
+
+    def __init__(self, workers):
+        self.workers = int(workers)
+
+    def compute(self, run, chunks, branch_pairs):
+        if chunks:
+            yield ChunkDone(*solve_chunk(run, chunks[0]))
+        rest = chunks[1:]
+        if rest:
+            workers = min(self.workers, len(rest))
+            executor = ProcessPoolExecutor(max_workers=workers,
+                                           mp_context=multiprocessing.get_context("spawn"),
+                                           initializer=_worker_init, initargs=(os.getpid(),))
+            try:
+                with _single_threaded_children(), _children_ignore_ctrl_c():  # workers start on submit
+                    futures = {executor.submit(solve_chunk, run, chunk) for chunk in rest}
+                while futures:
+                    finished, futures = wait(futures, return_when=FIRST_COMPLETED)
+                    for future in finished:
+                        yield ChunkDone(*future.result())
+            except BaseException:  # Ctrl-C, an error, or the generator closed early
+                _stop(executor)
+                raise
+            executor.shutdown(wait=True)
+        yield from _branch_points_here(run, branch_pairs)
+
+
+def local_backend(workers, pending):
+    """The backend for ``workers`` processes on this machine (None: the usable cores),
+    never more than there are chunks to compute."""
+    workers = default_workers() if workers is None else int(workers)
+    workers = max(1, min(workers, pending))
+    return InProcess() if workers == 1 else ProcessPool(workers)
+
+
 # -- the driver ---------------------------------------------------------------------------------
 
 @dataclass
 class ScanSummary:
     path: str
-    chunks_total: int
+    chunks_total: int  # of this file: the run's, or the shard's
     chunks_before: int  # already done when this invocation started
     chunks_computed: int  # computed by this invocation
     points_total: int
@@ -219,6 +353,8 @@ class ScanSummary:
     workers: int
     branch_points_pending: int = 0  # to compute in this invocation (0 with branch_points = false)
     branch_points_computed: int = 0
+    shard: Shard | None = None
+    failed: list = field(default_factory=list)  # TaskFailed of this invocation
 
     @property
     def chunks_complete(self):
@@ -228,19 +364,40 @@ class ScanSummary:
     def complete(self):
         return self.chunks_complete and self.branch_points_computed >= self.branch_points_pending
 
+    def saved(self):
+        """What the file holds, for messages: ``40 of 60 chunks``."""
+        s = self
+        text = f"{s.chunks_before + s.chunks_computed} of {s.chunks_total} chunks"
+        if s.chunks_complete and s.branch_points_pending:
+            text = (f"all {s.chunks_total} chunks and {s.branch_points_computed} of "
+                    f"{s.branch_points_pending} pending branch points")
+        elif s.branch_points_computed:
+            text += f" and {s.branch_points_computed} of {s.branch_points_pending} pending branch points"
+        return text + (f" of shard {s.shard.label}" if s.shard is not None else "")
+
 
 class ScanInterrupted(Exception):
     """Ctrl-C during a scan; the finished chunks are in the store."""
 
     def __init__(self, summary):
         self.summary = summary
-        s = summary
-        saved = f"{s.chunks_before + s.chunks_computed} of {s.chunks_total} chunks"
-        if s.chunks_complete and s.branch_points_pending:
-            saved = (f"all {s.chunks_total} chunks and {s.branch_points_computed} of "
-                     f"{s.branch_points_pending} pending branch points")
-        super().__init__(f"interrupted; {saved} are saved in {s.path}; run the same command "
-                         f"again to resume")
+        super().__init__(f"interrupted; {summary.saved()} are saved in {summary.path}; run the "
+                         f"same command again to resume")
+
+
+class ScanFailed(Exception):
+    """Tasks that failed (on a cluster: a chunk whose workers kept dying until the scheduler
+    gave up on it, or an exception in a task). Everything else was computed and saved;
+    running the same command again retries only what is missing."""
+
+    def __init__(self, summary):
+        self.summary = summary
+        failed = summary.failed
+        first = failed[0]
+        more = f" (and {len(failed) - 1} more)" if len(failed) > 1 else ""
+        super().__init__(f"{_count(len(failed), 'task')} failed: {first.what}: {first.error}{more}; "
+                         f"{summary.saved()} are saved in {summary.path}; run the same command "
+                         f"again to retry the missing ones")
 
 
 def _progress_bar(total, desc, enabled):
@@ -252,122 +409,138 @@ def _progress_bar(total, desc, enabled):
                 disable=None if enabled is None else not enabled, dynamic_ncols=True)
 
 
-def run_scan(run, path=None, *, workers=None, force=False, progress=None, log=None,
-             run_file=None):
+def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=False,
+             progress=None, log=None, run_file=None):
     """Compute every chunk of ``run`` not yet in the store at ``path`` (default ``run.output``),
     then the branch points not yet stored (``run.branch_points``).
 
     Resumes an existing store of the same run; never overwrites the file of another run
-    unless ``force`` (`tba.storage.StoreError`). ``workers`` defaults to the usable cores;
-    ``progress`` None shows a bar on a terminal only. Lines about what is done go to ``log``
-    (default stderr). Returns a `ScanSummary`; Ctrl-C raises `ScanInterrupted`.
+    unless ``force`` (`tba.storage.StoreError`). Where the chunks are computed: ``backend``
+    (a `Backend`, e.g. `tba.cluster.DaskBackend`), else ``workers`` processes on this
+    machine (default: the usable cores). ``shard`` (a `tba.runfile.Shard`) computes only
+    that shard's chunks and branch points into a shard file. ``progress`` None shows a bar
+    on a terminal only. Lines about what is done go to ``log`` (default stderr). Returns a
+    `ScanSummary`; Ctrl-C raises `ScanInterrupted`, chunks a cluster gave up on
+    `ScanFailed` (after everything else is saved).
 
-    Workers are spawned processes: a script calling this with ``workers > 1`` needs the
-    usual ``if __name__ == "__main__":`` guard.
+    Local workers are spawned processes: a script calling this with ``workers > 1`` needs
+    the usual ``if __name__ == "__main__":`` guard.
     """
     log = sys.stderr if log is None else log
     path = run.output if path is None else path
     if path is None:
         raise ValueError("no output path: give one in the run file or as an argument")
+    if backend is not None and workers is not None:
+        raise ValueError("workers: give either workers or backend, not both")
     t0 = time.perf_counter()
-    done, created, note, branch_status = prepare_store(path, run, force=force, run_file=run_file)
-    if note:
-        print(f"tba run: note: {note}", file=log)
-    chunks = run.chunks()
-    pending = [c for c in chunks if not done[c.index]]
-    branch_pending = []
-    if run.branch_points:
-        branch_pending = [(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))
-                          if branch_status[m, a] == NOT_COMPUTED]
-    workers = default_workers() if workers is None else int(workers)
-    workers = max(1, min(workers, len(pending)))
-    summary = ScanSummary(str(path), len(chunks), len(chunks) - len(pending), 0, run.n_points,
-                          0.0, workers, len(branch_pending))
-    if not pending and not branch_pending:
-        print(f"tba run: {path} is complete ({len(chunks)} chunks); nothing to compute", file=log)
-        return summary
-    verb = "writing" if created else "resuming"
-    if pending:
-        print(f"tba run: {verb} {path}: {len(pending)} of {len(chunks)} chunks to compute, "
-              f"{workers} worker{'s' if workers > 1 else ''}", file=log, flush=True)
-    else:
-        print(f"tba run: {verb} {path}: all {len(chunks)} chunks are done; "
-              f"{_count(len(branch_pending), 'branch point')} to compute", file=log, flush=True)
-    store = open_store(path, run)
-    bar = None
+    started, summary = False, None
     try:
-        store.begin_invocation(workers, len(pending), len(branch_pending))
-        try:
-            if pending:
-                bar = _progress_bar(sum(c.size for c in pending), run.name, progress)
-                results = _results(run, pending, workers)
-                try:
-                    for chunk, values, seconds in results:
-                        store.write_chunk(chunk, values, seconds)
-                        summary.chunks_computed += 1
-                        if bar is not None:
-                            bar.update(chunk.size)
-                finally:
-                    results.close()  # stops the worker pool if we leave early
-                if bar is not None:
-                    bar.close()
-                    bar = None
-            for m, a in branch_pending:
-                values = solve_branch_point(run, m, a)
-                store.write_branch_point(m, a, values)
-                summary.branch_points_computed += 1
-                if values["status"] == BP_FAILED:
-                    print(f"tba run: branch point of {run.models[m].label} at alpha = "
-                          f"{run.alphas[a]:g} failed (stored as failed): {values['message']}",
-                          file=log, flush=True)
-        except KeyboardInterrupt:
-            store.end_invocation(interrupted=True)
-            summary.seconds = time.perf_counter() - t0
-            raise ScanInterrupted(summary) from None
-        store.end_invocation()
+        if backend is not None and (force or not Path(path).exists()):
+            # a new file: reach the cluster first, so that a wrong address leaves no file behind
+            backend.start()
+            started = True
+        done, created, note, branch_status = prepare_store(path, run, force=force,
+                                                           run_file=run_file, shard=shard)
+        if note:
+            print(f"tba run: note: {note}", file=log)
+        mine = run.chunks() if shard is None else shard.chunks(run)
+        pending = [c for c in mine if not done[c.index]]
+        branch_pending = []
+        if run.branch_points:
+            pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
+                     if shard is None else shard.branch_pairs(run))
+            branch_pending = [(m, a) for m, a in pairs if branch_status[m, a] == NOT_COMPUTED]
+        if backend is None:
+            backend = local_backend(workers, len(pending))
+        points = sum(c.size for c in mine)
+        summary = ScanSummary(str(path), len(mine), len(mine) - len(pending), 0, points, 0.0,
+                              backend.workers, len(branch_pending), shard=shard)
+        what = "" if shard is None else f" (shard {shard.label})"
+        if not pending and not branch_pending:
+            print(f"tba run: {path}{what} is complete ({len(mine)} chunks); nothing to compute",
+                  file=log)
+            return summary
+        if not started:
+            backend.start()
+            started = True
+        summary.workers = backend.workers
+        verb = "writing" if created else "resuming"
+        if pending:
+            print(f"tba run: {verb} {path}{what}: {len(pending)} of {len(mine)} chunks to compute, "
+                  f"{backend.describe()}", file=log, flush=True)
+        else:
+            print(f"tba run: {verb} {path}{what}: all {len(mine)} chunks are done; "
+                  f"{_count(len(branch_pending), 'branch point')} to compute", file=log, flush=True)
+        _drive(run, path, backend, pending, branch_pending, summary, progress, log)
+    except KeyboardInterrupt:
+        if summary is None:  # before anything was computed
+            raise
+        summary.seconds = time.perf_counter() - t0
+        raise ScanInterrupted(summary) from None
     finally:
-        if bar is not None:
-            bar.close()
-        store.close()
+        if started:
+            backend.close()
     summary.seconds = time.perf_counter() - t0
+    if summary.failed:
+        raise ScanFailed(summary)
     extra = ""
     if summary.branch_points_computed:
         extra = f" and {_count(summary.branch_points_computed, 'branch point')}"
     off = "" if run.branch_points else " (branch points off: scan.branch_points = false)"
+    merge = "" if shard is None else "; combine the shards with tba merge"
     print(f"tba run: computed {summary.chunks_computed} chunks ({summary.chunks_before} were "
-          f"already done){extra} in {summary.seconds:.1f} s; {path} is complete{off}",
+          f"already done){extra} in {summary.seconds:.1f} s; {path}{what} is complete{off}{merge}",
           file=log, flush=True)
     return summary
 
 
+def _drive(run, path, backend, pending, branch_pending, summary, progress, log):
+    """Write what ``backend`` computes as it arrives: the driver is the only writer."""
+    store = open_store(path, run)
+    bar = None
+    try:
+        store.begin_invocation(summary.workers, len(pending), len(branch_pending),
+                               executor=backend.describe())
+        try:
+            bar = _progress_bar(sum(c.size for c in pending), run.name, progress) if pending else None
+            results = backend.compute(run, pending, branch_pending)
+            try:
+                for item in results:
+                    if isinstance(item, ChunkDone):
+                        store.write_chunk(item.chunk, item.values, item.seconds)
+                        summary.chunks_computed += 1
+                        if bar is not None:
+                            bar.update(item.chunk.size)
+                    elif isinstance(item, BranchDone):
+                        m, a, values = item.model, item.alpha, item.values
+                        store.write_branch_point(m, a, values)
+                        summary.branch_points_computed += 1
+                        if values["status"] == BP_FAILED:
+                            print(f"tba run: branch point of {run.models[m].label} at alpha = "
+                                  f"{run.alphas[a]:g} failed (stored as failed): "
+                                  f"{values['message']}", file=log, flush=True)
+                    else:
+                        summary.failed.append(item)
+                        if len(summary.failed) <= _FAILURES_SHOWN:
+                            print(f"tba run: {item.what} failed: {item.error}", file=log, flush=True)
+                        elif len(summary.failed) == _FAILURES_SHOWN + 1:
+                            print("tba run: more tasks failed (counted at the end)", file=log,
+                                  flush=True)
+            finally:
+                results.close()  # stops the workers if we leave early
+        except KeyboardInterrupt:
+            store.end_invocation(interrupted=True)
+            raise
+        store.end_invocation(failed=[f"{f.what}: {f.error}" for f in summary.failed])
+    finally:
+        if bar is not None:
+            bar.close()
+        store.close()
+
+
+#: failures printed as they happen (a broken worker installation fails every task)
+_FAILURES_SHOWN = 5
+
+
 def _count(n, word):
     return f"{n} {word}{'' if n == 1 else 's'}"
-
-
-def _results(run, pending, workers):
-    """Yield (chunk, values, seconds) as chunks finish.
-
-    With several workers the first chunk is still solved here, before the pool starts: on a
-    fresh install that compiles the numba kernels once and caches them on disk, instead of
-    once per worker at the same time.
-    """
-    if workers == 1 or len(pending) == 1:
-        for chunk in pending:
-            yield solve_chunk(run, chunk)
-        return
-    yield solve_chunk(run, pending[0])
-    pending = pending[1:]
-    workers = min(workers, len(pending))
-    executor = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
-                                   initializer=_worker_init, initargs=(os.getpid(),))
-    try:
-        with _single_threaded_children(), _children_ignore_ctrl_c():  # workers start on submit
-            futures = {executor.submit(solve_chunk, run, chunk) for chunk in pending}
-        while futures:
-            finished, futures = wait(futures, return_when=FIRST_COMPLETED)
-            for future in finished:
-                yield future.result()
-    except BaseException:
-        _stop(executor)
-        raise
-    executor.shutdown(wait=True)

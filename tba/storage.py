@@ -45,6 +45,23 @@ A missing value is NaN (or "" / 0) together with a status code that says why
 (``status_legend``, ``flow_status_legend`` and the CF ``flag_values``/``flag_meanings``
 of the status variables).
 
+Shard files (``tba run --shard I/N``, job arrays without a scheduler) have the schema
+``"tba-flow scan shard"`` (so that a tba that does not know them refuses them with one line
+instead of failing on a missing data set) and the same version and root attributes, plus
+``shard`` ("I/N"), ``shard_index`` and ``shard_count``. They hold only their own points,
+so that N shards of a large run take the disk of one full store, not N::
+
+    /shard_points/{energy, error, ..., flow_status}   (point) the shard's points, chunk after
+                               chunk in chunk-table order, radii ascending inside a chunk
+    /shard_points/{model_index, alpha_index, radius_index, state_index}   (point) where each
+                               point lies in the full (model, alpha, radius, state) grid
+    /progress/owned (chunk)    1 for the chunks of this shard (`tba.runfile.Shard`)
+
+Everything else (scales, the full chunk table, done mask, /branch_points with the pairs of
+other shards left not computed) is laid out as in a full store. `read_store` expands a
+shard into full arrays (other shards' points "not computed"), so reports, plots and exports
+work on it and say it is partial; `tba.merge` combines shards into a full store.
+
 Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it. Files of schema 1 are
 still read (their branch points count as not computed) but never resumed.
 
@@ -70,9 +87,11 @@ import h5py
 import numpy as np
 
 from tba.result import STATUS_CODES
-from tba.runfile import RunSpec, differing_keys, resolve_run
+from tba.runfile import RunSpec, Shard, differing_keys, resolve_run
 
 SCHEMA = "tba-flow scan"
+#: schema of a shard file (one shard of a run, `tba.runfile.Shard`)
+SHARD_SCHEMA = "tba-flow scan shard"
 SCHEMA_VERSION = 2
 #: schema versions `read_store` understands (only SCHEMA_VERSION is ever resumed)
 READABLE_VERSIONS = (1, 2)
@@ -139,6 +158,12 @@ LAYOUT = ("data sets (model, alpha, radius, state): energy error status iteratio
           "table and done mask; /branch_points (model, alpha): branch_radius "
           "branch_radius_error energy energy_error effective_radius status message")
 
+SHARD_LAYOUT = ("shard of a run: /shard_points (point): energy error status iterations message "
+                "flow_radius flow_prediction flow_error flow_residual flow_status and "
+                "model_index alpha_index radius_index state_index (the point's place in the "
+                "full grid); /progress: chunk table, done mask, owned mask; /branch_points "
+                "(model, alpha) as in a full store, this shard's pairs only")
+
 #: messages are stored as fixed-length UTF-8 strings, so that writing a chunk only overwrites
 #: bytes at fixed places in the file and never changes its metadata (see `Store.write_chunk`)
 MESSAGE_BYTES = 256
@@ -186,6 +211,18 @@ BRANCH_VARIABLES = {
 }
 BRANCH_DIMS = ("model", "alpha")
 PROGRESS_FIELDS = ("model_index", "alpha_index", "state_index", "radius_start", "radius_stop")
+#: index data sets of /shard_points: where each of a shard's points lies in the full grid
+SHARD_INDEX = ("model_index", "alpha_index", "radius_index", "state_index")
+
+
+def shard_points(run, shard):
+    """{chunk index: offset of its first point in /shard_points} and the number of points
+    of the shard: its chunks one after the other, in chunk-table order."""
+    offsets, n = {}, 0
+    for c in shard.chunks(run):
+        offsets[c.index] = n
+        n += c.size
+    return offsets, n
 
 
 class StoreError(Exception):
@@ -257,10 +294,10 @@ def _as_stored(kind, values):
     return np.asarray(values, dtype=kind)
 
 
-def _write_layout(f, run, run_file, models_info):
+def _write_layout(f, run, run_file, models_info, shard=None):
     s = h5py.string_dtype()  # variable-length: coordinates and fixed metadata only
     f.attrs.update({
-        "schema": SCHEMA, "schema_version": SCHEMA_VERSION,
+        "schema": SCHEMA if shard is None else SHARD_SCHEMA, "schema_version": SCHEMA_VERSION,
         "package": "tba-flow", "package_version": package_version(), "git_commit": git_commit(),
         "created": _now(), "title": run.description or run.name,
         "run": run.to_json(), "run_id": run.run_id, "run_file": str(run_file or ""),
@@ -268,6 +305,9 @@ def _write_layout(f, run, run_file, models_info):
         "status_legend": _legend(STATUS_MEANINGS), "flow_status_legend": _legend(FLOW_MEANINGS),
         "branch_point_status_legend": _legend(BRANCH_MEANINGS), "layout": LAYOUT,
     })
+    if shard is not None:
+        f.attrs.update({"shard": shard.label, "shard_index": shard.index, "shard_count": shard.count,
+                        "layout": SHARD_LAYOUT})
     scales = {
         "model": f.create_dataset("model", data=np.array([m.label for m in run.models], dtype=object),
                                   dtype=s),
@@ -291,15 +331,10 @@ def _write_layout(f, run, run_file, models_info):
     couplings.attrs["long_name"] = "model coupling (sinh-Gordon B; NaN: the model has none)"
     for ds in (names, couplings):
         ds.dims[0].attach_scale(scales["model"])
-    for name, (kind, fill, attrs) in POINT_VARIABLES.items():
-        ds = f.create_dataset(name, data=_full(run.shape, kind, fill))
-        ds.attrs.update(attrs)
-        if name == "status":
-            ds.attrs.update(_flags(STATUS_MEANINGS))
-        elif name == "flow_status":
-            ds.attrs.update(_flags(FLOW_MEANINGS))
-        for i, dim in enumerate(DIMS):
-            ds.dims[i].attach_scale(scales[dim])
+    if shard is None:
+        _write_points(f, run.shape, scales, DIMS)
+    else:
+        _write_shard_points(f, run, shard)
     bp = f.create_group("branch_points")
     bp.attrs.update({
         "long_name": "branch point R_c(alpha) of the ground state (tba.flow.branch_point)",
@@ -334,10 +369,49 @@ def _write_layout(f, run, run_file, models_info):
         "invocation of tba run that computed the chunk (index into history, from 1; 0: not yet)"
     g.create_dataset("seconds", data=np.full(len(chunks), np.nan)).attrs["long_name"] = \
         "wall time of the chunk in its worker"
-    for name in (*table, "done", "invocation", "seconds"):
+    extra = ()
+    if shard is not None:
+        g.create_dataset("owned", data=np.array([shard.owns(c) for c in chunks], dtype="u1")) \
+            .attrs["long_name"] = f"1 for the chunks of this shard ({shard.label})"
+        extra = ("owned",)
+    for name in (*table, "done", "invocation", "seconds", *extra):
         g[name].dims[0].attach_scale(scale)
         if name in table:
             g[name].attrs["long_name"] = f"chunk table: {name.replace('_', ' ')}"
+
+
+def _write_points(f, shape, scales, dims):
+    for name, (kind, fill, attrs) in POINT_VARIABLES.items():
+        ds = f.create_dataset(name, data=_full(shape, kind, fill))
+        ds.attrs.update(attrs)
+        if name == "status":
+            ds.attrs.update(_flags(STATUS_MEANINGS))
+        elif name == "flow_status":
+            ds.attrs.update(_flags(FLOW_MEANINGS))
+        for i, dim in enumerate(dims):
+            ds.dims[i].attach_scale(scales[dim])
+
+
+def _write_shard_points(f, run, shard):
+    """/shard_points: the shard's points only (see the module docstring)."""
+    offsets, n = shard_points(run, shard)
+    g = f.create_group("shard_points")
+    g.attrs["long_name"] = (f"the points of shard {shard.label}: its chunks one after the other "
+                            f"in chunk-table order, radii ascending inside a chunk")
+    point = g.create_dataset("point", data=np.arange(n, dtype="i4"))
+    point.make_scale("point")
+    index = {name: np.zeros(n, dtype="i4") for name in SHARD_INDEX}
+    for c in shard.chunks(run):
+        sl = slice(offsets[c.index], offsets[c.index] + c.size)
+        index["model_index"][sl] = c.model
+        index["alpha_index"][sl] = c.alpha
+        index["radius_index"][sl] = np.arange(c.radius_start, c.radius_stop)
+        index["state_index"][sl] = c.state
+    for name, values in index.items():
+        ds = g.create_dataset(name, data=values)
+        ds.attrs["long_name"] = f"{name.split('_')[0]} index of the point in the full grid"
+        ds.dims[0].attach_scale(point)
+    _write_points(g, (n,), {"point": point}, ("point",))
 
 
 class Store:
@@ -347,6 +421,8 @@ class Store:
         self.path, self.f, self.run = Path(path), f, run
         self._history = json.loads(f["progress"].attrs["history"])
         self._invocation = None
+        self.shard = _shard_of(f)
+        self._offsets = shard_points(run, self.shard)[0] if self.shard else None
 
     @property
     def done(self):
@@ -361,22 +437,28 @@ class Store:
     def history(self):
         return list(self._history)
 
-    def begin_invocation(self, workers, pending, branch_points_pending=0):
+    def begin_invocation(self, workers, pending, branch_points_pending=0, executor=None):
         entry = {"invocation": len(self._history) + 1, "started": _now(), "finished": None,
                  "package_version": package_version(), "git_commit": git_commit(),
                  "host": platform.node(), "workers": workers, "chunks_pending": pending,
                  "chunks_computed": 0, "branch_points_pending": branch_points_pending,
                  "branch_points_computed": 0}
+        if executor is not None:
+            entry["executor"] = executor
+        if self.shard is not None:
+            entry["shard"] = self.shard.label
         self._history.append(entry)
         self._invocation = entry
         self._save_history()
         return entry["invocation"]
 
-    def end_invocation(self, interrupted=False):
+    def end_invocation(self, interrupted=False, failed=None):
         if self._invocation is not None:
             self._invocation["finished"] = _now()
             if interrupted:
                 self._invocation["interrupted"] = True
+            if failed:
+                self._invocation["failed"] = list(failed)
             self._save_history()
 
     def _save_history(self):
@@ -391,9 +473,16 @@ class Store:
         so this overwrites bytes in place and leaves the file's metadata alone: a kill at any
         moment leaves a readable file in which this chunk is either done or not.
         """
-        sl = (chunk.model, chunk.alpha, slice(chunk.radius_start, chunk.radius_stop), chunk.state)
+        if self.shard is None:
+            group = self.f
+            sl = (chunk.model, chunk.alpha, slice(chunk.radius_start, chunk.radius_stop), chunk.state)
+        else:
+            if chunk.index not in self._offsets:
+                raise ValueError(f"chunk {chunk.index} does not belong to shard {self.shard.label}")
+            group = self.f["shard_points"]
+            sl = slice(self._offsets[chunk.index], self._offsets[chunk.index] + chunk.size)
         for name, (kind, _, _) in POINT_VARIABLES.items():
-            self.f[name][sl] = _as_stored(kind, values[name])
+            group[name][sl] = _as_stored(kind, values[name])
         g = self.f["progress"]
         g["invocation"][chunk.index] = self._invocation["invocation"] if self._invocation else 0
         g["seconds"][chunk.index] = seconds
@@ -434,28 +523,51 @@ def _open(path, mode):
                          f"refusing to touch it (use --force to replace it)", foreign=True) from None
 
 
-def create_store(path, run, run_file=None):
+def create_store(path, run, run_file=None, shard=None, fill=None):
     """Write a new store with every point 'not computed' (atomically: temporary file, rename;
-    an existing file at ``path`` is replaced)."""
+    an existing file at ``path`` is replaced). With ``shard`` (a `tba.runfile.Shard`), the
+    shard layout. ``fill(f)``, if given, writes into the new file before it is renamed (the
+    merge uses it, so that a merged file appears complete or not at all)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     models_info = [m.build().describe() for m in run.models]
     tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
     try:
         with h5py.File(tmp, "w") as f:
-            _write_layout(f, run, run_file, models_info)
+            _write_layout(f, run, run_file, models_info, shard)
+            if fill is not None:
+                fill(f)
         os.replace(tmp, path)
     finally:
         if tmp.exists():
             tmp.unlink()
 
 
-def check_store(path, run):
+def _shard_of(f):
+    """The `Shard` a file is (None for a full store)."""
+    if f.attrs.get("schema") != SHARD_SCHEMA:
+        return None
+    return Shard(int(f.attrs["shard_index"]), int(f.attrs["shard_count"]))
+
+
+def _shard_words(shard):
+    return "a full store" if shard is None else f"shard {shard.label}"
+
+
+def check_store(path, run, shard=None):
     """Read-only check that ``path`` is a store of the same run (and of this schema version:
-    files of other versions are refused). Returns (done mask, git commit, branch-point
-    status array (model, alpha))."""
+    files of other versions are refused), and the same shard of it (None: a full store).
+    Returns (done mask, git commit, branch-point status array (model, alpha))."""
     with _open(path, "r") as f:
-        if f.attrs.get("schema") != SCHEMA:
+        if f.attrs.get("schema") in (SCHEMA, SHARD_SCHEMA):
+            found = _shard_of(f)
+            if found != shard:
+                hint = ("merge the shards with tba merge, or resume it with --shard "
+                        f"{found.label}" if found is not None and shard is None else
+                        "use --out for another file, or --force to replace it")
+                raise StoreError(f"{path}: is {_shard_words(found)} of a run, not "
+                                 f"{_shard_words(shard)}; {hint}", foreign=True)
+        if f.attrs.get("schema") not in (SCHEMA, SHARD_SCHEMA):
             raise StoreError(f"{path}: exists and is not a tba-flow scan file; refusing to "
                              f"overwrite it (use --force to replace it, or --out)", foreign=True)
         version = int(f.attrs.get("schema_version", -1))
@@ -485,10 +597,10 @@ def check_store(path, run):
         return g["done"][...].astype(bool), str(f.attrs.get("git_commit", "unknown")), status
 
 
-def prepare_store(path, run, force=False, run_file=None):
-    """Make sure ``path`` is a store of ``run``: check an existing one (read-only) or create
-    it. Returns (done mask, created, note, branch-point status (model, alpha)). Nothing is
-    written to an existing file here.
+def prepare_store(path, run, force=False, run_file=None, shard=None):
+    """Make sure ``path`` is a store of ``run`` (the shard layout with ``shard``): check an
+    existing one (read-only) or create it. Returns (done mask, created, note, branch-point
+    status (model, alpha)). Nothing is written to an existing file here.
 
     An existing file of another run, another schema or another package version, or a file
     that is not a store, is never overwritten unless ``force`` (`StoreError`).
@@ -497,13 +609,13 @@ def prepare_store(path, run, force=False, run_file=None):
     if path.is_dir():
         raise StoreError(f"{path}: is a directory")
     if path.exists() and not force:
-        done, commit, branch_status = check_store(path, run)
+        done, commit, branch_status = check_store(path, run, shard)
         note = None
         if commit != git_commit():
             note = (f"{path} was started at commit {commit[:12]}, this is {git_commit()[:12]}; "
                     f"each invocation is recorded in the /progress history attribute")
         return done, False, note, branch_status
-    create_store(path, run, run_file)
+    create_store(path, run, run_file, shard)
     return (np.zeros(len(run.chunks()), dtype=bool), True, None,
             np.full((len(run.models), len(run.alphas)), NOT_COMPUTED, dtype="i1"))
 
@@ -534,6 +646,8 @@ class StoreData:
     #: /branch_points arrays (model, alpha), names of `BRANCH_VARIABLES` (schema 1: not computed)
     branch: dict = field(default_factory=dict)
     schema_version: int = SCHEMA_VERSION
+    #: the `tba.runfile.Shard` of a shard file (its points only; the rest "not computed")
+    shard: Shard | None = None
 
     def __getitem__(self, name):
         return self.data[name]
@@ -544,7 +658,13 @@ class StoreData:
 
     @property
     def complete(self):
+        """Every chunk of the run is done (never for a shard of N > 1)."""
         return bool(np.all(self.progress["done"]))
+
+    @property
+    def owned(self):
+        """Mask of the chunks this file is responsible for (all of them in a full store)."""
+        return self.progress.get("owned", np.ones(self.n_chunks, dtype="u1")).astype(bool)
 
     def records(self, include_not_computed=False):
         """One dict per point with the keys of ``tba solve --json`` plus ``state``."""
@@ -590,8 +710,9 @@ def read_store(path):
     except OSError as exc:
         raise StoreError(f"{path}: not a readable HDF5 file ({str(exc).splitlines()[0]})") from None
     with f:
-        if f.attrs.get("schema") != SCHEMA:
+        if f.attrs.get("schema") not in (SCHEMA, SHARD_SCHEMA):
             raise StoreError(f"{path}: not a tba-flow scan file")
+        shard = _shard_of(f)
         version = int(f.attrs.get("schema_version", -1))
         if version not in READABLE_VERSIONS:
             raise StoreError(f"{path}: schema version {version}; this tba reads "
@@ -599,10 +720,19 @@ def read_store(path):
         attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
         run = resolve_run(json.loads(attrs["run"]), name=json.loads(attrs["run"]).get("name", "run"))
         data = {}
-        for name, (kind, _, _) in POINT_VARIABLES.items():
-            data[name] = _strings(f[name]) if kind == "str" else f[name][...]
+        if shard is None:
+            for name, (kind, _, _) in POINT_VARIABLES.items():
+                data[name] = _strings(f[name]) if kind == "str" else f[name][...]
+        else:  # the shard's points into full arrays; the other shards' points "not computed"
+            g = f["shard_points"]
+            where = tuple(g[name][...] for name in SHARD_INDEX)
+            for name, (kind, fill, _) in POINT_VARIABLES.items():
+                full = np.full(run.shape, fill, dtype=object if kind == "str" else kind)
+                full[where] = _strings(g[name]) if kind == "str" else g[name][...]
+                data[name] = full
         g = f["progress"]
-        progress = {name: g[name][...] for name in (*PROGRESS_FIELDS, "done", "invocation", "seconds")}
+        names = (*PROGRESS_FIELDS, "done", "invocation", "seconds") + (("owned",) if shard else ())
+        progress = {name: g[name][...] for name in names}
         couplings = [None if math.isnan(c) else float(c) for c in f["model_coupling"][...]]
         shape = (len(run.models), len(run.alphas))
         branch = {}
@@ -617,4 +747,4 @@ def read_store(path):
                          alpha=f["alpha"][...], radius=f["radius"][...],
                          state=list(_strings(f["state"])), data=data, progress=progress,
                          history=json.loads(g.attrs["history"]), branch=branch,
-                         schema_version=version)
+                         schema_version=version, shard=shard)
