@@ -326,8 +326,8 @@ def cmd_plot(args, out):
     return 0
 
 
-EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "couplings", "energy", "error", "status",
-               "iterations", "message", "state"]
+EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "couplings", "energy", "error", "momentum",
+               "status", "iterations", "message", "state"]
 
 
 def cmd_export(args, out):

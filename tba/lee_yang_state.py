@@ -319,7 +319,7 @@ def _newton(eqs, eta, v, tol, maxiter=60):
             if q is not None and (_norm(q) <= (1 - 0.25 * lam) * _norm(p) or _norm(q) <= floor):
                 break
             lam *= 0.5
-            if lam < 1e-4:
+            if lam < 0.01:  # a failing start: give up soon, the caller takes a smaller step
                 return None, "line search failed", it
         eta, v, p = eta + lam * step[:N], v + lam * step[N], q
         last_change = change
@@ -355,9 +355,19 @@ def _solve(radius, alpha, tol, level, seed):
     return _newton(Equations(grid, radius, alpha), eta, v, tol)
 
 
-def _follow(alpha_target, radius_target, tol, seed, parameter):
+def _fold_ahead(history):
+    """Where the continuation parameter reaches a fold, extrapolated from the last two points:
+    near a fold the smallest pivot ratio of the Jacobian vanishes like sqrt(p_c - p)."""
+    (p1, s1), (p2, s2) = history[-2], history[-1]
+    slope = (s2 * s2 - s1 * s1) / (p2 - p1)
+    return p2 - s2 * s2 / slope if slope < 0 else math.inf
+
+
+def _follow(alpha_target, radius_target, tol, seed, parameter, min_step=1e-9):
     """Continue ``seed`` in log R (at its alpha) or in the coupling scale lambda (at its R) on
-    level-0 grids. Returns (solution or None, message, iterations)."""
+    level-0 grids, giving up when the step falls below ``min_step``; in lambda, also as soon
+    as a failed step reached past a fold that clearly lies before lambda = 1 (the verdict is
+    then no real solution). Returns (solution or None, message, iterations)."""
     from tba.excited import _stalled
 
     its_total = 0
@@ -382,7 +392,11 @@ def _follow(alpha_target, radius_target, tol, seed, parameter):
             step *= 1.5
             continue
         step *= 0.5
-        if abs(step) < 1e-9:
+        if parameter == "coupling" and len(history) >= 3:
+            p_c = _fold_ahead(history)
+            if p_c <= trial and p_c < target and p_c - now < 0.05 * (target - p_c):
+                return None, _stalled("coupling", history, target, now, msg), its_total
+        if abs(step) < min_step:
             if parameter == "radius":
                 return None, f"continuation in R stalled at {math.exp(now):.12g}: {msg}", its_total
             return None, _stalled("coupling", history, target, now, msg), its_total
@@ -411,7 +425,9 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
                             and start.model == "lee-yang" and tuple(start.state) == (0,)) else None
     seed = None
     if prev is not None and prev["final"]["alpha"] == alpha:
-        seed, msg, its = _follow(alpha, radius, tol, prev["final"], "radius")
+        # a fold on the way ends this quickly: the path below then gives the verdict
+        seed, msg, its = _follow(alpha, radius, tol, prev["final"], "radius",
+                                 min_step=1e-3 if alpha else 1e-9)
         iterations += its
     undeformed = None
     if seed is None:

@@ -34,7 +34,8 @@ from tba.runfile import differing_keys, resolve_run
 from tba.scan import describe_chunk
 from tba.storage import (BRANCH_VARIABLES, MESSAGE_DTYPE, NOT_COMPUTED, POINT_VARIABLES,
                          SCHEMA, SCHEMA_VERSION, SHARD_INDEX, SHARD_SCHEMA, StoreError, _now,
-                         _shard_of, check_store, create_store, git_commit, package_version)
+                         _shard_of, check_store, create_store, git_commit, mark_unavailable,
+                         package_version)
 
 #: numbers compared between files (messages are text)
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
@@ -89,9 +90,10 @@ class _Merged:
         self.source = np.full(n, -1)  # index of the file a chunk was taken from
         self.invocation = np.zeros(n, dtype="i4")
         self.seconds = np.full(n, np.nan)
-        self.point_chunk = np.full(run.shape, -1, dtype="i4")
+        self.point_chunk = np.full(run.shape, -1, dtype="i4")  # -1: a state the model lacks
         for c in self.chunks:
             self.point_chunk[c.model, c.alpha, c.radius_start:c.radius_stop, c.state] = c.index
+        mark_unavailable(self.data, run)
         self.history = []
         self.files = []
 
@@ -109,7 +111,7 @@ class _Merged:
                 entry.setdefault("shard", shard.label)
             self.history.append(entry)
         if shard is None:
-            where = np.nonzero(done[self.point_chunk])
+            where = np.nonzero((self.point_chunk >= 0) & done[self.point_chunk])
             values = {name: f[name][...][where] for name in POINT_VARIABLES}
         else:
             p = f["shard_points"]

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tba.result import STATUS_CODES, Status
-from tba.storage import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS,
+from tba.storage import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS, NOT_AVAILABLE,
                          NOT_COMPUTED, STATUS_MEANINGS)
 
 CONVERGED = STATUS_CODES[Status.CONVERGED]
@@ -19,7 +19,7 @@ NO_REAL = STATUS_CODES[Status.NO_REAL_SOLUTION]
 
 @dataclass
 class LastRealPoint:
-    """The smallest radius with a real (converged) solution of one curve with alpha > 0.
+    """The smallest radius with a real (converged) solution of one curve with alpha != 0.
 
     ``bracketed`` is true when the next smaller radius has no real solution, so that the
     branch point lies between ``below`` and ``radius``."""
@@ -35,12 +35,13 @@ class LastRealPoint:
 
 
 def last_real_points(data):
-    """One `LastRealPoint` per (model, alpha > 0, state) curve with a converged point."""
+    """One `LastRealPoint` per (model, alpha != 0, state) curve with a converged point (the
+    ground state meets its branch point for alpha > 0, positive excited levels for alpha < 0)."""
     out = []
     status = data["status"]
     for m in range(len(data.model)):
         for a, alpha in enumerate(data.alpha):
-            if alpha <= 0:
+            if alpha == 0:
                 continue
             for s in range(len(data.state)):
                 st = status[m, a, :, s]
@@ -224,13 +225,15 @@ def _format_report(data):
         lines.append("worst error estimate: - (no converged point)")
     lines.append("")
 
-    lines.append("flow residual |E(R, alpha) - E_0(R + alpha E, 0)| (TTbar flow relation, exact for "
-                 "the ground state):")
+    lines.append("flow residual |E(R, alpha) - prediction| (TTbar: the same level undeformed at "
+                 "R~ = sqrt((R + alpha E)^2 - (alpha P)^2); for P = 0, E_0(R + alpha E, 0)):")
     rows = []
     flow = data["flow_status"]
     for m, label in enumerate(data.model):
         for a, alpha in enumerate(data.alpha):
             for s, state in enumerate(data.state):
+                if np.all(status[m, a, :, s] == NOT_AVAILABLE):
+                    continue
                 fs = flow[m, a, :, s]
                 res = data["flow_residual"][m, a, :, s]
                 checked = fs == CONVERGED
@@ -255,7 +258,21 @@ def _format_report(data):
     lines.append("")
 
     lines.extend(_branch_section(data))
+    lines.extend(_excited_section(data))
     return "\n".join(lines)
+
+
+def _excited_section(data):
+    """Excited levels that stop having a real solution (positive levels for alpha < 0)."""
+    if "ground" in data.state and len(data.state) == 1:
+        return []
+    rows = [[data.model[p.model], f"{data.alpha[p.alpha]:g}", data.state[p.state],
+             f"{p.radius:.6g}", f"{p.below:.6g}"]
+            for p in last_real_points(data) if p.bracketed and data.state[p.state] != "ground"]
+    if not rows:
+        return []
+    return ["", "excited levels meeting their branch point between two radii (no real solution "
+                "below):", _table(["model", "alpha", "state", "last real R", "next R down"], rows)]
 
 
 def _branch_section(data):

@@ -11,6 +11,9 @@ solver tolerance, the output file and how the scan is cut into chunks::
     name = "sinh-gordon"                # free-fermion, sinh-gordon, lee-yang, ising-e8
     coupling = 0.6                      # sinh-gordon only, B in (0, 2)
 
+    states = ["ground", "-1/2,1/2"]    # optional (default ["ground"]); excited levels by their
+                                        # Bethe quantum numbers, e.g. "0" for Lee-Yang's particle
+
     [deformation]
     alphas = [-0.1, 0.05, 0.1]          # TTbar couplings (spin 1)
     higher_spin = { 3 = -0.01 }         # optional: odd spin >= 3 -> alpha_s, at every alpha
@@ -29,6 +32,11 @@ solver tolerance, the output file and how the scan is cut into chunks::
     flow_check = true                   # undeformed solve at R + alpha E for every point
     sweep = "descending"                # order of the radii inside a chunk
     branch_points = true                # R_c(alpha) of the ground state, once per model and alpha
+
+A state that a model does not have (excited states of E8, or a two-particle level of
+Lee-Yang, whose only excited level here is its one-particle state "0") is not computed for
+that model: `RunSpec.unavailable` says why, and the store marks those points "not-available".
+A state that no model of the run has is refused.
 
 Strict: an unknown key, a missing key, a value of the wrong type or out of range raises
 `RunFileError` (a ValueError) whose message starts with the dotted key, for example
@@ -58,8 +66,6 @@ from tba import solver as _solver
 from tba.deformation import CDD
 from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
 
-#: states the scan can compute; excited states are planned (the store has a ``state`` axis)
-STATES = ("ground",)
 SWEEPS = ("descending", "ascending")
 SPACINGS = ("linear", "log")
 DEFAULTS = {
@@ -219,6 +225,16 @@ class RunSpec:
     name: str = "run"
     description: str = ""
     output: str | None = None
+    #: ((model index, state index, why), ...): the states a model does not have (derived
+    #: from models, states and deformation, so not part of `to_dict`)
+    unavailable: tuple = ()
+
+    def why_unavailable(self, model, state):
+        """Why state ``state`` is not computed for model ``model`` (indices), or None."""
+        for m, s, why in self.unavailable:
+            if (m, s) == (model, state):
+                return why
+        return None
 
     @property
     def shape(self):
@@ -276,9 +292,12 @@ class RunSpec:
         of workers), so that resumed and parallel runs give the numbers of a serial one."""
         out = []
         n = len(self.radii)
+        skip = {(m, s) for m, s, _ in self.unavailable}
         for m in range(len(self.models)):
             for a in range(len(self.alphas)):
                 for s in range(len(self.states)):
+                    if (m, s) in skip:
+                        continue
                     for start in range(0, n, self.chunk_size):
                         out.append(Chunk(len(out), m, a, s, start, min(start + self.chunk_size, n)))
         return out
@@ -412,7 +431,7 @@ def resolve_run(data, base_dir=None, name="run"):
     scan.finish()
     top.finish()
     return RunSpec(models=models, alphas=alphas, radii=radii, higher_spin=higher_spin,
-                   states=states, tol=tol, chunk_size=chunk_size, flow_check=flow_check,
+                   states=states, unavailable=_unavailable(models, states, higher_spin), tol=tol, chunk_size=chunk_size, flow_check=flow_check,
                    sweep=sweep, branch_points=branch_points, name=name, description=description,
                    output=output)
 
@@ -521,18 +540,45 @@ def _radii(value):
 
 
 def _states(value):
+    from tba.levels import level_name
+
     items = _array("states", value)
     if not items:
         raise RunFileError("states", "needs at least one state")
     states = []
     for i, s in enumerate(items):
         s = _string(f"states[{i}]", s)
-        if s not in STATES:
-            raise RunFileError(f"states[{i}]", f"unknown state {s!r} (available: {', '.join(STATES)})")
-        if s in states:
-            raise RunFileError(f"states[{i}]", f"repeats {s!r}")
-        states.append(s)
+        try:
+            name = level_name(s)
+        except (ValueError, TypeError) as exc:
+            raise RunFileError(f"states[{i}]", f"{str(exc).split(': ', 1)[-1]} (a state is "
+                                               f'"ground" or quantum numbers like "1/2,-1/2")') from None
+        if name in states:
+            raise RunFileError(f"states[{i}]", f"repeats {name!r}" + (f" (as {s!r})" if s != name else ""))
+        states.append(name)
     return tuple(states)
+
+
+def _unavailable(models, states, higher_spin):
+    """((model, state, why), ...) for the states a model does not have; a state that no
+    model has is an error of the run file."""
+    from tba.levels import GROUND, unavailable
+
+    out = []
+    deformation = CDD(dict(higher_spin)) if higher_spin else None
+    for s, state in enumerate(states):
+        if state == GROUND:
+            continue
+        reasons = []
+        for m, spec in enumerate(models):
+            why = unavailable(spec.build(), state, deformation)
+            if why is not None:
+                out.append((m, s, why))
+                reasons.append(f"{spec.label}: {why}")
+        if len(reasons) == len(models):
+            raise RunFileError(f"states[{s}]", f"no model of the run has state {state!r} "
+                                               f"({'; '.join(reasons)})")
+    return tuple(out)
 
 
 def demo_run_path():

@@ -7,10 +7,16 @@ solved as one chain (`solve_chunk`): each radius starts from the previous conver
 numbers depend on nothing but the chunk, so serial, parallel and resumed runs agree bit
 for bit.
 
+A chunk solves one level (`tba.levels`): the ground state, or an excited level named by its
+Bethe quantum numbers; the states a model lacks have no chunks (`RunSpec.unavailable`).
+
 Flow check (``flow_check = true``, the default): for each converged point with alpha != 0
-and no higher-spin factor, the undeformed ground state is solved at R' = R + alpha E; the
-prediction E_0(R', 0) and the flow residual |E(R, alpha) - E_0(R', 0)| are stored (the
-relation E(R, alpha) = E_0(R + alpha E, 0) is exact for the TTbar-deformed ground state).
+and no higher-spin factor, the same level undeformed is solved at
+R~ = sqrt((R + alpha E)^2 - (alpha P)^2) with the exact momentum P = 2 pi sum I_k / R; the
+prediction E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~ and the flow residual
+|E(R, alpha) - prediction| are stored. With TTbar the deformed equations are the undeformed
+ones at R~ in a boosted frame, so the relation is exact; for P = 0 it is
+E(R, alpha) = E_0(R + alpha E, 0).
 
 Branch points (``branch_points = true``, the default): the ground state's branch point
 R_c(alpha) once per model and alpha (`solve_branch_point`: `tba.flow.branch_point` at the
@@ -45,9 +51,9 @@ import numpy as np
 
 from tba.deformation import NO_DEFORMATION
 from tba.flow import branch_point
+from tba.levels import GROUND, parse_level, solve_level
 from tba.result import STATUS_CODES
 from tba.runfile import Chunk, Shard
-from tba.solver import solve_ground_state
 from tba.storage import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
                          FLOW_NOT_APPLICABLE, FLOW_OFF, NOT_COMPUTED, POINT_VARIABLES,
                          open_store, prepare_store)
@@ -72,11 +78,20 @@ def _empty(n):
 
 def solve_chunk(run, chunk):
     """Solve one chunk; returns (chunk, values, seconds) with ``values`` a dict of arrays over
-    the chunk's radii in ascending order (the names of `tba.storage.POINT_VARIABLES`)."""
+    the chunk's radii in ascending order (the names of `tba.storage.POINT_VARIABLES`).
+
+    BLAS runs on one thread here whatever the executor: a multithreaded LU (scipy's, in the
+    excited-state solvers) may round differently with another number of threads, and the
+    numbers of a chunk must not depend on where it ran."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _solve_chunk(run, chunk)
+
+
+def _solve_chunk(run, chunk):
     t0 = time.perf_counter()
-    state = run.states[chunk.state]
-    if state != "ground":  # the run file accepts only states the scan can compute
-        raise ValueError(f"state {state!r} is not implemented")
+    level = parse_level(run.states[chunk.state])
     model = _model(run.models[chunk.model])
     alpha = run.alphas[chunk.alpha]
     deformation = run.deformation(alpha)
@@ -84,11 +99,15 @@ def solve_chunk(run, chunk):
     order = range(len(radii) - 1, -1, -1) if run.sweep == "descending" else range(len(radii))
     values = _empty(len(radii))
     flow_applies = run.flow_check and alpha != 0 and run.ttbar_only
+    # R P = 2 pi sum I_k exactly (the flow check uses the exact momentum)
+    turns = 0 if level == GROUND else sum(level)
     start = start0 = None
     for i in order:
-        res = solve_ground_state(model, radii[i], deformation, tol=run.tol, start=start)
+        R = radii[i]
+        res = solve_level(model, R, level, deformation, tol=run.tol, start=start)
         if res.converged:
             start = res
+            values["momentum"][i] = res.momentum
         values["energy"][i] = res.energy
         values["error"][i] = res.error
         values["status"][i] = STATUS_CODES[res.status]
@@ -101,19 +120,47 @@ def solve_chunk(run, chunk):
         elif not res.converged:
             values["flow_status"][i] = FLOW_NO_ENERGY
         else:
-            r_eff = radii[i] + alpha * res.energy
+            a_eff = R + alpha * res.energy
+            boost = alpha * 2 * math.pi * float(turns) / R  # alpha P
+            r_eff = a_eff if turns == 0 else math.sqrt(max(a_eff * a_eff - boost * boost, 0.0))
             values["flow_radius"][i] = r_eff
             if not (math.isfinite(r_eff) and r_eff > 0):
                 values["flow_status"][i] = FLOW_NOT_APPLICABLE
                 continue
-            res0 = solve_ground_state(model, r_eff, NO_DEFORMATION, tol=run.tol, start=start0)
+            res0 = solve_level(model, r_eff, level, NO_DEFORMATION, tol=run.tol, start=start0)
             values["flow_status"][i] = STATUS_CODES[res0.status]
             if res0.converged:
                 start0 = res0
-                values["flow_prediction"][i] = res0.energy
-                values["flow_error"][i] = res0.error
-                values["flow_residual"][i] = abs(res.energy - res0.energy)
+                predicted, flow_error = res0.energy, res0.error
+                if turns != 0:
+                    predicted, flow_error = _boosted_prediction(model, level, R, alpha, boost,
+                                                                res, res0, run.tol)
+                values["flow_prediction"][i] = predicted
+                values["flow_error"][i] = flow_error
+                values["flow_residual"][i] = abs(res.energy - predicted)
     return chunk, values, time.perf_counter() - t0
+
+
+def _boosted_prediction(model, level, R, alpha, boost, res, res0, tol):
+    """The flow prediction of a level with P != 0 and its error estimate.
+
+    E R~ = A E_0(R~) + alpha P^2 R / R~ with A = R + alpha E and R~ = sqrt(A^2 - (alpha P)^2)
+    (E_0 = res0 at R~). The prediction depends on E through A and R~, so its error estimate is
+    (A / R~) err(E_0) + |d prediction / dE| err(E), with E_0'(R~) from a second undeformed
+    solve at R~ (1 + 1e-6); NaN if that solve fails."""
+    a_eff = R + alpha * res.energy
+    r_eff = float(np.sqrt(a_eff * a_eff - boost * boost))
+    e0 = res0.energy
+    predicted = (a_eff * e0 + boost * boost * R / (alpha * r_eff)) / r_eff
+    step = 1e-6 * r_eff
+    res1 = solve_level(model, r_eff + step, level, NO_DEFORMATION, tol=tol, start=res0)
+    if not res1.converged:
+        return predicted, math.nan
+    de0 = (res1.energy - e0) / step
+    dr = alpha * a_eff / r_eff  # dR~/dE
+    dpred = (alpha * e0 + a_eff * de0 * dr - boost * boost * R * dr / (alpha * r_eff ** 2)) / r_eff \
+        - predicted * dr / r_eff
+    return predicted, abs(a_eff) / r_eff * res0.error + abs(dpred) * res.error
 
 
 def solve_branch_point(run, model_index, alpha_index):

@@ -11,9 +11,9 @@ Layout (schema version 2; readable with plain h5py, and with xarray through
     /model   (model)           dimension scale: label "name" or "name B=coupling"
     /alpha   (alpha)           dimension scale: TTbar coupling (sorted)
     /radius  (radius)          dimension scale: circumference R (sorted)
-    /state   (state)           dimension scale: "ground" (excited states later)
+    /state   (state)           dimension scale: "ground" or Bethe quantum numbers ("-1/2,1/2")
     /model_name, /model_coupling (model)         the model axis split into name and B (NaN: none)
-    /energy, /error, /status, /iterations, /message,
+    /energy, /error, /momentum, /status, /iterations, /message,
     /flow_radius, /flow_prediction, /flow_error, /flow_residual, /flow_status
                                (model, alpha, radius, state), one value per point
     /progress/chunk (chunk)    dimension scale: chunk index
@@ -62,8 +62,10 @@ other shards left not computed) is laid out as in a full store. `read_store` exp
 shard into full arrays (other shards' points "not computed"), so reports, plots and exports
 work on it and say it is partial; `tba.merge` combines shards into a full store.
 
-Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it. Files of schema 1 are
-still read (their branch points count as not computed) but never resumed.
+Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it; 3 adds ``/momentum``,
+excited states on the state axis and the status "not-available" (3) for the points of a state
+that a model lacks (set when the file is created). Files of schemas 1 and 2 are still read
+(branch points of schema 1 count as not computed, momentum is NaN) but never resumed.
 
 Only the scan driver writes: it creates the file complete with every point "not
 computed" (under a temporary name, then renamed), and writes each finished chunk's
@@ -92,11 +94,13 @@ from tba.runfile import RunSpec, Shard, differing_keys, resolve_run
 SCHEMA = "tba-flow scan"
 #: schema of a shard file (one shard of a run, `tba.runfile.Shard`)
 SHARD_SCHEMA = "tba-flow scan shard"
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: schema versions `read_store` understands (only SCHEMA_VERSION is ever resumed)
-READABLE_VERSIONS = (1, 2)
+READABLE_VERSIONS = (1, 2, 3)
 #: status code of a point that has not been computed yet
 NOT_COMPUTED = -1
+#: status code of a point whose model does not have the state (`RunSpec.unavailable`)
+NOT_AVAILABLE = 3
 #: extra codes of flow_status (fixed numbers, apart from the solver's STATUS_CODES)
 FLOW_OFF = 10
 FLOW_NOT_APPLICABLE = 11
@@ -116,14 +120,17 @@ STATUS_MEANINGS = {NOT_COMPUTED: ("not-computed", "the point has not been comput
                                        "not-converged": "the error estimate did not reach "
                                                         "the tolerance; no energy stored",
                                        }.get(s.value, s.value))
-                      for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])}}
+                      for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])},
+                   NOT_AVAILABLE: ("not-available", "the model does not have this state (the "
+                                                    "message says why); never computed")}
 FLOW_MEANINGS = {
     NOT_COMPUTED: ("not-computed", "the point has not been computed yet"),
     **{code: (s.value, f"undeformed solve at R + alpha E: {s.value}")
        for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])},
     FLOW_OFF: ("off", "flow_check = false in the run"),
-    FLOW_NOT_APPLICABLE: ("not-applicable", "alpha = 0, or higher-spin CDD factors present "
-                                            "(the relation is exact for TTbar alone)"),
+    FLOW_NOT_APPLICABLE: ("not-applicable", "alpha = 0, higher-spin CDD factors present "
+                                            "(the relation is exact for TTbar alone), no "
+                                            "undeformed radius, or a state the model lacks"),
     FLOW_NO_ENERGY: ("no-energy", "the deformed point has no energy to check"),
 }
 BRANCH_MEANINGS = {
@@ -137,12 +144,18 @@ BRANCH_MEANINGS = {
 
 CONVENTIONS = """\
 Units: the lightest mass m_1 = 1; R is the circumference of the space circle; hbar = c = 1.
-energy is the TBA ground-state energy E(R, alpha) WITHOUT the bulk term f R.
+energy is the TBA energy E(R, alpha) of the state WITHOUT the bulk term f R; momentum its
+total momentum P (R P is 2 pi times an integer). States: "ground", or an excited level named by
+its Bethe quantum numbers I_k (m R sinh t_k + sum_j delta(t_k - t_j) = 2 pi I_k at large R;
+for Lee-Yang, "0" is its one-particle state).
 Deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t) (phi_ab += alpha m_a m_b cosh t),
 higher odd spins s: exp(i alpha_s sinh(s t)) (single-species models).
-Then d/dalpha E = E dE/dR + P^2/R, and for the ground state (P = 0, TTbar only)
-E(R, alpha) = E_0(R + alpha E, 0): flow_prediction is E_0 solved at flow_radius = R + alpha E,
-flow_residual = |energy - flow_prediction|, flow_error the undeformed solve's error estimate.
+Then d/dalpha E = E dE/dR + P^2/R. With TTbar alone the deformed level is the undeformed one
+at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~
+(for P = 0: E(R, alpha) = E_0(R + alpha E, 0)). flow_radius is R~, flow_prediction that
+expression with E_0 solved at R~ (the same level undeformed), flow_residual = |energy -
+flow_prediction|, flow_error the error estimate of the prediction: the undeformed solve's
+times (R + alpha E) / R~, plus for P != 0 |d prediction / dE| times the error of E.
 alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
 /branch_points: R_c(alpha) = R~ - alpha E_0(R~) where E_0'(R~) = 1/alpha (TTbar only);
 energy there E(R_c, alpha) = E_0(R~); Hagedorn temperature T_H = 1/R_c.
@@ -153,7 +166,7 @@ UNITS = ("radius, flow_radius, branch_points/{branch_radius, branch_radius_error
          "energy, error, flow_prediction, flow_error, flow_residual, "
          "branch_points/{energy, energy_error}: m_1; alpha: 1/m_1^2; m_1 = lightest mass = 1")
 
-LAYOUT = ("data sets (model, alpha, radius, state): energy error status iterations message "
+LAYOUT = ("data sets (model, alpha, radius, state): energy error momentum status iterations message "
           "flow_radius flow_prediction flow_error flow_residual flow_status; /progress: chunk "
           "table and done mask; /branch_points (model, alpha): branch_radius "
           "branch_radius_error energy energy_error effective_radius status message")
@@ -171,18 +184,23 @@ MESSAGE_DTYPE = h5py.string_dtype("utf-8", MESSAGE_BYTES)
 
 #: name -> (dtype, fill value, attributes) of the per-point data sets
 POINT_VARIABLES = {
-    "energy": ("f8", np.nan, {"long_name": "ground-state energy E(R, alpha), bulk term excluded",
+    "energy": ("f8", np.nan, {"long_name": "energy E(R, alpha) of the state, bulk term excluded",
                               "units": "m_1"}),
     "error": ("f8", np.nan, {"long_name": "error estimate of energy (meant to bound it)",
                              "units": "m_1"}),
+    "momentum": ("f8", np.nan, {"long_name": "total momentum P of the state (0 for the ground "
+                                             "state); NaN without an energy", "units": "m_1"}),
     "status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the point (see flag_meanings)"}),
     "iterations": ("i4", 0, {"long_name": "Newton iterations spent on the point, all grids"}),
     "message": ("str", "", {"long_name": f"solver message (UTF-8, at most {MESSAGE_BYTES} bytes)"}),
-    "flow_radius": ("f8", np.nan, {"long_name": "R + alpha E, radius of the undeformed solve "
-                                                "of the flow check", "units": "1/m_1"}),
-    "flow_prediction": ("f8", np.nan, {"long_name": "flow prediction E_0(R + alpha E, 0)",
+    "flow_radius": ("f8", np.nan, {"long_name": "radius of the undeformed solve of the flow "
+                                                "check: sqrt((R + alpha E)^2 - (alpha P)^2)",
+                                   "units": "1/m_1"}),
+    "flow_prediction": ("f8", np.nan, {"long_name": "flow prediction of E from the undeformed "
+                                                    "level at flow_radius",
                                        "units": "m_1"}),
-    "flow_error": ("f8", np.nan, {"long_name": "error estimate of flow_prediction",
+    "flow_error": ("f8", np.nan, {"long_name": "error estimate of flow_prediction (for P != 0 "
+                                               "including its sensitivity to E)",
                                   "units": "m_1"}),
     "flow_residual": ("f8", np.nan, {"long_name": "flow residual |E(R, alpha) - E_0(R + alpha E, 0)|",
                                      "units": "m_1"}),
@@ -320,7 +338,8 @@ def _write_layout(f, run, run_file, models_info, shard=None):
                                   "units": "1/m_1^2"})
     scales["radius"].attrs.update({"long_name": "circumference R of the space circle",
                                    "units": "1/m_1"})
-    scales["state"].attrs["long_name"] = "state (ground only so far)"
+    scales["state"].attrs["long_name"] = ("state: ground, or an excited level named by its "
+                                          "Bethe quantum numbers")
     for name, ds in scales.items():
         ds.make_scale(name)
     names = f.create_dataset("model_name", data=np.array([m.name for m in run.models], dtype=object),
@@ -333,6 +352,7 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         ds.dims[0].attach_scale(scales["model"])
     if shard is None:
         _write_points(f, run.shape, scales, DIMS)
+        mark_unavailable(f, run)
     else:
         _write_shard_points(f, run, shard)
     bp = f.create_group("branch_points")
@@ -378,6 +398,18 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         g[name].dims[0].attach_scale(scale)
         if name in table:
             g[name].attrs["long_name"] = f"chunk table: {name.replace('_', ' ')}"
+
+
+def mark_unavailable(arrays, run):
+    """Set the points of the states a model does not have (`RunSpec.unavailable`) to status
+    "not-available" with the reason as message, in ``arrays`` (an HDF5 group or a dict of
+    arrays of shape (model, alpha, radius, state))."""
+    for m, s, why in run.unavailable:
+        arrays["status"][m, :, :, s] = NOT_AVAILABLE
+        arrays["flow_status"][m, :, :, s] = FLOW_NOT_APPLICABLE
+        message = arrays["message"]  # str objects in memory (read_store), else UTF-8 bytes
+        text = why if isinstance(message, np.ndarray) and message.dtype == object else _encode(why)
+        message[m, :, :, s] = text
 
 
 def _write_points(f, shape, scales, dims):
@@ -677,7 +709,7 @@ class StoreData:
                     for s, state in enumerate(self.state):
                         i = (m, a, r, s)
                         code = int(st[i])
-                        if code == NOT_COMPUTED and not include_not_computed:
+                        if code in (NOT_COMPUTED, NOT_AVAILABLE) and not include_not_computed:
                             continue
                         ok = names.get(code) == "converged"
                         yield {
@@ -688,6 +720,7 @@ class StoreData:
                             "couplings": {str(k): v for k, v in couplings.items()},
                             "energy": float(self.data["energy"][i]) if ok else None,
                             "error": float(self.data["error"][i]) if ok else None,
+                            "momentum": float(self.data["momentum"][i]) if ok else None,
                             "status": names.get(code, str(code)),
                             "iterations": int(self.data["iterations"][i]),
                             "message": self.data["message"][i],
@@ -721,8 +754,11 @@ def read_store(path):
         run = resolve_run(json.loads(attrs["run"]), name=json.loads(attrs["run"]).get("name", "run"))
         data = {}
         if shard is None:
-            for name, (kind, _, _) in POINT_VARIABLES.items():
-                data[name] = _strings(f[name]) if kind == "str" else f[name][...]
+            for name, (kind, fill, _) in POINT_VARIABLES.items():
+                if name not in f:  # schema < 3: no momentum
+                    data[name] = np.full(run.shape, fill, dtype=kind)
+                else:
+                    data[name] = _strings(f[name]) if kind == "str" else f[name][...]
         else:  # the shard's points into full arrays; the other shards' points "not computed"
             g = f["shard_points"]
             where = tuple(g[name][...] for name in SHARD_INDEX)
@@ -730,6 +766,7 @@ def read_store(path):
                 full = np.full(run.shape, fill, dtype=object if kind == "str" else kind)
                 full[where] = _strings(g[name]) if kind == "str" else g[name][...]
                 data[name] = full
+            mark_unavailable(data, run)
         g = f["progress"]
         names = (*PROGRESS_FIELDS, "done", "invocation", "seconds") + (("owned",) if shard else ())
         progress = {name: g[name][...] for name in names}

@@ -222,3 +222,31 @@ def test_demo_run_file_is_shipped_in_the_package():
     assert packaged.read_bytes() == (REPO / "runs" / "demo.toml").read_bytes()
     path, in_repo = demo_run_path()
     assert in_repo and path == REPO / "runs" / "demo.toml"
+
+
+def test_states_by_quantum_numbers_and_the_states_a_model_lacks():
+    # a state is "ground" or Bethe quantum numbers, written canonically (sorted fractions);
+    # E8 has no excited states here and Lee-Yang only its one-particle state "0", so those
+    # points are left out of the chunks, with the reason kept
+    text = with_radii("radii = [1.0, 2.0]").replace(
+        'output =', 'states = ["ground", "0.5, -1/2", "0"]\noutput =')
+    text = text.replace('name = "lee-yang"', 'name = "lee-yang"\n\n[[models]]\nname = "ising-e8"')
+    run = loads_run(text)
+    assert run.states == ("ground", "-1/2,1/2", "0")
+    labels = [m.name for m in run.models]
+    missing = {(labels[m], run.states[s]) for m, s, _ in run.unavailable}
+    assert missing == {("lee-yang", "-1/2,1/2"), ("ising-e8", "-1/2,1/2"), ("ising-e8", "0")}
+    assert "one-particle" in run.why_unavailable(labels.index("lee-yang"), 1)
+    assert "single-species" in run.why_unavailable(labels.index("ising-e8"), 2)
+    assert run.why_unavailable(0, 1) is None
+    chunks = run.chunks()
+    assert {(c.model, c.state) for c in chunks}.isdisjoint({(m, s) for m, s, _ in run.unavailable})
+    assert len(chunks) == len(run.alphas) * (3 + 2 + 1)  # one chunk per curve (2 radii)
+    assert resolve_run(run.to_dict()) == run
+    # repeated after canonical form, or a state no model has: refused, naming the entry
+    with pytest.raises(RunFileError, match=r"^states\[2\]: repeats '-1/2,1/2' \(as '1/2,-1/2'\)"):
+        loads_run(text.replace('"0"]', '"1/2,-1/2"]'))
+    only_e8 = text.replace('name = "sinh-gordon"\ncoupling = 0.6\n\n[[models]]\n', '')
+    only_e8 = only_e8.replace('name = "lee-yang"\n\n[[models]]\n', '')
+    with pytest.raises(RunFileError, match=r"^states\[1\]: no model of the run has state"):
+        loads_run(only_e8)

@@ -166,14 +166,14 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     assert main(["export", str(h5), "--json"]) == 0
     records = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
     assert len(records) == 20
-    assert all(set(r) == SOLVE_KEYS | {"state"} for r in records)
+    assert all(set(r) == SOLVE_KEYS | {"state", "momentum"} for r in records)
     assert {r["status"] for r in records} <= {"converged", "no-real-solution"}
 
     out = tmp_path / "scan.csv"
     assert main(["export", str(h5), "--csv", "-o", str(out)]) == 0
     with out.open(newline="") as fh:
         rows = list(csv.DictReader(fh))
-    assert len(rows) == 20 and set(rows[0]) == SOLVE_KEYS | {"state"}
+    assert len(rows) == 20 and set(rows[0]) == SOLVE_KEYS | {"state", "momentum"}
     for rec, row in zip(records, rows):
         assert row["energy"] == ("" if rec["energy"] is None else repr(rec["energy"]))
         assert float(row["radius"]) == rec["radius"] and json.loads(row["couplings"]) == rec["couplings"]
@@ -194,7 +194,7 @@ def test_export_matches_tba_solve_for_the_same_chain(tmp_path, capsys):
     solved = {r["radius"]: r for r in map(json.loads, capsys.readouterr().out.splitlines())}
     for rec in (r for r in exported if r["model"] == "lee-yang"):
         ref = solved[rec["radius"]]
-        assert set(ref) == set(rec) - {"state"}
+        assert set(ref) == set(rec) - {"state", "momentum"}
         for key in SOLVE_KEYS - {"message"}:
             assert rec[key] == ref[key], key
 
@@ -260,3 +260,100 @@ def test_demo_in_a_fresh_process_help():
     proc = subprocess.run([sys.executable, "-m", "tba", "demo", "--help"], capture_output=True,
                           text=True, timeout=120)
     assert proc.returncode == 0 and "runs/demo.toml" in proc.stdout
+
+
+LEVELS_RUN = """\
+# excited levels in a scan: sinh-Gordon (two-particle levels with P = 0 and P != 0, the
+# one-particle level) and Lee-Yang (its one-particle state "0"; no two-particle levels here)
+description = "levels"
+output = "levels.h5"
+radii = [0.8, 1.5, 3.0]
+states = ["ground", "1/2,-1/2", "0", "1/2,3/2"]
+
+[[models]]
+name = "sinh-gordon"
+coupling = 0.6
+
+[[models]]
+name = "lee-yang"
+
+[deformation]
+alphas = [-0.1, 0.1]
+
+[scan]
+chunk_size = 2
+"""
+
+
+@pytest.fixture(scope="module")
+def levels_store(tmp_path_factory):
+    path = _write(tmp_path_factory.mktemp("levels"), LEVELS_RUN, "levels.toml")
+    run = loads_run(LEVELS_RUN, base_dir=path.parent)
+    run_scan(run, workers=1, log=io.StringIO())
+    return run, read_store(run.output)
+
+
+def test_scan_of_excited_levels(levels_store):
+    from threadpoolctl import threadpool_limits
+
+    from tba.levels import solve_level
+    from tba.storage import NOT_AVAILABLE
+
+    run, d = levels_store
+    assert d.state == ["ground", "-1/2,1/2", "0", "1/2,3/2"]
+    sg, ly = 0, 1
+    st = d["status"]
+    # Lee-Yang has no two-particle levels here: not computed, and the file says why
+    for s in (1, 3):
+        assert np.all(st[ly, :, :, s] == NOT_AVAILABLE)
+        assert all("one-particle" in m for m in d["message"][ly, :, :, s].ravel())
+    # P R = 2 pi sum I_k (momentum quantisation, PHYSICS.md section 5): 2 pi * 2 for 1/2,3/2
+    ok = st[sg, :, :, 3] == STATUS_CODES[Status.CONVERGED]
+    assert ok.all()
+    P = d["momentum"][sg, :, :, 3]
+    assert np.allclose(P * d.radius[None, :], 4 * np.pi, rtol=1e-12, atol=0)
+    assert np.all(d["momentum"][sg, :, :, :3][d["status"][sg, :, :, :3] == 0] == pytest.approx(0, abs=1e-12))
+    # the flow relation, boosted for P != 0, is exact: residual within the error estimates
+    # (PHYSICS.md section 4; the deformed driving term (R + alpha E) cosh t - alpha P sinh t,
+    # section 5)
+    checked = d["flow_status"] == STATUS_CODES[Status.CONVERGED]
+    assert checked[sg, :, :, 3].all() and checked[ly, :, :, 2].sum() >= 5
+    res, est = d["flow_residual"][checked], (d["error"] + d["flow_error"])[checked]
+    assert np.all(res <= est)
+    # Lee-Yang's one-particle level for alpha = -0.1 meets its branch point near R = 0.97
+    # (tests/test_lee_yang_state.py): no real solution at R = 0.8
+    assert st[ly, 0, 0, 2] == STATUS_CODES[Status.NO_REAL_SOLUTION]
+    assert st[ly, 0, 1, 2] == STATUS_CODES[Status.CONVERGED]
+    # a chunk is the chain tba.levels.solve_level runs, downwards from its largest radius
+    # (with one BLAS thread, as in every chunk), bit for bit
+    model = run.models[sg].build()
+    with threadpool_limits(limits=1, user_api="blas"):
+        first = solve_level(model, 1.5, "1/2,3/2", run.deformation(0.1), tol=run.tol)
+        second = solve_level(model, 0.8, "1/2,3/2", run.deformation(0.1), tol=run.tol, start=first)
+    assert d["energy"][sg, 1, 1, 3] == first.energy and d["energy"][sg, 1, 0, 3] == second.energy
+
+
+def test_excited_levels_in_parallel_equal_serial(levels_store, tmp_path):
+    # the serial run of the same resolved run is the reference: worker processes (one BLAS
+    # thread each) give the same bits
+    run, d = levels_store
+    parallel = run.with_output(tmp_path / "parallel.h5")
+    run_scan(parallel, workers=2, log=io.StringIO())
+    _same_numbers(d, read_store(parallel.output))
+
+
+def test_plot_and_report_of_excited_levels(levels_store, tmp_path):
+    from tba.plotting import plot_store
+    from tba.report import format_report
+
+    run, d = levels_store
+    fig = plot_store(d)
+    titles = [ax.get_title() for ax in fig.axes if ax.get_title()]
+    # one column per (model, state) the model has: 4 for sinh-Gordon, 2 for Lee-Yang
+    assert len(titles) == 6 and "lee-yang, state 0" in titles
+    report = format_report(d)
+    assert "not-available" in report
+    assert "excited levels meeting their branch point" in report
+    row = next(ln for ln in report.splitlines() if ln.strip().startswith("lee-yang") and " 0 " in ln
+               and "0.8" in ln and "1.5" in ln)
+    assert row.split()[1] == "-0.1"

@@ -269,3 +269,46 @@ def test_report_plot_and_export_of_a_shard_say_it_is_partial(shards, tmp_path, c
     figure = tmp_path / "part.png"
     assert main(["plot", str(path), "-o", str(figure)]) == 0
     assert figure.stat().st_size > 0
+
+
+LEVELS = """\
+description = "levels in shards"
+output = "levels.h5"
+radii = [1.0, 2.0, 3.0]
+states = ["ground", "1/2,-1/2"]
+
+[[models]]
+name = "free-fermion"
+
+[[models]]
+name = "lee-yang"
+
+[deformation]
+alphas = [0.1]
+
+[scan]
+chunk_size = 2
+"""
+
+
+def test_shards_of_a_run_with_excited_levels_merged_equal_the_serial_file(tmp_path, capsys):
+    # Lee-Yang has no two-particle level: those points belong to no chunk and no shard, and
+    # the merged file must still mark them "not-available" like the serial one
+    from tba.storage import NOT_AVAILABLE
+
+    path = tmp_path / "levels.toml"
+    path.write_text(LEVELS)
+    run = load_run(path)
+    run_scan(run.with_output(tmp_path / "serial.h5"), workers=1, log=io.StringIO())
+    parts = []
+    for k in (1, 2):
+        part = tmp_path / f"part-{k}.h5"
+        assert main(["run", str(path), "--shard", f"{k}/2", "--out", str(part), "--workers", "1"]) == 0
+        assert np.all(read_store(part)["status"][1, :, :, 1] == NOT_AVAILABLE)
+        parts.append(part)
+    merged = tmp_path / "merged.h5"
+    assert main(["merge", *map(str, parts), "--out", str(merged)]) == 0
+    _equal_to_serial(merged, tmp_path / "serial.h5")
+    d = read_store(merged)
+    assert d.complete and np.all(d["status"][1, :, :, 1] == NOT_AVAILABLE)
+    assert np.all(d["status"][0, :, :, 1] == 0)

@@ -276,8 +276,8 @@ def test_records_have_the_solve_json_keys(store):
     path, run = store
     recs = list(read_store(path).records())
     assert len(recs) == run.n_points
-    keys = {"model", "coupling", "radius", "alpha", "couplings", "energy", "error", "status",
-            "iterations", "message", "state"}
+    keys = {"model", "coupling", "radius", "alpha", "couplings", "energy", "error", "momentum",
+            "status", "iterations", "message", "state"}
     assert all(set(r) == keys for r in recs)
     nr = [r for r in recs if r["status"] == "no-real-solution"]
     assert nr and all(r["energy"] is None and r["error"] is None for r in nr)
@@ -351,7 +351,7 @@ def test_schema_1_files_are_refused_for_resume_but_read(tmp_path, capsys):
     run_scan(run, workers=1, log=io.StringIO())
     _as_schema_1(run.output)
     before = _sha(run.output)
-    with pytest.raises(StoreError, match="schema version 1, this tba writes 2") as info:
+    with pytest.raises(StoreError, match=f"schema version 1, this tba writes {SCHEMA_VERSION}") as info:
         run_scan(run, workers=1, log=io.StringIO())
     assert info.value.foreign and "\n" not in str(info.value)
     runfile = tmp_path / "tiny.toml"
