@@ -21,9 +21,10 @@ alpha_s q^2 sinh(s u) to delta and the separable kernel alpha_s s q^2 cosh(s(t -
 (q = m for s = 1, q = 1 otherwise).
 
 Requirements (checked): one species, S(0) = -1, block content with non-positive
-multiplicities only (no pole in the physical strip, hence no bound states) and the singularities
-of psi at |Im u| = pi/2 - pi x not too close to the real axis (for sinh-Gordon, B not within
-0.096 of the self-dual point B = 1, where they reach the real axis).
+multiplicities only (no pole in the physical strip, hence no bound states). The poles of psi at
+u = +-i |pi/2 - pi x| come close to the real axis for sinh-Gordon near its self-dual point
+B = 1 (and reach it there); closer than `POLE_SUBTRACTION` they are integrated exactly
+(`NearPoles`), and Newton steps then move the sharp sources D(t - t_j) with the rapidities.
 """
 
 import math
@@ -36,14 +37,116 @@ import scipy.linalg
 
 from tba.deformation import NO_DEFORMATION
 from tba.grid import choose_grid
+from tba.models.blocks import block_kernel_shifted
 from tba.result import SolveResult, Status
 from tba.solver import Discretization, _interpolate
 
 _EPS = np.finfo(float).eps
 #: radius where states start from the Bethe-Yang equations before continuing to smaller R
 BETHE_YANG_RADIUS = 12.0
-#: psi's singularities closer to the real axis than this are refused
-MIN_STRIP = 0.15
+#: blocks whose psi has poles closer to the real axis than this are integrated with the
+#: poles taken out (see `NearPoles`)
+POLE_SUBTRACTION = 0.25
+
+
+def _pole_distance(x):
+    """Distance a = |pi/2 - pi x| of the poles +-i a of psi_x from the real axis."""
+    return abs(math.pi / 2 - math.pi * float(x))
+
+
+def _finite(x):
+    """x with inf/NaN (a pole hit exactly: measure zero) set to 0, for Jacobian entries."""
+    return np.where(np.isfinite(x), x, 0.0)
+
+
+class NearPoles:
+    """The poles of psi close to the real axis, integrated exactly against L.
+
+    A block f_x contributes k psi_x to psi, with poles at u = +-i a, a = |pi/2 - pi x|, of
+    residue k each: pole part k (1/(u - i a) + 1/(u + i a)) = 2 k u / (u^2 + a^2). Near the
+    sinh-Gordon self-dual point (a = pi (1 - B) / 2 -> 0) they pinch the real axis, and the
+    trapezoid rule would need a spacing far below a. L itself stays smooth there (e^-eps has
+    zeros, not poles, at t_j +- i a), so psi - pole part is integrated by the trapezoid rule
+    and the pole part exactly against the sinc interpolant of L on the grid:
+    int sinc((t' - t_j)/h) / (zeta - t') dt' = (1 - exp(-i pi w)) / w, w = (zeta - t_j)/h, for
+    Im zeta <= 0 (its limit on the axis is the principal value plus the half residue, so that
+    a = 0, B = 1, is included). The sinc interpolant converges like exp(-pi d / h) (d: L's
+    strip), half the rate of the trapezoid rule: the grid is chosen for half the strip."""
+
+    def __init__(self, model):
+        self.poles = [(_pole_distance(x), float(k), x) for x, k in model.blocks[0][0].items()
+                      if _pole_distance(x) < POLE_SUBTRACTION]
+
+    def __bool__(self):
+        return bool(self.poles)
+
+    def part(self, u):
+        """The pole part sum_k 2 k u / (u^2 + a^2) (psi minus it is smooth)."""
+        out = np.zeros_like(u, dtype=float)
+        for a, k, _ in self.poles:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                out = out + 2 * k * u / (u * u + a * a)
+        return out
+
+    def part_derivative(self, u):
+        out = np.zeros_like(u, dtype=float)
+        for a, k, _ in self.poles:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                out = out + 2 * k * (a * a - u * u) / (u * u + a * a) ** 2
+        return out
+
+    def smooth(self, model, u):
+        """The blocks' psi minus the pole part; for |u| and a below 1e-2, where both are ~1/u,
+        from an expanded form of their difference (no cancellation)."""
+        with np.errstate(all="ignore"):
+            out = model.shifted_kernel(u) - self.part(u)
+        small = np.abs(u) < 1e-2
+        tiny = [(a, k, x) for a, k, x in self.poles if a < 1e-2]
+        if not (tiny and np.any(small)):
+            return out
+        us = u[small]
+        with np.errstate(all="ignore"):
+            exact = model.shifted_kernel(us) - self.part(us)
+        for a, k, x in tiny:  # replace k (psi_x - pole part) by its expanded form
+            with np.errstate(all="ignore"):
+                direct = block_kernel_shifted(x, us) - 2 * us / (us * us + a * a)
+            s1m = us * us / 6 * (1 + us * us / 20 * (1 + us * us / 42))  # sinh(u)/u - 1
+            a1 = math.sin(a) / a if a else 1.0
+            cos_minus = -a * a / 6 - a ** 4 / 360 + a ** 6 / 560  # cos a - (sin a / a)^2
+            n = (us * us * (1 + s1m) * (-2 * math.sin(a / 2) ** 2 - s1m)
+                 + a * a * (cos_minus + math.cos(a) * s1m))
+            with np.errstate(all="ignore"):
+                f2 = 2 * us * n / ((us * us * (1 + s1m) ** 2 + a * a * a1 * a1) * (us * us + a * a))
+            f2 = np.where(us == 0, 0.0, f2)  # odd in u
+            exact = np.where(np.isfinite(exact), exact, 0.0) \
+                - k * np.where(np.isfinite(direct), direct, 0.0) + k * f2
+        out[small] = exact
+        return out
+
+    def weights(self, zeta, grid):
+        """int L(t') / (zeta - t') dt' = sum_j L_j * weights (zeta: Im <= 0), and d/dzeta."""
+        h = grid.h
+        w = (zeta - grid.t) / h
+        small = np.abs(w) < 1e-3
+        with np.errstate(all="ignore"):
+            e = np.exp(-1j * np.pi * w)
+            k1 = (1 - e) / w
+            dk1 = (1j * np.pi * e / w - (1 - e) / (w * w)) / h
+        ws = w[small]
+        k1[small] = 1j * np.pi * (1 - 0.5j * np.pi * ws - (np.pi * ws) ** 2 / 6 + 1j * (np.pi * ws) ** 3 / 24)
+        dk1[small] = 1j * np.pi * (-0.5j * np.pi - np.pi ** 2 * ws / 3 + 0.125j * np.pi ** 3 * ws ** 2) / h
+        return k1, dk1
+
+    def integral(self, tk, L, grid):
+        """int (pole part)(tk - t') L(t') dt', its d/dtk and d/dL_j (real L)."""
+        value, dvalue, dL = 0.0, 0.0, np.zeros(grid.N)
+        for a, k, _ in self.poles:
+            k1, dk1 = self.weights(tk - 1j * a, grid)
+            # 1/(u - i a) + 1/(u + i a), u = tk - t': the second term is the conjugate for real L
+            value += 2 * k * float(np.dot(k1.real, L))
+            dvalue += 2 * k * float(np.dot(dk1.real, L))
+            dL += 2 * k * k1.real
+        return value, dvalue, dL
 
 
 def parse_state(numbers_):
@@ -82,9 +185,6 @@ def check_model(model):
     if model.has_bound_states:
         raise ValueError(f"model: {model.name} has bound states (a block with positive "
                          f"multiplicity); real-rapidity excited states do not apply")
-    if model.excited_strip < MIN_STRIP:
-        raise ValueError(f"model: singularities of psi at {model.excited_strip:.3g} from the real "
-                         f"axis are too close for the trapezoid rule (sinh-Gordon with |B - 1| < 0.096)")
 
 
 class Scattering:
@@ -149,6 +249,26 @@ class ExcitedEquations:
         self.N = grid.N
         sc = Scattering(model, deformation)
         self.D, self.psi, self.dpsi, self.delta, self.ddelta = sc.D, sc.psi, sc.dpsi, sc.delta, sc.ddelta
+        self.near = NearPoles(model)
+        if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
+            self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
+                                                                      np.sinh, 1, True)
+            self.dpsi = lambda u: _finite(sc.dpsi(u) - self.near.part_derivative(u))
+
+    def psi_integral(self, tk, L):
+        """(1/2pi) int psi(tk - t') L(t') dt', its d/dtk and its gradient in L on the grid."""
+        h, tg = self.grid.h, self.grid.t
+        w = self.psi(tk - tg)
+        with np.errstate(over="ignore", invalid="ignore"):  # a wild trial: Newton rejects it
+            value = (h / (2 * np.pi)) * float(np.dot(w, L))
+            slope = (h / (2 * np.pi)) * float(np.dot(self.dpsi(tk - tg), L))
+        grad = (h / (2 * np.pi)) * w
+        if self.near:
+            v, dv, g = self.near.integral(tk, L, self.grid)
+            value += v / (2 * np.pi)
+            slope += dv / (2 * np.pi)
+            grad = grad + g / (2 * np.pi)
+        return value, slope, grad
 
     # -- the equations ------------------------------------------------------------------------
     def occupation(self, eps):
@@ -170,34 +290,39 @@ class ExcitedEquations:
         tg = self.grid.t
         return sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
 
+    def source_slopes(self, t, dt):
+        """-(d sources / dt) . dt = sum_j psi(t_grid - t_j) dt_j."""
+        tg = self.grid.t
+        psi = Scattering(self.model, self.deformation).psi
+        return sum((_finite(psi(tg - tj)) * d for tj, d in zip(t, dt)), np.zeros(self.N))
+
     def residual(self, eps, t, L):
         t = np.clip(t, -700.0, 700.0)  # a wild Newton trial must not overflow
         d = self.disc
         F = eps - d.nu[0] - self.sources(t) + d.ops.convolve(L[None, :])[0] + d.separable(L[None, :])[1][0]
-        h = self.grid.h
-        tg = self.grid.t
         Q = np.empty(self.Np)
         for k in range(self.Np):
             others = np.delete(t, k)
             Q[k] = (self.m * self.radius * math.sinh(t[k]) + np.sum(self.delta(t[k] - others))
-                    - (h / (2 * np.pi)) * np.dot(self.psi(t[k] - tg), L) - 2 * np.pi * self.I[k])
+                    - self.psi_integral(t[k], L)[0] - 2 * np.pi * self.I[k])
         return F, Q
 
     def jacobian(self, eps, t, L, dL):
         t = np.clip(t, -700.0, 700.0)
         d = self.disc
-        N, Np, h = self.N, self.Np, self.grid.h
+        N, Np = self.N, self.Np
         tg = self.grid.t
         J = np.zeros((N + Np, N + Np))
         J[:N, :N] = _pseudo_energy_jacobian(d, dL)
+        psi_full = Scattering(self.model, self.deformation).psi
         for j in range(Np):
-            J[:N, N + j] = self.psi(tg - t[j])  # d/dt_j of -D(t - t_j)
+            J[:N, N + j] = _finite(psi_full(tg - t[j]))  # d/dt_j of -D(t - t_j)
         for k in range(Np):
-            J[N + k, :N] = -(h / (2 * np.pi)) * self.psi(t[k] - tg) * dL
+            _, slope, grad = self.psi_integral(t[k], L)
+            J[N + k, :N] = -grad * dL
             others = np.delete(np.arange(Np), k)
             J[N + k, N + k] = (self.m * self.radius * math.cosh(t[k])
-                               + np.sum(self.ddelta(t[k] - t[others]))
-                               - (h / (2 * np.pi)) * np.dot(self.dpsi(t[k] - tg), L))
+                               + np.sum(self.ddelta(t[k] - t[others])) - slope)
             for j in others:
                 J[N + k, N + j] = -self.ddelta(t[k] - t[j])
         return J
@@ -295,6 +420,8 @@ def _newton(eqs, eps, t, tol, maxiter=60):
         lam = 1.0
         while True:
             eps_new, t_new = eps + lam * de, t + lam * dt
+            if eqs.near:  # steps in (eps - sources, t): the sharp sources move with t exactly
+                eps_new = eps_new + eqs.sources(t_new) - eqs.sources(t) + lam * eqs.source_slopes(t, dt)
             L_new, dL_new, ok = eqs.occupation(eps_new)
             if ok:
                 F_new, Q_new = eqs.residual(eps_new, t_new, L_new)
@@ -341,6 +468,9 @@ def bethe_yang_energy(model, radius, state, deformation=NO_DEFORMATION):
 def _grid(model, deformation, r_eff, tol, level):
     """Grid for a driving term m R~ cosh(t - beta): r_eff = (R~, beta)."""
     strip = min(math.pi / 2, model.excited_strip)
+    if NearPoles(model):  # L's strip, halved for the sinc interpolation (see NearPoles)
+        far = [_pole_distance(x) for x in model.blocks[0][0] if _pole_distance(x) >= POLE_SUBTRACTION]
+        strip = min([math.pi / 4] + far)
     Rt, beta = r_eff
     return choose_grid(model.pole_distance, float(model.masses[0]), max(Rt, 1e-3), tol, level,
                        cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),

@@ -194,5 +194,52 @@ def test_models_outside_the_real_rapidity_scheme_are_refused():
         solve_excited(lee_yang(), 1.0, ("0",))
     with pytest.raises(ValueError, match="kernel callable|block content"):
         solve_excited(user_model([1.0], kernel=lambda t: 0 * t, pole_distance=1.0), 1.0, ("0",))
-    with pytest.raises(ValueError, match="too close"):
-        solve_excited(sinh_gordon(0.99), 1.0, ("0",))
+
+
+# -- sinh-Gordon at and near the self-dual point B = 1 ------------------------------------------
+# The poles of psi at +-i pi (1 - B) / 2 pinch the real axis there; they are integrated exactly
+# (tba.excited.NearPoles).
+
+def test_sinh_gordon_levels_are_analytic_through_the_self_dual_point():
+    # S depends on B through sin(pi B / 2) only (PHYSICS.md section 2): a level is analytic and
+    # even in 1 - B. A polynomial in (1 - B)^2 through B in [0.70, 0.84] (poles far enough for
+    # the plain trapezoid rule) must predict the levels at 0.9, 0.95 and 1 (poles subtracted)
+    state = ("1/2", "-1/2")
+    Bs = np.linspace(0.70, 0.84, 8)
+    E = [solve_excited(sinh_gordon(B), 1.0, state).energy for B in Bs]
+    coef = np.polyfit((1 - Bs) ** 2, E, 7)
+    for B in (0.9, 0.95, 1.0, 1.05):
+        res = solve_excited(sinh_gordon(B), 1.0, state)
+        assert res.converged, res.message
+        assert abs(np.polyval(coef, (1 - B) ** 2) - res.energy) < 1e-10
+
+
+@pytest.mark.parametrize("alpha", [-0.1, 0.1])
+@pytest.mark.parametrize("R", [1.0, 2.0])
+def test_self_dual_sinh_gordon_moving_level_follows_the_flow(alpha, R):
+    # P != 0: the deformed level is the undeformed one at R~ = sqrt((R + alpha E)^2 - (alpha P)^2),
+    # boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~ (PHYSICS.md sections 4 and 5)
+    state = ("1/2", "3/2")
+    res = solve_excited(sinh_gordon(1.0), R, state, ttbar(alpha))
+    assert res.converged, res.message
+    E, P = res.energy, res.momentum
+    A = R + alpha * E
+    Rt = math.sqrt(A * A - (alpha * P) ** 2)
+    ref = solve_excited(sinh_gordon(1.0), Rt, state)
+    predicted = (A * ref.energy + alpha * P * P * R / Rt) / Rt
+    assert abs(E - predicted) <= 1e-11 * abs(E) + res.error + ref.error * A / Rt
+
+
+def test_self_dual_sinh_gordon_approaches_bethe_yang_and_bounds_its_error():
+    # the difference from Bethe-Yang falls like e^{-m R} times a decreasing power of R
+    # (PHYSICS.md section 5; Luscher): per two units of R by a factor between e^{-2} and e^{-2}/4
+    state = ("1/2", "-1/2")
+    gaps = [solve_excited(sinh_gordon(1.0), R, state).energy
+            - bethe_yang_energy(sinh_gordon(1.0), R, state)[0] for R in (4.0, 6.0, 8.0)]
+    for a, b in zip(gaps, gaps[1:]):
+        assert math.exp(-2) / 4 < b / a < math.exp(-2)
+    # the error estimate at tol 1e-8 bounds the error (tol 1e-12 as reference; common practice)
+    for R in (0.3, 1.0):
+        loose = solve_excited(sinh_gordon(1.0), R, ("1/2", "3/2"), tol=1e-8)
+        tight = solve_excited(sinh_gordon(1.0), R, ("1/2", "3/2"), tol=1e-12)
+        assert abs(loose.energy - tight.energy) <= loose.error + tight.error
