@@ -7,7 +7,7 @@ a cluster (README, "Clusters").
     python benchmarks/bench_cluster.py --quick    # a small sinh-Gordon scan, one repetition
 
 Scans: "balanced" (E8 at alpha = -0.05, 64 radii in 16 chunks of 4 that cost about the
-same) and "demo" (runs/demo.toml, 180 points: sinh-Gordon and E8 at three alphas, where one
+same) and "demo" (benchmarks/demo_180.toml, the earlier demo run, 180 points: sinh-Gordon and E8 at three alphas, where one
 E8 chunk next to a branch point takes about a third of the chunks' time, plus two E8
 branch points of ~0.7 s: the uneven load of a real scan).
 
@@ -204,7 +204,7 @@ def main(argv=None):
         scans = {"quick": loads_run(QUICK_RUN, name="quick")}
     else:
         scans = {"balanced": loads_run(BALANCED_RUN, name="balanced"),
-                 "demo": load_run(HERE.parent / "runs" / "demo.toml")}
+                 "demo": load_run(HERE / "demo_180.toml")}
 
     with tempfile.TemporaryDirectory() as tmp:
         # numba's on-disk cache and the imports, once, in the driver and on the workers

@@ -253,7 +253,12 @@ class ExcitedEquations:
         if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
             self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
                                                                       np.sinh, 1, True)
-            self.dpsi = lambda u: _finite(sc.dpsi(u) - self.near.part_derivative(u))
+            self.dpsi = lambda u: _finite(self._quiet(sc.dpsi, u) - self.near.part_derivative(u))
+
+    @staticmethod
+    def _quiet(fn, u):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return fn(u)
 
     def psi_integral(self, tk, L):
         """(1/2pi) int psi(tk - t') L(t') dt', its d/dtk and its gradient in L on the grid."""
@@ -286,15 +291,18 @@ class ExcitedEquations:
         return L, dL, ok
 
     def sources(self, t):
-        """sum_j D(t_grid - t_j) on the grid."""
+        """sum_j D(t_grid - t_j) on the grid. At B = 1 exactly D(0) = +inf (e^-eps has a double
+        zero at t_j on the axis); it is capped at 700, where e^-700 leaves L unchanged."""
         tg = self.grid.t
-        return sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
+        with np.errstate(divide="ignore"):
+            return np.minimum(sum((self.D(tg - tj) for tj in t), np.zeros(self.N)), 700.0)
 
     def source_slopes(self, t, dt):
         """-(d sources / dt) . dt = sum_j psi(t_grid - t_j) dt_j."""
         tg = self.grid.t
         psi = Scattering(self.model, self.deformation).psi
-        return sum((_finite(psi(tg - tj)) * d for tj, d in zip(t, dt)), np.zeros(self.N))
+        with np.errstate(divide="ignore", invalid="ignore"):  # B = 1: psi(0) is a pole
+            return sum((_finite(psi(tg - tj)) * d for tj, d in zip(t, dt)), np.zeros(self.N))
 
     def residual(self, eps, t, L):
         t = np.clip(t, -700.0, 700.0)  # a wild Newton trial must not overflow
@@ -316,7 +324,8 @@ class ExcitedEquations:
         J[:N, :N] = _pseudo_energy_jacobian(d, dL)
         psi_full = Scattering(self.model, self.deformation).psi
         for j in range(Np):
-            J[:N, N + j] = _finite(psi_full(tg - t[j]))  # d/dt_j of -D(t - t_j)
+            with np.errstate(divide="ignore", invalid="ignore"):  # B = 1: psi(0) is a pole
+                J[:N, N + j] = _finite(psi_full(tg - t[j]))  # d/dt_j of -D(t - t_j)
         for k in range(Np):
             _, slope, grad = self.psi_integral(t[k], L)
             J[N + k, :N] = -grad * dL
