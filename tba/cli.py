@@ -372,8 +372,9 @@ def cmd_demo(args, out):
     run = run.with_output(h5)
     print(f"tba demo: {run.description}\n"
           f"  run file {run_file}; output {h5} and {figure}\n"
-          f"  (on the alpha > 0 side the smallest radii lie past the branch point: "
-          f"no real solution there)\n", file=out, flush=True)
+          f"  (the ground state's smallest radii lie past its branch point on the alpha > 0 "
+          f"side, an excited level's on the alpha < 0 side: no real solution there)\n",
+          file=out, flush=True)
     try:
         run_scan(run, h5, workers=_workers(args.workers), force=args.force, run_file=run_file)
     except StoreError as exc:
