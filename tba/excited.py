@@ -291,11 +291,13 @@ class ExcitedEquations:
         return L, dL, ok
 
     def sources(self, t):
-        """sum_j D(t_grid - t_j) on the grid. At B = 1 exactly D(0) = +inf (e^-eps has a double
-        zero at t_j on the axis); it is capped at 700, where e^-700 leaves L unchanged."""
+        """sum_j D(t_grid - t_j) on the grid. At B = 1 a particle on a grid point makes
+        D(0) = +inf there (e^-eps has a double zero at t_j on the axis): such a value is set to
+        700, where e^-700 leaves L unchanged."""
         tg = self.grid.t
-        with np.errstate(divide="ignore"):
-            return np.minimum(sum((self.D(tg - tj) for tj in t), np.zeros(self.N)), 700.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
+        return np.where(out == np.inf, 700.0, out)
 
     def source_slopes(self, t, dt):
         """-(d sources / dt) . dt = sum_j psi(t_grid - t_j) dt_j."""
