@@ -32,10 +32,11 @@ from tba.storage import NOT_COMPUTED, StoreError, read_store
 CONVENTIONS = """\
 conventions:
   units: the lightest mass is 1; R is the circumference of the space circle.
-  E is the TBA ground-state energy without the bulk term f R.
+  E is the TBA energy of the level (ground state unless --state) without the bulk term f R.
   deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t), so that
   d/dalpha E = E dE/dR + P^2/R and E(R, alpha) = E(R + alpha E, 0) for P = 0;
-  alpha > 0 is the side where the ground state meets a branch point (Hagedorn).
+  alpha > 0 is the side where the ground state meets a branch point (Hagedorn),
+  alpha < 0 the side where positive excited levels do.
   --cdd S:A adds exp(i A sinh(S t)) for odd spin S >= 3 (single-species models).
   status: converged | no-real-solution | not-converged; energy and error are
   null unless converged. error estimates |E - exact| and is meant to bound it."""
@@ -403,14 +404,15 @@ def add_tol_argument(parser):
 
 
 def build_parser():
-    parser = _Parser(prog="tba", description="TBA ground-state energies of integrable S-matrices "
-                     "with CDD (TTbar) deformations.", epilog=CONVENTIONS,
+    parser = _Parser(prog="tba", description="TBA energies (ground state and excited levels) of "
+                     "integrable S-matrices with CDD (TTbar) deformations.", epilog=CONVENTIONS,
                      formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"tba {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
-    solve = sub.add_parser("solve", help="ground-state energy at one or more radii",
-                           description="Solve the ground-state TBA at the given radii (in order, "
-                           "each warm-started from the previous one).", epilog=CONVENTIONS,
+    solve = sub.add_parser("solve", help="energy of a level at one or more radii",
+                           description="Solve the TBA of the ground state (or of the level given "
+                           "by --state) at the given radii (in order, each warm-started from the "
+                           "previous one).", epilog=CONVENTIONS,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     add_model_arguments(solve)
     solve.add_argument("--radius", required=True, nargs="+", metavar="R",
@@ -421,8 +423,9 @@ def build_parser():
     add_tol_argument(solve)
     solve.add_argument("--state", metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "
-                       "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0); "
-                       "single-species models without bound states")
+                       "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0): "
+                       "single-species models without bound states, and lee-yang's "
+                       "one-particle state 0")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
     solve.set_defaults(func=cmd_solve)
     run = sub.add_parser("run", help="run a scan from a TOML run file (resumable)",
