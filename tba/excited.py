@@ -497,6 +497,20 @@ def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff):
     return _newton(eqs, eqs.initial_guess(t0, seed), t0, tol)
 
 
+def _unbounded(deformation, radius, state, energy):
+    """Why a TTbar-deformed solution is spurious, or None: its driving term
+    m (R + alpha E) cosh t - m alpha P sinh t must grow on both sides (with the exact momentum
+    R P = 2 pi sum I_k); otherwise L grows with the grid's cutoff and the numbers mean nothing."""
+    if not deformation.is_ttbar:
+        return None
+    c = radius + deformation.alpha * energy
+    b = deformation.alpha * 2 * math.pi * float(sum(state)) / radius
+    if c > abs(b):
+        return None
+    return (f"R + alpha E = {c:.6g} <= |alpha P| = {abs(b):.6g}: the driving term is unbounded "
+            f"below, no solution of this form")
+
+
 def _effective_radius(deformation, radius, E, P=0.0):
     """(R~, beta) of the driving term m (R + alpha E) cosh t - m alpha P sinh t = m R~ cosh(t - beta)
     (TTbar only; other deformations keep R)."""
@@ -558,6 +572,8 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
         iterations += its
         if new is not None and new.det_sign != seed.det_sign:
             new, msg = None, "the solution left the branch (det J changed sign)"
+        if new is not None and _unbounded(deformation, radius, state, new.energy):
+            new, msg = None, _unbounded(deformation, radius, state, new.energy)
         if new is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=f"refinement level {level}: {msg}")
@@ -595,6 +611,7 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
         value = lambda p: (deformation.scaled(p), seed.radius)  # noqa: E731
     step = (target - now) / 4 if parameter == "radius" else 0.25
     history = [(now, seed.jac_scale)]
+    spurious = False
     while now != target:
         trial = target if abs(target - now) <= abs(step) else now + step
         defo, R = value(trial)
@@ -603,6 +620,9 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
         its_total += its
         if new is not None and new.det_sign != seed.det_sign:
             new, msg = None, "the solution left the branch (det J changed sign)"
+        if new is not None and _unbounded(defo, R, state, new.energy):
+            new, msg = None, _unbounded(defo, R, state, new.energy)
+            spurious = True
         if new is not None:
             seed, now = new, trial
             history.append((now, new.jac_scale))
@@ -610,6 +630,8 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
             continue
         step *= 0.5
         if abs(step) < 1e-9 * max(abs(now), 1e-3):
+            if spurious:  # the path meets R~ -> 0, not a fold: no verdict on real solutions
+                return None, f"continuation stalled at {now:.12g}: {msg}", its_total
             return None, _stalled(parameter, history, target, now, msg), its_total
     return seed, "converged", its_total
 
