@@ -530,7 +530,8 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
     ``start``, a converged result for the same state); the deformation is then switched on
     at fixed R, as the flow in alpha does. The point is solved on two grids for the error
     estimate. Status NO_REAL_SOLUTION when the level meets its branch point before the
-    requested coupling (positive levels for alpha < 0).
+    requested coupling (positive levels for alpha < 0). A moving level (P != 0) that cannot
+    be reached that way is taken from large R at fixed alpha (`_or_from_large_radius`).
     """
     from tba.solver import _validate
 
@@ -563,9 +564,18 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
         iterations += its
         if seed is None:
             status = Status.NO_REAL_SOLUTION if msg.startswith("no real") else Status.NOT_CONVERGED
-            return SolveResult(**base, status=status, iterations=iterations, message=msg)
-    # -- two levels at the target ----------------------------------------------------------------
+            result = SolveResult(**base, status=status, iterations=iterations, message=msg)
+            return _or_from_large_radius(model, deformation, radius, state, tol, result, undeformed)
+    result = _refine(model, deformation, radius, state, tol, seed, undeformed, base, iterations)
+    if result.status is Status.NOT_CONVERGED:
+        return _or_from_large_radius(model, deformation, radius, state, tol, result, undeformed)
+    return result
+
+
+def _refine(model, deformation, radius, state, tol, seed, undeformed, base, iterations):
+    """Solve on grids of increasing resolution from ``seed`` until two agree within ``tol``."""
     states = []
+    error = math.nan
     for level in (0, 1, 2, 3):
         r_eff = _effective_radius(deformation, radius, seed.energy, seed.momentum)
         new, msg, its = _solve_level(model, deformation, radius, state, tol, level, seed, r_eff)
@@ -595,6 +605,37 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
                                    rapidities=tuple(float(t) for t in fine.rapidities), _state=fine)
     return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                        message=f"error estimate {error:.3g} above the tolerance after 4 levels")
+
+
+def _or_from_large_radius(model, deformation, radius, state, tol, result, undeformed):
+    """A moving level (P != 0) that could not be reached by switching TTbar on at fixed R: the
+    path in alpha can meet R~ = sqrt((R + alpha E)^2 - (alpha P)^2) -> 0 while the level exists
+    at (R, alpha), on the branch that comes from large R. Try that path: switch the coupling on
+    at large R, then follow the level in R at fixed alpha. Returns ``result`` (its message
+    extended) if that fails too; a fold on this path is not a verdict on the level."""
+    if not (deformation.is_ttbar and deformation.alpha and sum(state) != 0):
+        return result
+    R0 = max(2 * radius, BETHE_YANG_RADIUS / float(model.masses[0]))
+    its_total = result.iterations
+    seed, msg, its = _solve_level(model, NO_DEFORMATION, R0, state, tol, 0, None, (R0, 0.0))
+    its_total += its
+    if seed is not None:
+        seed, msg, its = _follow(model, deformation, state, tol, seed, "coupling", 1.0)
+        its_total += its
+    if seed is not None:
+        seed, msg, its = _follow(model, deformation, state, tol, seed, "radius", radius)
+        its_total += its
+    if seed is not None:
+        base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
+                    coupling=model.coupling, state=state)
+        other = _refine(model, deformation, radius, state, tol, seed, undeformed, base, its_total)
+        if other.converged:
+            other.message = "converged (the coupling switched on at large R, then followed in R)"
+            return other
+        msg = other.message
+    result.message = f"{result.message}; from large R at fixed alpha: {msg}"
+    result.iterations = its_total
+    return result
 
 
 def _follow(model, deformation, state, tol, seed, parameter, target):
