@@ -249,6 +249,7 @@ class ExcitedEquations:
         self.N = grid.N
         sc = Scattering(model, deformation)
         self.D, self.psi, self.dpsi, self.delta, self.ddelta = sc.D, sc.psi, sc.dpsi, sc.delta, sc.ddelta
+        self.psi_full = sc.psi  # D' itself (self.psi may be its pole-subtracted part)
         self.near = NearPoles(model)
         if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
             self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
@@ -302,9 +303,8 @@ class ExcitedEquations:
     def source_slopes(self, t, dt):
         """-(d sources / dt) . dt = sum_j psi(t_grid - t_j) dt_j."""
         tg = self.grid.t
-        psi = Scattering(self.model, self.deformation).psi
         with np.errstate(divide="ignore", invalid="ignore"):  # B = 1: psi(0) is a pole
-            return sum((_finite(psi(tg - tj)) * d for tj, d in zip(t, dt)), np.zeros(self.N))
+            return sum((_finite(self.psi_full(tg - tj)) * d for tj, d in zip(t, dt)), np.zeros(self.N))
 
     def residual(self, eps, t, L):
         t = np.clip(t, -700.0, 700.0)  # a wild Newton trial must not overflow
@@ -324,10 +324,9 @@ class ExcitedEquations:
         tg = self.grid.t
         J = np.zeros((N + Np, N + Np))
         J[:N, :N] = _pseudo_energy_jacobian(d, dL)
-        psi_full = Scattering(self.model, self.deformation).psi
         for j in range(Np):
             with np.errstate(divide="ignore", invalid="ignore"):  # B = 1: psi(0) is a pole
-                J[:N, N + j] = _finite(psi_full(tg - t[j]))  # d/dt_j of -D(t - t_j)
+                J[:N, N + j] = _finite(self.psi_full(tg - t[j]))  # d/dt_j of -D(t - t_j)
         for k in range(Np):
             _, slope, grad = self.psi_integral(t[k], L)
             J[N + k, :N] = -grad * dL

@@ -133,23 +133,21 @@ def _solve_chunk(run, chunk):
                 start0 = res0
                 predicted, flow_error = res0.energy, res0.error
                 if turns != 0:
-                    predicted, flow_error = _boosted_prediction(model, level, R, alpha, boost,
-                                                                res, res0, run.tol)
+                    predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
+                                                                boost, r_eff, res, res0, run.tol)
                 values["flow_prediction"][i] = predicted
                 values["flow_error"][i] = flow_error
                 values["flow_residual"][i] = abs(res.energy - predicted)
     return chunk, values, time.perf_counter() - t0
 
 
-def _boosted_prediction(model, level, R, alpha, boost, res, res0, tol):
+def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, tol):
     """The flow prediction of a level with P != 0 and its error estimate.
 
     E R~ = A E_0(R~) + alpha P^2 R / R~ with A = R + alpha E and R~ = sqrt(A^2 - (alpha P)^2)
     (E_0 = res0 at R~). The prediction depends on E through A and R~, so its error estimate is
     (A / R~) err(E_0) + |d prediction / dE| err(E), with E_0'(R~) from a second undeformed
     solve at R~ (1 + 1e-6); NaN if that solve fails."""
-    a_eff = R + alpha * res.energy
-    r_eff = float(np.sqrt(a_eff * a_eff - boost * boost))
     e0 = res0.energy
     predicted = (a_eff * e0 + boost * boost * R / (alpha * r_eff)) / r_eff
     step = 1e-6 * r_eff
