@@ -15,7 +15,7 @@ What is timed (time.perf_counter, best of --repeat rounds; the executors take tu
 a round, so that all see the same load of the machine):
   serial      run_scan(run, workers=1): every chunk in the driver, then the branch points.
   dask-1/-2   run_scan(run, backend=DaskBackend(client=...)) on a LocalCluster of 1 / 2
-              single-threaded worker processes (tba.cluster.local_cluster, as tba run
+              single-threaded worker processes (tba.scans.cluster.local_cluster, as tba run
               --cluster local:N starts it), started (and timed) once before the rounds;
               the pilot chunk, the transfers and the driver's writes are included.
   pool-2      run_scan(run, workers=2): the local process pool, whose worker start-up
@@ -47,11 +47,11 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 
-import tba.scan  # noqa: E402
-from tba.cluster import DaskBackend, local_cluster  # noqa: E402
-from tba.runfile import load_run, loads_run  # noqa: E402
-from tba.scan import run_scan  # noqa: E402
-from tba.storage import read_store  # noqa: E402
+import tba.scans.points  # noqa: E402
+from tba.scans.cluster import DaskBackend, local_cluster  # noqa: E402
+from tba.scans.runfile import load_run, loads_run  # noqa: E402
+from tba.store.driver import run_scan  # noqa: E402
+from tba.store.hdf5 import read_store  # noqa: E402
 
 BALANCED_RUN = """\
 # bench_cluster balanced: E8 away from any branch point, 64 radii in 16 chunks of 4
@@ -90,7 +90,7 @@ chunk_size = 5
 
 
 def _clear_model_cache():
-    tba.scan._MODEL_CACHE.clear()
+    tba.scans.points._MODEL_CACHE.clear()
     return os.getpid()
 
 

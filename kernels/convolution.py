@@ -11,7 +11,7 @@ into a block-Toeplitz product. The kernel is passed as samples on all offsets,
 
 Three forms: the dense matrix (``block_toeplitz_matrix``, which the solver multiplies
 and factorises for small systems), an FFT product (``SpectralConvolver``, O(N log N), for
-large ones: the crossover ``DENSE_LIMIT`` in ``tba.solver`` was measured), and a direct
+large ones: the crossover ``DENSE_LIMIT`` in ``tba.solvers.ground`` was measured), and a direct
 compiled loop (``block_toeplitz_matvec``), the plain reference the other two are tested
 against.
 """

@@ -7,7 +7,7 @@ Public names::
     result.energy, result.error, result.status
 """
 
-from tba.deformation import CDD, NO_DEFORMATION, higher_spin, ttbar
+from tba.models.cdd import CDD, NO_DEFORMATION, higher_spin, ttbar
 from tba.models import (
     DiagonalModel,
     free_fermion,
@@ -17,8 +17,8 @@ from tba.models import (
     sinh_gordon,
     user_model,
 )
-from tba.result import SolveError, SolveResult, Status
-from tba.solver import solve_ground_state, solve_radii
+from tba.solvers.result import SolveError, SolveResult, Status
+from tba.solvers.ground import solve_ground_state, solve_radii
 
 __version__ = "0.1.0"
 

@@ -8,7 +8,8 @@ import sys
 import pytest
 from scipy.special import k1
 
-from tba.cli import main, parse_radii
+from tba.cli import main
+from tba.cli.common import parse_radii
 
 
 def run(*args):

@@ -20,12 +20,12 @@ import h5py
 import numpy as np
 import pytest
 
-import tba.cluster
+import tba.scans.cluster
 from tba.cli import main
-from tba.cluster import DaskBackend, local_cluster
-from tba.runfile import load_run
-from tba.scan import ScanFailed, run_scan
-from tba.storage import BRANCH_VARIABLES, POINT_VARIABLES, read_store
+from tba.scans.cluster import DaskBackend, local_cluster
+from tba.scans.runfile import load_run
+from tba.store.driver import ScanFailed, run_scan
+from tba.store.hdf5 import BRANCH_VARIABLES, POINT_VARIABLES, read_store
 
 # E8 chunks take ~0.1 s each (long enough for a worker to die in the middle of one), the
 # free fermion's a few ms; alpha = 0.05 has a branch point per model, -0.05 none.
@@ -154,14 +154,14 @@ def test_a_task_that_keeps_killing_workers_fails_clearly_and_the_rest_is_saved(
     lc, client = cluster
     _two_workers(client)
     target = TOTAL - 1
-    real = tba.cluster._chunk_task
+    real = tba.scans.cluster._chunk_task
 
     def poisoned(run, chunk, version):  # sent by value: kills any worker that runs chunk `target`
         if chunk.index == target:
             os.kill(os.getpid(), signal.SIGKILL)
         return real(run, chunk, version)
 
-    monkeypatch.setattr(tba.cluster, "_chunk_task", poisoned)
+    monkeypatch.setattr(tba.scans.cluster, "_chunk_task", poisoned)
     monkeypatch.setattr(lc.scheduler, "allowed_failures", 1)  # give up after two dead workers
     out = tmp_path / "poison.h5"
     log = io.StringIO()
@@ -178,7 +178,7 @@ def test_a_task_that_keeps_killing_workers_fails_clearly_and_the_rest_is_saved(
     assert data.history[0]["failed"] and data.history[0]["finished"]
 
     # the same command again (the chunk no longer kills): only the missing ones are computed
-    monkeypatch.setattr(tba.cluster, "_chunk_task", real)
+    monkeypatch.setattr(tba.scans.cluster, "_chunk_task", real)
     monkeypatch.setattr(lc.scheduler, "allowed_failures", 3)
     _two_workers(client)
     summary = run_scan(load_run(runfile), out, backend=DaskBackend(client=client), log=io.StringIO())
@@ -227,7 +227,7 @@ def test_cluster_options_fail_on_one_line(runfile, tmp_path, capsys, monkeypatch
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and err[0].startswith("tba: error: ") and option in err[0], err
     # nobody listens there: one line naming --scheduler, and no file is created
-    monkeypatch.setattr(tba.cluster, "CONNECT_TIMEOUT", 1)
+    monkeypatch.setattr(tba.scans.cluster, "CONNECT_TIMEOUT", 1)
     assert main(["run", str(runfile), "--out", str(out), "--scheduler", "tcp://127.0.0.1:9"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--scheduler" in err[0] and "127.0.0.1:9" in err[0], err
@@ -242,6 +242,6 @@ def test_cluster_options_fail_on_one_line(runfile, tmp_path, capsys, monkeypatch
 
 
 def test_import_tba_and_plain_run_do_not_import_dask(runfile, tmp_path):
-    code = ("import sys, tba, tba.cli, tba.scan, tba.cluster, tba.merge; "
+    code = ("import sys, tba, tba.cli, tba.store.driver, tba.scans.cluster, tba.store.merge; "
             "sys.exit(1 if 'distributed' in sys.modules or 'dask' in sys.modules else 0)")
     assert subprocess.run([sys.executable, "-c", code], timeout=120).returncode == 0

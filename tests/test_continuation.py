@@ -19,10 +19,10 @@ from scipy.optimize import brentq
 from reference import (dense_tba_complex, deformed_free_fermion_branch, flow_root, free_fermion_ns_energy,
                        free_fermion_ns_energy_complex)
 from tba import free_fermion, ising_e8, lee_yang, sinh_gordon, solve_ground_state, ttbar
-from tba.continuation import ComplexEquations, complex_pair, locate_fold, second_branch
-from tba.deformation import NO_DEFORMATION
-from tba.flow import UndeformedCurve, branch_point
-from tba.solver import Discretization, energy_derivatives
+from tba.physics.continuation import ComplexEquations, complex_pair, locate_fold, second_branch
+from tba.models.cdd import NO_DEFORMATION
+from tba.physics.flow import UndeformedCurve, branch_point
+from tba.solvers.ground import Discretization, energy_derivatives
 
 FF = free_fermion()
 SG = sinh_gordon(0.6)
@@ -61,7 +61,7 @@ def _check_fold(fold, bp):
     assert fold.value_error <= 1e-11
     assert abs(fold.value - bp.radius) <= fold.value_error + bp.radius_error + 1e-13
     # at the fold the Jacobian is singular: det of the CDD capacitance matrix -> 0
-    # (tba.solver docstring); R(s) has a minimum there: d^2 R/ds^2 > 0
+    # (tba.solvers.ground docstring); R(s) has a minimum there: d^2 R/ds^2 > 0
     assert abs(fold.fold_indicator) <= 1e-8
     assert fold.second_derivative > 0
 
@@ -200,7 +200,7 @@ def test_complex_pair_far_below_rc_free_fermion():
 
 
 def _complex_equations_energy(model, ref_radius):
-    """E_0(z), dE_0/dz from tba.continuation.ComplexEquations with zero deformation and complex
+    """E_0(z), dE_0/dz from tba.physics.continuation.ComplexEquations with zero deformation and complex
     radius z, on the grid the solver picks at the real radius ``ref_radius``."""
     res = solve_ground_state(model, ref_radius, tol=1e-13)
     disc = Discretization(model, NO_DEFORMATION, ref_radius, res.grid)

@@ -58,7 +58,7 @@ def test_flow_relation_is_not_trivial():
 @pytest.mark.parametrize("name", list(MODELS))
 @pytest.mark.parametrize("alpha", [None, 0.1, -0.3])
 def test_warm_started_scan_equals_cold_solves(name, alpha):
-    # solve_radii warm-starts each point from the last (tba/solver.py); the answer must not
+    # solve_radii warm-starts each point from the last (tba/solvers/ground.py); the answer must not
     # depend on the starting point (common practice, no source)
     model = MODELS[name]
     deformation = None if alpha is None else ttbar(alpha)
@@ -178,7 +178,7 @@ def test_higher_spin_matches_dense_solver_loose_tol(name, kernel, couplings):
 
 
 def test_higher_spin_rejected_for_several_species():
-    # tba/deformation.py: spin > 1 only for single-species models
+    # tba/models/cdd.py: spin > 1 only for single-species models
     with pytest.raises(ValueError, match="spin-3"):
         solve_ground_state(MODELS["ising-e8"], 1.0, higher_spin(3, -0.01))
 

@@ -8,8 +8,8 @@ import pytest
 from scipy.special import k1, kvp
 
 from tba import Status, free_fermion, lee_yang, sinh_gordon, ttbar, user_model
-from tba.excited import bethe_yang_energy, parse_state, solve_excited
-from tba.flow import ExcitedCurve, level_branch_point, predict
+from tba.solvers.excited import bethe_yang_energy, parse_state, solve_excited
+from tba.physics.flow import ExcitedCurve, level_branch_point, predict
 
 FF = free_fermion()
 SG = sinh_gordon(0.6)
@@ -198,7 +198,7 @@ def test_models_outside_the_real_rapidity_scheme_are_refused():
 
 # -- sinh-Gordon at and near the self-dual point B = 1 ------------------------------------------
 # The poles of psi at +-i pi (1 - B) / 2 pinch the real axis there; they are integrated exactly
-# (tba.excited.NearPoles).
+# (tba.solvers.excited.NearPoles).
 
 @pytest.mark.parametrize("state", [("1/2", "-1/2"), ("0",)], ids=["-1/2,1/2", "0"])
 def test_sinh_gordon_levels_are_analytic_through_the_self_dual_point(state):

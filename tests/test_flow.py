@@ -17,9 +17,9 @@ from scipy.optimize import brentq
 from reference import deformed_free_fermion_branch, deformed_free_fermion_energy
 from tba import free_fermion, ising_e8, lee_yang, sinh_gordon, solve_ground_state, solve_radii, ttbar
 from tba.cli import main as cli_main
-from tba.flow import (UndeformedCurve, branch_point, cft_branch_radius, cft_energy, predict,
+from tba.physics.flow import (UndeformedCurve, branch_point, cft_branch_radius, cft_energy, predict,
                       predict_ground_state)
-from tba.solver import energy_derivatives, flow_residual
+from tba.solvers.ground import energy_derivatives, flow_residual
 
 FF = free_fermion()
 SG = sinh_gordon(0.6)

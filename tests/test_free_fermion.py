@@ -120,7 +120,7 @@ def test_deformed_matches_flow_of_exact_series(alpha, R):
     exact = deformed_free_fermion_energy(R, alpha)
     assert abs(r.energy - exact) <= 1e-11 * abs(exact)
     assert r.error >= abs(r.energy - exact)
-    # the reported effective radius is R + alpha E (tba/solver.py docstring of _effective_radius)
+    # the reported effective radius is R + alpha E (tba/solvers/ground.py docstring of _effective_radius)
     assert r.effective_radius == pytest.approx(R + alpha * exact, rel=1e-13)
 
 

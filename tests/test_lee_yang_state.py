@@ -1,4 +1,4 @@
-"""The Lee-Yang zero-momentum one-particle state (tba/lee_yang_state.py) at every radius."""
+"""The Lee-Yang zero-momentum one-particle state (tba/solvers/lee_yang.py) at every radius."""
 
 import math
 
@@ -6,7 +6,7 @@ import pytest
 from scipy.optimize import minimize_scalar
 
 from tba import Status, higher_spin, lee_yang, solve_ground_state, ttbar
-from tba.lee_yang_state import solve_lee_yang_one_particle
+from tba.solvers.lee_yang import solve_lee_yang_one_particle
 
 #: R* ~ 2.54: where the singular points meet at +-i pi/3 and the form of the state changes
 PINCH = 2.54

@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 
 from tba.cli import main
-from tba.plotting import LABELS, plot_store
-from tba.report import CONVERGED
-from tba.runfile import loads_run
-from tba.scan import run_scan
-from tba.storage import read_store
+from tba.output.plotting import LABELS, plot_store
+from tba.output.report import CONVERGED
+from tba.scans.runfile import loads_run
+from tba.store.driver import run_scan
+from tba.store.hdf5 import read_store
 
 # Lee-Yang and the free fermion; alpha = 0.5 at R = 0.3 lies past the branch point of both
 # (CFT estimate sqrt(2 pi c alpha / 3) ~ 0.65-0.72, PHYSICS.md section 4), alpha = 0 has no

@@ -15,11 +15,12 @@ import h5py
 import numpy as np
 import pytest
 
-import tba.scan
-from tba.flow import branch_point
-from tba.runfile import load_run, loads_run
-from tba.scan import ScanInterrupted, run_scan
-from tba.storage import BP_FOUND, BP_NONE, BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
+import tba.scans.backends
+import tba.scans.points
+from tba.physics.flow import branch_point
+from tba.scans.runfile import load_run, loads_run
+from tba.store.driver import ScanInterrupted, run_scan
+from tba.store.hdf5 import BP_FOUND, BP_NONE, BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
 
 # Free fermion at alpha = 0.5 has no real ground state below R ~ 0.6 (PHYSICS.md section 4,
 # CFT estimate 0.72): each of those points costs the solver a continuation (~0.1 s), which
@@ -187,7 +188,7 @@ SMALL = RUN.format(count=3).replace("alphas = [-0.3, 0.5]", "alphas = [-0.3, 0.4
 
 
 class _Counting:
-    """tba.flow.branch_point with a call log; raises KeyboardInterrupt on call ``interrupt``."""
+    """tba.physics.flow.branch_point with a call log; raises KeyboardInterrupt on call ``interrupt``."""
 
     def __init__(self, interrupt=None):
         self.calls, self.interrupt = [], interrupt
@@ -201,7 +202,7 @@ class _Counting:
 
 def test_branch_points_are_added_later_and_never_recomputed(tmp_path, monkeypatch):
     calls = _Counting()
-    monkeypatch.setattr(tba.scan, "branch_point", calls)
+    monkeypatch.setattr(tba.scans.points, "branch_point", calls)
     off = loads_run(SMALL + "branch_points = false\n", base_dir=tmp_path)
     log = io.StringIO()
     summary = run_scan(off, workers=1, log=log)
@@ -235,7 +236,7 @@ def test_interrupted_during_branch_points_resumes_the_rest(tmp_path, monkeypatch
     reference = loads_run(SMALL, base_dir=tmp_path / "ref")
     run_scan(reference, workers=1, log=io.StringIO())
     calls = _Counting(interrupt=4)
-    monkeypatch.setattr(tba.scan, "branch_point", calls)
+    monkeypatch.setattr(tba.scans.points, "branch_point", calls)
     run = loads_run(SMALL, base_dir=tmp_path)
     with pytest.raises(ScanInterrupted, match="all 12 chunks and 3 of 6 pending branch points are saved"):
         run_scan(run, workers=1, log=io.StringIO())

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from tba.cli import main
-from tba.runfile import RunFileError, demo_run_path, differing_keys, load_run, loads_run, resolve_run
+from tba.scans.runfile import RunFileError, demo_run_path, differing_keys, load_run, loads_run, resolve_run
 
 REPO = Path(__file__).resolve().parent.parent
 

@@ -11,12 +11,13 @@ import h5py
 import numpy as np
 import pytest
 
-import tba.cli
+import tba.cli.commands
 from tba.cli import main
-from tba.result import STATUS_CODES, Status
-from tba.runfile import loads_run
-from tba.scan import run_scan, solve_branch_point, solve_chunk
-from tba.storage import (BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, BRANCH_VARIABLES, FLOW_NOT_APPLICABLE,
+from tba.solvers.result import STATUS_CODES, Status
+from tba.scans.runfile import loads_run
+from tba.scans.points import solve_branch_point, solve_chunk
+from tba.store.driver import run_scan
+from tba.store.hdf5 import (BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, BRANCH_VARIABLES, FLOW_NOT_APPLICABLE,
                          FLOW_OFF, POINT_VARIABLES, read_store)
 
 RUN = """\
@@ -149,7 +150,7 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     assert ("consistency with the scan (last real R >= R_c, and the next R down < R_c where it has "
             "no real solution): holds for all 2 checked curve(s)") in report
     # the check can fail: an R_c above the last real radius, or below the next one down
-    from tba.report import format_report
+    from tba.output.report import format_report
     real = d["status"][:, 1, :, 0] == STATUS_CODES[Status.CONVERGED]
     last = [d.radius[np.flatnonzero(r)[0]] for r in real]
     d.branch["branch_radius"][0, 1] = last[0] * 1.01
@@ -230,7 +231,7 @@ DEMO_LIKE = RUN.replace('output = "scan.h5"', 'output = "out/demo.h5"')
 def test_demo_code_path_with_a_tiny_run(tmp_path, capsys, monkeypatch):
     # `tba demo` with its run file swapped for a tiny one: same code path, seconds instead of ~10 s
     runfile = _write(tmp_path, DEMO_LIKE, "demo.toml")
-    monkeypatch.setattr(tba.cli, "demo_run_path", lambda: (runfile, False))
+    monkeypatch.setattr(tba.cli.commands, "demo_run_path", lambda: (runfile, False))
     monkeypatch.chdir(tmp_path)
     assert main(["demo", "--workers", "1"]) == 0
     out = capsys.readouterr().out
@@ -296,8 +297,8 @@ def levels_store(tmp_path_factory):
 def test_scan_of_excited_levels(levels_store):
     from threadpoolctl import threadpool_limits
 
-    from tba.levels import solve_level
-    from tba.storage import NOT_AVAILABLE
+    from tba.solvers.levels import solve_level
+    from tba.store.hdf5 import NOT_AVAILABLE
 
     run, d = levels_store
     assert d.state == ["ground", "-1/2,1/2", "0", "1/2,3/2"]
@@ -324,7 +325,7 @@ def test_scan_of_excited_levels(levels_store):
     # (tests/test_lee_yang_state.py): no real solution at R = 0.8
     assert st[ly, 0, 0, 2] == STATUS_CODES[Status.NO_REAL_SOLUTION]
     assert st[ly, 0, 1, 2] == STATUS_CODES[Status.CONVERGED]
-    # a chunk is the chain tba.levels.solve_level runs, downwards from its largest radius
+    # a chunk is the chain tba.solvers.levels.solve_level runs, downwards from its largest radius
     # (with one BLAS thread, as in every chunk), bit for bit
     model = run.models[sg].build()
     with threadpool_limits(limits=1, user_api="blas"):
@@ -343,8 +344,8 @@ def test_excited_levels_in_parallel_equal_serial(levels_store, tmp_path):
 
 
 def test_plot_and_report_of_excited_levels(levels_store, tmp_path):
-    from tba.plotting import plot_store
-    from tba.report import format_report
+    from tba.output.plotting import plot_store
+    from tba.output.report import format_report
 
     run, d = levels_store
     fig = plot_store(d)

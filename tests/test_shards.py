@@ -14,11 +14,12 @@ import h5py
 import numpy as np
 import pytest
 
-import tba.scan
+import tba.scans.backends
+import tba.scans.points
 from tba.cli import main
-from tba.runfile import Shard, load_run, parse_shard
-from tba.scan import ScanInterrupted, run_scan
-from tba.storage import BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
+from tba.scans.runfile import Shard, load_run, parse_shard
+from tba.store.driver import ScanInterrupted, run_scan
+from tba.store.hdf5 import BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
 
 RUN = """\
 # shard tests: free fermion and Lee-Yang, both signs of alpha, 7 radii in chunks of 2 (< 1 s)
@@ -113,7 +114,7 @@ def test_shards_split_the_run_exactly_once():
 
 
 def load_run_text():
-    from tba.runfile import loads_run
+    from tba.scans.runfile import loads_run
     return loads_run(RUN)
 
 
@@ -218,7 +219,7 @@ def test_a_shard_resumes_and_is_not_mistaken_for_another(runfile, serial, tmp_pa
     shard = Shard(2, 3)
     path = tmp_path / "part-2.h5"
     calls = []
-    real = tba.scan.solve_chunk
+    real = tba.scans.backends.solve_chunk
 
     def interrupt_third(run, chunk):
         calls.append(chunk.index)
@@ -226,10 +227,10 @@ def test_a_shard_resumes_and_is_not_mistaken_for_another(runfile, serial, tmp_pa
             raise KeyboardInterrupt
         return real(run, chunk)
 
-    monkeypatch.setattr(tba.scan, "solve_chunk", interrupt_third)
+    monkeypatch.setattr(tba.scans.backends, "solve_chunk", interrupt_third)
     with pytest.raises(ScanInterrupted, match="2 of 5 chunks of shard 2/3 are saved"):
         run_scan(run, path, shard=shard, workers=1, log=io.StringIO())
-    monkeypatch.setattr(tba.scan, "solve_chunk", real)
+    monkeypatch.setattr(tba.scans.backends, "solve_chunk", real)
     log = io.StringIO()
     summary = run_scan(run, path, shard=shard, workers=1, log=log)
     assert summary.chunks_before == 2 and summary.chunks_computed == 3 and summary.complete
@@ -294,7 +295,7 @@ chunk_size = 2
 def test_shards_of_a_run_with_excited_levels_merged_equal_the_serial_file(tmp_path, capsys):
     # Lee-Yang has no two-particle level: those points belong to no chunk and no shard, and
     # the merged file must still mark them "not-available" like the serial one
-    from tba.storage import NOT_AVAILABLE
+    from tba.store.hdf5 import NOT_AVAILABLE
 
     path = tmp_path / "levels.toml"
     path.write_text(LEVELS)

@@ -15,11 +15,11 @@ from scipy.optimize import brentq
 from scipy.special import k0, k1
 
 import tba
-from tba.result import STATUS_CODES, Status
-from tba.runfile import loads_run
-from tba.scan import run_scan
-from tba.report import format_report
-from tba.storage import (BP_FAILED, BP_FOUND, BP_NONE, BRANCH_VARIABLES, FLOW_NOT_APPLICABLE,
+from tba.solvers.result import STATUS_CODES, Status
+from tba.scans.runfile import loads_run
+from tba.store.driver import run_scan
+from tba.output.report import format_report
+from tba.store.hdf5 import (BP_FAILED, BP_FOUND, BP_NONE, BRANCH_VARIABLES, FLOW_NOT_APPLICABLE,
                          NOT_COMPUTED, POINT_VARIABLES, SCHEMA_VERSION, StoreError, check_store,
                          git_commit, read_store)
 
@@ -320,7 +320,7 @@ def test_not_a_store_is_never_overwritten(tmp_path):
 
 
 def test_partial_store_reads_and_reports_not_computed(tmp_path):
-    from tba.storage import create_store
+    from tba.store.hdf5 import create_store
     run = loads_run(TINY, base_dir=tmp_path)
     create_store(run.output, run)
     data = read_store(run.output)
@@ -330,7 +330,7 @@ def test_partial_store_reads_and_reports_not_computed(tmp_path):
 
 
 def test_long_messages_are_cut_at_a_character_boundary():
-    from tba.storage import MESSAGE_BYTES, _encode
+    from tba.store.hdf5 import MESSAGE_BYTES, _encode
     raw = _encode("é" * 300)
     assert len(raw) <= MESSAGE_BYTES and raw.endswith(b"...")
     assert raw.decode("utf-8").startswith("éé")
@@ -372,14 +372,15 @@ def test_schema_1_files_are_refused_for_resume_but_read(tmp_path, capsys):
 
 
 def test_a_failing_branch_point_is_stored_and_keeps_the_scan(tmp_path, monkeypatch):
-    import tba.scan
+    import tba.physics.flow
+    import tba.scans.points
 
     def broken(model, alpha, tol):
         if model.name == "lee-yang":
             raise RuntimeError("no luck\nsecond line")
-        return tba.flow.branch_point(model, alpha, tol=tol)
+        return tba.physics.flow.branch_point(model, alpha, tol=tol)
 
-    monkeypatch.setattr(tba.scan, "branch_point", broken)
+    monkeypatch.setattr(tba.scans.points, "branch_point", broken)
     run = loads_run(TINY.replace("count = 4", "count = 2").replace("alphas = [-0.2, 0, 0.5]",
                                                                   "alphas = [0.5]"), base_dir=tmp_path)
     log = io.StringIO()

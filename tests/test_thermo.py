@@ -1,6 +1,6 @@
-"""Mirror-channel thermodynamics (tba.thermo): f, s, u, c from the ground state at R = 1/T.
+"""Mirror-channel thermodynamics (tba.physics.thermo): f, s, u, c from the ground state at R = 1/T.
 
-    f = T E(1/T) + f_bulk,  s = R E' - E,  u = E' + f_bulk,  c = -R^2 E''     (tba.thermo docstring;
+    f = T E(1/T) + f_bulk,  s = R E' - E,  u = E' + f_bulk,  c = -R^2 E''     (tba.physics.thermo docstring;
     PHYSICS.md section 6)
 
 checked against the exact free-fermion Bessel series, the bulk term against a fit of the
@@ -15,8 +15,8 @@ from scipy.special import kv, kvp
 
 from reference import deformed_free_fermion_branch, deformed_free_fermion_energy
 from tba import Status, free_fermion, ising_e8, lee_yang, sinh_gordon, solve_radii, ttbar
-from tba.flow import branch_point
-from tba.thermo import thermodynamics
+from tba.physics.flow import branch_point
+from tba.physics.thermo import thermodynamics
 
 FF = free_fermion()
 

@@ -1,7 +1,7 @@
 """Bad input raises ValueError or TypeError with a message naming the argument.
 
-Source: the public API contract in the docstrings of tba/solver.py, tba/models/catalog.py,
-tba/models/base.py and tba/deformation.py (common practice, no outside source).
+Source: the public API contract in the docstrings of tba/solvers/ground.py, tba/models/catalog.py,
+tba/models/base.py and tba/models/cdd.py (common practice, no outside source).
 """
 
 import math
@@ -35,7 +35,7 @@ def test_radius_in_scan_is_validated():
 
 @pytest.mark.parametrize("tol", [0.0, -1e-12, 1e-16, 1e-14, 1e-2, 0.5, 1.0, math.nan, math.inf])
 def test_tol_out_of_range(tol):
-    # documented range [MIN_TOL = 1e-13, 1e-2) (the ValueError message of tba.solver._validate)
+    # documented range [MIN_TOL = 1e-13, 1e-2) (the ValueError message of tba.solvers.ground._validate)
     with pytest.raises(ValueError, match="tol"):
         solve_ground_state(FF, 1.0, tol=tol)
 
@@ -87,7 +87,7 @@ def test_get_model_coupling_required_and_checked():
 
 @pytest.mark.parametrize("spin", [2, 4, 0, -1, -3, 1.5, True])
 def test_cdd_bad_spin(spin):
-    # spins are positive odd integers (tba/deformation.py; PHYSICS.md section 4)
+    # spins are positive odd integers (tba/models/cdd.py; PHYSICS.md section 4)
     with pytest.raises(ValueError, match="spin"):
         CDD({spin: 0.1})
 

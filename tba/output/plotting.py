@@ -21,8 +21,8 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter
 
-from tba.report import CONVERGED, last_real_points
-from tba.storage import BP_FOUND, NOT_AVAILABLE
+from tba.output.report import CONVERGED, last_real_points
+from tba.store.hdf5 import BP_FOUND, NOT_AVAILABLE
 
 LABELS = {
     "energy": r"energy $E(R,\alpha)$",
@@ -42,7 +42,7 @@ def _alpha_label(alpha):
 
 
 def plot_store(data, states=None):
-    """Build the figure of a `tba.storage.StoreData` for ``states`` (names; default all);
+    """Build the figure of a `tba.store.hdf5.StoreData` for ``states`` (names; default all);
     returns a matplotlib `Figure`."""
     states = data.state if states is None else list(states)
     columns = [(m, data.state.index(st)) for m in range(len(data.model)) for st in states

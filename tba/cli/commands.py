@@ -1,5 +1,5 @@
 """Command line: ``tba solve``, ``tba run``, ``tba merge``, ``tba report``, ``tba plot``,
-``tba export``, ``tba demo``, and (from ``tba.cli_flow``) ``tba branch-point`` and
+``tba export``, ``tba demo``, and (from ``tba.cli.flow``) ``tba branch-point`` and
 ``tba flow-check``.
 
 Bad input (arguments, run files, output files of another run, shards that do not belong
@@ -13,161 +13,29 @@ after Ctrl-C; exit code 1 when a cluster gave up on some tasks, with everything 
 import argparse
 import csv
 import json
-import math
 import sys
-from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
 
 from tba import __version__
-from tba.deformation import CDD
-from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
-from tba.report import format_report
-from tba.runfile import RunFileError, demo_run_path, load_run, parse_shard
-from tba.scan import ScanFailed, ScanInterrupted, run_scan
-from tba.solver import MIN_TOL
-from tba.storage import NOT_COMPUTED, StoreError, read_store
-
-CONVENTIONS = """\
-conventions:
-  units: the lightest mass is 1; R is the circumference of the space circle.
-  E is the TBA energy of the level (ground state unless --state) without the bulk term f R.
-  deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t), so that
-  d/dalpha E = E dE/dR + P^2/R and E(R, alpha) = E(R + alpha E, 0) for P = 0;
-  alpha > 0 is the side where the ground state meets a branch point (Hagedorn),
-  alpha < 0 the side where positive excited levels do.
-  --cdd S:A adds exp(i A sinh(S t)) for odd spin S >= 3 (single-species models).
-  status: converged | no-real-solution | not-converged; energy and error are
-  null unless converged. error estimates |E - exact| and is meant to bound it."""
-
-
-class UsageError(Exception):
-    """Bad command-line input: reported on one line, exit code 2."""
-
-
-class _Parser(argparse.ArgumentParser):
-    def error(self, message):
-        raise UsageError(message)
-
-
-def _finite(name, text):
-    try:
-        value = float(text)
-    except ValueError:
-        raise UsageError(f"argument {name}: not a number: {text!r}") from None
-    if not math.isfinite(value):
-        raise UsageError(f"argument {name}: must be finite, got {text!r}")
-    return value
-
-
-def parse_radii(tokens):
-    """Numbers and START:STOP:COUNT ranges (evenly spaced, both ends included), in order."""
-    radii = []
-    for tok in tokens:
-        if ":" in tok:
-            parts = tok.split(":")
-            if len(parts) != 3:
-                raise UsageError(f"argument --radius: expected START:STOP:COUNT, got {tok!r}")
-            start, stop = (_finite("--radius", p) for p in parts[:2])
-            try:
-                count = int(parts[2])
-            except ValueError:
-                raise UsageError(f"argument --radius: COUNT must be an integer, got {parts[2]!r}") from None
-            if count < 1 or (count == 1 and start != stop):
-                raise UsageError(f"argument --radius: COUNT must be >= 2 for a range, got {count}")
-            radii.extend(np.linspace(start, stop, count).tolist())
-        else:
-            radii.append(_finite("--radius", tok))
-    for R in radii:
-        if R <= 0:
-            raise UsageError(f"argument --radius: radii must be positive, got {R:g}")
-    return radii
-
-
-def parse_cdd(tokens, alpha):
-    couplings = {1: alpha} if alpha else {}
-    for tok in tokens or []:
-        spin, sep, value = tok.partition(":")
-        if not sep:
-            raise UsageError(f"argument --cdd: expected SPIN:ALPHA, got {tok!r}")
-        try:
-            s = int(spin)
-        except ValueError:
-            raise UsageError(f"argument --cdd: spin must be an odd integer, got {spin!r}") from None
-        if s < 3 or s % 2 == 0:
-            raise UsageError(f"argument --cdd: spin must be odd and >= 3 (use --alpha for spin 1), got {s}")
-        couplings[s] = couplings.get(s, 0.0) + _finite("--cdd", value)
-    return CDD(couplings)
-
-
-def _tolerance(text):
-    tol = _finite("--tol", text)
-    if not MIN_TOL <= tol < 1e-2:
-        raise UsageError(f"argument --tol: must lie in [{MIN_TOL:g}, 1e-2), got {text}")
-    return tol
-
-
-def _build_model(args):
-    if args.model not in MODELS:
-        raise UsageError(f"argument --model: unknown model {args.model!r} (choose from {', '.join(MODELS)})")
-    coupling = None
-    if args.coupling is not None:
-        if args.model not in MODELS_WITH_COUPLING:
-            raise UsageError(f"argument --coupling: model {args.model} has no coupling")
-        coupling = _finite("--coupling", args.coupling)
-        if not 0 < coupling < 2:
-            raise UsageError(f"argument --coupling: B must lie in (0, 2), got {args.coupling}")
-    elif args.model in MODELS_WITH_COUPLING:
-        raise UsageError(f"argument --coupling: required for model {args.model}")
-    return get_model(args.model, coupling)
-
-
-def _fmt(x, spec):
-    return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else format(x, spec)
-
-
-TABLE_HEADER = f"{'model':<13} {'B':>5} {'R':>12} {'alpha':>9} {'E_0':>22} {'error':>8} {'it':>3}  status"
-
-
-def table_row(rec):
-    return (f"{rec['model']:<13} {_fmt(rec['coupling'], '5.3g'):>5} {rec['radius']:>12.6g} "
-            f"{rec['alpha']:>9.4g} {_fmt(rec['energy'], '22.15g'):>22} {_fmt(rec['error'], '8.1e'):>8} "
-            f"{rec['iterations']:>3}  {rec['status']}")
-
-
-STATE_HEADER = f"{'state':<16} {'R':>12} {'alpha':>9} {'E':>22} {'error':>8} {'P':>14}  status"
-
-
-def state_row(rec):
-    state = ",".join(str(Fraction(n)) for n in rec["state"])
-    return (f"{state:<16} {rec['radius']:>12.6g} {rec['alpha']:>9.4g} "
-            f"{_fmt(rec['energy'], '22.15g'):>22} {_fmt(rec['error'], '8.1e'):>8} "
-            f"{_fmt(rec['momentum'], '14.8g'):>14}  {rec['status']}")
-
-
-def _state(text, model, deformation):
-    """--state N1,N2,...: Bethe quantum numbers (decimals or fractions like 1/2,-1/2), or ground."""
-    from tba.levels import parse_level, unavailable
-
-    try:
-        level = parse_level(text)
-        why = unavailable(model, level, deformation)
-        if why is not None:
-            raise ValueError(why)
-        return level
-    except (ValueError, TypeError) as exc:
-        raise UsageError(f"argument --state: {str(exc).split(': ', 1)[-1]}") from None
-
+from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Parser, UsageError,
+                            add_model_arguments, add_tol_argument, build_model, finite,
+                            parse_cdd, parse_radii, parse_state_argument, state_row, table_row,
+                            tolerance)
+from tba.output.report import format_report
+from tba.scans.runfile import RunFileError, demo_run_path, load_run, parse_shard
+from tba.store.driver import ScanFailed, ScanInterrupted, run_scan
+from tba.store.hdf5 import NOT_COMPUTED, StoreError, read_store
 
 def cmd_solve(args, out):
-    model = _build_model(args)
+    model = build_model(args)
     radii = parse_radii(args.radius)
-    alpha = _finite("--alpha", args.alpha)
+    alpha = finite("--alpha", args.alpha)
     deformation = parse_cdd(args.cdd, alpha)
-    tol = _tolerance(args.tol)
-    state = _state(args.state, model, deformation) if args.state is not None else "ground"
-    from tba.levels import solve_level
+    tol = tolerance(args.tol)
+    state = parse_state_argument(args.state, model, deformation) if args.state is not None else "ground"
+    from tba.solvers.levels import solve_level
 
     solve = lambda R, start: solve_level(model, R, state, deformation, tol=tol,  # noqa: E731
                                          start=start)
@@ -204,7 +72,7 @@ def _load_run(path):
 
 
 def _scan(run, out_path, args, run_file, log, backend=None, shard=None):
-    from tba.cluster import ClusterError  # dask itself is imported only for a cluster
+    from tba.scans.cluster import ClusterError  # dask itself is imported only for a cluster
 
     workers = None if backend is not None else _workers(args.workers)
     try:
@@ -224,11 +92,11 @@ def _shard(text):
 
 
 def _backend(args):
-    """--scheduler ADDRESS or --cluster local:N: a `tba.cluster.DaskBackend` (checks that dask
+    """--scheduler ADDRESS or --cluster local:N: a `tba.scans.cluster.DaskBackend` (checks that dask
     can be imported, before any file is touched); None for local worker processes."""
     if args.scheduler is None and args.cluster is None:
         return None
-    from tba.cluster import ClusterError, DaskBackend, parse_cluster
+    from tba.scans.cluster import ClusterError, DaskBackend, parse_cluster
 
     try:
         if args.cluster is not None:
@@ -275,7 +143,7 @@ def cmd_run(args, out):
 
 def cmd_merge(args, out):
     """Combine shard files (or stores) of one run into a full store."""
-    from tba.merge import merge_stores
+    from tba.store.merge import merge_stores
 
     try:
         summary = merge_stores(args.files, args.out, force=args.force)
@@ -307,7 +175,7 @@ def cmd_report(args, out):
 
 
 def _figure_path(text):
-    from tba.plotting import FORMATS  # matplotlib is imported only by the commands that draw
+    from tba.output.plotting import FORMATS  # matplotlib is imported only by the commands that draw
 
     suffix = Path(text).suffix.lower().lstrip(".")
     if suffix not in FORMATS:
@@ -317,7 +185,7 @@ def _figure_path(text):
 
 
 def cmd_plot(args, out):
-    from tba.plotting import save_figure
+    from tba.output.plotting import save_figure
 
     path = _figure_path(args.output)
     data = _read(args.file)
@@ -361,7 +229,7 @@ def cmd_export(args, out):
 
 def cmd_demo(args, out):
     """The built-in demonstration: runs/demo.toml into runs/out/ (or ./tba-demo-out/)."""
-    from tba.plotting import save_figure
+    from tba.output.plotting import save_figure
 
     run_file, in_repo = demo_run_path()
     run = _load_run(run_file)
@@ -391,24 +259,12 @@ def cmd_demo(args, out):
     return 0
 
 
-def add_model_arguments(parser):
-    """--model and --coupling, shared by every command that solves one model."""
-    parser.add_argument("--model", required=True, metavar="{" + ",".join(MODELS) + "}",
-                        help="the S-matrix")
-    parser.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
-
-
-def add_tol_argument(parser):
-    parser.add_argument("--tol", default="1e-12", metavar="T",
-                        help="relative accuracy asked of each energy (default 1e-12)")
-
-
 def build_parser():
-    parser = _Parser(prog="tba", description="TBA energies (ground state and excited levels) of "
+    parser = Parser(prog="tba", description="TBA energies (ground state and excited levels) of "
                      "integrable S-matrices with CDD (TTbar) deformations.", epilog=CONVENTIONS,
                      formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"tba {__version__}")
-    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    sub = parser.add_subparsers(dest="command", required=True, parser_class=Parser)
     solve = sub.add_parser("solve", help="energy of a level at one or more radii",
                            description="Solve the TBA of the ground state (or of the level given "
                            "by --state) at the given radii (in order, each warm-started from the "
@@ -499,7 +355,7 @@ def build_parser():
     demo.add_argument("--force", action="store_true", help="recompute from scratch")
     demo.add_argument("--out-dir", metavar="DIR", help="write demo.h5 and demo.png here")
     demo.set_defaults(func=cmd_demo)
-    from tba.cli_flow import add_flow_commands
+    from tba.cli.flow import add_flow_commands
 
     add_flow_commands(sub, CONVENTIONS)
     return parser

@@ -1,30 +1,26 @@
 """Command-line subcommands about the flow: ``tba branch-point`` and ``tba flow-check``.
 
-Registered by ``tba.cli.build_parser``; they reuse its argument checks (one-line errors,
+Registered by ``tba.cli.commands.build_parser``; they use the argument checks of ``tba.cli.common`` (one-line errors,
 exit code 2).
 """
 
 import argparse
 import json
-import math
 
-from tba.deformation import ttbar
-from tba.flow import BranchPoint, branch_point
-from tba.solver import flow_residual, solve_ground_state
+from tba.models.cdd import ttbar
+from tba.physics.flow import BranchPoint, branch_point
+from tba.solvers.ground import flow_residual, solve_ground_state
+from tba.cli.common import (UsageError, add_model_arguments, add_tol_argument, build_model, finite,
+                             fmt, parse_radii, tolerance)
 
-
-def _fmt(x, spec):
-    return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else format(x, spec)
 
 
 def cmd_branch_point(args, out):
-    from tba.cli import UsageError, _build_model, _finite, _tolerance
-
-    model = _build_model(args)
-    alpha = _finite("--alpha", args.alpha)
-    tol = _tolerance(args.tol)
+    model = build_model(args)
+    alpha = finite("--alpha", args.alpha)
+    tol = tolerance(args.tol)
     if args.method == "continuation":
-        from tba.continuation import locate_fold
+        from tba.physics.continuation import locate_fold
 
         if alpha <= 0:
             bp = branch_point(model, alpha, tol)  # status "none" with its reason
@@ -57,12 +53,10 @@ FLOW_HEADER = (f"{'R':>10} {'alpha':>8} {'E':>22} {'dE/dR':>14} {'dE/dalpha':>14
 
 
 def cmd_flow_check(args, out):
-    from tba.cli import _build_model, _finite, _tolerance, parse_radii
-
-    model = _build_model(args)
+    model = build_model(args)
     radii = parse_radii(args.radius)
-    alphas = [_finite("--alpha", a) for a in args.alpha]
-    tol = _tolerance(args.tol)
+    alphas = [finite("--alpha", a) for a in args.alpha]
+    tol = tolerance(args.tol)
     if not args.json:
         print(FLOW_HEADER, file=out, flush=True)
     for alpha in alphas:
@@ -81,17 +75,15 @@ def cmd_flow_check(args, out):
                 print(json.dumps(rec), file=out, flush=True)
                 continue
             rel = (lambda k: rec[k] / rec["scale"] if rec[k] is not None and rec["scale"] else None)
-            print(f"{R:>10.6g} {alpha:>8.4g} {_fmt(rec['energy'], '22.15g'):>22} "
-                  f"{_fmt(rec['dE_dR'], '14.8g'):>14} {_fmt(rec['dE_dalpha'], '14.8g'):>14} "
-                  f"{_fmt(rel('residual'), '16.2e'):>16} {_fmt(rel('residual_error'), '13.1e'):>13}"
+            print(f"{R:>10.6g} {alpha:>8.4g} {fmt(rec['energy'], '22.15g'):>22} "
+                  f"{fmt(rec['dE_dR'], '14.8g'):>14} {fmt(rec['dE_dalpha'], '14.8g'):>14} "
+                  f"{fmt(rel('residual'), '16.2e'):>16} {fmt(rel('residual_error'), '13.1e'):>13}"
                   f"  {rec['status']}", file=out, flush=True)
     return 0
 
 
 def add_flow_commands(sub, conventions):
     """Register the subcommands on the ``tba`` subparsers object."""
-    from tba.cli import add_model_arguments, add_tol_argument
-
     fmt = argparse.RawDescriptionHelpFormatter
     bp = sub.add_parser("branch-point", help="the ground state's branch point R_c(alpha)",
                         description="Radius where the deformed ground state stops being real "

@@ -23,9 +23,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import brentq
 
-from tba.deformation import NO_DEFORMATION
-from tba.result import SolveError
-from tba.solver import energy_derivatives, solve_ground_state
+from tba.models.cdd import NO_DEFORMATION
+from tba.solvers.result import SolveError
+from tba.solvers.ground import energy_derivatives, solve_ground_state
 
 
 # -- CFT closed form ---------------------------------------------------------------------------
@@ -218,7 +218,7 @@ class ExcitedCurve:
     demand (warm starts, cache, exact dE/dR)."""
 
     def __init__(self, model, state, tol=1e-13):
-        from tba.excited import parse_state
+        from tba.solvers.excited import parse_state
 
         self.model, self.state, self.tol = model, parse_state(state), tol
         self.momentum_number = sum(self.state)
@@ -226,7 +226,7 @@ class ExcitedCurve:
         self._last = None
 
     def __call__(self, radius):
-        from tba.excited import solve_excited
+        from tba.solvers.excited import solve_excited
 
         R = float(radius)
         res = self._cache.get(R)

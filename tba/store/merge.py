@@ -30,9 +30,9 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from tba.runfile import differing_keys, resolve_run
-from tba.scan import describe_chunk
-from tba.storage import (BRANCH_VARIABLES, MESSAGE_DTYPE, NOT_COMPUTED, POINT_VARIABLES,
+from tba.scans.runfile import differing_keys, resolve_run
+from tba.scans.points import describe_chunk
+from tba.store.hdf5 import (BRANCH_VARIABLES, MESSAGE_DTYPE, NOT_COMPUTED, POINT_VARIABLES,
                          SCHEMA, SCHEMA_VERSION, SHARD_INDEX, SHARD_SCHEMA, StoreError, _now,
                          _shard_of, check_store, create_store, git_commit, mark_unavailable,
                          package_version)

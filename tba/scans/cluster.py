@@ -1,4 +1,4 @@
-"""Scans on a dask.distributed cluster: `DaskBackend` for `tba.scan.run_scan`
+"""Scans on a dask.distributed cluster: `DaskBackend` for `tba.store.driver.run_scan`
 (``tba run RUNFILE --scheduler ADDRESS`` or ``--cluster local:N``).
 
 dask is imported here only, and only when a cluster is asked for: ``import tba`` and a
@@ -6,7 +6,7 @@ plain ``tba run`` work without it, and a missing dask is one line naming the opt
 
 Decisions:
 
-* The unit of work stays `tba.scan.solve_chunk`: one task per chunk of consecutive radii,
+* The unit of work stays `tba.scans.points.solve_chunk`: one task per chunk of consecutive radii,
   so each chunk keeps its warm starts, and a chunk is a pure function of (run, chunk) --
   any worker, any order, any number of retries gives the numbers of a serial run bit for
   bit. Results travel back to the driver, which alone writes the HDF5 file (as with local
@@ -28,7 +28,7 @@ Decisions:
   finished but before the driver fetched it: the scheduler computes it again. A task that was on ``allowed-failures + 1`` workers
   that died (dask's ``distributed.scheduler.allowed-failures``, default 3) comes back as
   KilledWorker: the driver reports it, goes on writing everything else, and raises
-  `tba.scan.ScanFailed` at the end, so running the same command again retries only what
+  `tba.store.driver.ScanFailed` at the end, so running the same command again retries only what
   is missing. Any other exception in a task is handled the same way.
 * Branch points (``scan.branch_points``) are tasks too, at a lower priority than the chunks
   (``priority=-1``; the scheduler may still start them early): a few undeformed solves
@@ -44,8 +44,8 @@ import os
 import time
 import uuid
 
-from tba.scan import (Backend, BranchDone, ChunkDone, TaskFailed, _children_ignore_ctrl_c,
-                      describe_chunk, one_line, solve_branch_point, solve_chunk)
+from tba.scans.backends import Backend, BranchDone, ChunkDone, TaskFailed, _children_ignore_ctrl_c
+from tba.scans.points import describe_chunk, one_line, solve_branch_point, solve_chunk
 
 #: pip extra that brings dask.distributed
 INSTALL_HINT = "pip install 'tba-flow[cluster]' (or pip install 'dask[distributed]')"

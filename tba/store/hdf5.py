@@ -28,7 +28,7 @@ Layout (schema version 2; readable with plain h5py, and with xarray through
                     effective_radius, status, message}
                                (model, alpha), attached to the /model and /alpha scales: the
                                ground state's branch point R_c(alpha), E(R_c), R~_* and their
-                               errors (`tba.flow.branch_point` at the run's tol); status 0
+                               errors (`tba.physics.flow.branch_point` at the run's tol); status 0
                                found, 1 none (alpha <= 0), 2 not-applicable (higher-spin
                                factors in the run), 3 failed (message: the exception),
                                -1 not computed
@@ -55,12 +55,12 @@ so that N shards of a large run take the disk of one full store, not N::
                                chunk in chunk-table order, radii ascending inside a chunk
     /shard_points/{model_index, alpha_index, radius_index, state_index}   (point) where each
                                point lies in the full (model, alpha, radius, state) grid
-    /progress/owned (chunk)    1 for the chunks of this shard (`tba.runfile.Shard`)
+    /progress/owned (chunk)    1 for the chunks of this shard (`tba.scans.runfile.Shard`)
 
 Everything else (scales, the full chunk table, done mask, /branch_points with the pairs of
 other shards left not computed) is laid out as in a full store. `read_store` expands a
 shard into full arrays (other shards' points "not computed"), so reports, plots and exports
-work on it and say it is partial; `tba.merge` combines shards into a full store.
+work on it and say it is partial; `tba.store.merge` combines shards into a full store.
 
 Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it; 3 adds ``/momentum``,
 excited states on the state axis and the status "not-available" (3) for the points of a state
@@ -88,59 +88,18 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from tba.result import STATUS_CODES
-from tba.runfile import RunSpec, Shard, differing_keys, resolve_run
+from tba.scans.runfile import RunSpec, Shard, differing_keys, resolve_run
+from tba.scans.codes import (  # noqa: F401 (re-exported: the layout of a store)
+    NOT_COMPUTED, NOT_AVAILABLE, FLOW_OFF, FLOW_NOT_APPLICABLE, FLOW_NO_ENERGY, BP_FOUND,
+    BP_NONE, BP_NOT_APPLICABLE, BP_FAILED, BP_CODES, STATUS_MEANINGS, FLOW_MEANINGS,
+    BRANCH_MEANINGS, MESSAGE_BYTES, POINT_VARIABLES, DIMS, BRANCH_VARIABLES, BRANCH_DIMS)
 
 SCHEMA = "tba-flow scan"
-#: schema of a shard file (one shard of a run, `tba.runfile.Shard`)
+#: schema of a shard file (one shard of a run, `tba.scans.runfile.Shard`)
 SHARD_SCHEMA = "tba-flow scan shard"
 SCHEMA_VERSION = 3
 #: schema versions `read_store` understands (only SCHEMA_VERSION is ever resumed)
 READABLE_VERSIONS = (1, 2, 3)
-#: status code of a point that has not been computed yet
-NOT_COMPUTED = -1
-#: status code of a point whose model does not have the state (`RunSpec.unavailable`)
-NOT_AVAILABLE = 3
-#: extra codes of flow_status (fixed numbers, apart from the solver's STATUS_CODES)
-FLOW_OFF = 10
-FLOW_NOT_APPLICABLE = 11
-FLOW_NO_ENERGY = 12
-#: codes of /branch_points/status
-BP_FOUND = 0
-BP_NONE = 1
-BP_NOT_APPLICABLE = 2
-BP_FAILED = 3
-BP_CODES = {"found": BP_FOUND, "none": BP_NONE}  # tba.flow.BranchPoint.status -> code
-
-STATUS_MEANINGS = {NOT_COMPUTED: ("not-computed", "the point has not been computed yet"),
-                   **{code: (s.value, {"converged": "energy and error estimate are valid",
-                                       "no-real-solution": "past the branch point: no real "
-                                                           "solution on the branch of the "
-                                                           "undeformed theory",
-                                       "not-converged": "the error estimate did not reach "
-                                                        "the tolerance; no energy stored",
-                                       }.get(s.value, s.value))
-                      for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])},
-                   NOT_AVAILABLE: ("not-available", "the model does not have this state (the "
-                                                    "message says why); never computed")}
-FLOW_MEANINGS = {
-    NOT_COMPUTED: ("not-computed", "the point has not been computed yet"),
-    **{code: (s.value, f"undeformed solve at R + alpha E: {s.value}")
-       for s, code in sorted(STATUS_CODES.items(), key=lambda kv: kv[1])},
-    FLOW_OFF: ("off", "flow_check = false in the run"),
-    FLOW_NOT_APPLICABLE: ("not-applicable", "alpha = 0, higher-spin CDD factors present "
-                                            "(the relation is exact for TTbar alone), no "
-                                            "undeformed radius, or a state the model lacks"),
-    FLOW_NO_ENERGY: ("no-energy", "the deformed point has no energy to check"),
-}
-BRANCH_MEANINGS = {
-    NOT_COMPUTED: ("not-computed", "not computed yet (or scan.branch_points = false)"),
-    BP_FOUND: ("found", "R_c from E_0'(R~) = 1/alpha; branch_radius, energy, errors valid"),
-    BP_NONE: ("none", "alpha <= 0: no branch point on this side"),
-    BP_NOT_APPLICABLE: ("not-applicable", "higher-spin CDD factors in the run (R_c from the "
-                                          "undeformed curve holds for TTbar alone)"),
-    BP_FAILED: ("failed", "the computation raised an error (see message)"),
-}
 
 CONVENTIONS = """\
 Units: the lightest mass m_1 = 1; R is the circumference of the space circle; hbar = c = 1.
@@ -177,57 +136,10 @@ SHARD_LAYOUT = ("shard of a run: /shard_points (point): energy error status iter
                 "full grid); /progress: chunk table, done mask, owned mask; /branch_points "
                 "(model, alpha) as in a full store, this shard's pairs only")
 
-#: messages are stored as fixed-length UTF-8 strings, so that writing a chunk only overwrites
+#: messages are fixed-length UTF-8 strings (`MESSAGE_BYTES`): writing a chunk only overwrites
 #: bytes at fixed places in the file and never changes its metadata (see `Store.write_chunk`)
-MESSAGE_BYTES = 256
 MESSAGE_DTYPE = h5py.string_dtype("utf-8", MESSAGE_BYTES)
 
-#: name -> (dtype, fill value, attributes) of the per-point data sets
-POINT_VARIABLES = {
-    "energy": ("f8", np.nan, {"long_name": "energy E(R, alpha) of the state, bulk term excluded",
-                              "units": "m_1"}),
-    "error": ("f8", np.nan, {"long_name": "error estimate of energy (meant to bound it)",
-                             "units": "m_1"}),
-    "momentum": ("f8", np.nan, {"long_name": "total momentum P of the state (0 for the ground "
-                                             "state); NaN without an energy", "units": "m_1"}),
-    "status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the point (see flag_meanings)"}),
-    "iterations": ("i4", 0, {"long_name": "Newton iterations spent on the point, all grids"}),
-    "message": ("str", "", {"long_name": f"solver message (UTF-8, at most {MESSAGE_BYTES} bytes)"}),
-    "flow_radius": ("f8", np.nan, {"long_name": "radius of the undeformed solve of the flow "
-                                                "check: sqrt((R + alpha E)^2 - (alpha P)^2)",
-                                   "units": "1/m_1"}),
-    "flow_prediction": ("f8", np.nan, {"long_name": "flow prediction of E from the undeformed "
-                                                    "level at flow_radius",
-                                       "units": "m_1"}),
-    "flow_error": ("f8", np.nan, {"long_name": "error estimate of flow_prediction (for P != 0 "
-                                               "including its sensitivity to E)",
-                                  "units": "m_1"}),
-    "flow_residual": ("f8", np.nan, {"long_name": "flow residual |E(R, alpha) - E_0(R + alpha E, 0)|",
-                                     "units": "m_1"}),
-    "flow_status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the flow check "
-                                                      "(see flag_meanings)"}),
-}
-DIMS = ("model", "alpha", "radius", "state")
-#: name -> (dtype, fill value, attributes) of the data sets in /branch_points (model, alpha).
-#: R_c is "branch_radius", not "radius": xarray's DataTree gives a group the coordinates of
-#: its parents, and the root coordinate "radius" would hide a variable of that name.
-BRANCH_VARIABLES = {
-    "branch_radius": ("f8", np.nan, {"long_name": "branch radius R_c of the ground state "
-                                                  "(alpha > 0)", "units": "1/m_1"}),
-    "branch_radius_error": ("f8", np.nan, {"long_name": "error estimate of R_c",
-                                           "units": "1/m_1"}),
-    "energy": ("f8", np.nan, {"long_name": "ground-state energy at the branch point, "
-                                           "E(R_c, alpha) = E_0(R~, 0), bulk term excluded",
-                              "units": "m_1"}),
-    "energy_error": ("f8", np.nan, {"long_name": "error estimate of energy", "units": "m_1"}),
-    "effective_radius": ("f8", np.nan, {"long_name": "R~ with E_0'(R~) = 1/alpha (undeformed "
-                                                     "radius of the branch point)",
-                                        "units": "1/m_1"}),
-    "status": ("i1", NOT_COMPUTED, {"long_name": "outcome of the branch-point computation "
-                                                 "(see flag_meanings)"}),
-    "message": ("str", "", {"long_name": f"message (UTF-8, at most {MESSAGE_BYTES} bytes)"}),
-}
-BRANCH_DIMS = ("model", "alpha")
 PROGRESS_FIELDS = ("model_index", "alpha_index", "state_index", "radius_start", "radius_stop")
 #: index data sets of /shard_points: where each of a shard's points lies in the full grid
 SHARD_INDEX = ("model_index", "alpha_index", "radius_index", "state_index")
@@ -258,7 +170,7 @@ class StoreError(Exception):
 
 def git_commit():
     """``git rev-parse HEAD`` of the source tree the package runs from, else "unknown"."""
-    root = Path(__file__).resolve().parent.parent
+    root = Path(__file__).resolve().parents[2]  # the source tree: tba/store/hdf5.py
     if not (root / ".git").exists() or not (root / "pyproject.toml").is_file():
         return "unknown"
     try:
@@ -357,7 +269,7 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         _write_shard_points(f, run, shard)
     bp = f.create_group("branch_points")
     bp.attrs.update({
-        "long_name": "branch point R_c(alpha) of the ground state (tba.flow.branch_point)",
+        "long_name": "branch point R_c(alpha) of the ground state (tba.physics.flow.branch_point)",
         "method": "E_0'(R~) = 1/alpha on the undeformed TBA curve (Brent's method on the exact "
                   "derivative); R_c = R~ - alpha E_0(R~); at the run's tol",
         "legend": _legend(BRANCH_MEANINGS),
@@ -557,7 +469,7 @@ def _open(path, mode):
 
 def create_store(path, run, run_file=None, shard=None, fill=None):
     """Write a new store with every point 'not computed' (atomically: temporary file, rename;
-    an existing file at ``path`` is replaced). With ``shard`` (a `tba.runfile.Shard`), the
+    an existing file at ``path`` is replaced). With ``shard`` (a `tba.scans.runfile.Shard`), the
     shard layout. ``fill(f)``, if given, writes into the new file before it is renamed (the
     merge uses it, so that a merged file appears complete or not at all)."""
     path = Path(path)
@@ -678,7 +590,7 @@ class StoreData:
     #: /branch_points arrays (model, alpha), names of `BRANCH_VARIABLES` (schema 1: not computed)
     branch: dict = field(default_factory=dict)
     schema_version: int = SCHEMA_VERSION
-    #: the `tba.runfile.Shard` of a shard file (its points only; the rest "not computed")
+    #: the `tba.scans.runfile.Shard` of a shard file (its points only; the rest "not computed")
     shard: Shard | None = None
 
     def __getitem__(self, name):

@@ -8,7 +8,7 @@ changes sign, the Jacobian dF/deps is singular, but the bordered matrix
     [[dF/deps, dF/dp], [tangent_eps^T, tangent_p]]
 
 stays regular. Each bordered solve uses only the undeformed Jacobian J0 = 1 + K diag(L')
-(well conditioned) and the small capacitance matrix of the CDD terms (see ``tba.solver``).
+(well conditioned) and the small capacitance matrix of the CDD terms (see ``tba.solvers.ground``).
 
 What this module gives:
 * ``locate_fold``: the fold (branch radius R_c, or alpha_c at fixed R) by following the
@@ -26,9 +26,9 @@ import numpy as np
 import scipy.linalg
 import scipy.sparse.linalg
 
-from tba.deformation import CDD
-from tba.grid import choose_grid
-from tba.solver import Discretization, _interpolate, newton, solve_ground_state
+from tba.models.cdd import CDD
+from tba.solvers.grid import choose_grid
+from tba.solvers.ground import Discretization, _interpolate, newton, solve_ground_state
 
 PARAMETERS = ("radius", "alpha")
 

@@ -62,8 +62,8 @@ from pathlib import Path
 
 import numpy as np
 
-from tba import solver as _solver
-from tba.deformation import CDD
+from tba.solvers.ground import MIN_TOL
+from tba.models.cdd import CDD
 from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
 
 SWEEPS = ("descending", "ascending")
@@ -414,7 +414,7 @@ def resolve_run(data, base_dir=None, name="run"):
     states = _states(top.get("states", DEFAULTS["states"]))
     solver = _Table("solver", top.get("solver", {}))
     tol = _number("solver.tol", solver.get("tol", DEFAULTS["solver"]["tol"]))
-    min_tol = getattr(_solver, "MIN_TOL", 1e-15)  # the solver's own limit
+    min_tol = MIN_TOL  # the solver's own limit
     if not min_tol <= tol < 1e-2:
         raise RunFileError("solver.tol", f"must lie in [{min_tol:g}, 1e-2), got {tol!r}")
     solver.finish()
@@ -540,7 +540,7 @@ def _radii(value):
 
 
 def _states(value):
-    from tba.levels import level_name
+    from tba.solvers.levels import level_name
 
     items = _array("states", value)
     if not items:
@@ -562,7 +562,7 @@ def _states(value):
 def _unavailable(models, states, higher_spin):
     """((model, state, why), ...) for the states a model does not have; a state that no
     model has is an error of the run file."""
-    from tba.levels import GROUND, unavailable
+    from tba.solvers.levels import GROUND, unavailable
 
     out = []
     deformation = CDD(dict(higher_spin)) if higher_spin else None
@@ -585,7 +585,7 @@ def demo_run_path():
     """The demo run file: ``runs/demo.toml`` of the source tree when the package runs from
     it (editable install, or the repository on sys.path), else the copy shipped in the
     package (``tba/data/demo.toml``). Returns (path, in_repository)."""
-    package = Path(__file__).resolve().parent
+    package = Path(__file__).resolve().parents[1]  # tba/
     repo_file = package.parent / "runs" / "demo.toml"
     if repo_file.is_file() and (package.parent / "pyproject.toml").is_file():
         return repo_file, True

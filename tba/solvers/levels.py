@@ -3,11 +3,11 @@
 One place that turns a level's name into the right solver, shared by `tba solve --state` and by
 scans (run files' ``states``). Names:
 
-* ``"ground"``: `tba.solver.solve_ground_state` (every model, every deformation);
+* ``"ground"``: `tba.solvers.ground.solve_ground_state` (every model, every deformation);
 * quantum numbers, e.g. ``"-1/2,1/2"`` or ``"0"``: real-rapidity excited states
-  (`tba.excited.solve_excited`: single-species models without bound states) and, for the
+  (`tba.solvers.excited.solve_excited`: single-species models without bound states) and, for the
   Lee-Yang model, its zero-momentum one-particle state ``"0"``
-  (`tba.lee_yang_state.solve_lee_yang_one_particle`, TTbar factor only).
+  (`tba.solvers.lee_yang.solve_lee_yang_one_particle`, TTbar factor only).
 
 `level_name` writes a level in canonical form (quantum numbers sorted, as fractions), so that
 "1/2,-1/2", "-0.5, 0.5" and ["1/2", "-1/2"] name the same level.
@@ -15,8 +15,8 @@ scans (run files' ``states``). Names:
 
 from fractions import Fraction
 
-from tba.excited import check_model, parse_state, solve_excited
-from tba.solver import solve_ground_state
+from tba.solvers.excited import check_model, parse_state, solve_excited
+from tba.solvers.ground import solve_ground_state
 
 GROUND = "ground"
 
@@ -64,7 +64,7 @@ def solve_level(model, radius, level, deformation=None, *, tol=1e-12, start=None
     if why is not None:
         raise ValueError(f"state: {why}")
     if model.name == "lee-yang":
-        from tba.lee_yang_state import solve_lee_yang_one_particle
+        from tba.solvers.lee_yang import solve_lee_yang_one_particle
 
         return solve_lee_yang_one_particle(radius, deformation, tol=tol, start=start)
     return solve_excited(model, radius, level, deformation, tol=tol, start=start)

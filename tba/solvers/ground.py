@@ -14,7 +14,7 @@ search solves them; the Jacobian
 is factorised densely when the system is small and applied through FFTs inside GMRES
 when it is large (the crossover was measured, see ``DENSE_LIMIT``).
 
-Every point is solved on two grids of increasing resolution (``tba.grid``); the
+Every point is solved on two grids of increasing resolution (``tba.solvers.grid``); the
 difference of their energies, plus the Newton and rounding contributions, is the
 error estimate. More levels are added until the estimate meets the tolerance.
 
@@ -37,9 +37,9 @@ import scipy.sparse.linalg
 
 from kernels import SpectralConvolver, block_toeplitz_matrix, occupation_terms
 from kernels import newton as _dense
-from tba.deformation import CDD, NO_DEFORMATION
-from tba.grid import Grid, choose_grid
-from tba.result import SolveResult, Status
+from tba.models.cdd import CDD, NO_DEFORMATION
+from tba.solvers.grid import Grid, choose_grid
+from tba.solvers.result import SolveResult, Status
 
 #: systems with n_species * N at or below this are factorised densely (measured crossover)
 DENSE_LIMIT = 1200

@@ -9,8 +9,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tba.result import STATUS_CODES, Status
-from tba.storage import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS, NOT_AVAILABLE,
+from tba.solvers.result import STATUS_CODES, Status
+from tba.store.hdf5 import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS, NOT_AVAILABLE,
                          NOT_COMPUTED, STATUS_MEANINGS)
 
 CONVERGED = STATUS_CODES[Status.CONVERGED]
@@ -176,7 +176,7 @@ def _table(header, rows):
 
 
 def format_report(data):
-    """The report as text (``data``: a `tba.storage.StoreData`)."""
+    """The report as text (``data``: a `tba.store.hdf5.StoreData`)."""
     with np.errstate(divide="ignore", invalid="ignore"):
         return _format_report(data)
 

@@ -62,8 +62,8 @@ import numpy as np
 import scipy.linalg
 from scipy.interpolate import CubicSpline
 
-from tba.deformation import NO_DEFORMATION
-from tba.result import SolveResult, Status
+from tba.models.cdd import NO_DEFORMATION
+from tba.solvers.result import SolveResult, Status
 
 _EPS = np.finfo(float).eps
 _S = math.sin(2 * math.pi / 3)  # the block f_(2/3): S(u) = (sinh u + i s) / (sinh u - i s)
@@ -368,7 +368,7 @@ def _follow(alpha_target, radius_target, tol, seed, parameter, min_step=1e-9):
     level-0 grids, giving up when the step falls below ``min_step``; in lambda, also as soon
     as a failed step reached past a fold that clearly lies before lambda = 1 (the verdict is
     then no real solution). Returns (solution or None, message, iterations)."""
-    from tba.excited import _stalled
+    from tba.solvers.excited import _stalled
 
     its_total = 0
     if parameter == "radius":
@@ -410,7 +410,7 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
     switched on at fixed R, and the point is solved on two grids for the error estimate.
     Status NO_REAL_SOLUTION when the level meets its branch point before the requested
     coupling (alpha < 0). Returns a SolveResult with state (0,) and no particle rapidities."""
-    from tba.solver import _validate
+    from tba.solvers.ground import _validate
 
     radius, tol = _validate(radius, tol)
     deformation = NO_DEFORMATION if deformation is None else deformation

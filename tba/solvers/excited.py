@@ -35,11 +35,11 @@ from fractions import Fraction
 import numpy as np
 import scipy.linalg
 
-from tba.deformation import NO_DEFORMATION
-from tba.grid import choose_grid
+from tba.models.cdd import NO_DEFORMATION
+from tba.solvers.grid import choose_grid
 from tba.models.blocks import block_kernel_shifted
-from tba.result import SolveResult, Status
-from tba.solver import Discretization, _interpolate
+from tba.solvers.result import SolveResult, Status
+from tba.solvers.ground import Discretization, _interpolate
 
 _EPS = np.finfo(float).eps
 #: radius where states start from the Bethe-Yang equations before continuing to smaller R
@@ -532,7 +532,7 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
     requested coupling (positive levels for alpha < 0). A moving level (P != 0) that cannot
     be reached that way is taken from large R at fixed alpha (`_or_from_large_radius`).
     """
-    from tba.solver import _validate
+    from tba.solvers.ground import _validate
 
     check_model(model)
     state = parse_state(state)

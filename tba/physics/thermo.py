@@ -20,9 +20,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tba.deformation import NO_DEFORMATION
-from tba.result import Status
-from tba.solver import energy_derivatives, solve_ground_state
+from tba.models.cdd import NO_DEFORMATION
+from tba.solvers.result import Status
+from tba.solvers.ground import energy_derivatives, solve_ground_state
 
 
 @dataclass

@@ -1,0 +1,205 @@
+"""Backends: where the chunks and branch points of a scan are computed.
+
+`tba.store.driver.run_scan` is the only writer of the store; a backend only computes and
+hands results back, in any order, as `ChunkDone`, `BranchDone` or `TaskFailed`. Here:
+`InProcess` (the driver's own process) and `ProcessPool` (spawned local processes);
+`tba.scans.cluster.DaskBackend` runs them on dask.distributed.
+"""
+
+import contextlib
+import multiprocessing
+import os
+import signal
+import threading
+import time
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from dataclasses import dataclass
+
+from tba.scans.points import solve_branch_point, solve_chunk
+from tba.scans.runfile import Chunk
+
+# -- worker processes ---------------------------------------------------------------------------
+
+def _watch_parent(parent):
+    while True:
+        time.sleep(1.0)
+        if os.getppid() != parent:  # the driver is gone (killed): nobody will read our results
+            os._exit(1)
+
+
+def _worker_init(parent):
+    # Ctrl-C reaches the whole process group; the driver handles it and stops the workers
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
+
+
+def _stop(executor):
+    """Stop the pool now, running chunks included (their results would be lost anyway)."""
+    terminate = getattr(executor, "terminate_workers", None)  # Python >= 3.14
+    if terminate is not None:
+        terminate()
+        return
+    processes = list((getattr(executor, "_processes", None) or {}).values())
+    for p in processes:
+        p.terminate()
+    executor.shutdown(wait=True, cancel_futures=True)
+
+
+#: thread-pool variables of the BLAS/OpenMP libraries numpy and scipy may load
+_THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+@contextlib.contextmanager
+def _single_threaded_children():
+    """One BLAS thread per worker process (the workers already fill the cores), unless the
+    user set these variables. Children read them when they import numpy."""
+    saved = {k: os.environ.get(k) for k in _THREAD_VARIABLES}
+    for k, v in saved.items():
+        if v is None:
+            os.environ[k] = "1"
+    try:
+        yield
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+
+
+@contextlib.contextmanager
+def _children_ignore_ctrl_c():
+    """Start worker processes with SIGINT ignored from birth (an ignored signal stays ignored
+    across exec, and Python then installs no KeyboardInterrupt handler), so that a Ctrl-C on
+    the terminal, which reaches the whole process group, cannot hit a worker half-way through
+    its start-up. The driver handles Ctrl-C and stops the workers; one pressed during these
+    few milliseconds of process creation is ignored."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous if previous is not None else signal.default_int_handler)
+
+
+def default_workers():
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+# -- backends: where chunks are computed -------------------------------------------------------
+
+@dataclass
+class ChunkDone:
+    """A solved chunk, as `solve_chunk` returns it."""
+
+    chunk: Chunk
+    values: dict
+    seconds: float
+
+
+@dataclass
+class BranchDone:
+    """A branch point, as `solve_branch_point` returns it."""
+
+    model: int
+    alpha: int
+    values: dict
+
+
+@dataclass
+class TaskFailed:
+    """A chunk whose task could not be completed (a cluster gave up on it); ``what`` names
+    the chunk, ``error`` says why, on one line."""
+
+    what: str
+    error: str
+    chunk: Chunk | None = None
+
+
+
+
+class Backend:
+    """Where the chunks (and branch points) of a scan are computed.
+
+    `run_scan` stays the only writer of the store; a backend only computes and hands the
+    results back in any order, as `ChunkDone`, `BranchDone` or `TaskFailed`. Any backend
+    gives the same numbers, because a chunk is a pure function of (run, chunk) and a branch
+    point of (run, model, alpha). Life cycle: `start` (only when there is something to
+    compute), `compute` (a generator, closed early on Ctrl-C), `close` (always).
+    """
+
+    #: worker processes (for the log line and the store's history), known after `start`
+    workers = 1
+
+    def start(self):
+        pass
+
+    def describe(self):
+        return f"{self.workers} worker{'s' if self.workers != 1 else ''}"
+
+    def compute(self, run, chunks, branch_pairs):
+        raise NotImplementedError
+
+    def close(self):
+        pass
+
+
+def _branch_points_here(run, pairs):
+    for m, a in pairs:
+        yield BranchDone(m, a, solve_branch_point(run, m, a))
+
+
+class InProcess(Backend):
+    """One chunk after the other in the driver's process, then the branch points."""
+
+    def compute(self, run, chunks, branch_pairs):
+        for chunk in chunks:
+            yield ChunkDone(*solve_chunk(run, chunk))
+        yield from _branch_points_here(run, branch_pairs)
+
+
+class ProcessPool(Backend):
+    """A ``ProcessPoolExecutor`` of spawned processes on this machine (one task per chunk,
+    one BLAS thread per worker); the branch points are computed in the driver after the
+    chunks (a few undeformed solves each).
+
+    The first chunk is still solved in the driver, before the pool starts: on a fresh
+    install that compiles the numba kernels once and caches them on disk, instead of once
+    per worker at the same time.
+    """
+
+    def __init__(self, workers):
+        self.workers = int(workers)
+
+    def compute(self, run, chunks, branch_pairs):
+        if chunks:
+            yield ChunkDone(*solve_chunk(run, chunks[0]))
+        rest = chunks[1:]
+        if rest:
+            workers = min(self.workers, len(rest))
+            executor = ProcessPoolExecutor(max_workers=workers,
+                                           mp_context=multiprocessing.get_context("spawn"),
+                                           initializer=_worker_init, initargs=(os.getpid(),))
+            try:
+                with _single_threaded_children(), _children_ignore_ctrl_c():  # workers start on submit
+                    futures = {executor.submit(solve_chunk, run, chunk) for chunk in rest}
+                while futures:
+                    finished, futures = wait(futures, return_when=FIRST_COMPLETED)
+                    for future in finished:
+                        yield ChunkDone(*future.result())
+            except BaseException:  # Ctrl-C, an error, or the generator closed early
+                _stop(executor)
+                raise
+            executor.shutdown(wait=True)
+        yield from _branch_points_here(run, branch_pairs)
+
+
+def local_backend(workers, pending):
+    """The backend for ``workers`` processes on this machine (None: the usable cores),
+    never more than there are chunks to compute."""
+    workers = default_workers() if workers is None else int(workers)
+    workers = max(1, min(workers, pending))
+    return InProcess() if workers == 1 else ProcessPool(workers)

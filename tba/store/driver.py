@@ -1,0 +1,221 @@
+"""The scan driver: computes what a store lacks on a backend and writes it as it arrives.
+
+`run_scan` is the only writer of the store for every backend (`tba.scans.backends`,
+`tba.scans.cluster`): it creates or resumes the file (`tba.store.hdf5`), hands the pending
+chunks and branch points to the backend and writes and flushes each result as it arrives.
+"""
+
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from tba.scans.backends import BranchDone, ChunkDone, local_backend
+from tba.scans.codes import BP_FAILED, NOT_COMPUTED
+from tba.scans.runfile import Shard
+from tba.store.hdf5 import open_store, prepare_store
+
+# -- the driver ---------------------------------------------------------------------------------
+
+@dataclass
+class ScanSummary:
+    path: str
+    chunks_total: int  # of this file: the run's, or the shard's
+    chunks_before: int  # already done when this invocation started
+    chunks_computed: int  # computed by this invocation
+    points_total: int
+    seconds: float
+    workers: int
+    branch_points_pending: int = 0  # to compute in this invocation (0 with branch_points = false)
+    branch_points_computed: int = 0
+    shard: Shard | None = None
+    failed: list = field(default_factory=list)  # TaskFailed of this invocation
+
+    @property
+    def chunks_complete(self):
+        return self.chunks_before + self.chunks_computed == self.chunks_total
+
+    @property
+    def complete(self):
+        return self.chunks_complete and self.branch_points_computed >= self.branch_points_pending
+
+    def saved(self):
+        """What the file holds, for messages: ``40 of 60 chunks``."""
+        s = self
+        text = f"{s.chunks_before + s.chunks_computed} of {s.chunks_total} chunks"
+        if s.chunks_complete and s.branch_points_pending:
+            text = (f"all {s.chunks_total} chunks and {s.branch_points_computed} of "
+                    f"{s.branch_points_pending} pending branch points")
+        elif s.branch_points_computed:
+            text += f" and {s.branch_points_computed} of {s.branch_points_pending} pending branch points"
+        return text + (f" of shard {s.shard.label}" if s.shard is not None else "")
+
+
+class ScanInterrupted(Exception):
+    """Ctrl-C during a scan; the finished chunks are in the store."""
+
+    def __init__(self, summary):
+        self.summary = summary
+        super().__init__(f"interrupted; {summary.saved()} are saved in {summary.path}; run the "
+                         f"same command again to resume")
+
+
+class ScanFailed(Exception):
+    """Tasks that failed (on a cluster: a chunk whose workers kept dying until the scheduler
+    gave up on it, or an exception in a task). Everything else was computed and saved;
+    running the same command again retries only what is missing."""
+
+    def __init__(self, summary):
+        self.summary = summary
+        failed = summary.failed
+        first = failed[0]
+        more = f" (and {len(failed) - 1} more)" if len(failed) > 1 else ""
+        super().__init__(f"{_count(len(failed), 'task')} failed: {first.what}: {first.error}{more}; "
+                         f"{summary.saved()} are saved in {summary.path}; run the same command "
+                         f"again to retry the missing ones")
+
+
+def _progress_bar(total, desc, enabled):
+    try:
+        from tqdm import tqdm
+    except ImportError:  # tqdm is a dependency; stay usable without it
+        return None
+    return tqdm(total=total, unit="pt", desc=desc, file=sys.stderr, leave=False,
+                disable=None if enabled is None else not enabled, dynamic_ncols=True)
+
+
+def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=False,
+             progress=None, log=None, run_file=None):
+    """Compute every chunk of ``run`` not yet in the store at ``path`` (default ``run.output``),
+    then the branch points not yet stored (``run.branch_points``).
+
+    Resumes an existing store of the same run; never overwrites the file of another run
+    unless ``force`` (`tba.store.hdf5.StoreError`). Where the chunks are computed: ``backend``
+    (a `Backend`, e.g. `tba.scans.cluster.DaskBackend`), else ``workers`` processes on this
+    machine (default: the usable cores). ``shard`` (a `tba.scans.runfile.Shard`) computes only
+    that shard's chunks and branch points into a shard file. ``progress`` None shows a bar
+    on a terminal only. Lines about what is done go to ``log`` (default stderr). Returns a
+    `ScanSummary`; Ctrl-C raises `ScanInterrupted`, chunks a cluster gave up on
+    `ScanFailed` (after everything else is saved).
+
+    Local workers are spawned processes: a script calling this with ``workers > 1`` needs
+    the usual ``if __name__ == "__main__":`` guard.
+    """
+    log = sys.stderr if log is None else log
+    path = run.output if path is None else path
+    if path is None:
+        raise ValueError("no output path: give one in the run file or as an argument")
+    if backend is not None and workers is not None:
+        raise ValueError("workers: give either workers or backend, not both")
+    t0 = time.perf_counter()
+    started, summary = False, None
+    try:
+        if backend is not None and (force or not Path(path).exists()):
+            # a new file: reach the cluster first, so that a wrong address leaves no file behind
+            backend.start()
+            started = True
+        done, created, note, branch_status = prepare_store(path, run, force=force,
+                                                           run_file=run_file, shard=shard)
+        if note:
+            print(f"tba run: note: {note}", file=log)
+        mine = run.chunks() if shard is None else shard.chunks(run)
+        pending = [c for c in mine if not done[c.index]]
+        branch_pending = []
+        if run.branch_points:
+            pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
+                     if shard is None else shard.branch_pairs(run))
+            branch_pending = [(m, a) for m, a in pairs if branch_status[m, a] == NOT_COMPUTED]
+        if backend is None:
+            backend = local_backend(workers, len(pending))
+        points = sum(c.size for c in mine)
+        summary = ScanSummary(str(path), len(mine), len(mine) - len(pending), 0, points, 0.0,
+                              backend.workers, len(branch_pending), shard=shard)
+        what = "" if shard is None else f" (shard {shard.label})"
+        if not pending and not branch_pending:
+            print(f"tba run: {path}{what} is complete ({len(mine)} chunks); nothing to compute",
+                  file=log)
+            return summary
+        if not started:
+            backend.start()
+            started = True
+        summary.workers = backend.workers
+        verb = "writing" if created else "resuming"
+        if pending:
+            print(f"tba run: {verb} {path}{what}: {len(pending)} of {len(mine)} chunks to compute, "
+                  f"{backend.describe()}", file=log, flush=True)
+        else:
+            print(f"tba run: {verb} {path}{what}: all {len(mine)} chunks are done; "
+                  f"{_count(len(branch_pending), 'branch point')} to compute", file=log, flush=True)
+        _drive(run, path, backend, pending, branch_pending, summary, progress, log)
+    except KeyboardInterrupt:
+        if summary is None:  # before anything was computed
+            raise
+        summary.seconds = time.perf_counter() - t0
+        raise ScanInterrupted(summary) from None
+    finally:
+        if started:
+            backend.close()
+    summary.seconds = time.perf_counter() - t0
+    if summary.failed:
+        raise ScanFailed(summary)
+    extra = ""
+    if summary.branch_points_computed:
+        extra = f" and {_count(summary.branch_points_computed, 'branch point')}"
+    off = "" if run.branch_points else " (branch points off: scan.branch_points = false)"
+    merge = "" if shard is None else "; combine the shards with tba merge"
+    print(f"tba run: computed {summary.chunks_computed} chunks ({summary.chunks_before} were "
+          f"already done){extra} in {summary.seconds:.1f} s; {path}{what} is complete{off}{merge}",
+          file=log, flush=True)
+    return summary
+
+
+def _drive(run, path, backend, pending, branch_pending, summary, progress, log):
+    """Write what ``backend`` computes as it arrives: the driver is the only writer."""
+    store = open_store(path, run)
+    bar = None
+    try:
+        store.begin_invocation(summary.workers, len(pending), len(branch_pending),
+                               executor=backend.describe())
+        try:
+            bar = _progress_bar(sum(c.size for c in pending), run.name, progress) if pending else None
+            results = backend.compute(run, pending, branch_pending)
+            try:
+                for item in results:
+                    if isinstance(item, ChunkDone):
+                        store.write_chunk(item.chunk, item.values, item.seconds)
+                        summary.chunks_computed += 1
+                        if bar is not None:
+                            bar.update(item.chunk.size)
+                    elif isinstance(item, BranchDone):
+                        m, a, values = item.model, item.alpha, item.values
+                        store.write_branch_point(m, a, values)
+                        summary.branch_points_computed += 1
+                        if values["status"] == BP_FAILED:
+                            print(f"tba run: branch point of {run.models[m].label} at alpha = "
+                                  f"{run.alphas[a]:g} failed (stored as failed): "
+                                  f"{values['message']}", file=log, flush=True)
+                    else:
+                        summary.failed.append(item)
+                        if len(summary.failed) <= _FAILURES_SHOWN:
+                            print(f"tba run: {item.what} failed: {item.error}", file=log, flush=True)
+                        elif len(summary.failed) == _FAILURES_SHOWN + 1:
+                            print("tba run: more tasks failed (counted at the end)", file=log,
+                                  flush=True)
+            finally:
+                results.close()  # stops the workers if we leave early
+        except KeyboardInterrupt:
+            store.end_invocation(interrupted=True)
+            raise
+        store.end_invocation(failed=[f"{f.what}: {f.error}" for f in summary.failed])
+    finally:
+        if bar is not None:
+            bar.close()
+        store.close()
+
+
+#: failures printed as they happen (a broken worker installation fails every task)
+_FAILURES_SHOWN = 5
+
+
+def _count(n, word):
+    return f"{n} {word}{'' if n == 1 else 's'}"
