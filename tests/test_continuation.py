@@ -22,6 +22,7 @@ from tba import free_fermion, ising_e8, lee_yang, sinh_gordon, solve_ground_stat
 from tba.physics.continuation import ComplexEquations, complex_pair, locate_fold, second_branch
 from tba.models.cdd import NO_DEFORMATION
 from tba.physics.flow import UndeformedCurve, branch_point
+from tba.solvers.grid import choose_grid
 from tba.solvers.ground import Discretization, energy_derivatives
 
 FF = free_fermion()
@@ -199,15 +200,20 @@ def test_complex_pair_far_below_rc_free_fermion():
     assert abs(sol.energy - E) <= sol.error  # the error estimate bounds the true error
 
 
-def _complex_equations_energy(model, ref_radius):
+def _complex_equations_energy(model, ref_radius, guess):
     """E_0(z), dE_0/dz from tba.physics.continuation.ComplexEquations with zero deformation and complex
-    radius z, on the grid the solver picks at the real radius ``ref_radius``."""
+    radius z, on a grid the solver's rule picks for the strip pi/2 - |arg z| of L at z ~ ``guess``
+    (with a margin: the grid of the real radius is too coarse once the strip narrows)."""
     res = solve_ground_state(model, ref_radius, tol=1e-13)
-    disc = Discretization(model, NO_DEFORMATION, ref_radius, res.grid)
+    strip = math.pi / 2 - abs(np.angle(guess)) - 0.1
+    grid = choose_grid(math.inf, 1.0, abs(guess), 1e-13, 1, cutoff_extra=4.0, strip=strip,
+                       decay_radius=0.9 * guess.real)
+    disc = Discretization(model, NO_DEFORMATION, ref_radius, grid)
+    start = disc.initial_guess(res._state)
 
     def energy(z):
         eqs = ComplexEquations(disc, radius=z)
-        e, L, dL, residual, ok = eqs.newton(res.pseudo_energies * (z / ref_radius))
+        e, L, dL, residual, ok = eqs.newton(start * (z / ref_radius))
         assert ok
         return eqs.energy(L), eqs.derivative_radius(L, dL)
     return energy
@@ -224,7 +230,7 @@ def test_complex_equations_at_complex_radius(name, factor):
     R = bp.radius * factor
     guess = _pair_guess(name, bp, R, alpha)
     reference = _complex_reference(name)
-    ours = _complex_equations_energy(MODELS[name], bp.effective_radius)
+    ours = _complex_equations_energy(MODELS[name], bp.effective_radius, guess)
     r_ref, E_ref = flow_root(reference, R, alpha, guess)
     E, dE = ours(r_ref)
     E_x, dE_x = reference(r_ref)

@@ -82,11 +82,13 @@ def test_free_fermion_positive_level_has_no_real_solution_below_branch_point():
     assert math.isnan(res.energy) and res.as_record()["energy"] is None
 
 
-def _status_bisection(model, state, alpha, lo, hi, rel=2e-10):
-    """Smallest radius with a real solution, by bisection on the solver's status."""
+def _status_bisection(model, state, alpha, lo, hi, rel=2e-10, tol=1e-9):
+    """Smallest radius with a real solution, by bisection on the solver's status, at a
+    tolerance the conditioning allows next to the branch point (rounding is amplified like
+    dE/dR ~ (R - R_c)^(-1/2): within ~1e-7 of R_c tol 1e-12 is out of reach)."""
     while hi - lo > rel * hi:
         mid = 0.5 * (lo + hi)
-        if solve_excited(model, mid, state, ttbar(alpha)).converged:
+        if solve_excited(model, mid, state, ttbar(alpha), tol=tol).converged:
             hi = mid
         else:
             lo = mid

@@ -259,9 +259,9 @@ def test_branch_point_none_for_non_positive_alpha():
 # 6. the command line around R_c
 # --------------------------------------------------------------------------------------
 
-def _cli_solve(capsys, radius, alpha):
+def _cli_solve(capsys, radius, alpha, tol="1e-12"):
     code = cli_main(["solve", "--model", "sinh-gordon", "--coupling", "0.6", "--radius", repr(radius),
-                     "--alpha", repr(alpha), "--json"])
+                     "--alpha", repr(alpha), "--tol", tol, "--json"])
     out = capsys.readouterr().out.strip().splitlines()
     assert code == 0 and len(out) == 1
     return json.loads(out[0])
@@ -269,10 +269,17 @@ def _cli_solve(capsys, radius, alpha):
 
 def test_cli_converges_just_above_rc_and_reports_no_real_solution_below(capsys):
     # R_c from the undeformed curve (branch_point); the README promises "converged" where a
-    # real solution exists and "no-real-solution" past the branch point (alpha > 0)
+    # real solution exists and "no-real-solution" past the branch point (alpha > 0). At
+    # 1e-6 above R_c rounding is amplified ~1e3 times (dE/dR ~ (R - R_c)^(-1/2)): tol 1e-12 is
+    # refused with the accuracy the conditioning allows, tol 1e-10 converges.
     alpha = 0.2
     bp = branch_point(SG, alpha)
-    above = _cli_solve(capsys, bp.radius * (1 + 1e-6), alpha)
+    strict = _cli_solve(capsys, bp.radius * (1 + 1e-6), alpha)
+    assert strict["status"] in ("converged", "not-converged"), strict["message"]
+    if strict["status"] == "not-converged":
+        assert "conditioning limits the relative accuracy" in strict["message"]
+        assert strict["energy"] is None
+    above = _cli_solve(capsys, bp.radius * (1 + 1e-6), alpha, tol="1e-10")
     assert above["status"] == "converged", above["message"]
     # its energy is E_0(R') at the root R' > R'_* of R' - alpha E_0(R') = R (PHYSICS.md
     # section 4; g increases on [R'_*, R], brentq). Near the square-root point the root is

@@ -6,6 +6,7 @@ kernels/convolution.py); the references below are written independently, with mp
 """
 
 import math
+from fractions import Fraction
 import warnings
 
 import mpmath
@@ -276,13 +277,9 @@ def slow_newton(K, nu, U, V, c, e):
     return e
 
 
-@pytest.mark.parametrize("alpha", [0.0, 0.3, -0.4])
-def test_dense_newton_equals_slow_newton(alpha):
+def _tba_like_system(alpha, R=0.7, N=41, h=0.3):
     # a TBA-like system: Lee-Yang kernel phi(t) = -2 sin(2pi/3) cosh t / (sinh^2 t + 3/4)
-    # and a TTbar-like rank-2 term (common practice, no source: the two solvers must agree)
-    from kernels.newton import CONVERGED, dense_newton
-
-    N, h, R = 41, 0.3, 0.7
+    # and a TTbar-like rank-2 term (common practice, no source)
     t = h * (np.arange(N) - (N - 1) / 2)
     d = t[:, None] - t[None, :]
     s = math.sin(2 * math.pi / 3)
@@ -292,8 +289,18 @@ def test_dense_newton_equals_slow_newton(alpha):
     V = h * U
     c = np.array([alpha, -alpha]) / (2 * math.pi)
     wE = -(h / (2 * math.pi)) * np.cosh(t)
-    e, L, dL, it, res, dE, status, fold = dense_newton(K, nu, U, V, c, wE, nu.copy(), 1, 1e-13,
-                                                       60, False)
+    return K, nu, U, V, c, wE
+
+
+@pytest.mark.parametrize("alpha", [0.0, 0.3, -0.4])
+def test_dense_newton_equals_slow_newton(alpha):
+    # the compiled Newton iteration against the plain numpy one above (they must agree)
+    from kernels.dense import CONVERGED, newton
+
+    K, nu, U, V, c, wE = _tba_like_system(alpha)
+    N = nu.size
+    out = newton(K, nu, U, V, c, wE, nu.copy(), 1, 1e-13, 60, np.zeros((1, 1)), False, False)
+    e, L, dL, it, res, dE, status, fold, rounding, A, inversions = out
     assert status == CONVERGED
     want = slow_newton(K, nu, U, V, c, nu.copy())
     assert np.max(np.abs(e - want)) < 1e-12
@@ -301,3 +308,65 @@ def test_dense_newton_equals_slow_newton(alpha):
     J = np.eye(N) + K * dL[None, :]
     full = J + (U.T * c) @ (V * dL[None, :])
     assert fold == pytest.approx(np.linalg.det(full) / np.linalg.det(J), rel=1e-10)
+    # A is the inverse of J0 at the iterate where it was last inverted (at least once)
+    assert inversions >= 1 and A.shape == (N, N)
+    assert 0 < rounding < 1e-13
+
+
+@pytest.mark.parametrize("alpha", [0.0, 0.3])
+def test_chord_steps_from_a_neighbours_inverse_reach_the_same_solution(alpha):
+    # chord iteration: the inverse of J0 from a solve at R = 0.7 reused at R = 0.75 gives the
+    # solution of the slow Newton iteration there, with fewer inversions than iterations
+    from kernels.dense import CONVERGED, newton
+
+    K, nu, U, V, c, wE = _tba_like_system(alpha)
+    first = newton(K, nu, U, V, c, wE, nu.copy(), 1, 1e-13, 60, np.zeros((1, 1)), False, False)
+    K2, nu2, U2, V2, c2, wE2 = _tba_like_system(alpha, R=0.75)
+    e_start = first[0] + (nu2 - nu)
+    out = newton(K2, nu2, U2, V2, c2, wE2, e_start, 1, 1e-13, 60, first[9], True, False)
+    assert out[6] == CONVERGED
+    assert out[10] == 0  # converged on the neighbour's inverse alone
+    want = slow_newton(K2, nu2, U2, V2, c2, nu2.copy())
+    assert np.max(np.abs(out[0] - want)) < 1e-12
+
+
+def test_refined_solves_with_a_stale_inverse_are_exact():
+    # solve_linear (Woodbury + iterative refinement) with the inverse of J0 at another point
+    # solves J x = b of this point to rounding (numpy's dense solve as the reference)
+    from kernels.dense import jacobian0, solve_j0, solve_linear
+
+    K, nu, U, V, c, wE = _tba_like_system(0.3)
+    rng = np.random.default_rng(3)
+    dL_old = -1 / (1 + np.exp(nu))
+    dL = -1 / (1 + np.exp(0.9 * nu))
+    A = np.ascontiguousarray(np.linalg.inv(jacobian0(K, dL_old, False)))
+    b = rng.standard_normal(nu.size)
+    J0 = np.eye(nu.size) + K * dL[None, :]
+    J = J0 + (U.T * c) @ (V * dL[None, :])
+    x, ok = solve_linear(K, U, V, c, dL, A, b, False, 30)
+    assert ok and np.max(np.abs(x - np.linalg.solve(J, b))) < 1e-13 * np.max(np.abs(x))
+    x0, ok0, sweeps = solve_j0(K, dL, A, b, False, 30)
+    assert ok0 and np.max(np.abs(x0 - np.linalg.solve(J0, b))) < 1e-13 * np.max(np.abs(x0))
+
+
+@pytest.mark.parametrize("x", [Fraction(1, 30), Fraction(3, 10), Fraction(1, 2)])
+@pytest.mark.parametrize("h", [0.3, 0.1])
+def test_band_limited_samples_equal_the_closed_form(x, h):
+    # W(tau) = phi(tau) - (1/pi) int_{pi/h}^inf phit(k) cos(k tau) dk, with the transform of
+    # f_x written as a sum of exponentials e^{-a k} (a = pi (x + n), pi (1 - x + n)) whose tail
+    # integrals are elementary: e^{-a K} (a cos(K tau) - tau sin(K tau)) / (a^2 + tau^2)
+    # (derived here; common practice, no source)
+    from tba.models.blocks import block_kernel, block_transform
+    from tba.solvers.operators import band_limited_samples
+
+    N = 200
+    got = band_limited_samples(lambda k: block_transform(x, k), h, N)
+    tau = h * np.arange(N)
+    omega = math.pi / h
+    tail = np.zeros(N)
+    for n in range(8):
+        for a in (math.pi * (float(x) + n), math.pi * (1 - float(x) + n)):
+            tail += (-1) ** n * (-2 * math.pi) * math.exp(-a * omega) * (
+                a * np.cos(tau * omega) - tau * np.sin(tau * omega)) / (a * a + tau * tau)
+    want = block_kernel(x, tau) - tail / math.pi
+    assert np.max(np.abs(got - want)) <= 1e-13 * np.max(np.abs(want))

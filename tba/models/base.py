@@ -140,6 +140,28 @@ class DiagonalModel:
             out += mult.reshape((n, n) + (1,) * t.ndim) * _blocks.block_kernel(x, t)
         return out
 
+    @property
+    def has_kernel_transform(self):
+        """True when `kernel_transform` is known in closed form (block models)."""
+        return self.blocks is not None
+
+    def kernel_transform(self, k):
+        """int e^{ikt} phi_ab(t) dt, shape (n, n) + k.shape (real: the kernels are even).
+
+        Known in closed form for block models; the solvers use it to discretise the kernels
+        band-limited, so that their poles do not set the grid spacing. Raises
+        NotImplementedError for a kernel callable."""
+        if not self.has_kernel_transform:
+            raise NotImplementedError("kernel_transform: not known for a kernel callable")
+        k = np.asarray(k, dtype=float)
+        n = self.n_species
+        xs = sorted({x for row in self.blocks for c in row for x in c}, key=float)
+        out = np.zeros((n, n) + k.shape)
+        for x in xs:
+            mult = np.array([[c.get(x, 0) for c in row] for row in self.blocks], dtype=float)
+            out += mult.reshape((n, n) + (1,) * k.ndim) * _blocks.block_transform(x, k)
+        return out
+
     def s_matrix(self, t):
         """S_ab(t) for block models, shape (n, n) + t.shape (complex)."""
         if self.blocks is None:

@@ -7,8 +7,8 @@ changes sign, the Jacobian dF/deps is singular, but the bordered matrix
 
     [[dF/deps, dF/dp], [tangent_eps^T, tangent_p]]
 
-stays regular. Each bordered solve uses only the undeformed Jacobian J0 = 1 + K diag(L')
-(well conditioned) and the small capacitance matrix of the CDD terms (see ``tba.solvers.ground``).
+stays regular. The curve following itself (predictor, bordered corrector, turning points)
+is `tba.solvers.arclength`, which the ground-state solver also uses next to branch points.
 
 What this module gives:
 * ``locate_fold``: the fold (branch radius R_c, or alpha_c at fixed R) by following the
@@ -27,110 +27,11 @@ import scipy.linalg
 import scipy.sparse.linalg
 
 from tba.models.cdd import CDD
+from tba.solvers import arclength
 from tba.solvers.grid import choose_grid
-from tba.solvers.ground import Discretization, _interpolate, newton, solve_ground_state
+from tba.solvers.ground import Discretization, _interpolate, grid_pole_distance, newton, solve_ground_state
 
 PARAMETERS = ("radius", "alpha")
-
-
-class _Family:
-    """The equations on one grid as a function of the continuation parameter."""
-
-    def __init__(self, model, deformation, radius, grid, parameter):
-        if parameter not in PARAMETERS:
-            raise ValueError(f"parameter must be one of {PARAMETERS}, got {parameter!r}")
-        self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
-        self.parameter = parameter
-        # weights of eps in the arclength norm: a change of eps by m_a cosh t (what a change
-        # of the effective radius does) counts as one unit, spread over the grid
-        drive = np.outer(model.masses, np.cosh(grid.t))
-        self.theta = 1.0 / (drive * drive * drive.size)
-
-    def disc(self, p):
-        if self.parameter == "radius":
-            return Discretization(self.model, self.deformation, p, self.grid)
-        couplings = dict(self.deformation.couplings)
-        couplings[1] = p
-        return Discretization(self.model, CDD(couplings), self.radius, self.grid)
-
-    def dF_dp(self, disc, L):
-        if self.parameter == "radius":
-            return -disc.nu / disc.radius
-        return disc.coupling_derivative(L, 1)
-
-    def norm(self, x, y):
-        return math.sqrt(float(np.sum(self.theta * x * x)) + y * y)
-
-
-@dataclass
-class _Point:
-    eps: np.ndarray
-    p: float
-    tangent: tuple  # (t_eps, t_p), unit in the weighted norm
-    energy: float
-    fold_indicator: float
-
-
-def _tangent(fam, disc, jac, L, previous):
-    """Unit tangent with positive overlap with ``previous`` (or dp/ds < 0 at the start)."""
-    f = fam.dF_dp(disc, L)
-    if previous is None:
-        x = -jac.solve(f)  # dp = 1: J x = -f
-        y = 1.0
-        n = fam.norm(x, y)
-        return -x / n, -y / n  # start by decreasing p (towards the fold)
-    te, tp = previous
-    x, y = jac.bordered_solve(f, fam.theta * te, tp, np.zeros_like(te), 1.0)
-    n = fam.norm(x, y)
-    return x / n, y / n
-
-
-def _correct(fam, eps, p, pred_eps, pred_p, tangent, maxiter=30):
-    """Newton on [F(eps; p) = 0, tangent . (x - x_pred) = 0]."""
-    te, tp = tangent
-    for it in range(maxiter):
-        disc = fam.disc(p)
-        L, dL, ok = disc.occupation(eps)
-        if not ok:
-            return None
-        F = disc.residual(eps, L)
-        g = float(np.sum(fam.theta * te * (eps - pred_eps))) + tp * (p - pred_p)
-        jac = disc.jacobian(dL)
-        dx, dp = jac.bordered_solve(fam.dF_dp(disc, L), fam.theta * te, tp, -F, -g)
-        eps, p = eps + dx, p + dp
-        if not (np.all(np.isfinite(eps)) and math.isfinite(p)) or p <= 0 and fam.parameter == "radius":
-            return None
-        if (float(np.max(np.abs(dx) / (1 + np.abs(eps)))) < 1e-13
-                and abs(dp) < 1e-14 * max(1.0, abs(p))):
-            disc = fam.disc(p)
-            L, dL, ok = disc.occupation(eps)
-            jac = disc.jacobian(dL)
-            return eps, p, disc, jac, L, it + 1
-    return None
-
-
-def _point(fam, eps, p, disc, jac, L, previous_tangent):
-    tangent = _tangent(fam, disc, jac, L, previous_tangent)
-    return _Point(eps=eps, p=p, tangent=tangent, energy=disc.energy(L),
-                  fold_indicator=jac.fold_indicator())
-
-
-def _step(fam, point, ds):
-    te, tp = point.tangent
-    out = _correct(fam, point.eps + ds * te, point.p + ds * tp, point.eps + ds * te,
-                   point.p + ds * tp, point.tangent)
-    if out is None:
-        return None
-    eps, p, disc, jac, L, its = out
-    return _point(fam, eps, p, disc, jac, L, point.tangent), its
-
-
-def _start(fam, p0, start_state=None):
-    disc = fam.disc(p0)
-    nt = newton(disc, disc.initial_guess(start_state), 1e-13)
-    if not nt.ok:
-        raise RuntimeError(f"continuation could not start at {fam.parameter} = {p0}: {nt.message}")
-    return _point(fam, nt.e, p0, disc, nt.jacobian(), nt.L, None)
 
 
 @dataclass
@@ -145,46 +46,8 @@ class Fold:
     second_derivative: float  # d^2 p / ds^2 at the fold (arclength on this grid)
     fold_indicator: float
     steps: int
-    point: Optional[_Point] = field(default=None, repr=False)
-    family: Optional[_Family] = field(default=None, repr=False)
-
-
-def _find_fold(fam, point, ds=0.05, max_steps=400):
-    """Follow the curve from ``point`` until dp/ds changes sign, then secant on dp/ds = 0."""
-    steps = 0
-    sign0 = math.copysign(1.0, point.tangent[1])
-    while steps < max_steps:
-        out = _step(fam, point, ds)
-        steps += 1
-        if out is None:
-            ds *= 0.5
-            if ds < 1e-10:
-                raise RuntimeError("continuation stalled before reaching a fold")
-            continue
-        new, its = out
-        if math.copysign(1.0, new.tangent[1]) != sign0:
-            break
-        point = new
-        ds = min(ds * (1.5 if its <= 3 else 1.0), 0.5)
-    else:
-        raise RuntimeError(f"no fold within {max_steps} continuation steps")
-    # secant on tau_p(s) between s = 0 (point) and s = ds (new)
-    s0, f0 = 0.0, point.tangent[1]
-    s1, f1 = ds, new.tangent[1]
-    best = new
-    for _ in range(60):
-        s2 = s1 - f1 * (s1 - s0) / (f1 - f0)
-        out = _step(fam, point, s2)
-        steps += 1
-        if out is None:
-            break
-        best = out[0]
-        f2 = best.tangent[1]
-        s0, f0, s1, f1 = s1, f1, s2, f2
-        if abs(f2) < 1e-14 or abs(s1 - s0) < 1e-15:
-            break
-    curvature = (f1 - f0) / (s1 - s0) if s1 != s0 else math.nan
-    return best, curvature, steps
+    point: Optional[arclength.Point] = field(default=None, repr=False)
+    family: Optional[arclength.Family] = field(default=None, repr=False)
 
 
 def _design_radius(model, deformation, radius, parameter):
@@ -206,36 +69,39 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
     The fold is located on two grids of increasing resolution; their difference is the error
     estimate (plus rounding). Returns a `Fold` (values of the finer grid).
     """
+    if parameter not in PARAMETERS:
+        raise ValueError(f"parameter must be one of {PARAMETERS}, got {parameter!r}")
     if parameter == "radius":
         if deformation.alpha <= 0 and deformation.is_ttbar:
             raise ValueError("deformation: the ground state has no fold in R for alpha <= 0")
         p0 = float(start) if start is not None else 2.0 * math.sqrt(2 * math.pi * deformation.alpha / 3)
-        r_ref = p0
+        r_ref, toward = p0, 0.0  # R decreases towards R_c
     else:
         if radius is None:
             raise ValueError("radius is required for parameter='alpha'")
         p0 = float(start) if start is not None else max(deformation.alpha, 1e-3)
-        r_ref = float(radius)
+        r_ref, toward = float(radius), math.inf  # alpha increases towards alpha_c
     r_design = _design_radius(model, deformation, r_ref, parameter)
     folds = []
     for level in (0, 1):
-        grid = choose_grid(model.pole_distance, float(np.min(model.masses)), r_design, tol, level,
-                           cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1))
-        defo = deformation
-        fam = _Family(model, defo, radius, grid, parameter)
-        seed = None
+        grid = choose_grid(grid_pole_distance(model), float(np.min(model.masses)), r_design, tol,
+                           level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1))
+        fam = arclength.Family(model, deformation, radius, grid, parameter)
         if parameter == "radius":
             res = solve_ground_state(model, p0, deformation, tol=tol)
         else:
             res = solve_ground_state(model, radius, CDD({**deformation.couplings, 1: p0}), tol=tol)
         if not res.converged:
             raise RuntimeError(f"continuation start point did not converge: {res.message}")
-        seed = res._state
-        point = _start(fam, p0, seed)
-        if parameter == "alpha":  # move towards the fold: increasing alpha
-            point.tangent = (-point.tangent[0], -point.tangent[1])
-        fold_point, curvature, steps = _find_fold(fam, point)
-        folds.append((fold_point, curvature, steps, fam))
+        disc = fam.disc(p0)
+        nt = newton(disc, disc.initial_guess(res._state), 1e-13)
+        if not nt.ok:
+            raise RuntimeError(f"continuation could not start at {parameter} = {p0}: {nt.message}")
+        pt = arclength.point(fam, nt.e, p0, disc, nt.jacobian(), nt.L, direction=toward - p0)
+        out = arclength.follow(fam, pt, toward, ds=0.05, ds_max=0.5, physical=False)
+        if out.kind != "fold":
+            raise RuntimeError(f"continuation met no fold: {out.message or out.kind}")
+        folds.append((out.point, out.curvature, out.steps, fam))
     (c_pt, _, _, _), (f_pt, curvature, steps, fam) = folds
     eps64 = np.finfo(float).eps
     value_error = abs(f_pt.p - c_pt.p) + 64 * eps64 * abs(f_pt.p)
@@ -285,7 +151,7 @@ def second_branch(fold, radius):
     ds = 0.02
     steps = 0
     while point.p < radius:
-        out = _step(fam, point, ds)
+        out = arclength.step(fam, point, ds, accuracy=1e-11)
         steps += 1
         if out is None:
             ds *= 0.5
@@ -335,9 +201,10 @@ def _polish(label, fam, radius, disc, eps):
     model, deformation = fam.model, fam.deformation
     energies, out = [], None
     for level in (0, 1):
-        grid = choose_grid(model.pole_distance, float(np.min(model.masses)), abs(r_eff), 1e-12,
-                           level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
-                           strip=strip)
+        grid = choose_grid(grid_pole_distance(model), float(np.min(model.masses)), abs(r_eff),
+                           1e-12, level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
+                           strip=strip, decay_radius=min(abs(r_eff), r_eff.real) if r_eff.real > 0
+                           else abs(r_eff))
         new = Discretization(model, deformation, radius, grid)
         e0 = _transfer(disc, eps, new)
         if is_complex:

@@ -160,8 +160,11 @@ def solve_branch_point(run, model_index, alpha_index):
         return {"status": BP_NOT_APPLICABLE,
                 "message": f"higher-spin CDD factors (spin {spins}): R_c from E_0'(R~) = 1/alpha "
                            f"holds for TTbar alone"}
+    from threadpoolctl import threadpool_limits
+
     try:
-        bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
+        with threadpool_limits(limits=1, user_api="blas"):  # the same bits on every executor
+            bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
     except Exception as exc:  # noqa: BLE001 (stored, never lost: the scan's points are kept)
         text = str(exc).splitlines()[0] if str(exc) else ""
         return {"status": BP_FAILED, "message": f"{type(exc).__name__}: {text}".rstrip(": ")}

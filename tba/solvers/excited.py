@@ -44,6 +44,9 @@ from tba.solvers.ground import Discretization, _interpolate
 _EPS = np.finfo(float).eps
 #: radius where states start from the Bethe-Yang equations before continuing to smaller R
 BETHE_YANG_RADIUS = 12.0
+#: grid half-widths are rounded up to multiples of this many points: the continuations of
+#: excited levels next to their branch points need the margin of a wider cutoff
+EXCITED_QUANTUM = 16
 #: blocks whose psi has poles closer to the real axis than this are integrated with the
 #: poles taken out (see `NearPoles`)
 POLE_SUBTRACTION = 0.25
@@ -393,6 +396,7 @@ def _newton(eqs, eps, t, tol, maxiter=60):
     F, Q = eqs.residual(eps, t, L)
     r = max(np.max(np.abs(F)), np.max(np.abs(Q)))
     floor = 64 * _EPS * max(1.0, float(np.max(np.abs(eqs.disc.nu))))
+    dE = np.inf
     for it in range(maxiter + 1):
         J = eqs.jacobian(eps, t, L, dL)
         try:
@@ -404,9 +408,14 @@ def _newton(eqs, eps, t, tol, maxiter=60):
             return None, "singular Jacobian", it
         de, dt = step[:N], step[N:]
         E, P = eqs.energy(t, L)
+        dE_last = dE
         dE = abs(eqs.m * float(np.dot(np.sinh(t), dt)) + float(np.sum(eqs.disc.wE[0] * dL * de)))
         small = max(np.max(np.abs(de)), np.max(np.abs(dt), initial=0.0)) < 1e-6 or r <= floor
-        if small and dE <= max(1e-2 * tol, 8 * _EPS) * max(abs(E), eqs.m):
+        # next to a branch point rounding of the residual is amplified in the step: once the
+        # residual is at rounding level and the steps stop shrinking, they are that noise, and
+        # the step's energy change is kept as the iteration error
+        stagnant = r <= 1e3 * floor and dE > 0.5 * dE_last and dE <= 1e-6 * max(abs(E), eqs.m)
+        if (small and dE <= max(1e-2 * tol, 8 * _EPS) * max(abs(E), eqs.m)) or stagnant:
             d = eqs.disc
             S, _ = d.separable(L[None, :])
             diag = np.abs(np.diag(lu[0]))
@@ -484,7 +493,7 @@ def _grid(model, deformation, r_eff, tol, level):
     Rt, beta = r_eff
     return choose_grid(model.pole_distance, float(model.masses[0]), max(Rt, 1e-3), tol, level,
                        cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
-                       strip=strip, shift=beta)
+                       strip=strip, shift=beta, quantum=EXCITED_QUANTUM)
 
 
 def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff):

@@ -26,8 +26,9 @@ LADDER_STEPS_PER_OCTAVE = 8
 LEVEL_STEPS = 4
 #: extra digits asked of each refinement level, in units of e-folds
 LEVEL_MARGIN = 4.0
-#: N is rounded up to a multiple of this (plus one), so nearby radii share cached operators
-N_QUANTUM = 16
+#: the half-width (N - 1)/2 is rounded up to a multiple of this, so that nearby radii share
+#: cached operators (the ground state also rounds the effective radius, see tba.solvers.ground)
+N_QUANTUM = 4
 
 
 @dataclass(frozen=True)
@@ -86,7 +87,7 @@ def _large_radius_spacing(mr, X):
 
 
 def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, max_spin=1,
-                strip=math.pi / 2, shift=0.0):
+                strip=math.pi / 2, shift=0.0, decay_radius=None, quantum=None):
     """The grid for a point with effective radius ``r_eff`` (> 0) at relative tolerance ``tol``.
 
     Level 0 resolves log(1/tol) e-folds; every further level is LEVEL_STEPS ladder steps
@@ -97,6 +98,9 @@ def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, 
     |Im t| = pi / 2s. ``strip`` is where L's singularities lie for the driving term alone:
     pi/2 for a real radius, pi/2 - |arg R| for a complex one. ``shift`` widens the grid by a
     boost rapidity: states with momentum have a driving term m R~ cosh(t - beta).
+    ``decay_radius`` (default ``r_eff``) sets the cutoff: for a complex radius R the integrands
+    decay like e^{-Re(R) cosh t}, so pass |R| as ``r_eff`` and Re R here. ``quantum``
+    (default N_QUANTUM) is what the half-width in points is rounded up to.
     """
     X0 = exponent(tol, 0)
     d = min(pole_distance, strip / max_spin)
@@ -109,7 +113,9 @@ def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, 
     h = min(h, _large_radius_spacing(mr, X0))
     h = ladder(h) * 2.0 ** (-LEVEL_STEPS * level / LADDER_STEPS_PER_OCTAVE)
     X = exponent(tol, level)
-    lam = math.acosh(1.0 + (X + 2.0 + cutoff_extra) / mr) + abs(shift)
+    md = min_mass * (r_eff if decay_radius is None else decay_radius)
+    lam = math.acosh(1.0 + (X + 2.0 + cutoff_extra) / md) + abs(shift)
     half = math.ceil(lam / h)
-    half = N_QUANTUM * math.ceil(half / N_QUANTUM)
+    q = N_QUANTUM if quantum is None else quantum
+    half = q * math.ceil(half / q)
     return Grid(h=h, N=2 * half + 1)

@@ -1,31 +1,39 @@
 """Newton solver for the ground-state TBA of a diagonal model with CDD deformations.
 
-The discretised equations on a uniform grid t_i (trapezoid rule, weights h) are
+The discretised equations on a uniform grid t_i (weights from `tba.solvers.operators`) are
 
-    F_a(i) = eps_a(i) - m_a R cosh t_i + sum_b sum_j K_ab(i - j) L_b(j)
+    F_a(i) = eps_a(i) - m_a R cosh t_i + sum_b sum_j w_ab(i - j) L_b(j)
              + sum_r c_r u_r,a(i) sum_b sum_j v_r,b(j) L_b(j)  = 0
 
-with K_ab(k) = h phi_ab(k h) / 2 pi and, for every CDD spin s, two rank-one terms
-(cosh and sinh parts of cosh(s(t - t'))). Newton's method with a backtracking line
-search solves them; the Jacobian
+with w_ab the band-limited kernel weights (block models; the trapezoid rule for kernel
+callables) and, for every CDD spin s, two rank-one terms (cosh and sinh parts of
+cosh(s(t - t'))). The Jacobian is
 
-    J = 1 + K diag(L') + sum_r c_r u_r (v_r L')^T
+    J = J0 + sum_r c_r u_r (v_r L')^T,    J0 = 1 + K diag(L').
 
-is factorised densely when the system is small and applied through FFTs inside GMRES
-when it is large (the crossover was measured, see ``DENSE_LIMIT``).
+Dense systems (every built-in model at ordinary radii: with band-limited kernels E8 needs
+n N ~ 250-600 unknowns) run the compiled Newton iteration of `kernels.dense`: chord steps on
+the inverse of J0 carried over from the previous radius of a scan (each grid level keeps its
+own), Newton steps where those converge too slowly, the CDD terms through the Woodbury formula.
+Large systems apply J through FFTs inside GMRES.
 
-Every point is solved on two grids of increasing resolution (``tba.solvers.grid``); the
-difference of their energies, plus the Newton and rounding contributions, is the
-error estimate. More levels are added until the estimate meets the tolerance.
+Every point is solved on two grids of increasing resolution (`tba.solvers.grid`); the
+difference of their energies, plus the Newton iteration error and the rounding of the
+equations propagated to E through the adjoint solution (which grows like 1/sqrt(R - R_c) next
+to a branch point), is the error estimate. More levels are added until it meets the tolerance.
+Each level starts from its own solutions at the previous radii (extrapolated in R on the same
+grid), or from the coarser level of this point.
 
-Real solutions stop existing at a fold (square-root branch point). Along the branch
-connected to the undeformed theory the determinant of the small "capacitance" matrix
-of the rank-one terms, ``fold_indicator``, is positive and vanishes at the fold. When
-Newton fails for a deformed point, the deformation is switched on gradually from 0 at
-fixed R; if that continuation ends at a fold before the requested coupling, the point
-has no real solution and is reported as such.
+Real solutions stop existing at a fold (square-root branch point). Along the branch connected
+to the undeformed theory the determinant of the small capacitance matrix of the rank-one
+terms, ``fold_indicator``, is positive and vanishes at the fold. When Newton fails for a
+deformed point or lands off that branch, the curve of solutions is followed to the point by
+pseudo-arclength continuation (`tba.solvers.arclength`): in R from the previous point of a
+scan, or in the scale of the couplings (0 -> 1) at fixed R. A turning point on the way means
+there is no real solution; it is confirmed on the next finer grid before it is reported.
 """
 
+import functools
 import math
 import numbers
 import time
@@ -35,79 +43,24 @@ import numpy as np
 import scipy.linalg
 import scipy.sparse.linalg
 
-from kernels import SpectralConvolver, block_toeplitz_matrix, occupation_terms
-from kernels import newton as _dense
+from kernels import dense as _dense
+from kernels import occupation_terms
+from tba.models.base import DiagonalModel
 from tba.models.cdd import CDD, NO_DEFORMATION
+from tba.solvers import arclength
 from tba.solvers.grid import Grid, choose_grid
+from tba.solvers.operators import DENSE_LIMIT, operators, uses_band_limited_kernels  # noqa: F401
 from tba.solvers.result import SolveResult, Status
 
-#: systems with n_species * N at or below this are factorised densely (measured crossover)
-DENSE_LIMIT = 1200
 #: refinement levels tried before a point is declared not converged
 MAX_LEVEL = 4
 _EPS = np.finfo(float).eps
 #: the smallest relative tolerance offered: a few hundred ulps, where the rounding allowance
 #: of a grid sum of ~10^3 terms still fits
 MIN_TOL = 1e-13
-
-
-class _Operators:
-    """Kernel samples and the convolution operator for one model on one grid (cached)."""
-
-    def __init__(self, model, grid):
-        n, N = model.n_species, grid.N
-        offsets = grid.h * np.arange(-(N - 1), N)
-        kern = np.ascontiguousarray(model.kernel(offsets) * (grid.h / (2 * np.pi)))
-        self.n, self.N = n, N
-        self.trivial = not np.any(kern)
-        self.dense = n * N <= DENSE_LIMIT
-        if self.trivial:
-            self.matrix = None
-        elif self.dense:
-            self.matrix = block_toeplitz_matrix(kern, N)
-        else:
-            self._spectral = SpectralConvolver(kern)
-        # grid-dependent arrays shared by every Discretization on this grid
-        t, h, m = grid.t, grid.h, model.masses
-        self.model, self.grid = model, grid
-        self.drive = np.outer(m, np.cosh(t))
-        self.wE = -(h / (2 * np.pi)) * self.drive
-        self.wP = -(h / (2 * np.pi)) * np.outer(m, np.sinh(t))
-        self.no_terms = np.zeros((0, n, N))
-        self._spin = {}
-
-    def separable(self, deformation, spin):
-        """(U, V, c) of the two rank-one terms of a spin-s CDD factor: kernel
-        coefficient q_a q_b (cosh(st) cosh(st') - sinh(st) sinh(st'))."""
-        alpha = deformation.couplings[spin]
-        q = deformation.charges(self.model, spin)
-        key = (spin, tuple(q))
-        UV = self._spin.get(key)
-        if UV is None:
-            t, h = self.grid.t, self.grid.h
-            ch, sh = np.cosh(spin * t), np.sinh(spin * t)
-            U = np.stack([np.outer(q, ch), np.outer(q, sh)])
-            UV = self._spin[key] = (U, h * U)
-        coef = alpha * spin / (2 * np.pi)
-        return UV[0], UV[1], np.array([coef, -coef])
-
-    def convolve(self, f):
-        if self.trivial:
-            return np.zeros_like(f)
-        if self.dense:
-            return (self.matrix @ f.reshape(-1)).reshape(f.shape)
-        return self._spectral(f)
-
-
-def _operators(model, grid):
-    cache = model._kernel_cache
-    key = (grid.h, grid.N)
-    ops = cache.get(key)
-    if ops is None:
-        if len(cache) > 64:
-            cache.clear()
-        ops = cache[key] = _Operators(model, grid)
-    return ops
+_NO_MATRIX = np.zeros((1, 1))
+#: refinement sweeps with an inverse of J0 from another point beyond which J0 is inverted anew
+REFRESH_SWEEPS = 6
 
 
 class Discretization:
@@ -115,13 +68,21 @@ class Discretization:
 
     def __init__(self, model, deformation, radius, grid):
         self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
-        ops = self.ops = _operators(model, grid)
-        self.shape = (model.n_species, grid.N)
+        ops = self.ops = operators(model, grid)
+        n, N = model.n_species, grid.N
+        self.shape = (n, N)
         self.nu = radius * ops.drive
         terms = [ops.separable(deformation, s) for s in deformation.couplings]
-        self.U = np.concatenate([u for u, v, c in terms]) if terms else ops.no_terms
-        self.V = np.concatenate([v for u, v, c in terms]) if terms else ops.no_terms
-        self.c = np.concatenate([c for u, v, c in terms]) if terms else np.zeros(0)
+        if terms:
+            self.U = np.concatenate([u for u, v, c in terms])
+            self.V = np.concatenate([v for u, v, c in terms])
+            self.c = np.concatenate([c for u, v, c in terms])
+        else:
+            self.U = self.V = ops.no_terms
+            self.c = np.zeros(0)
+        r = self.c.size
+        self.U_flat = self.U.reshape(r, n * N)
+        self.V_flat = self.V.reshape(r, n * N)
         self.wE, self.wP = ops.wE, ops.wP
         self.sign = 1 if model.statistics == "fermion" else -1
 
@@ -134,8 +95,8 @@ class Discretization:
 
     def separable(self, L):
         """(scalars S_r = v_r . L, the rank-one terms sum_r c_r S_r u_r)."""
-        S = np.einsum("rij,ij->r", self.V, L)
-        return S, np.einsum("r,rij->ij", self.c * S, self.U)
+        S = self.V_flat @ L.reshape(-1)
+        return S, ((self.c * S) @ self.U_flat).reshape(self.shape)
 
     def dressing(self, L):
         """-(K * L): the part of eps that comes from the model's own kernel."""
@@ -159,8 +120,11 @@ class Discretization:
         return (spin / (2 * np.pi)) * np.outer(q, C * ch - S * sh)
 
     # -- the Jacobian --------------------------------------------------------------------
-    def jacobian(self, dL):
-        return _Jacobian(self, dL)
+    def jacobian(self, dL, A=None):
+        """J at L' = ``dL``; dense systems may reuse ``A``, an inverse of J0 at a nearby point."""
+        if self.ops.dense:
+            return DenseJacobian(self, dL, A)
+        return KrylovJacobian(self, dL)
 
     def initial_guess(self, state=None):
         """eps on this grid from a solved neighbour (any grid, radius, coupling), or the driving term."""
@@ -172,31 +136,122 @@ class Discretization:
             g = _interpolate(state.grid, state.dressing, self.grid.t)
         e = self.nu + g
         if self.c.size and state.scalars.size == self.c.size:
-            e -= np.einsum("r,rij->ij", self.c * state.scalars, self.U)
+            e -= ((self.c * state.scalars) @ self.U_flat).reshape(self.shape)
         return e
 
 
 def _interpolate(grid, values, t):
-    """Cubic (4-point Lagrange) interpolation of values on ``grid`` at ``t``; 0 outside the grid."""
+    """Cubic (4-point Lagrange) interpolation of values on ``grid`` at ``t``; 0 outside the grid.
+    Exact at the points of ``grid`` (same spacing: the values are copied)."""
     x = (t - grid.t[0]) / grid.h
     i = np.clip(np.floor(x).astype(int) - 1, 0, grid.N - 4)
     u = x - i
     w = np.stack([-(u - 1) * (u - 2) * (u - 3) / 6, u * (u - 2) * (u - 3) / 2,
                   -u * (u - 1) * (u - 3) / 2, u * (u - 1) * (u - 2) / 6])
     out = sum(w[k] * values[:, i + k] for k in range(4))
-    out[:, (x < 0) | (x > grid.N - 1)] = 0.0
+    out[:, (x < -1e-9) | (x > grid.N - 1 + 1e-9)] = 0.0
     return out
 
 
-class _Jacobian:
-    """J = J0 + U C (V L')^T with J0 = 1 + K diag(L') (the undeformed Jacobian).
+class DenseJacobian:
+    """J = J0 + U^T CVd through the Woodbury formula with A, an inverse of J0.
 
-    Dense route: J0 is LU-factorised and J is solved with the Woodbury formula, so the
-    r x r capacitance matrix cap = 1 + C (V L')^T J0^{-1} U comes for free; its
-    determinant (the fold indicator) is 1 without deformation and 0 at a fold, while J0
-    stays well conditioned there. Krylov route: GMRES on J for Newton steps, and on the
-    well-conditioned J0 for the fold indicator.
-    """
+    ``A`` may belong to a nearby point (the previous radius, or the previous Newton iterate):
+    every solve is then polished by iterative refinement against the exact J0 or J of this
+    point, so that solutions, derivatives and the fold indicator are those of this point. If
+    refinement does not converge (A too far away), J0 is inverted here."""
+
+    def __init__(self, disc, dL, A=None):
+        ops = disc.ops
+        self.disc, self.dL = disc, dL
+        self.K = ops.matrix if not ops.trivial else _NO_MATRIX
+        self.trivial = ops.trivial
+        self.dLf = np.ascontiguousarray(dL.reshape(-1))
+        self.size = self.dLf.size
+        self.fresh = A is None
+        self.A = _dense.inverse_j0(self.K, self.dLf, self.trivial) if A is None else A
+        self._setup()
+
+    def _setup(self):
+        d = self.disc
+        self.CVd, Z, cap = _dense.capacitance(d.U_flat, d.V_flat, d.c, self.dLf, self.A)
+        if not self.fresh and d.c.size:
+            Z, cap, sweeps = _dense.refine_capacitance(self.K, d.U_flat, self.dLf, self.A,
+                                                       self.CVd, Z, self.trivial, 30)
+            if sweeps > REFRESH_SWEEPS:  # A is far from this point: cheaper to invert here
+                self._refresh()
+                return
+        self.Z, self.cap = Z, cap
+
+    def _refresh(self):
+        self.A = _dense.inverse_j0(self.K, self.dLf, self.trivial)
+        self.fresh = True
+        self._setup()
+
+    def solve0(self, b, rtol=None):
+        """J0^{-1} b for a flat vector b (the undeformed Jacobian: well conditioned at folds)."""
+        b = np.ascontiguousarray(b, dtype=float)
+        x, ok, sweeps = _dense.solve_j0(self.K, self.dLf, self.A, b, self.trivial, 30)
+        if (not ok or sweeps > REFRESH_SWEEPS) and not self.fresh:
+            self._refresh()
+            x, ok, sweeps = _dense.solve_j0(self.K, self.dLf, self.A, b, self.trivial, 30)
+        return x
+
+    def solve(self, rhs, rtol=None):
+        d = self.disc
+        b = np.ascontiguousarray(rhs.reshape(-1), dtype=float)
+        x, ok = _dense.solve_linear(self.K, d.U_flat, d.V_flat, d.c, self.dLf, self.A, b,
+                                    self.trivial, 30)
+        if not ok and not self.fresh:
+            self._refresh()
+            x, ok = _dense.solve_linear(self.K, d.U_flat, d.V_flat, d.c, self.dLf, self.A, b,
+                                        self.trivial, 30)
+        if not ok:
+            raise np.linalg.LinAlgError("the Jacobian is singular to working precision")
+        return x.reshape(d.shape)
+
+    def fold_indicator(self):
+        """det(1 + C (V L')^T J0^{-1} U) = det J / det J0: 1 undeformed, 0 at a fold."""
+        if self.disc.c.size == 0:
+            return 1.0
+        return float(np.linalg.det(self.cap))
+
+    def bordered_solve(self, f, p, q, a1, a2):
+        """Solve [[J, f], [p^T, q]] [x; y] = [a1; a2] (f, p, a1 of the equations' shape).
+
+        J is handled as J0 + U^T W with the Woodbury formula, so the bordered matrix may be
+        regular while J itself is singular (at a fold): only J0 is ever inverted."""
+        return _bordered(self, f, p, q, a1, a2)
+
+    def capacitance_pair(self):
+        return self.Z, self.CVd
+
+
+def _bordered(jac, f, p, q, a1, a2):
+    f, p, a1 = f.reshape(-1), p.reshape(-1), a1.reshape(-1)
+    r = jac.disc.c.size
+    ya, zf = jac.solve0(a1), jac.solve0(f)
+    if r:
+        Z, W = jac.capacitance_pair()
+        M = np.zeros((r + 1, r + 1))
+        M[:r, :r] = np.eye(r) + W @ Z
+        M[:r, r] = W @ zf
+        M[r, :r] = -(p @ Z)
+        M[r, r] = q - p @ zf
+        rhs = np.concatenate([W @ ya, [a2 - p @ ya]])
+        sol = np.linalg.solve(M, rhs)
+        w, y = sol[:r], sol[r]
+        x = ya - Z @ w - zf * y
+    else:
+        y = (a2 - p @ ya) / (q - p @ zf)
+        x = ya - zf * y
+    return x.reshape(jac.disc.shape), float(y)
+
+
+class KrylovJacobian:
+    """J = J0 + U C (V L')^T applied through FFT products, solved with GMRES (large systems).
+
+    GMRES on J for Newton steps; near a fold, Woodbury with the well-conditioned J0."""
 
     def __init__(self, disc, dL):
         self.disc = disc
@@ -205,22 +260,12 @@ class _Jacobian:
         self.size = n * N
         r = disc.c.size
         self.CVd = disc.c[:, None] * (disc.V * dL).reshape(r, n * N)
-        self.Uf = disc.U.reshape(r, n * N)
+        self.Uf = disc.U_flat
         self._cap = self._Z = None
         self._cap_rtol = np.inf
-        if disc.ops.dense:
-            J0 = np.eye(self.size)
-            if not disc.ops.trivial:
-                J0 += disc.ops.matrix * dL.reshape(1, -1)
-            self._lu = scipy.linalg.lu_factor(J0, check_finite=False)
-            if r:
-                # one right-hand side at a time: multi-column triangular solves are much
-                # slower for these sizes with some BLAS builds (measured: 5 ms vs 20 us)
-                self._capacitance()
-        else:
-            shape = (self.size, self.size)
-            self._op = scipy.sparse.linalg.LinearOperator(shape, matvec=self.matvec, dtype=float)
-            self._op0 = scipy.sparse.linalg.LinearOperator(shape, matvec=self._matvec0, dtype=float)
+        shape = (self.size, self.size)
+        self._op = scipy.sparse.linalg.LinearOperator(shape, matvec=self.matvec, dtype=float)
+        self._op0 = scipy.sparse.linalg.LinearOperator(shape, matvec=self._matvec0, dtype=float)
 
     def _matvec0(self, x):
         x = np.asarray(x).reshape(self.disc.shape)
@@ -241,25 +286,18 @@ class _Jacobian:
 
     def solve(self, rhs, rtol=1e-13):
         b = rhs.reshape(-1)
-        if not self.disc.ops.dense:
-            try:  # GMRES on J converges in a few dozen steps away from folds
-                return self._gmres(self._op, b, rtol, maxiter=2).reshape(self.disc.shape)
-            except np.linalg.LinAlgError:
-                if self.disc.c.size == 0:
-                    raise
-            # near a fold J is ill conditioned: Woodbury with the well-conditioned J0
-            Z, cap = self._capacitance(rtol=1e-13)
-            y = self.solve0(b, rtol)
-            return (y - Z @ np.linalg.solve(cap, self.CVd @ y)).reshape(self.disc.shape)
-        y = scipy.linalg.lu_solve(self._lu, b, check_finite=False)
-        if self._cap is not None:
-            y = y - self._Z @ np.linalg.solve(self._cap, self.CVd @ y)
-        return y.reshape(self.disc.shape)
+        try:  # GMRES on J converges in a few dozen steps away from folds
+            return self._gmres(self._op, b, rtol, maxiter=2).reshape(self.disc.shape)
+        except np.linalg.LinAlgError:
+            if self.disc.c.size == 0:
+                raise
+        # near a fold J is ill conditioned: Woodbury with the well-conditioned J0
+        Z, cap = self._capacitance(rtol=1e-13)
+        y = self.solve0(b, rtol)
+        return (y - Z @ np.linalg.solve(cap, self.CVd @ y)).reshape(self.disc.shape)
 
     def solve0(self, b, rtol=1e-13):
-        """J0^{-1} b for a flat vector b (the undeformed Jacobian: well conditioned at folds)."""
-        if self.disc.ops.dense:
-            return scipy.linalg.lu_solve(self._lu, b, check_finite=False)
+        """J0^{-1} b for a flat vector b."""
         return self._gmres(self._op0, b, rtol)
 
     def _capacitance(self, rtol=1e-10):
@@ -269,40 +307,19 @@ class _Jacobian:
             r = self.disc.c.size
             self._Z = np.stack([self.solve0(self.Uf[k], rtol) for k in range(r)], axis=1)
             self._cap = np.eye(r) + self.CVd @ self._Z
-            self._cap_rtol = 0.0 if self.disc.ops.dense else rtol
+            self._cap_rtol = rtol
         return self._Z, self._cap
 
+    def capacitance_pair(self):
+        return self._capacitance(rtol=1e-13)[0], self.CVd
+
     def fold_indicator(self):
-        """det(1 + C (V L')^T J0^{-1} U) = det J / det J0: 1 undeformed, 0 at a fold."""
         if self.disc.c.size == 0:
             return 1.0
         return float(np.linalg.det(self._capacitance()[1]))
 
     def bordered_solve(self, f, p, q, a1, a2):
-        """Solve [[J, f], [p^T, q]] [x; y] = [a1; a2] (f, p, a1 of the equations' shape).
-
-        J is handled as J0 + U^T W with the Woodbury formula, so the bordered matrix may be
-        regular while J itself is singular (at a fold): only J0 is ever inverted.
-        """
-        f, p, a1 = f.reshape(-1), p.reshape(-1), a1.reshape(-1)
-        r = self.disc.c.size
-        ya, zf = self.solve0(a1), self.solve0(f)
-        if r:
-            Z, _ = self._capacitance()
-            W = self.CVd
-            M = np.zeros((r + 1, r + 1))
-            M[:r, :r] = np.eye(r) + W @ Z
-            M[:r, r] = W @ zf
-            M[r, :r] = -(p @ Z)
-            M[r, r] = q - p @ zf
-            rhs = np.concatenate([W @ ya, [a2 - p @ ya]])
-            sol = np.linalg.solve(M, rhs)
-            w, y = sol[:r], sol[r]
-            x = ya - Z @ w - zf * y
-        else:
-            y = (a2 - p @ ya) / (q - p @ zf)
-            x = ya - zf * y
-        return x.reshape(self.disc.shape), float(y)
+        return _bordered(self, f, p, q, a1, a2)
 
 
 @dataclass
@@ -328,13 +345,22 @@ class State:
     L: np.ndarray = field(default=None, repr=False)
     dL: np.ndarray = field(default=None, repr=False)
     coarse: object = field(default=None, repr=False)
+    #: an inverse of J0 near this point (dense systems): chord steps of the next radius
+    A: object = field(default=None, repr=False)
+    #: the same grid level at the previous radius of a scan (for extrapolation in R)
+    previous: object = field(default=None, repr=False)
+    #: every grid level of this point, coarsest first (each level's own warm starts)
+    levels: list = field(default=None, repr=False)
+
+    def jacobian(self):
+        if self.jac is None:
+            self.jac = self.disc.jacobian(self.dL, A=self.A)
+        return self.jac
 
     def derivatives(self, spins=(1,), second=False):
         """Exact dE/dR, dE/dalpha_s (and d2E/dR2) on this grid from the linearised equations
         J de/dx = -dF/dx with the Newton Jacobian."""
-        if self.jac is None:
-            self.jac = self.disc.jacobian(self.dL)
-        disc, jac = self.disc, self.jac
+        disc, jac = self.disc, self.jacobian()
         out = {}
         de = jac.solve(disc.nu / disc.radius, rtol=1e-13)  # dF/dR = -nu / R
         out["dE_dR"] = float(np.sum(disc.wE * self.dL * de))
@@ -363,10 +389,12 @@ class _Newton:
     jac: object = None
     disc: object = field(default=None, repr=False)
     fold: float = None
+    rounding: float = None
+    A: object = field(default=None, repr=False)
 
     def jacobian(self):
         if self.jac is None:
-            self.jac = self.disc.jacobian(self.dL)
+            self.jac = self.disc.jacobian(self.dL, A=self.A)
         return self.jac
 
     @property
@@ -385,35 +413,36 @@ _DENSE_MESSAGES = {
 }
 
 
-def _newton_dense(disc, e, tol, maxiter):
-    """The compiled dense Newton iteration (kernels.newton) on the flattened equations."""
+def _newton_dense(disc, e, tol, maxiter, A):
+    """The compiled Newton iteration (kernels.dense) on the flattened equations."""
     ops = disc.ops
     M = e.size
-    K = ops.matrix if not ops.trivial else np.zeros((1, 1))
-    r = disc.c.size
-    e_, L, dL, it, res, dE, status, fold = _dense.dense_newton(
-        K, disc.nu.reshape(-1), disc.U.reshape(r, M), disc.V.reshape(r, M), disc.c,
-        disc.wE.reshape(-1), np.ascontiguousarray(e, dtype=float).reshape(-1), disc.sign,
-        float(tol), maxiter, ops.trivial)
+    K = ops.matrix if not ops.trivial else _NO_MATRIX
+    have_A = A is not None and A.shape == (M, M)
+    e_, L, dL, it, res, dE, status, fold, rounding, A_out, _ = _dense.newton(
+        K, disc.nu.reshape(-1), disc.U_flat, disc.V_flat, disc.c, ops.wE_flat,
+        np.ascontiguousarray(e, dtype=float).reshape(-1), disc.sign, float(tol), maxiter,
+        A if have_A else _NO_MATRIX, have_A, ops.trivial)
     shape = disc.shape
-    return _Newton(status == _dense.CONVERGED, e_.reshape(shape), L.reshape(shape),
-                   dL.reshape(shape), int(it), float(res), float(dE),
-                   _DENSE_MESSAGES[status].format(maxiter=maxiter), disc=disc,
-                   fold=float(fold) if status == _dense.CONVERGED else None)
+    ok = status == _dense.CONVERGED
+    return _Newton(ok, e_.reshape(shape), L.reshape(shape), dL.reshape(shape), int(it), float(res),
+                   float(dE), _DENSE_MESSAGES[status].format(maxiter=maxiter), disc=disc,
+                   fold=float(fold) if ok else None, rounding=float(rounding) if ok else None,
+                   A=A_out if A_out.shape == (M, M) else None)
 
 
-def newton(disc, e, tol, maxiter=60):
+def newton(disc, e, tol, maxiter=60, A=None):
     """Newton's method with backtracking on the discretised equations, from ``e``.
 
     Each step first solves for the Newton correction delta. When the energy change it
     would make, |dE/deps . delta|, is below ``tol |E| / 100`` and delta is small (the
     quadratic regime), the current point is returned without the step and that change
     is its iteration error: an estimate of the distance to the exact discrete solution
-    that needs no extra solve. Dense systems run the same iteration compiled
-    (`kernels.newton.dense_newton`).
+    that needs no extra solve. Dense systems run the compiled iteration
+    (`kernels.dense.newton`, chord steps on ``A`` when it is given).
     """
     if disc.ops.dense:
-        return _newton_dense(disc, e, tol, maxiter)
+        return _newton_dense(disc, e, tol, maxiter, A)
     L, dL, ok = disc.occupation(e)
     if not ok:
         return _Newton(False, e, L, dL, 0, np.inf, np.inf, "initial guess outside the domain of L")
@@ -456,8 +485,10 @@ def _state(disc, nt, fold=None):
     L = nt.L
     S, _ = disc.separable(L)
     E = disc.energy(L)
-    # rounding: every term of E and of eps carries a relative error of a few ulps
-    rounding = 4 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * nt.e)))
+    if nt.rounding is not None:  # the compiled iteration propagates rounding through J^{-T}
+        rounding = nt.rounding
+    else:  # every term of E and of eps carries a relative error of a few ulps
+        rounding = 4 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * nt.e)))
     # tails beyond the cutoff: int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda) / eps'(Lambda)
     edge = np.abs(disc.wE[:, [0, -1]] * L[:, [0, -1]]) / disc.grid.h
     slope = np.maximum(np.abs(nt.e[:, [0, -1]] - nt.e[:, [1, -2]]) / disc.grid.h, 1e-300)
@@ -469,54 +500,147 @@ def _state(disc, nt, fold=None):
                  momentum=float(np.sum(disc.wP * L)), iteration_error=nt.last_dE,
                  rounding_error=float(rounding), tail_error=tail, fold_indicator=float(fold),
                  residual=nt.residual, iterations=nt.iterations, disc=disc, jac=nt.jac, L=L,
-                 dL=nt.dL)
+                 dL=nt.dL, A=nt.A)
 
 
-def _continue_deformation(model, deformation, radius, grid, tol, start=None):
-    """Switch the deformation on in steps lambda: 0 -> 1 at fixed R, staying on the branch of
-    the undeformed theory. Returns (newton outcome or None, message, lambda_fold_estimate)."""
-    disc0 = Discretization(model, NO_DEFORMATION, radius, grid)
-    nt = newton(disc0, disc0.initial_guess(start), tol)
-    iterations = nt.iterations
-    if not nt.ok:
-        return None, f"undeformed equations: {nt.message}", None, iterations
-    lam, step = 0.0, 0.25
-    history = [(0.0, 1.0)]
-    e = nt.e
-    while lam < 1.0:
-        trial = min(1.0, lam + step)
-        disc = Discretization(model, deformation.scaled(trial), radius, grid)
-        out = newton(disc, e, tol, maxiter=20)  # from a close neighbour: a few steps, or a fold
-        iterations += out.iterations
-        d = out.fold_indicator if out.ok else np.nan
-        if out.ok and d > 0:
-            lam, e, nt = trial, out.e, out
-            history.append((lam, d))
-            step = min(2 * step, 1.0)
-            if lam == 1.0:
-                return nt, "converged", None, iterations
-            continue
-        step *= 0.5
-        fold = _fold_estimate(history)
-        # a fold well before the requested coupling settles it; near lambda = 1 keep
-        # refining, the requested point may lie just before the fold
-        if step < 1e-9 or (step < 1e-3 and fold is not None and fold < 1.0 - 50 * step):
+# -- warm starts ---------------------------------------------------------------------------------
+
+def _chain(seed, disc):
+    """The seed and its predecessors on the same grid, at the same deformation and distinct
+    radii (at most three): the history a level extrapolates from."""
+    out = []
+    s = seed
+    while s is not None and len(out) < 3:
+        if s.grid != disc.grid or s.deformation != disc.deformation:
             break
-    fold = _fold_estimate(history)
-    d2 = history[-1][1]
-    return (None, f"continuation stopped at {lam:.12g} of the coupling (fold indicator {d2:.3g})",
-            fold, iterations)
+        if any(s.radius == o.radius for o in out):
+            break
+        out.append(s)
+        s = s.previous
+    return out
 
 
-def _fold_estimate(history):
-    """Where the fold indicator d vanishes, from its last two values: near a fold d^2 is
-    linear in the coupling (square-root branch point)."""
-    if len(history) < 2:
+def _extrapolate(chain, disc):
+    """eps at disc.radius from a level's own solutions at previous radii: Lagrange
+    extrapolation in R of g = eps - nu (quadratic from three radii, linear from two). Far
+    outside the spacing of the history the order is lowered."""
+    R = disc.radius
+    rs = [s.radius for s in chain]
+    if len(chain) == 3 and abs(R - rs[0]) > 4 * abs(rs[0] - rs[2]):
+        chain, rs = chain[:2], rs[:2]
+    if len(chain) >= 2 and abs(R - rs[0]) > 4 * abs(rs[0] - rs[1]):
+        chain, rs = chain[:1], rs[:1]
+    g = 0.0
+    for k, s in enumerate(chain):
+        w = 1.0
+        for j, rj in enumerate(rs):
+            if j != k:
+                w *= (R - rj) / (rs[k] - rj)
+        g = g + w * (s.eps - s.radius * disc.ops.drive)  # same grid: same drive
+    return disc.nu + g
+
+
+def _start(disc, seed, coarse):
+    """(initial eps on disc.grid, an inverse of J0 for chord steps or None).
+
+    Preference: the level's own history at previous radii (same grid: extrapolated in R,
+    with its inverse of J0); else this point's coarser level; else any solved neighbour."""
+    if seed is not None and seed.grid == disc.grid:
+        chain = _chain(seed, disc)
+        if chain:
+            return _extrapolate(chain, disc), seed.A
+        return disc.initial_guess(seed), seed.A
+    if coarse is not None:
+        return disc.initial_guess(coarse), None
+    if seed is not None:
+        return disc.initial_guess(seed), None
+    return disc.nu.copy(), None
+
+
+def _link(state, seed):
+    """Keep the level's history: the state remembers the seed on its grid (two back)."""
+    if seed is not None and seed.grid == state.grid and seed.deformation == state.deformation \
+            and seed.radius != state.radius:
+        state.previous = seed
+        seed.levels = None
+        older = seed.previous
+        if older is not None:
+            older.previous = None
+            older.A = older.jac = None
+
+
+# -- folds ---------------------------------------------------------------------------------------
+
+@dataclass
+class _Verdict:
+    """No real solution on a grid: the curve turned back at ``p_fold`` (radius or coupling
+    scale) before the requested point."""
+
+    parameter: str
+    p_fold: float
+    message: str
+    iterations: int = 0
+
+
+def _reach(model, deformation, radius, grid, tol, seed):
+    """Follow the curve of solutions to (radius, deformation) on ``grid`` when Newton at the
+    point failed or left the physical branch: in R from ``seed`` (a solved point of the same
+    deformation at another radius), else in the coupling scale from the undeformed solution.
+    Returns (_Newton, None) or (None, _Verdict) or (None, message)."""
+    if seed is not None and seed.deformation == deformation and seed.radius != radius:
+        out = _follow_radius(model, deformation, radius, grid, tol, seed)
+        if out is not None and (out[0] is not None or isinstance(out[1], _Verdict)):
+            return out
+    return _follow_scale(model, deformation, radius, grid, tol, seed)
+
+
+def _follow_radius(model, deformation, radius, grid, tol, seed):
+    disc0 = Discretization(model, deformation, seed.radius, grid)
+    e0, A = _start(disc0, seed, None)
+    nt = newton(disc0, e0, 1e-14, A=A)
+    if not (nt.ok and nt.fold_indicator > 0):
         return None
-    (l1, d1), (l2, d2) = history[-2], history[-1]
-    slope = (d2 * d2 - d1 * d1) / (l2 - l1)
-    return l2 - d2 * d2 / slope if slope < 0 else None
+    fam = arclength.Family(model, deformation, None, grid, "radius")
+    pt = arclength.point(fam, nt.e, seed.radius, disc0, nt.jacobian(), nt.L,
+                         direction=radius - seed.radius)
+    return _outcome(fam, pt, radius, tol, "radius")
 
+
+def _follow_scale(model, deformation, radius, grid, tol, seed):
+    disc0 = Discretization(model, NO_DEFORMATION, radius, grid)
+    nt = newton(disc0, disc0.initial_guess(seed), tol, A=seed.A if seed is not None and
+                seed.grid == grid else None)
+    if not nt.ok:
+        return None, f"undeformed equations: {nt.message}"
+    fam = arclength.Family(model, deformation, radius, grid, "scale")
+    pt = arclength.point(fam, nt.e, 0.0, disc0, nt.jacobian(), nt.L, direction=1.0)
+    return _outcome(fam, pt, 1.0, tol, "scale")
+
+
+def _outcome(fam, pt, target, tol, parameter):
+    out = arclength.follow(fam, pt, target)
+    if out.kind == "target" and out.point is not None:
+        p = out.point
+        nt = newton(p.disc, p.eps, tol, A=getattr(p.jac, "A", None))
+        if nt.ok and (nt.fold_indicator > 0 or p.disc.deformation.is_zero):
+            return nt, None
+        return None, "the continued solution left the physical branch"
+    if out.kind == "fold":
+        p_fold = out.point.p
+        toward = math.copysign(1.0, target - pt.p)
+        if (target - p_fold) * toward > 0:  # the curve turned before the target
+            return None, _Verdict(parameter, p_fold, "", out.steps)
+        # the turning point lies just beyond the target: land on the incoming branch
+        land = arclength.land_near_fold(fam, out.point, target, out.curvature)
+        if land is not None:
+            nt = newton(land.disc, land.eps, tol, A=getattr(land.jac, "A", None))
+            if nt.ok and nt.fold_indicator > 0:
+                return nt, None
+        return None, "could not land on the physical branch next to the fold"
+    return None, out.message or "continuation failed"
+
+
+# -- the point solve ------------------------------------------------------------------------------
 
 def _validate(radius, tol):
     if isinstance(radius, bool) or not isinstance(radius, numbers.Real):
@@ -530,6 +654,25 @@ def _validate(radius, tol):
     if not (math.isfinite(tol) and MIN_TOL <= tol < 1e-2):
         raise ValueError(f"tol must lie in [{MIN_TOL:g}, 1e-2), got {tol!r}")
     return radius, tol
+
+
+def grid_pole_distance(model):
+    """The kernel pole distance the grid rule must respect: none for band-limited kernels."""
+    return math.inf if uses_band_limited_kernels(model) else model.pole_distance
+
+
+@functools.lru_cache(maxsize=8192)
+def _cached_grid(pole_distance, min_mass, r_q, tol, level, cutoff_extra, max_spin):
+    return choose_grid(pole_distance, min_mass, r_q, tol, level, cutoff_extra, max_spin=max_spin)
+
+
+def _grid(model, deformation, r_eff, tol, level, cutoff_extra):
+    """The grid of a refinement level. The effective radius is rounded down to 1/64 of an
+    octave (a slightly wider cutoff, never a coarser grid), so that neighbouring radii share
+    grids, operators and inverses of J0."""
+    r_q = 2.0 ** (math.floor(64 * math.log2(r_eff)) / 64)
+    return _cached_grid(grid_pole_distance(model), float(np.min(model.masses)), r_q, tol, level,
+                        cutoff_extra, max(deformation.couplings, default=1))
 
 
 def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None):
@@ -546,7 +689,8 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         Requested relative accuracy of the energy; the returned ``error`` estimates the
         actual error and is meant to bound it.
     start : SolveResult, optional
-        A solved neighbour (other radius or coupling) to start Newton from.
+        A solved neighbour (other radius or coupling) to start Newton from. Along a scan
+        (`solve_radii`) each grid level then extrapolates from its own previous solutions.
 
     Returns
     -------
@@ -556,44 +700,60 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         unless converged.
     """
     radius, tol = _validate(radius, tol)
+    if not isinstance(model, DiagonalModel):
+        raise TypeError(f"model must be a DiagonalModel (e.g. tba.sinh_gordon(0.6)), got "
+                        f"{type(model).__name__} {model!r}")
     deformation = NO_DEFORMATION if deformation is None else deformation
     if not isinstance(deformation, CDD):
         raise TypeError(f"deformation must be a CDD, got {type(deformation).__name__}")
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)
-    prev_state = start._state if isinstance(start, SolveResult) and start.converged else None
-    r_eff = prev_state and _effective_radius(prev_state, radius, deformation)
+    prev = None
+    if isinstance(start, SolveResult) and start.converged and isinstance(start._state, State) \
+            and start._state.disc is not None and start._state.disc.model is model:
+        prev = start._state
+    prev_levels = (prev.levels or [prev]) if prev is not None else []
+    r_eff = _effective_radius(prev, radius, deformation) if prev is not None else None
     r_eff = r_eff if r_eff and r_eff > 0 else radius
-    min_mass = float(np.min(model.masses))
     states = []
     iterations = 0
     level, cutoff_extra = 0, 0.0
-    seed = prev_state
+    verdicts = []
     while True:
-        grid = choose_grid(model.pole_distance, min_mass, r_eff, tol, level, cutoff_extra,
-                           max_spin=max(deformation.couplings, default=1))
+        grid = _grid(model, deformation, r_eff, tol, level, cutoff_extra)
         disc = Discretization(model, deformation, radius, grid)
-        nt = newton(disc, disc.initial_guess(seed), tol)
+        seed = prev_levels[level] if level < len(prev_levels) else (prev_levels[-1] if prev_levels else None)
+        coarse = states[-1] if states else None
+        e0, A = _start(disc, seed, coarse)
+        nt = newton(disc, e0, tol, A=A)
         iterations += nt.iterations
         if deformation.is_zero:
             fold = 1.0
-        elif states and nt.ok:
-            fold = states[-1].fold_indicator  # same branch as the coarser level: checked there
         else:
             fold = nt.fold_indicator if nt.ok else np.nan
         if not (nt.ok and fold > 0) and not deformation.is_zero:
-            nt, message, lam_fold, its = _continue_deformation(model, deformation, radius, grid,
-                                                               tol, seed)
-            iterations += its
+            nt, why = _reach(model, deformation, radius, grid, tol, seed)
             if nt is None:
-                if lam_fold is not None and lam_fold < 1.0:
-                    return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=iterations,
-                                       message=f"no real solution: the branch of the undeformed "
-                                               f"theory folds at about {lam_fold:.6g} times the "
-                                               f"requested couplings ({message})")
+                if isinstance(why, _Verdict):
+                    verdicts.append(why)
+                    if states:  # a coarser grid had a real solution: too close to decide
+                        return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                                           message=_too_close(why, states))
+                    if len(verdicts) >= 2 or level >= MAX_LEVEL or _clear(why, radius, tol):
+                        return _no_real_solution(base, verdicts, iterations, radius)
+                    level += 1
+                    continue
+                if verdicts:
+                    return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                                       message=f"the grid of level {level - 1} has no real "
+                                               f"solution here, the next one {why}: too close "
+                                               f"to the branch point to decide")
                 return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
-                                   message=message)
+                                   message=why)
+            if verdicts:  # a coarser grid folded, this one reaches the point: undecided
+                return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                                   message=_too_close(verdicts[-1], [None]))
             fold = nt.fold_indicator
         if not nt.ok:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
@@ -602,13 +762,13 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         scale = abs(state.energy)
         if state.tail_error > 1e-3 * tol * scale and cutoff_extra < 60:
             cutoff_extra += 4 + math.log(state.tail_error / (1e-3 * tol * scale))
-            seed = state
+            prev_levels = prev_levels[:level] + [state]
             continue
+        _link(state, seed)
         state.coarse = states[-1] if states else None
         if state.coarse is not None:
             state.coarse.coarse = None  # keep two levels: enough for derivative errors
         states.append(state)
-        seed = state
         r_eff = _effective_radius(state, radius, deformation) or r_eff
         if len(states) >= 2:
             fine, coarse = states[-1], states[-2]
@@ -616,11 +776,21 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
                      + fine.rounding_error + fine.tail_error)
             if error <= tol * scale or level >= MAX_LEVEL:
                 break
+            if fine.rounding_error + fine.iteration_error > 0.5 * tol * scale:
+                break  # the floor of rounding: finer grids cannot help
         level += 1
     fine = states[-1]
+    fine.levels = states
     status = Status.CONVERGED if error <= tol * scale else Status.NOT_CONVERGED
-    message = (f"converged in {time.perf_counter() - t0:.3g} s" if status is Status.CONVERGED else
-               f"error estimate {error:.3g} above the tolerance after {MAX_LEVEL} refinements")
+    if status is Status.CONVERGED:
+        message = f"converged in {time.perf_counter() - t0:.3g} s"
+    elif fine.rounding_error + fine.iteration_error > 0.5 * tol * scale:
+        floor = (fine.rounding_error + fine.iteration_error) / scale
+        message = (f"the conditioning limits the relative accuracy to {floor:.1e} here (next to a "
+                   f"branch point rounding is amplified like dE/dR); tol {tol:g} cannot be met: "
+                   f"ask tol >= {min(1e-2, 4 * floor):.0e}")
+    else:
+        message = f"error estimate {error:.3g} above the tolerance after {MAX_LEVEL} refinements"
     ok = status is Status.CONVERGED
     return SolveResult(**base, status=status, energy=fine.energy if ok else np.nan,
                        error=error if ok else np.nan, momentum=fine.momentum, message=message,
@@ -630,9 +800,41 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
                        rapidity_grid=fine.grid.t, pseudo_energies=fine.eps, _state=fine)
 
 
+def _clear(verdict, radius, tol):
+    """A turning point this far before the requested point cannot move past it on a finer
+    grid (the fold's position is as accurate as the energies, ~tol): no need to confirm."""
+    target = radius if verdict.parameter == "radius" else 1.0
+    return abs(target - verdict.p_fold) > max(1e-6, 1e4 * tol) * abs(target)
+
+
+def _fold_words(v):
+    if v.parameter == "radius":
+        return f"the branch turns back at R = {v.p_fold:.12g} on this grid"
+    return f"the branch of the undeformed theory folds at {v.p_fold:.9g} times the requested couplings"
+
+
+def _no_real_solution(base, verdicts, iterations, radius):
+    v = verdicts[-1]
+    spread = abs(verdicts[-1].p_fold - verdicts[-2].p_fold) if len(verdicts) >= 2 else math.nan
+    target = radius if v.parameter == "radius" else 1.0
+    margin = abs(target - v.p_fold)
+    if math.isfinite(spread) and margin <= 2 * spread + 64 * _EPS * abs(target):
+        return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
+                           message=f"within the grids' uncertainty of the branch point "
+                                   f"({_fold_words(v)}, +- {spread:.1e}): too close to decide")
+    return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=iterations,
+                       message=f"no real solution: {_fold_words(v)}"
+                               + (f" (two grids agree to {spread:.1e})" if math.isfinite(spread) else ""))
+
+
+def _too_close(verdict, states):
+    return (f"one grid has a real solution here and a finer one does not ({_fold_words(verdict)}): "
+            f"the point lies closer to the branch point than the grids resolve")
+
+
 def _effective_radius(state, radius, deformation):
     """R + alpha E for a TTbar-deformed ground state (exact for P = 0), else None."""
-    if not deformation.is_ttbar:
+    if state is None or not deformation.is_ttbar:
         return None
     return radius + deformation.alpha * state.energy
 
@@ -658,8 +860,13 @@ def energy_derivatives(result, spins=(1,), second=False):
     ``<key>_error``: the difference from the same derivative on the coarser grid plus a
     rounding allowance, the same rule as for the energy.
     """
+    if not isinstance(result, SolveResult):
+        raise TypeError(f"result must be a SolveResult, got {type(result).__name__}")
     if not result.converged:
         raise ValueError(f"result: derivatives need a converged point, got status {result.status.value}")
+    if not isinstance(result._state, State):
+        raise ValueError("result: derivatives are available for ground states only (this "
+                         "result is an excited level)")
     fine = result._state
     d_fine = fine.derivatives(spins, second)
     d_coarse = fine.coarse.derivatives(spins, second) if fine.coarse is not None else None

@@ -1,0 +1,134 @@
+"""Discretised kernels and the other grid-dependent arrays of the TBA equations.
+
+On a uniform grid t_i = (i - (N - 1)/2) h the convolution (1/2pi) int phi_ab(t - t') L_b(t') dt'
+becomes sum_j w_ab(t_i - t_j) L_b(t_j), a block-Toeplitz product. Two rules give the weights:
+
+* band-limited (models whose kernel transforms phit_ab(k) = int e^{ikt} phi_ab(t) dt are known in
+  closed form: every block model): w(kh) = (h / 2pi) W(kh) with
+
+      W(tau) = (1/2pi) int_{-pi/h}^{pi/h} phit(k) e^{-ik tau} dk,
+
+  the kernel without its Fourier modes above the grid's Nyquist frequency pi/h. The discrete
+  convolution then acts on the samples of L exactly as phi acts on their sinc interpolant: the
+  kernel's poles drop out of the error, which is set by the analyticity strip of L alone (pi/2
+  for the driving term m R cosh t). This is product integration with the sinc basis (Nystrom's
+  method with the kernel integrated exactly against the interpolant). E8, whose nearest kernel
+  pole lies at pi/30, needs h ~ 0.3 (33 points per species at R = 1) for 1e-13 instead of the
+  trapezoid rule's h ~ 0.025 (tests/test_quadrature.py measures both).
+* trapezoid (kernel callables, whose transform is unknown): w(kh) = (h / 2pi) phi(kh); the
+  kernels' pole distance then sets the spacing (``model.pole_distance``).
+
+W is computed by Gauss-Legendre quadrature over [0, pi/h] in panels (the kernels are even, so
+W(tau) = (1/pi) int_0^{pi/h} phit(k) cos(k tau) dk), to a few ulps of max |phi|; the tests
+compare it with the closed form of the cut-off tail for a block.
+"""
+
+import math
+
+import numpy as np
+
+from kernels import SpectralConvolver, block_toeplitz_matrix
+
+#: systems with n_species * N at or below this are solved densely (inverse of J0 reused along
+#: a scan); larger ones use GMRES with FFT products. With band-limited kernels E8 needs
+#: n N ~ 250-600 at tol 1e-12, so every built-in model is dense at ordinary radii.
+DENSE_LIMIT = 1600
+#: Gauss-Legendre nodes per panel of the band integral; a panel spans at most
+#: PANEL_PHASE radians of cos(k tau) at the largest offset
+PANEL_NODES = 24
+PANEL_PHASE = 6 * math.pi
+
+
+def uses_band_limited_kernels(model):
+    """True when the model's kernels are discretised band-limited (their transform is known)."""
+    return bool(getattr(model, "has_kernel_transform", False))
+
+
+def band_limited_samples(transform, h, N):
+    """W(kh) for k = 0 .. N-1 of the even kernel(s) whose transform is ``transform(k)``
+    (returning shape S + k.shape): shape S + (N,)."""
+    omega_max = math.pi / h
+    tau = h * np.arange(N)
+    panels = max(1, math.ceil(omega_max * tau[-1] / PANEL_PHASE)) if N > 1 else 1
+    x, w = np.polynomial.legendre.leggauss(PANEL_NODES)
+    edges = np.linspace(0.0, omega_max, panels + 1)
+    half = 0.5 * (edges[1:] - edges[:-1])
+    nodes = (half[:, None] * x[None, :] + 0.5 * (edges[1:] + edges[:-1])[:, None]).ravel()
+    weights = (half[:, None] * w[None, :]).ravel()
+    values = np.asarray(transform(nodes), dtype=float)
+    return (values * weights) @ np.cos(np.outer(nodes, tau)) / math.pi
+
+
+def kernel_samples(model, grid):
+    """Convolution weights w_ab(kh) for k = -(N-1) .. N-1, shape (n, n, 2N - 1): the layout of
+    `kernels.convolution` (``kern[a, b, N - 1 + k]``)."""
+    N, h = grid.N, grid.h
+    if uses_band_limited_kernels(model):
+        half = band_limited_samples(model.kernel_transform, h, N)  # k = 0 .. N-1
+        full = np.concatenate([half[..., :0:-1], half], axis=-1)
+    else:
+        full = model.kernel(h * np.arange(-(N - 1), N))
+    return np.ascontiguousarray(full * (h / (2 * np.pi)))
+
+
+class Operators:
+    """Kernel weights, the dense matrix or FFT convolution, and the grid-dependent arrays of
+    one model on one grid (cached per model, see `operators`)."""
+
+    def __init__(self, model, grid):
+        n, N = model.n_species, grid.N
+        kern = kernel_samples(model, grid)
+        self.n, self.N = n, N
+        self.model, self.grid = model, grid
+        self.trivial = not np.any(kern)
+        self.dense = n * N <= DENSE_LIMIT
+        if self.trivial:
+            self.matrix = np.zeros((1, 1))
+        elif self.dense:
+            self.matrix = block_toeplitz_matrix(kern, N)
+        else:
+            self.matrix = None
+            self._spectral = SpectralConvolver(kern)
+        t, h, m = grid.t, grid.h, model.masses
+        self.drive = np.outer(m, np.cosh(t))
+        self.wE = -(h / (2 * np.pi)) * self.drive
+        self.wP = -(h / (2 * np.pi)) * np.outer(m, np.sinh(t))
+        self.drive_flat = np.ascontiguousarray(self.drive.reshape(-1))
+        self.wE_flat = np.ascontiguousarray(self.wE.reshape(-1))
+        self.no_terms = np.zeros((0, n, N))
+        self._spin = {}
+
+    def separable(self, deformation, spin):
+        """(U, V, c) of the two rank-one terms of a spin-s CDD factor: kernel
+        coefficient q_a q_b (cosh(st) cosh(st') - sinh(st) sinh(st'))."""
+        alpha = deformation.couplings[spin]
+        q = deformation.charges(self.model, spin)
+        key = (spin, tuple(q))
+        UV = self._spin.get(key)
+        if UV is None:
+            t, h = self.grid.t, self.grid.h
+            ch, sh = np.cosh(spin * t), np.sinh(spin * t)
+            U = np.stack([np.outer(q, ch), np.outer(q, sh)])
+            UV = self._spin[key] = (U, h * U)
+        coef = alpha * spin / (2 * np.pi)
+        return UV[0], UV[1], np.array([coef, -coef])
+
+    def convolve(self, f):
+        """sum_b sum_j w_ab(t_i - t_j) f_b(t_j) for f of shape (n, N)."""
+        if self.trivial:
+            return np.zeros_like(f)
+        if self.dense:
+            return (self.matrix @ f.reshape(-1)).reshape(f.shape)
+        return self._spectral(f)
+
+
+def operators(model, grid):
+    """The cached `Operators` of ``model`` on ``grid``."""
+    cache = model._kernel_cache
+    key = (grid.h, grid.N)
+    ops = cache.get(key)
+    if ops is None:
+        if len(cache) > 64:
+            cache.clear()
+        ops = cache[key] = Operators(model, grid)
+    return ops
