@@ -14,16 +14,20 @@ so that only J0 is ever inverted: it stays well conditioned where J is singular 
 of the deformed equations), and det(cap) = det J / det J0 is the fold indicator.
 
 Chord iteration: ``A`` may be the inverse of J0 at another point (the previous radius of a
-scan, on the same grid). The iteration then converges linearly; it is replaced by the inverse
-at the current iterate (a Newton step) as soon as the residual falls by less than
-``CHORD_RATE`` per step, and Newton with backtracking on max |F| takes over.
+scan, on the same grid). The iteration then converges linearly; J0 is inverted afresh at the
+current iterate (a Newton step) as soon as a chord step reduces max |F| by less than a factor
+``1 / CHORD_RATE``, and Newton with backtracking on max |F| takes over.
 
 Stopping rule: before a step is applied, the energy change it would make, dE = |wE . (L' delta)|,
-is compared with max(tol / 100, 8 eps) |E|; once the step is also small (max |delta| < 1e-6 or
+is compared with max(tol / 10, 8 eps) |E|; once the step is also small (max |delta| < 1e-6 or
 the residual at rounding level) the iteration stops and dE, divided by (1 - rate) for a chord
 step, is the iteration error. Near a fold rounding errors of the equations are amplified by
 J^{-1}: `rounding_error` propagates them to the energy through the adjoint solution
 lambda = J^{-T} (L' wE), so that the stopping rule and the error estimate see the real floor.
+
+Small systems (M <= ``SMALL``, every single-species grid) use loops and a Gauss-Jordan inverse
+written here, which beat the call overhead of BLAS and LAPACK at that size; larger ones call
+them (numpy's dot and inv).
 """
 
 import numba
@@ -34,20 +38,149 @@ from kernels.statistics import occupation_terms
 #: status codes of `newton`
 CONVERGED, MAX_ITERATIONS, LINE_SEARCH_FAILED, OUTSIDE_DOMAIN, SINGULAR = 0, 1, 2, 3, 4
 #: a chord step must reduce max |F| at least by this factor, else J0 is inverted afresh
-CHORD_RATE = 0.25
+CHORD_RATE = 0.1
+#: up to this size, matrix-vector products and inverses are the loops of this module
+SMALL = 128
+#: safety factor of the rounding estimate over the root-mean-square effect of rounding
+ROUNDING_SAFETY = 5.0
 
 _EPS = 2.220446049250313e-16
+
+
+# -- linear algebra building blocks ---------------------------------------------------------
+
+@numba.njit(cache=True, nogil=True)
+def _mv(A, x, out):
+    """out = A x (loops for small systems, BLAS above SMALL)."""
+    M, N = A.shape
+    if M > SMALL:
+        out[:] = np.dot(A, x)
+        return out
+    for i in range(M):
+        s = 0.0
+        for j in range(N):
+            s += A[i, j] * x[j]
+        out[i] = s
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _mtv(A, x, out):
+    """out = A^T x."""
+    M, N = A.shape
+    if M > SMALL:
+        out[:] = np.dot(A.T, x)
+        return out
+    for j in range(N):
+        out[j] = 0.0
+    for i in range(M):
+        xi = x[i]
+        for j in range(N):
+            out[j] += A[i, j] * xi
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _gauss_jordan(B):
+    """In-place inverse of B by Gauss-Jordan elimination with partial pivoting (small B).
+    Returns False if a pivot vanishes."""
+    M = B.shape[0]
+    perm = np.arange(M)
+    for k in range(M):
+        p = k
+        best = abs(B[k, k])
+        for i in range(k + 1, M):
+            if abs(B[i, k]) > best:
+                best = abs(B[i, k])
+                p = i
+        if best == 0.0:
+            return False
+        if p != k:
+            for j in range(M):
+                tmp = B[k, j]
+                B[k, j] = B[p, j]
+                B[p, j] = tmp
+            tmp_i = perm[k]
+            perm[k] = perm[p]
+            perm[p] = tmp_i
+        inv = 1.0 / B[k, k]
+        B[k, k] = 1.0
+        for j in range(M):
+            B[k, j] *= inv
+        for i in range(M):
+            if i != k:
+                f = B[i, k]
+                if f != 0.0:
+                    B[i, k] = 0.0
+                    for j in range(M):
+                        B[i, j] -= f * B[k, j]
+    # undo the row permutation on the columns of the inverse
+    out = np.empty_like(B)
+    for j in range(M):
+        out[:, perm[j]] = B[:, j]
+    B[:, :] = out
+    return True
+
+
+@numba.njit(cache=True, nogil=True)
+def _small_solve(C, b):
+    """C x = b for the r x r capacitance (r = 2 per CDD spin): Gaussian elimination."""
+    r = b.size
+    A = C.copy()
+    x = b.copy()
+    for k in range(r):
+        p = k
+        for i in range(k + 1, r):
+            if abs(A[i, k]) > abs(A[p, k]):
+                p = i
+        if p != k:
+            for j in range(r):
+                t = A[k, j]
+                A[k, j] = A[p, j]
+                A[p, j] = t
+            t = x[k]
+            x[k] = x[p]
+            x[p] = t
+        for i in range(k + 1, r):
+            f = A[i, k] / A[k, k]
+            for j in range(k, r):
+                A[i, j] -= f * A[k, j]
+            x[i] -= f * x[k]
+    for k in range(r - 1, -1, -1):
+        s = x[k]
+        for j in range(k + 1, r):
+            s -= A[k, j] * x[j]
+        x[k] = s / A[k, k]
+    return x
+
+
+# -- the equations and their Jacobian ------------------------------------------------------
+
+@numba.njit(cache=True, nogil=True)
+def _residual_into(K, nu, U, V, c, e, L, trivial, work, F):
+    M = e.size
+    if not trivial:
+        _mv(K, L, work)
+        for i in range(M):
+            F[i] = e[i] - nu[i] + work[i]
+    else:
+        for i in range(M):
+            F[i] = e[i] - nu[i]
+    for k in range(c.size):
+        s = 0.0
+        for i in range(M):
+            s += V[k, i] * L[i]
+        s *= c[k]
+        for i in range(M):
+            F[i] += s * U[k, i]
+    return F
 
 
 @numba.njit(cache=True, nogil=True)
 def residual(K, nu, U, V, c, e, L, trivial):
     """F(e) given L = L(e)."""
-    F = e - nu
-    if not trivial:
-        F += K @ L
-    for k in range(c.size):
-        F += (c[k] * np.dot(V[k], L)) * U[k]
-    return F
+    M = e.size
+    return _residual_into(K, nu, U, V, c, e, L, trivial, np.empty(M), np.empty(M))
 
 
 @numba.njit(cache=True, nogil=True)
@@ -65,7 +198,12 @@ def jacobian0(K, dL, trivial):
 @numba.njit(cache=True, nogil=True)
 def inverse_j0(K, dL, trivial):
     """J0^{-1} = (1 + K diag(L'))^{-1}, C-contiguous."""
-    return np.ascontiguousarray(np.linalg.inv(jacobian0(K, dL, trivial)))
+    J0 = jacobian0(K, dL, trivial)
+    if J0.shape[0] <= SMALL:
+        if _gauss_jordan(J0):
+            return J0
+        return np.full(J0.shape, np.nan)
+    return np.ascontiguousarray(np.linalg.inv(J0))
 
 
 @numba.njit(cache=True, nogil=True)
@@ -73,19 +211,49 @@ def apply_j0(K, dL, x, trivial):
     """J0 x."""
     if trivial:
         return x.copy()
-    return x + K @ (dL * x)
+    out = np.empty(x.size)
+    _mv(K, dL * x, out)
+    return x + out
+
+
+@numba.njit(cache=True, nogil=True)
+def _z_of(A, U):
+    """Z = A U^T (M x r)."""
+    M = A.shape[0]
+    r = U.shape[0]
+    Z = np.empty((M, r))
+    col = np.empty(M)
+    for k in range(r):
+        _mv(A, U[k], col)
+        Z[:, k] = col
+    return Z
+
+
+@numba.njit(cache=True, nogil=True)
+def _cap_of(c, V, dL, Z, CVd):
+    """CVd = diag(c) V diag(L') (filled in place) and cap = 1 + CVd Z."""
+    r = c.size
+    M = dL.size
+    for k in range(r):
+        for i in range(M):
+            CVd[k, i] = c[k] * V[k, i] * dL[i]
+    cap = np.eye(r)
+    for a in range(r):
+        for b in range(r):
+            s = 0.0
+            for i in range(M):
+                s += CVd[a, i] * Z[i, b]
+            cap[a, b] += s
+    return cap
 
 
 @numba.njit(cache=True, nogil=True)
 def capacitance(U, V, c, dL, A):
     """(CVd, Z = A U^T, cap = 1 + CVd Z) for the Woodbury formula."""
     r = c.size
-    M = dL.size
-    CVd = np.empty((r, M))
-    for k in range(r):
-        CVd[k] = c[k] * V[k] * dL
-    Z = np.ascontiguousarray(A @ U.T) if r else np.zeros((M, 0))
-    cap = np.eye(r) + CVd @ Z
+    CVd = np.empty((r, dL.size))
+    Z = _z_of(A, U)
+    cap = _cap_of(c, V, dL, Z, CVd)
     return CVd, Z, cap
 
 
@@ -95,26 +263,38 @@ def refine_capacitance(K, U, dL, A, CVd, Z, trivial, sweeps):
     inverse from a neighbouring point): Z += A (U^T - J0 Z), at most ``sweeps`` times, until
     the correction is at rounding level. Returns (Z, cap, sweeps used)."""
     r = Z.shape[1]
+    M = dL.size
     used = 0
+    dz = np.empty(M)
     for k in range(r):
         z = np.ascontiguousarray(Z[:, k])
         for it in range(sweeps):
-            dz = A @ (U[k] - apply_j0(K, dL, z, trivial))
+            _mv(A, U[k] - apply_j0(K, dL, z, trivial), dz)
             z = z + dz
             used = max(used, it + 1)
             if np.max(np.abs(dz)) <= 4 * _EPS * np.max(np.abs(z)):
                 break
         Z[:, k] = z
-    cap = np.eye(r) + CVd @ Z
+    cap = np.eye(r)
+    for a in range(r):
+        for b in range(r):
+            s = 0.0
+            for i in range(M):
+                s += CVd[a, i] * Z[i, b]
+            cap[a, b] += s
     return Z, cap, used
 
 
 @numba.njit(cache=True, nogil=True)
 def woodbury(A, CVd, Z, cap, b):
     """J^{-1} b with J^{-1} = A - Z cap^{-1} CVd A."""
-    y = A @ b
-    if CVd.shape[0]:
-        y = y - Z @ np.linalg.solve(cap, CVd @ y)
+    y = np.empty(b.size)
+    _mv(A, b, y)
+    r = CVd.shape[0]
+    if r:
+        w = _small_solve(cap, CVd @ y)
+        for k in range(r):
+            y -= w[k] * Z[:, k]
     return y
 
 
@@ -122,13 +302,14 @@ def woodbury(A, CVd, Z, cap, b):
 def woodbury_transposed(A, CVd, Z, cap, b):
     """J^{-T} b with J^{-T} = A^T - A^T CVd^T cap^{-T} Z^T."""
     x = b.copy()
-    if CVd.shape[0]:
-        x = x - CVd.T @ np.linalg.solve(cap.T, Z.T @ b)
-    return A.T @ x
-
-
-#: safety factor of the rounding estimate over the root-mean-square effect of rounding
-ROUNDING_SAFETY = 5.0
+    r = CVd.shape[0]
+    if r:
+        w = _small_solve(np.ascontiguousarray(cap.T), Z.T @ b)
+        for k in range(r):
+            x -= w[k] * CVd[k]
+    out = np.empty(b.size)
+    _mtv(A, x, out)
+    return out
 
 
 @numba.njit(cache=True, nogil=True)
@@ -144,7 +325,6 @@ def rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial):
     by dE/dR that the error estimate must carry."""
     M = e.size
     lam = woodbury_transposed(A, CVd, Z, cap, dL * wE)
-    absL = np.abs(L)
     total = 0.0
     for i in range(M):
         sep = 0.0
@@ -153,10 +333,67 @@ def rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial):
         kl = 0.0
         if not trivial:
             for j in range(M):
-                kl += abs(K[i, j]) * absL[j]
+                kl += abs(K[i, j] * L[j])
         dF = _EPS * (abs(e[i]) + abs(nu[i]) + kl + sep)
         total += (lam[i] * dF) ** 2
-    return ROUNDING_SAFETY * np.sqrt(total) + 4 * _EPS * np.sum(np.abs(wE * L))
+    energy = 0.0
+    for i in range(M):
+        energy += abs(wE[i] * L[i])
+    return ROUNDING_SAFETY * np.sqrt(total) + 4 * _EPS * energy
+
+
+# -- Newton ------------------------------------------------------------------------------------
+
+@numba.njit(cache=True, nogil=True)
+def _small_det(C):
+    """det C for the r x r capacitance (Gaussian elimination with partial pivoting)."""
+    r = C.shape[0]
+    A = C.copy()
+    det = 1.0
+    for k in range(r):
+        p = k
+        for i in range(k + 1, r):
+            if abs(A[i, k]) > abs(A[p, k]):
+                p = i
+        if A[p, k] == 0.0:
+            return 0.0
+        if p != k:
+            for j in range(r):
+                t = A[k, j]
+                A[k, j] = A[p, j]
+                A[p, j] = t
+            det = -det
+        det *= A[k, k]
+        for i in range(k + 1, r):
+            f = A[i, k] / A[k, k]
+            for j in range(k, r):
+                A[i, j] -= f * A[k, j]
+    return det
+
+
+#: with a chord inverse, the capacitance is refined to the exact one of this iterate when
+#: its determinant (the fold indicator) is below this: next to a fold, where its sign decides
+#: the branch and its size the distance
+REFINE_FOLD = 0.2
+
+
+@numba.njit(cache=True, nogil=True)
+def _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial):
+    """(fold indicator, rounding estimate) at the final iterate. With a chord inverse (not
+    ``fresh``) the capacitance is off by the chord's rate (a few per cent): enough away from
+    folds; below REFINE_FOLD it is refined to the exact one."""
+    r = c.size
+    CVd = np.empty((r, e.size))
+    cap = _cap_of(c, V, dL, Z, CVd)
+    fold = _small_det(cap) if r else 1.0
+    if not fresh and r and abs(fold) < REFINE_FOLD:
+        Z, cap, _ = refine_capacitance(K, U, dL, A, CVd, Z.copy(), trivial, 30)
+        fold = _small_det(cap)
+    S = np.zeros(r)
+    for k in range(r):
+        for i in range(e.size):
+            S[k] += V[k, i] * L[i]
+    return fold, rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial)
 
 
 @numba.njit(cache=True, nogil=True)
@@ -176,7 +413,16 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     nan = np.nan
     if occupation_terms(e, sign, L, dL) != 0:
         return e, L, dL, 0, np.inf, np.inf, OUTSIDE_DOMAIN, nan, nan, A, inversions
-    F = residual(K, nu, U, V, c, e, L, trivial)
+    work = np.empty(M)
+    F = np.empty(M)
+    F_new = np.empty(M)
+    y = np.empty(M)
+    delta = np.empty(M)
+    e_new = np.empty(M)
+    L_new = np.empty(M)
+    dL_new = np.empty(M)
+    CVd = np.empty((r_, M))
+    _residual_into(K, nu, U, V, c, e, L, trivial, work, F)
     r = np.max(np.abs(F))
     floor = 64 * _EPS * max(1.0, np.max(np.abs(nu)))
     fresh = False  # A is the inverse of J0 at the current iterate
@@ -184,54 +430,66 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
         A = inverse_j0(K, dL, trivial)
         inversions += 1
         fresh = True
+    Z = _z_of(A, U)
     rate = 0.0
-    L_new = np.empty(M)
-    dL_new = np.empty(M)
     dE = np.inf
     rounding = nan
     for it in range(maxiter + 1):
-        CVd, Z, cap = capacitance(U, V, c, dL, A)
-        y = A @ F
+        cap = _cap_of(c, V, dL, Z, CVd)
+        _mv(A, F, y)
         if r_:
-            w = np.linalg.solve(cap, CVd @ y)
-            delta = -(y - Z @ w)
+            w = _small_solve(cap, CVd @ y)
+            for i in range(M):
+                s = y[i]
+                for k in range(r_):
+                    s -= Z[i, k] * w[k]
+                delta[i] = -s
         else:
-            delta = -y
-        if not np.all(np.isfinite(delta)):
+            for i in range(M):
+                delta[i] = -y[i]
+        E = 0.0
+        dEs = 0.0
+        dmax = 0.0
+        finite = True
+        for i in range(M):
+            E += wE[i] * L[i]
+            dEs += wE[i] * dL[i] * delta[i]
+            a = abs(delta[i])
+            if not (a < np.inf):
+                finite = False
+            if a > dmax:
+                dmax = a
+        if not finite:
             return e, L, dL, it, r, dE, SINGULAR, nan, nan, A, inversions
-        E = np.dot(wE, L)
         dE_last = dE
-        dE = abs(np.sum(wE * dL * delta)) / (1.0 - rate)
-        small = np.max(np.abs(delta)) < 1e-6 or r <= floor
-        done = small and dE <= max(1e-2 * tol, 8 * _EPS) * abs(E)
+        dE = abs(dEs) / (1.0 - rate)
+        small = dmax < 1e-6 or r <= floor
+        done = small and dE <= max(1e-1 * tol, 8 * _EPS) * abs(E)
         if not done and r <= 1e3 * floor:  # residual at rounding level: is dE the floor?
             if not (rounding == rounding):
-                if not fresh:
-                    Z, cap, _ = refine_capacitance(K, U, dL, A, CVd, Z, trivial, 20)
-                S = V @ L if r_ else np.zeros(0)
-                rounding = rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial)
-            # at the floor the steps are amplified rounding noise: stop once they stop shrinking;
-            # the iterate's error is then the rounding the estimate covers, and only the part
-            # of the step beyond it counts as iteration error
+                rounding = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
+                                              trivial)[1]
+            # at the floor the steps are amplified rounding noise: stop once they stop
+            # shrinking; the iterate's error is then the rounding the estimate covers, and
+            # only the part of the step beyond it counts as iteration error
             done = dE <= 2.0 * rounding and dE > 0.5 * dE_last
             if done:
                 dE = max(dE - rounding, 0.0)
         if done:
-            if not fresh:
-                Z, cap, _ = refine_capacitance(K, U, dL, A, CVd, Z, trivial, 20)
-            fold = np.linalg.det(cap) if r_ else 1.0
+            fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial)
             if not (rounding == rounding):
-                S = V @ L if r_ else np.zeros(0)
-                rounding = rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial)
+                rounding = rnd
             return e, L, dL, it, r, dE, CONVERGED, fold, rounding, A, inversions
         if it == maxiter:
             break
         lam = 1.0
         accepted = False
+        r_new = r
         while True:
-            e_new = e + lam * delta
+            for i in range(M):
+                e_new[i] = e[i] + lam * delta[i]
             if occupation_terms(e_new, sign, L_new, dL_new) == 0:
-                F_new = residual(K, nu, U, V, c, e_new, L_new, trivial)
+                _residual_into(K, nu, U, V, c, e_new, L_new, trivial, work, F_new)
                 r_new = np.max(np.abs(F_new))
                 if r_new <= (1 - 0.25 * lam) * r or r_new <= floor:
                     accepted = True
@@ -244,33 +502,85 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
         if not accepted:
             if not fresh:
                 A = inverse_j0(K, dL, trivial)
+                Z = _z_of(A, U)
                 inversions += 1
                 fresh, rate = True, 0.0
                 continue
             if r <= 1e3 * floor:  # stagnation at rounding level is convergence
-                CVd, Z, cap = capacitance(U, V, c, dL, A)
-                fold = np.linalg.det(cap) if r_ else 1.0
-                S = V @ L if r_ else np.zeros(0)
-                rounding = rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial)
-                return e, L, dL, it, r, max(dE, rounding), CONVERGED, fold, rounding, A, inversions
+                fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
+                                               trivial)
+                return e, L, dL, it, r, max(dE, rnd), CONVERGED, fold, rnd, A, inversions
             return e, L, dL, it, r, dE, LINE_SEARCH_FAILED, nan, nan, A, inversions
         step_rate = r_new / r if r > 0 else 0.0
-        e = e_new
-        L[:] = L_new
-        dL[:] = dL_new
-        F = F_new
+        e, e_new = e_new, e
+        L, L_new = L_new, L
+        dL, dL_new = dL_new, dL
+        F, F_new = F_new, F
         r = r_new
-        if fresh:
-            fresh = False  # A now belongs to the previous iterate: chord from here on
+        was_fresh = fresh
+        fresh = False  # A now belongs to the previous iterate: chord from here on
+        if was_fresh:
             rate = 0.0
         elif lam == 1.0:
             rate = max(rate, min(step_rate, 0.9))
-        if not fresh and lam == 1.0 and step_rate > CHORD_RATE and r > floor:
+        if not was_fresh and lam == 1.0 and step_rate > CHORD_RATE and r > floor:
             A = inverse_j0(K, dL, trivial)
+            Z = _z_of(A, U)
             inversions += 1
             fresh, rate = True, 0.0
     return e, L, dL, maxiter, r, dE, MAX_ITERATIONS, nan, nan, A, inversions
 
+
+@numba.njit(cache=True, nogil=True)
+def summary(K, L, e, wE, wP, V, n, N, trivial):
+    """What a solved grid level keeps: (dressing -K L, scalars V L, E, P, tail estimate).
+
+    The tail estimate is sum over species and both ends of |wE L| / |eps'| at the cutoff:
+    int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda) / eps'(Lambda)."""
+    M = e.size
+    dressing = np.zeros(M)
+    if not trivial:
+        _mv(K, L, dressing)
+        dressing = -dressing
+    r = V.shape[0]
+    S = np.zeros(r)
+    for k in range(r):
+        for i in range(M):
+            S[k] += V[k, i] * L[i]
+    E = 0.0
+    P = 0.0
+    for i in range(M):
+        E += wE[i] * L[i]
+        P += wP[i] * L[i]
+    tail = 0.0
+    for a in range(n):
+        for i, j in ((a * N, a * N + 1), (a * N + N - 1, a * N + N - 2)):
+            slope = max(abs(e[i] - e[j]), 1e-300)
+            tail += abs(wE[i] * L[i]) / slope
+    return dressing, S, E, P, tail
+
+
+@numba.njit(cache=True, nogil=True)
+def extrapolate(radii, g, R):
+    """Lagrange extrapolation to R of the rows of ``g`` given at ``radii`` (the history of a
+    grid level along a scan, newest first): quadratic from three radii, linear from two. Far
+    outside the spacing of the history the order is lowered."""
+    k = radii.size
+    if k == 3 and abs(R - radii[0]) > 4 * abs(radii[0] - radii[2]):
+        k = 2
+    if k >= 2 and abs(R - radii[0]) > 4 * abs(radii[0] - radii[1]):
+        k = 1
+    out = np.zeros(g.shape[1])
+    for a in range(k):
+        w = 1.0
+        for b in range(k):
+            if b != a:
+                w *= (R - radii[b]) / (radii[a] - radii[b])
+        out += w * g[a]
+    return out
+
+
+# -- solves with an approximate inverse ---------------------------------------------------------
 
 @numba.njit(cache=True, nogil=True)
 def solve_linear(K, U, V, c, dL, A, b, trivial, maxiter):
@@ -297,10 +607,12 @@ def solve_linear(K, U, V, c, dL, A, b, trivial, maxiter):
 def solve_j0(K, dL, A, b, trivial, maxiter):
     """J0 x = b by iterative refinement with an approximate inverse A.
     Returns (x, converged, sweeps)."""
-    x = A @ b
+    x = np.empty(b.size)
+    _mv(A, b, x)
+    dx = np.empty(b.size)
     change = np.inf
     for it in range(maxiter):
-        dx = A @ (b - apply_j0(K, dL, x, trivial))
+        _mv(A, b - apply_j0(K, dL, x, trivial), dx)
         x = x + dx
         new = np.max(np.abs(dx))
         if new <= 4 * _EPS * np.max(np.abs(x)) or new >= change:

@@ -304,10 +304,13 @@ def test_dense_newton_equals_slow_newton(alpha):
     assert status == CONVERGED
     want = slow_newton(K, nu, U, V, c, nu.copy())
     assert np.max(np.abs(e - want)) < 1e-12
-    # the fold indicator is det J / det J0 (Woodbury capacitance)
+    # the fold indicator is det J / det J0 (Woodbury capacitance); with a chord inverse from an
+    # earlier iterate it is accurate to the chord's rate away from folds (kernels/dense.py,
+    # REFINE_FOLD), exact next to them
     J = np.eye(N) + K * dL[None, :]
     full = J + (U.T * c) @ (V * dL[None, :])
-    assert fold == pytest.approx(np.linalg.det(full) / np.linalg.det(J), rel=1e-10)
+    exact = np.linalg.det(full) / np.linalg.det(J)
+    assert fold == pytest.approx(exact, rel=1e-10 if abs(exact) < 0.2 else 1e-2)
     # A is the inverse of J0 at the iterate where it was last inverted (at least once)
     assert inversions >= 1 and A.shape == (N, N)
     assert 0 < rounding < 1e-13

@@ -69,20 +69,9 @@ class Discretization:
     def __init__(self, model, deformation, radius, grid):
         self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
         ops = self.ops = operators(model, grid)
-        n, N = model.n_species, grid.N
-        self.shape = (n, N)
+        self.shape = (model.n_species, grid.N)
         self.nu = radius * ops.drive
-        terms = [ops.separable(deformation, s) for s in deformation.couplings]
-        if terms:
-            self.U = np.concatenate([u for u, v, c in terms])
-            self.V = np.concatenate([v for u, v, c in terms])
-            self.c = np.concatenate([c for u, v, c in terms])
-        else:
-            self.U = self.V = ops.no_terms
-            self.c = np.zeros(0)
-        r = self.c.size
-        self.U_flat = self.U.reshape(r, n * N)
-        self.V_flat = self.V.reshape(r, n * N)
+        self.U, self.V, self.c, self.U_flat, self.V_flat = ops.terms(deformation)
         self.wE, self.wP = ops.wE, ops.wP
         self.sign = 1 if model.statistics == "fermion" else -1
 
@@ -347,8 +336,9 @@ class State:
     coarse: object = field(default=None, repr=False)
     #: an inverse of J0 near this point (dense systems): chord steps of the next radius
     A: object = field(default=None, repr=False)
-    #: the same grid level at the previous radius of a scan (for extrapolation in R)
-    previous: object = field(default=None, repr=False)
+    #: (radii, g = eps - R drive) of this grid level at this and up to two previous radii
+    #: of a scan, newest first (for extrapolation in R)
+    history: tuple = field(default=None, repr=False)
     #: every grid level of this point, coarsest first (each level's own warm starts)
     levels: list = field(default=None, repr=False)
 
@@ -482,73 +472,44 @@ def newton(disc, e, tol, maxiter=60, A=None):
 
 
 def _state(disc, nt, fold=None):
-    L = nt.L
-    S, _ = disc.separable(L)
-    E = disc.energy(L)
+    ops = disc.ops
+    L, e = nt.L, nt.e
+    n, N = disc.shape
+    K = ops.matrix if ops.dense else _NO_MATRIX
+    dressing, S, E, P, tail = _dense.summary(K, L.reshape(-1), e.reshape(-1), ops.wE_flat,
+                                             ops.wP_flat, disc.V_flat, n, N,
+                                             ops.trivial or not ops.dense)
+    dressing = dressing.reshape(disc.shape) if ops.dense else disc.dressing(L)
     if nt.rounding is not None:  # the compiled iteration propagates rounding through J^{-T}
         rounding = nt.rounding
     else:  # every term of E and of eps carries a relative error of a few ulps
-        rounding = 4 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * nt.e)))
-    # tails beyond the cutoff: int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda) / eps'(Lambda)
-    edge = np.abs(disc.wE[:, [0, -1]] * L[:, [0, -1]]) / disc.grid.h
-    slope = np.maximum(np.abs(nt.e[:, [0, -1]] - nt.e[:, [1, -2]]) / disc.grid.h, 1e-300)
-    tail = float(np.sum(edge / slope))
+        rounding = 4 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * e)))
     if fold is None:
         fold = nt.fold_indicator
-    return State(grid=disc.grid, radius=disc.radius, deformation=disc.deformation, eps=nt.e,
-                 dressing=disc.dressing(L), scalars=S, energy=E,
-                 momentum=float(np.sum(disc.wP * L)), iteration_error=nt.last_dE,
-                 rounding_error=float(rounding), tail_error=tail, fold_indicator=float(fold),
-                 residual=nt.residual, iterations=nt.iterations, disc=disc, jac=nt.jac, L=L,
-                 dL=nt.dL, A=nt.A)
+    return State(grid=disc.grid, radius=disc.radius, deformation=disc.deformation, eps=e,
+                 dressing=dressing, scalars=S, energy=E, momentum=P,
+                 iteration_error=nt.last_dE, rounding_error=float(rounding), tail_error=tail,
+                 fold_indicator=float(fold), residual=nt.residual, iterations=nt.iterations,
+                 disc=disc, jac=nt.jac, L=L, dL=nt.dL, A=nt.A)
 
 
 # -- warm starts ---------------------------------------------------------------------------------
 
-def _chain(seed, disc):
-    """The seed and its predecessors on the same grid, at the same deformation and distinct
-    radii (at most three): the history a level extrapolates from."""
-    out = []
-    s = seed
-    while s is not None and len(out) < 3:
-        if s.grid != disc.grid or s.deformation != disc.deformation:
-            break
-        if any(s.radius == o.radius for o in out):
-            break
-        out.append(s)
-        s = s.previous
-    return out
-
-
-def _extrapolate(chain, disc):
-    """eps at disc.radius from a level's own solutions at previous radii: Lagrange
-    extrapolation in R of g = eps - nu (quadratic from three radii, linear from two). Far
-    outside the spacing of the history the order is lowered."""
-    R = disc.radius
-    rs = [s.radius for s in chain]
-    if len(chain) == 3 and abs(R - rs[0]) > 4 * abs(rs[0] - rs[2]):
-        chain, rs = chain[:2], rs[:2]
-    if len(chain) >= 2 and abs(R - rs[0]) > 4 * abs(rs[0] - rs[1]):
-        chain, rs = chain[:1], rs[:1]
-    g = 0.0
-    for k, s in enumerate(chain):
-        w = 1.0
-        for j, rj in enumerate(rs):
-            if j != k:
-                w *= (R - rj) / (rs[k] - rj)
-        g = g + w * (s.eps - s.radius * disc.ops.drive)  # same grid: same drive
-    return disc.nu + g
+def _compatible(seed, disc):
+    return seed.grid == disc.grid and seed.deformation == disc.deformation
 
 
 def _start(disc, seed, coarse):
     """(initial eps on disc.grid, an inverse of J0 for chord steps or None).
 
-    Preference: the level's own history at previous radii (same grid: extrapolated in R,
-    with its inverse of J0); else this point's coarser level; else any solved neighbour."""
+    Preference: the level's own history at previous radii (same grid and deformation:
+    extrapolated in R, with its inverse of J0); else this point's coarser level; else any
+    solved neighbour."""
     if seed is not None and seed.grid == disc.grid:
-        chain = _chain(seed, disc)
-        if chain:
-            return _extrapolate(chain, disc), seed.A
+        if seed.history is not None and seed.deformation == disc.deformation:
+            radii, g = seed.history
+            e0 = disc.nu + _dense.extrapolate(radii, g, disc.radius).reshape(disc.shape)
+            return e0, seed.A
         return disc.initial_guess(seed), seed.A
     if coarse is not None:
         return disc.initial_guess(coarse), None
@@ -558,15 +519,16 @@ def _start(disc, seed, coarse):
 
 
 def _link(state, seed):
-    """Keep the level's history: the state remembers the seed on its grid (two back)."""
-    if seed is not None and seed.grid == state.grid and seed.deformation == state.deformation \
-            and seed.radius != state.radius:
-        state.previous = seed
-        seed.levels = None
-        older = seed.previous
-        if older is not None:
-            older.previous = None
-            older.A = older.jac = None
+    """The level's history along a scan: this state's g = eps - R drive in front of the
+    seed's (same grid and deformation, other radii; at most three)."""
+    g = (state.eps - state.disc.nu).reshape(1, -1)
+    radii = np.array([state.radius])
+    if seed is not None and seed.history is not None and _compatible(seed, state.disc):
+        old_r, old_g = seed.history
+        keep = old_r != state.radius
+        radii = np.concatenate([radii, old_r[keep][:2]])
+        g = np.concatenate([g, old_g[keep][:2]])
+    state.history = (radii, g)
 
 
 # -- folds ---------------------------------------------------------------------------------------

@@ -95,8 +95,11 @@ class Operators:
         self.wP = -(h / (2 * np.pi)) * np.outer(m, np.sinh(t))
         self.drive_flat = np.ascontiguousarray(self.drive.reshape(-1))
         self.wE_flat = np.ascontiguousarray(self.wE.reshape(-1))
+        self.wP_flat = np.ascontiguousarray(self.wP.reshape(-1))
         self.no_terms = np.zeros((0, n, N))
         self._spin = {}
+        self._terms = {}
+        self.t = t
 
     def separable(self, deformation, spin):
         """(U, V, c) of the two rank-one terms of a spin-s CDD factor: kernel
@@ -112,6 +115,29 @@ class Operators:
             UV = self._spin[key] = (U, h * U)
         coef = alpha * spin / (2 * np.pi)
         return UV[0], UV[1], np.array([coef, -coef])
+
+    def terms(self, deformation):
+        """(U, V, c, U_flat, V_flat) of every separable CDD term of ``deformation`` (cached:
+        they do not depend on the radius)."""
+        key = tuple(deformation.couplings.items())
+        out = self._terms.get(key)
+        if out is None:
+            n, N = self.n, self.N
+            parts = [self.separable(deformation, s) for s in deformation.couplings]
+            if parts:
+                U = np.concatenate([u for u, v, c in parts])
+                V = np.concatenate([v for u, v, c in parts])
+                c = np.concatenate([c for u, v, c in parts])
+            else:
+                U = V = self.no_terms
+                c = np.zeros(0)
+            r = c.size
+            out = (U, V, c, np.ascontiguousarray(U.reshape(r, n * N)),
+                   np.ascontiguousarray(V.reshape(r, n * N)))
+            if len(self._terms) > 64:
+                self._terms.clear()
+            self._terms[key] = out
+        return out
 
     def convolve(self, f):
         """sum_b sum_j w_ab(t_i - t_j) f_b(t_j) for f of shape (n, N)."""
