@@ -19,7 +19,7 @@ from tba.store.hdf5 import BP_FOUND, create_store, read_store
 
 # Lee-Yang and the free fermion, ground state and one-particle level "0". alpha = 0.5 at
 # R = 0.3 lies past the ground state's branch point of both (CFT estimate sqrt(2 pi c alpha / 3)
-# ~ 0.65-0.72, PHYSICS.md section 4); alpha = 0 has no flow check, alpha = -0.2 has one and
+# ~ 0.65-0.72, docs/physics.md section 4); alpha = 0 has no flow check, alpha = -0.2 has one and
 # stops the one-particle levels (positive energy) between two radii.
 RUN = """\
 # plotting test
@@ -239,7 +239,7 @@ def test_tick_labels_never_overlap(data):
     fig = plot_store(data, size=(13.6, 7.8))  # the smallest size allowed: where collisions appear first
     fig.canvas.draw()
     renderer = fig.canvas.get_renderer()
-    for ax in fig.axes:
+    for ax in fig.axes + [child for ax in fig.axes for child in ax.child_axes]:
         for axis in (ax.xaxis, ax.yaxis):
             boxes = [t.get_window_extent(renderer) for t in axis.get_ticklabels()
                      if t.get_visible() and t.get_text()]

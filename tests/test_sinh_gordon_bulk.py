@@ -14,7 +14,7 @@ data for P with a trial f, fits that form by linear least squares, and takes the
 the form holds: it holds to rounding there (and only there), with the leading coefficient
 pi / (4 Q), which checks the form itself.
 
-The value and its sign agree with the general rule that gives the Lee-Yang and E8 values,
+docs/physics.md section 6 explains the form. The value and its sign agree with the general rule that gives the Lee-Yang and E8 values,
 f = -m_1^2 / (8 sum_x n_11(x) sin(pi x)) for S_11 = prod_x f_x^n(x) (sinh-Gordon is
 f_(B/2)^(-1); also Destri and de Vega, Nucl. Phys. B358 (1991) 251, from memory), and at
 B = -2/3, where the sinh-Gordon S-matrix becomes the Lee-Yang one f_(2/3), the formula gives

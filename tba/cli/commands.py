@@ -365,7 +365,8 @@ def build_parser():
                       help="models to show, by label (\"sinh-gordon B=0.6\") or name (default all)")
     plot.add_argument("--states", nargs="+", metavar="S",
                       help="levels to show: ground, or quantum numbers in any order, e.g. "
-                      "1/2,-1/2 (default all)")
+                      "1/2,-1/2 (default all; a level written with a leading minus goes after "
+                      "=, --states=-1/2,1/2)")
     plot.add_argument("--alphas", nargs="+", metavar="A",
                       help="alphas to show, among the scan's (default all)")
     from tba.output.labels import PANELS

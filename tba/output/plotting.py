@@ -38,6 +38,7 @@ the gap.
 """
 
 import math
+import re
 import textwrap
 
 import numpy as np
@@ -252,10 +253,12 @@ def plot_store(data, *, models=None, states=None, alphas=None, panels=None, size
 
 
 def _column_title(data, m, s, inches):
-    """The model on one line, the level on the next (each wrapped to the column's width)."""
+    """The model on one line, the level on the next (each wrapped to the column's width,
+    never inside "I = (...)" or "P = ...")."""
     model, _, level = column_title(data.model_name[m], data.model_coupling[m],
                                    data.state[s]).partition(": ")
-    return f"{_wrap(model + ':', inches)}\n{_wrap(level, inches)}"
+    keep = re.sub(r"[IP] = (\([^)]*\)|\S+)", lambda g: g[0].replace(" ", "\xa0"), level)
+    return f"{_wrap(model + ':', inches)}\n{_wrap(keep, inches).replace(chr(0xa0), ' ')}"
 
 
 def _wrap(text, inches):
