@@ -115,7 +115,6 @@ def scan_run(run, *, workers=1, backend=None):
         create_store(path, run)
         data = read_store(path)
         attrs = _variable_attributes(path)
-    data.attrs["run_file"] = ""
     chunks = run.chunks()
     pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
              if run.branch_points else [])
@@ -167,9 +166,15 @@ def _model_entry(model):
 
 
 def _numbers(values):
-    """Plain floats from a number or an array-like (run descriptions take Python numbers)."""
-    array = np.atleast_1d(np.asarray(values))
-    return [v.item() if isinstance(v, np.generic) else v for v in array.tolist()]
+    """A list of Python numbers from a number, a sequence or an array (numpy scalars become
+    floats; anything else is left for the run's checks to name)."""
+    if isinstance(values, np.ndarray):
+        items = values.ravel().tolist()
+    elif isinstance(values, (list, tuple, range)):
+        items = list(values)
+    else:
+        items = [values]
+    return [v.item() if isinstance(v, np.generic) else v for v in items]
 
 
 def _variable_attributes(path):

@@ -21,10 +21,11 @@ from tba.solvers.levels import GROUND, parse_level
 PANELS = ("energy", "residual", "ceff", "gap", "collapse", "branch")
 FORMATS = ("png", "pdf", "svg")
 
-#: radii and energies in tables and messages: enough digits to tell apart radii that differ
-#: near a branch point (JSON and files keep every digit)
+#: digits in tables and messages: the scan's radii (and T_H) to 10, computed values (energies,
+#: R_c) to 12; enough to tell apart radii that differ near a branch point (JSON and files keep
+#: every digit)
 RADIUS_FORMAT = ".10g"
-ENERGY_FORMAT = ".12g"
+VALUE_FORMAT = ".12g"
 
 MODEL_TITLES = {
     "free-fermion": "free Majorana fermion",

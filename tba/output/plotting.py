@@ -116,11 +116,11 @@ class _Selection:
     """Which models, levels, alphas and panels a figure shows (indices into the store)."""
 
     def __init__(self, data, models=None, states=None, alphas=None, panels=None):
-        self.models = _pick_models(data, models)
-        self.alphas = _pick_alphas(data, alphas)
-        self.panels = _pick_panels(panels)
-        states = list(data.state) if states is None else [_state(data, s) for s in states]
-        ground = data.state.index(GROUND) if GROUND in data.state else None
+        self.models = _pick_models(data, _listed(models))
+        self.alphas = _pick_alphas(data, _listed(alphas))
+        self.panels = _pick_panels(_listed(panels))
+        states = list(data.state) if states is None else [_state(data, s) for s in _listed(states)]
+        self.ground = data.state.index(GROUND) if GROUND in data.state else None
         self.columns = []
         for m in self.models:
             for name in states:
@@ -133,17 +133,23 @@ class _Selection:
         if not self.columns and not self.side:
             raise ValueError("nothing to plot: no model of the selection has the selected levels "
                              "and panels")
-        self.ground = ground
-        self.rows = [row for row in ROWS if set(row) & set(self.panels)
-                     and any(_kind(data, s, row) for _, s in self.columns)]
+        self.rows = [row for row in ROWS
+                     if any(_kind(data, s, row) in self.panels for _, s in self.columns)]
 
     @property
     def side(self):
         return "branch" in self.panels
 
 
+def _listed(wanted):
+    """A selection as a list (None: everything); a single name or number is a list of one."""
+    if wanted is None or isinstance(wanted, (list, tuple)):
+        return wanted
+    return [wanted] if isinstance(wanted, (str, int, float)) else list(wanted)
+
+
 def _kind(data, s, row):
-    """The panel of ``row`` for the level of column ``s`` (ceff or gap), or None."""
+    """The panel of ``row`` for the level of column ``s`` (ceff or gap for the third row)."""
     if row != ("ceff", "gap"):
         return row[0]
     return "ceff" if data.state[s] == GROUND else "gap"
@@ -167,7 +173,11 @@ def _pick_alphas(data, wanted):
         return list(range(alphas.size))
     out = []
     for w in wanted:
-        found = np.flatnonzero(np.isclose(alphas, float(w), rtol=1e-12, atol=1e-15))
+        try:
+            w = float(w)
+        except (TypeError, ValueError):
+            raise ValueError(f"alphas: expected numbers, got {w!r}") from None
+        found = np.flatnonzero(np.isclose(alphas, w, rtol=1e-12, atol=1e-15))
         if not found.size:
             raise ValueError(f"alphas: no alpha = {number(w)} in the scan (it has "
                              f"{', '.join(number(a) for a in alphas)})")

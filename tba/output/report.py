@@ -9,7 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tba.output.labels import ENERGY_FORMAT, RADIUS_FORMAT, level_title, number
+from tba.output.labels import RADIUS_FORMAT, VALUE_FORMAT, level_title, number
 from tba.solvers.result import STATUS_CODES, Status
 from tba.store.hdf5 import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS, NOT_AVAILABLE,
                          NOT_COMPUTED, STATUS_MEANINGS)
@@ -290,9 +290,9 @@ def _branch_section(data):
             mark = {True: "yes", False: "NO", None: "-"}[c.consistent]
             below = "-" if math.isnan(c.below) else f"{c.below:{RADIUS_FORMAT}} ({c.below_status})"
             rows.append([data.model[c.model], number(data.alpha[c.alpha]), c.status,
-                         f"{c.radius:{ENERGY_FORMAT}}" if found else "-",
+                         f"{c.radius:{VALUE_FORMAT}}" if found else "-",
                          f"{c.radius_error:.2g}" if found else "-",
-                         f"{c.energy:{ENERGY_FORMAT}}" if found else "-",
+                         f"{c.energy:{VALUE_FORMAT}}" if found else "-",
                          f"{c.hagedorn_temperature:{RADIUS_FORMAT}}" if found else "-",
                          _g(c.last_real, RADIUS_FORMAT), below, mark])
         lines.append(_table(["model", "alpha", "status", "R_c", "+- error", "E(R_c)", "T_H",
