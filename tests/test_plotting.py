@@ -269,17 +269,18 @@ def test_choose_models_states_alphas_panels_and_size(data):
 def test_plot_command_writes_png_pdf_svg_and_refuses_bad_options(data, tmp_path, capsys):
     for name, magic in (("fig.png", b"\x89PNG"), ("sub/fig.pdf", b"%PDF"), ("fig.svg", b"<?xml")):
         out = tmp_path / name
-        assert main(["plot", str(data.path), "-o", str(out), "--panels", "energy", "residual",
-                     "--states", "ground", "--alphas", "-0.2", "0.5", "--size", "8,5"]) == 0
+        assert main(["plot", str(data.path), "-o", str(out), "--panel", "energy", "residual",
+                     "--state", "ground", "--alpha", "-0.2", "0.5", "--size", "8,5"]) == 0
         assert out.read_bytes()[:len(magic)] == magic
     assert b"<path" in (tmp_path / "fig.svg").read_bytes()  # vector output
     capsys.readouterr()
     for args, word in ((["-o", str(tmp_path / "fig.jpeg")], "-o"),
-                       (["-o", str(tmp_path / "x.png"), "--models", "ising-e8"], "--models"),
-                       (["-o", str(tmp_path / "x.png"), "--states", "1/2,-1/2"], "--states"),
-                       (["-o", str(tmp_path / "x.png"), "--alphas", "0.1"], "--alphas"),
-                       (["-o", str(tmp_path / "x.png"), "--alphas", "nan"], "--alphas"),
-                       (["-o", str(tmp_path / "x.png"), "--panels", "spectrum"], "--panels"),
+                       (["-o", str(tmp_path / "x.png"), "--model", "ising-e8"], "--model"),
+                       (["-o", str(tmp_path / "x.png"), "--state", "1/2,-1/2"], "--state"),
+                       (["-o", str(tmp_path / "x.png"), "--alpha", "0.1"], "--alpha"),
+                       (["-o", str(tmp_path / "x.png"), "--alpha", "nan"], "--alpha"),
+                       (["-o", str(tmp_path / "x.png"), "--panel", "spectrum"], "--panel"),
+                       (["-o", str(tmp_path / "x.png"), "--state", "0", "--panel", "ceff"], "nothing"),
                        (["-o", str(tmp_path / "x.png"), "--size", "8"], "--size"),
                        (["-o", str(tmp_path / "x.png"), "--dpi", "0"], "--dpi")):
         assert main(["plot", str(data.path), *args]) == 2

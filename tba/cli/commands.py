@@ -201,14 +201,17 @@ def cmd_plot(args, out):
     size = _figure_size(args.size) if args.size is not None else None
     if args.dpi is not None and args.dpi <= 0:
         raise UsageError(f"argument --dpi: must be positive, got {args.dpi}")
-    alphas = None if args.alphas is None else [finite("--alphas", a) for a in args.alphas]
+    alphas = None if args.alpha is None else [finite("--alpha", a) for a in args.alpha]
     data = _read(args.file)
     try:  # a selection the scan does not have fails before any file is touched
-        fig = plot_store(data, models=args.models, states=args.states, alphas=alphas,
-                         panels=args.panels, size=size)
-    except ValueError as exc:
+        fig = plot_store(data, models=args.model, states=args.state, alphas=alphas,
+                         panels=args.panel, size=size)
+    except ValueError as exc:  # "models: ..." names the keyword; the option is --model
         name, _, problem = str(exc).partition(": ")
-        raise UsageError(f"argument --{name}: {problem}") from None
+        option = {"models": "--model", "states": "--state", "alphas": "--alpha",
+                  "panels": "--panel", "size": "--size"}.get(name)
+        raise UsageError(f"argument {option}: {problem}" if option else
+                         f"arguments --model/--state/--panel: {exc}") from None
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=args.dpi or 150)
     print(f"wrote {path}", file=out)
@@ -361,17 +364,17 @@ def build_parser():
     plot.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
     plot.add_argument("-o", "--output", required=True, metavar="FIG",
                       help="figure file: .png, or .pdf / .svg (vector graphics)")
-    plot.add_argument("--models", nargs="+", metavar="M",
+    plot.add_argument("--model", nargs="+", action="extend", metavar="M",
                       help="models to show, by label (\"sinh-gordon B=0.6\") or name (default all)")
-    plot.add_argument("--states", nargs="+", metavar="S",
+    plot.add_argument("--state", nargs="+", action="extend", metavar="S",
                       help="levels to show: ground, or quantum numbers in any order, e.g. "
                       "1/2,-1/2 (default all; a level written with a leading minus goes after "
-                      "=, --states=-1/2,1/2)")
-    plot.add_argument("--alphas", nargs="+", metavar="A",
+                      "=: --state ground --state=-1/2,1/2; repeatable, like every selection)")
+    plot.add_argument("--alpha", nargs="+", action="extend", metavar="A",
                       help="alphas to show, among the scan's (default all)")
     from tba.output.labels import PANELS
 
-    plot.add_argument("--panels", nargs="+", metavar="P", choices=PANELS,
+    plot.add_argument("--panel", nargs="+", action="extend", metavar="P", choices=PANELS,
                       help=f"panels, of {', '.join(PANELS)} (default all)")
     plot.add_argument("--size", metavar="W,H", help="figure size in inches (default: from the "
                       "number of panels)")
