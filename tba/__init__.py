@@ -1,11 +1,29 @@
-"""TBA solver for integrable S-matrices with CDD (TTbar) deformations.
+"""TBA energy levels of integrable S-matrices with CDD (TTbar) deformations.
 
-Public names::
+The public API: every name below is importable from ``tba`` and stays stable. Solvers and
+physics are imported on first use, scans and figures (xarray, h5py, matplotlib) only when
+asked for, so ``import tba`` stays light::
 
-    from tba import ising_e8, ttbar, solve_ground_state
-    result = solve_ground_state(ising_e8(), 1.0, ttbar(0.05), tol=1e-12)
-    result.energy, result.error, result.status
+    import tba
+    res = tba.solve(tba.sinh_gordon(0.6), 2.0, tba.ttbar(-0.1), state="-1/2,1/2")
+    res.energy, res.error, res.status
+
+Models          free_fermion, sinh_gordon, lee_yang, ising_e8, user_model, get_model,
+                DiagonalModel
+Deformations    ttbar, higher_spin, CDD, NO_DEFORMATION
+Levels          solve (any level by name), solve_ground_state, solve_radii, solve_excited,
+                solve_lee_yang_one_particle, bethe_yang_energy, level_name
+Derivatives     energy_derivatives, flow_residual
+Flow            predict, predict_ground_state, cft_energy, cft_branch_radius, branch_point,
+                level_branch_point
+Continuation    locate_fold, second_branch, complex_pair
+Thermodynamics  thermodynamics
+Scans           scan, scan_run (in memory), open_scan (a file): xarray Datasets;
+                plot_scan (a matplotlib Figure)
+Results         SolveResult, Status, SolveError
 """
+
+import importlib
 
 from tba.models.cdd import CDD, NO_DEFORMATION, higher_spin, ttbar
 from tba.models import (
@@ -18,13 +36,68 @@ from tba.models import (
     user_model,
 )
 from tba.solvers.result import SolveError, SolveResult, Status
-from tba.solvers.ground import solve_ground_state, solve_radii
+from tba.solvers.ground import energy_derivatives, flow_residual, solve_ground_state, solve_radii
 
 __version__ = "0.1.0"
+
+#: names imported on first use: name -> module
+_LAZY = {
+    "solve_excited": "tba.solvers.excited",
+    "bethe_yang_energy": "tba.solvers.excited",
+    "solve_lee_yang_one_particle": "tba.solvers.lee_yang",
+    "level_name": "tba.solvers.levels",
+    "predict": "tba.physics.flow",
+    "predict_ground_state": "tba.physics.flow",
+    "cft_energy": "tba.physics.flow",
+    "cft_branch_radius": "tba.physics.flow",
+    "branch_point": "tba.physics.flow",
+    "level_branch_point": "tba.physics.flow",
+    "locate_fold": "tba.physics.continuation",
+    "second_branch": "tba.physics.continuation",
+    "complex_pair": "tba.physics.continuation",
+    "thermodynamics": "tba.physics.thermo",
+    "scan": "tba.output.dataset",
+    "scan_run": "tba.output.dataset",
+    "open_scan": "tba.output.dataset",
+    "plot_scan": "tba.output.plotting",
+}
+
+
+def solve(model, radius, deformation=None, *, state="ground", tol=1e-12, start=None):
+    """Solve one level of ``model`` at circumference ``radius``: a `SolveResult`.
+
+    ``state`` names the level: ``"ground"``, or its Bethe quantum numbers I_k as a string
+    (``"-1/2,1/2"``, ``"0"``) or a sequence (``["1/2", "-1/2"]``); half-odd numbers for an
+    even number of particles, integers for an odd one. ``deformation`` is a `CDD` (default:
+    none), ``tol`` the relative accuracy asked of the energy, ``start`` a solved neighbour
+    to start from. Raises ValueError when the model does not have the level (E8 has no
+    excited levels here; Lee-Yang only its one-particle level "0").
+    """
+    from tba.solvers.levels import solve_level
+
+    if isinstance(state, (bool, int, float)) or not isinstance(state, (str, list, tuple)):
+        raise TypeError(f"state: expected \"ground\" or Bethe quantum numbers (a string such as "
+                        f"\"-1/2,1/2\", or a sequence), got {state!r}")
+    return solve_level(model, radius, state, deformation, tol=tol, start=start)
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'tba' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
+
 
 __all__ = [
     "CDD", "NO_DEFORMATION", "higher_spin", "ttbar",
     "DiagonalModel", "free_fermion", "get_model", "ising_e8", "lee_yang", "sinh_gordon", "user_model",
     "SolveError", "SolveResult", "Status",
-    "solve_ground_state", "solve_radii",
+    "solve", "solve_ground_state", "solve_radii", "energy_derivatives", "flow_residual",
+    *_LAZY,
 ]

@@ -175,22 +175,45 @@ def cmd_report(args, out):
 
 
 def _figure_path(text):
-    from tba.output.plotting import FORMATS  # matplotlib is imported only by the commands that draw
+    from tba.output.labels import FORMATS
 
     suffix = Path(text).suffix.lower().lstrip(".")
     if suffix not in FORMATS:
-        raise UsageError(f"argument -o: the figure name must end in {', '.join('.' + f for f in FORMATS)}, "
-                         f"got {text!r}")
+        raise UsageError(f"argument -o/--output: the figure name must end in "
+                         f"{', '.join('.' + f for f in FORMATS)}, got {text!r}")
     return Path(text)
 
 
+def _figure_size(text):
+    try:
+        width, height = (float(x) for x in text.split(","))
+    except ValueError:
+        raise UsageError(f"argument --size: expected WIDTH,HEIGHT in inches, got {text!r}") from None
+    if not (0 < width <= 100 and 0 < height <= 100):
+        raise UsageError(f"argument --size: width and height must lie in (0, 100] inches, got {text!r}")
+    return width, height
+
+
 def cmd_plot(args, out):
-    from tba.output.plotting import save_figure
+    from tba.output.plotting import plot_store
 
     path = _figure_path(args.output)
+    size = _figure_size(args.size) if args.size is not None else None
+    if args.dpi is not None and args.dpi <= 0:
+        raise UsageError(f"argument --dpi: must be positive, got {args.dpi}")
+    alphas = None if args.alpha is None else [finite("--alpha", a) for a in args.alpha]
     data = _read(args.file)
+    try:  # a selection the scan does not have fails before any file is touched
+        fig = plot_store(data, models=args.model, states=args.state, alphas=alphas,
+                         panels=args.panel, size=size)
+    except ValueError as exc:  # "models: ..." names the keyword; the option is --model
+        name, _, problem = str(exc).partition(": ")
+        option = {"models": "--model", "states": "--state", "alphas": "--alpha",
+                  "panels": "--panel", "size": "--size"}.get(name)
+        raise UsageError(f"argument {option}: {problem}" if option else
+                         f"arguments --model/--state/--panel: {exc}") from None
     path.parent.mkdir(parents=True, exist_ok=True)
-    save_figure(data, path)
+    fig.savefig(path, dpi=args.dpi or 150)
     print(f"wrote {path}", file=out)
     return 0
 
@@ -331,11 +354,31 @@ def build_parser():
     report.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
     report.set_defaults(func=cmd_report)
     plot = sub.add_parser("plot", help="figure of a scan file",
-                          description="E(R) per alpha with the flow prediction overlaid, the flow "
-                          "residual (log scale) and c_eff = -6 R E / pi, one column per model.")
+                          description="One column per model and level, one row per panel: "
+                          "E(R, alpha) with the flow prediction and the branch points, the flow "
+                          "residual |E - E_flow| (log scale), c_eff = -6 R E_0 / pi (ground state) "
+                          "or the gap E_n - E_0 (excited levels), the flow collapse (every alpha "
+                          "at its effective radius R~ on the undeformed curve), and R_c(alpha) "
+                          "with T_H = 1/R_c. Colours: alpha (blue < 0, grey 0, red > 0). Units: R "
+                          "in 1/m_1, E in m_1; E without the bulk term f R.")
     plot.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
     plot.add_argument("-o", "--output", required=True, metavar="FIG",
-                      help="figure file: .png, .pdf or .svg")
+                      help="figure file: .png, or .pdf / .svg (vector graphics)")
+    plot.add_argument("--model", nargs="+", action="extend", metavar="M",
+                      help="models to show, by label (\"sinh-gordon B=0.6\") or name (default all)")
+    plot.add_argument("--state", nargs="+", action="extend", metavar="S",
+                      help="levels to show: ground, or quantum numbers in any order, e.g. "
+                      "1/2,-1/2 (default all; a level written with a leading minus goes after "
+                      "=: --state ground --state=-1/2,1/2; repeatable, like every selection)")
+    plot.add_argument("--alpha", nargs="+", action="extend", metavar="A",
+                      help="alphas to show, among the scan's (default all)")
+    from tba.output.labels import PANELS
+
+    plot.add_argument("--panel", nargs="+", action="extend", metavar="P", choices=PANELS,
+                      help=f"panels, of {', '.join(PANELS)} (default all)")
+    plot.add_argument("--size", metavar="W,H", help="figure size in inches (default: from the "
+                      "number of panels)")
+    plot.add_argument("--dpi", type=int, metavar="N", help="resolution of a .png (default 150)")
     plot.set_defaults(func=cmd_plot)
     export = sub.add_parser("export", help="one record per point, JSON lines or CSV",
                             description="The keys of tba solve --json plus state; points not "

@@ -26,13 +26,14 @@ def sinh_gordon(B):
 
     S(t) = (sinh t - i sin(pi B/2)) / (sinh t + i sin(pi B/2)) = 1 / f_(B/2)(t),
     phi(t) = 2 sin(pi B/2) cosh t / (sinh^2 t + sin^2(pi B/2)), invariant under B -> 2 - B.
-    c_eff -> 1 as R -> 0, logarithmically slowly.
+    c_eff -> 1 as R -> 0, logarithmically slowly. Bulk energy density m^2 / (8 sin(pi B/2)).
     """
     B = _coupling_in_open_interval(B)
     # keep B/2 exact when B is a short decimal, so that B and 2 - B give the same block
     exact = Fraction(B).limit_denominator(10**12)
     x = exact / 2 if float(exact) == B else B / 2
     return DiagonalModel(name="sinh-gordon", masses=[1.0], blocks=(({x: -1},),), coupling=B,
+                         bulk_energy_density=1.0 / (8.0 * math.sin(math.pi * B / 2)),
                          description=f"sinh-Gordon, B = {B!r}")
 
 

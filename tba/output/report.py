@@ -9,6 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from tba.output.labels import RADIUS_FORMAT, VALUE_FORMAT, level_title, number
 from tba.solvers.result import STATUS_CODES, Status
 from tba.store.hdf5 import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS, NOT_AVAILABLE,
                          NOT_COMPUTED, STATUS_MEANINGS)
@@ -126,11 +127,11 @@ def branch_checks(data, state="ground"):
             if ok.size:
                 checks.append("last real R >= R_c")
                 if c.last_real < c.radius - tol:
-                    failures.append(f"last real R = {c.last_real:.6g} < R_c")
+                    failures.append(f"last real R = {c.last_real:{RADIUS_FORMAT}} < R_c")
             if j >= 0 and st[j] == NO_REAL:
                 checks.append("next R down < R_c")
                 if c.below >= c.radius + tol:
-                    failures.append(f"R = {c.below:.6g} has no real solution but is >= R_c")
+                    failures.append(f"R = {c.below:{RADIUS_FORMAT}} has no real solution but is >= R_c")
             if failures:
                 c.consistent, c.why = False, "; ".join(failures)
             elif checks:
@@ -190,7 +191,7 @@ def _format_report(data):
                  f"created {attrs.get('created')}, {len(data.history)} invocation(s) of tba run")
     R = data.radius
     lines.append(f"  {len(data.model)} model(s) x {len(data.alpha)} alpha(s) x {len(R)} radii "
-                 f"({R.min():.4g} .. {R.max():.4g}) x {len(data.state)} state(s) = "
+                 f"({R.min():{RADIUS_FORMAT}} .. {R.max():{RADIUS_FORMAT}}) x {len(data.state)} state(s) = "
                  f"{run.n_points} points; tol {run.tol:g}")
     done = data.progress["done"].astype(bool)
     if data.shard is not None:
@@ -225,8 +226,8 @@ def _format_report(data):
         lines.append("worst error estimate: - (no converged point)")
     lines.append("")
 
-    lines.append("flow residual |E(R, alpha) - prediction| (TTbar: the same level undeformed at "
-                 "R~ = sqrt((R + alpha E)^2 - (alpha P)^2); for P = 0, E_0(R + alpha E, 0)):")
+    lines.append("flow residual |E - E_flow| (TTbar: E_flow from the same level undeformed at "
+                 "R~ = sqrt((R + alpha E)^2 - (alpha P)^2); for P = 0, E_flow = E_n(R + alpha E, 0)):")
     rows = []
     flow = data["flow_status"]
     for m, label in enumerate(data.model):
@@ -240,12 +241,12 @@ def _format_report(data):
                 est = (data["error"][m, a, :, s] + data["flow_error"][m, a, :, s])
                 if checked.any():
                     worst = int(np.nanargmax(np.where(checked, res, -np.inf)))
-                    row = [label, f"{alpha:g}", int(checked.sum()), _g(float(res[worst])),
+                    row = [label, number(alpha), int(checked.sum()), _g(float(res[worst])),
                            _g(float(res[worst] / abs(data['energy'][m, a, worst, s]))),
-                           _g(float(np.max(res[checked] / est[checked]))), f"{R[worst]:.4g}"]
+                           _g(float(np.max(res[checked] / est[checked]))), f"{R[worst]:{RADIUS_FORMAT}}"]
                 else:
                     why = ", ".join(status_counts(fs, FLOW_MEANINGS)) or "-"
-                    row = [label, f"{alpha:g}", 0, "-", "-", "-", why]
+                    row = [label, number(alpha), 0, "-", "-", "-", why]
                 if len(data.state) > 1:
                     row.insert(2, state)
                 rows.append(row)
@@ -266,8 +267,8 @@ def _excited_section(data):
     """Excited levels that stop having a real solution (positive levels for alpha < 0)."""
     if "ground" in data.state and len(data.state) == 1:
         return []
-    rows = [[data.model[p.model], f"{data.alpha[p.alpha]:g}", data.state[p.state],
-             f"{p.radius:.6g}", f"{p.below:.6g}"]
+    rows = [[data.model[p.model], number(data.alpha[p.alpha]), data.state[p.state],
+             f"{p.radius:{RADIUS_FORMAT}}", f"{p.below:{RADIUS_FORMAT}}"]
             for p in last_real_points(data) if p.bracketed and data.state[p.state] != "ground"]
     if not rows:
         return []
@@ -276,8 +277,9 @@ def _excited_section(data):
 
 
 def _branch_section(data):
-    lines = ["branch points of the ground state (alpha > 0): R_c from E_0'(R~) = 1/alpha, "
-             "E(R_c) = E_0(R~), Hagedorn temperature T_H = 1/R_c; last real point per curve:"]
+    lines = ["branch points of the ground state (alpha > 0): R_c from E_0'(R~, 0) = 1/alpha, "
+             "E(R_c) = E_0(R_c, alpha) = E_0(R~, 0), Hagedorn temperature T_H = 1/R_c; last real "
+             "point per curve:"]
     checks = branch_checks(data)
     if not checks:
         lines.append("  (no alpha > 0 in the run)")
@@ -286,18 +288,18 @@ def _branch_section(data):
         for c in checks:
             found = c.status == "found"
             mark = {True: "yes", False: "NO", None: "-"}[c.consistent]
-            below = "-" if math.isnan(c.below) else f"{c.below:.6g} ({c.below_status})"
-            rows.append([data.model[c.model], f"{data.alpha[c.alpha]:g}", c.status,
-                         f"{c.radius:.12g}" if found else "-",
+            below = "-" if math.isnan(c.below) else f"{c.below:{RADIUS_FORMAT}} ({c.below_status})"
+            rows.append([data.model[c.model], number(data.alpha[c.alpha]), c.status,
+                         f"{c.radius:{VALUE_FORMAT}}" if found else "-",
                          f"{c.radius_error:.2g}" if found else "-",
-                         f"{c.energy:.12g}" if found else "-",
-                         f"{c.hagedorn_temperature:.6g}" if found else "-",
-                         _g(c.last_real, ".6g"), below, mark])
+                         f"{c.energy:{VALUE_FORMAT}}" if found else "-",
+                         f"{c.hagedorn_temperature:{RADIUS_FORMAT}}" if found else "-",
+                         _g(c.last_real, RADIUS_FORMAT), below, mark])
         lines.append(_table(["model", "alpha", "status", "R_c", "+- error", "E(R_c)", "T_H",
                              "last real R", "next R down", "consistent"], rows))
         for c in checks:
             if c.status not in ("found", "not-computed"):
-                lines.append(f"  {data.model[c.model]}, alpha = {data.alpha[c.alpha]:g}: "
+                lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}: "
                              f"{c.status}: {c.message}")
         none = int(np.count_nonzero(data.branch["status"] == BP_NONE))
         if none:
@@ -324,14 +326,17 @@ def _branch_section(data):
             lines.append(f"consistency with the scan ({rule}): FAILS for {len(failed)} of "
                          f"{len(checked)} checked curve(s)")
             for c in failed:
-                lines.append(f"  {data.model[c.model]}, alpha = {data.alpha[c.alpha]:g}: {c.why}")
+                lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}: {c.why}")
     return lines
 
 
 def _where(data, index):
+    """``lee-yang, alpha = -0.1, R = 2.646110032, state 0 (one-particle level I = 0)``, or
+    ``..., ground state``."""
     m, a, r, s = index
-    state = f", {data.state[s]}" if len(data.state) > 1 else ""
-    return f"{data.model[m]}, alpha = {data.alpha[a]:g}, R = {data.radius[r]:.6g}{state}"
+    state = data.state[s]
+    level = "ground state" if state == "ground" else f"state {state} ({level_title(state)})"
+    return f"{data.model[m]}, alpha = {number(data.alpha[a])}, R = {data.radius[r]:{RADIUS_FORMAT}}, {level}"
 
 
 __all__ = ["format_report", "last_real_points", "LastRealPoint", "branch_checks", "BranchCheck",

@@ -1,6 +1,7 @@
 """What a solve returns: status codes and the result object."""
 
 import enum
+import html
 from dataclasses import dataclass, field
 from typing import Optional
 
@@ -65,6 +66,42 @@ class SolveResult:
     @property
     def alpha(self):
         return self.couplings.get(1, 0.0)
+
+    def _fields(self):
+        """(name, value) pairs shown by the reprs: full precision for R, alpha and E."""
+        label = self.model if self.coupling is None else f"{self.model} B={self.coupling!r}"
+        cdd = ", ".join(("alpha" if s == 1 else f"alpha_{s}") + f" = {a!r}"
+                        for s, a in self.couplings.items()) or "alpha = 0"
+        level = ",".join(str(n) for n in self.state) if self.state else "ground"
+        out = [("model", label), ("state", level), ("R", repr(self.radius)),
+               ("deformation", cdd), ("status", self.status.value)]
+        if self.converged:
+            out.append(("E", f"{self.energy!r} +- {self.error:.2g}"))
+            if self.state:
+                out.append(("P", repr(self.momentum)))
+            if self.rapidities:
+                out.append(("rapidities", "(" + ", ".join(f"{t:.6g}" for t in self.rapidities) + ")"))
+        out += [("iterations", str(self.iterations)), ("message", self.message)]
+        return out
+
+    def __repr__(self):
+        """One line: ``SolveResult(sinh-gordon B=0.6, ground state, R = 1.0, alpha = 0.2:
+        converged, E = -0.2209223083524193 +- 9.1e-16, 6 iterations)``; excited levels say
+        ``state -1/2,1/2`` and add P and the rapidities; the message when not converged."""
+        f = dict(self._fields())
+        state = "ground state" if f["state"] == "ground" else f"state {f['state']}"
+        what = f"{f['model']}, {state}, R = {f['R']}, {f['deformation']}: {f['status']}"
+        if self.converged:
+            extra = "".join(f", {k} = {f[k]}" for k in ("P", "rapidities") if k in f)
+            return f"SolveResult({what}, E = {f['E']}{extra}, {self.iterations} iterations)"
+        return f"SolveResult({what}, {self.message!r})"
+
+    def _repr_html_(self):
+        """A two-column table for notebooks."""
+        rows = "".join(f"<tr><th style='text-align:left'>{html.escape(k)}</th>"
+                       f"<td style='text-align:left'>{html.escape(v)}</td></tr>"
+                       for k, v in self._fields())
+        return f"<table><caption>SolveResult</caption>{rows}</table>"
 
     def raise_for_status(self):
         """Raise `SolveError` unless the point converged; return self otherwise."""
