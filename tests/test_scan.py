@@ -351,7 +351,7 @@ def test_plot_and_report_of_excited_levels(levels_store, tmp_path):
     fig = plot_store(d)
     titles = [ax.get_title() for ax in fig.axes if ax.get_title()]
     # one column per (model, state) the model has: 4 for sinh-Gordon, 2 for Lee-Yang
-    assert len(titles) == 6 and "lee-yang, state 0" in titles
+    assert len(titles) == 6 and "scaling Lee-Yang:\none-particle level I = 0" in titles
     report = format_report(d)
     assert "not-available" in report
     assert "excited levels meeting their branch point" in report
