@@ -229,7 +229,9 @@ def _theory(inc_key, h):
     masses = pf[order] / pf[order[0]]
     position = {node: i for i, node in enumerate(order)}
     conj = tuple(position[conj[node]] for node in order)
-    masses[list(conj)] = np.minimum(masses, masses[list(conj)])  # exactly equal in a pair
+    for a in range(1, n):  # degenerate masses (pairs, D_even spinors, D_4) exactly equal
+        if mass[order[a]] == mass[order[a - 1]]:
+            masses[a] = masses[a - 1]
 
     mult = _half_multiplicities(inc, h)
     if mult.min() < 0:

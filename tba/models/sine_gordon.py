@@ -29,7 +29,9 @@ sin((n - 2l) pi xi/4 - pi/4 + i t/2) / sin((n - 2l) pi xi/4 - pi/4 - i t/2) = -<
     S_(s B_n) = S_(s-bar B_n) = f_((1 - n xi)/2) prod_{l=1}^{n-1} <1/2 - (n - 2l) xi/2>^2
     S_(B_n B_m) = f_((n+m) xi/2) f_((n-m) xi/2) prod_{l=1}^{m-1} f_((n-m+2l) xi/2)^2,   n >= m,
 
-with f_0 = 1. All species are fermions (every S_aa(0) = -1). tests/test_sine_gordon.py checks
+with f_0 = 1. These products give the block content; the overall sign of S_(s B_n), which the
+kernel does not see, is fixed by the bootstrap below: S_(s B_n)(0) = (-1)^n. All species are
+fermions (every S_aa(0) = -1). tests/test_sine_gordon.py checks
 S_0 against the integral, crossing S_(s s-bar)(t) = S_ss(i pi - t), and the breather amplitudes
 against the bootstrap S_(B_n d)(t) = S_(s d)(t + i u_n/2) S_(s-bar d)(t - i u_n/2), u_n = pi(1 - n xi).
 
@@ -97,7 +99,7 @@ def scattering(N):
             _add(content, HalfBlock(Fraction(1, 2) - (n - 2 * l) * xi / 2), 2)
         for b in (0, 1):
             blocks[a][b] = blocks[b][a] = content
-            sign[a, b] = sign[b, a] = -1  # f(0) = -1, squares are +1
+            sign[a, b] = sign[b, a] = (-1) ** n  # fixed by the bootstrap (docstring)
         for b in range(2, a + 1):
             m = kinds[b]
             content = {}
@@ -109,9 +111,12 @@ def scattering(N):
             nf = sum(content.values())
             sign[a, b] = sign[b, a] = (-1) ** nf
     order = sorted(range(size), key=lambda a: (round(mass[a], 12), kinds[a]))
-    lightest = mass[order[0]]
+    masses = np.array([mass[a] for a in order]) / mass[order[0]]
+    for a in range(1, size):  # degenerate masses (B_(N/3) and the solitons at N = 3k) equal
+        if round(mass[order[a]], 12) == round(mass[order[a - 1]], 12):
+            masses[a] = masses[a - 1]
     position = {a: i for i, a in enumerate(order)}
-    return (np.array([mass[a] / lightest for a in order]),
+    return (masses,
             tuple(tuple(blocks[a][b] for b in order) for a in order),
             sign[np.ix_(order, order)],
             tuple(position[{0: 1, 1: 0}.get(a, a)] for a in order),
