@@ -7,13 +7,16 @@ Public names::
     result.energy, result.error, result.status
 """
 
-from tba.models.cdd import CDD, NO_DEFORMATION, higher_spin, ttbar
+from tba.models.cdd import CDD, NO_DEFORMATION, cdd_factor, higher_spin, resonance, ttbar
 from tba.models import (
     DiagonalModel,
+    HalfBlock,
     free_fermion,
     get_model,
     ising_e8,
     lee_yang,
+    model_names,
+    sine_gordon,
     sinh_gordon,
     user_model,
 )
@@ -23,8 +26,9 @@ from tba.solvers.ground import solve_ground_state, solve_radii
 __version__ = "0.1.0"
 
 __all__ = [
-    "CDD", "NO_DEFORMATION", "higher_spin", "ttbar",
-    "DiagonalModel", "free_fermion", "get_model", "ising_e8", "lee_yang", "sinh_gordon", "user_model",
+    "CDD", "NO_DEFORMATION", "cdd_factor", "higher_spin", "resonance", "ttbar",
+    "DiagonalModel", "HalfBlock", "free_fermion", "get_model", "ising_e8", "lee_yang", "model_names",
+    "sine_gordon", "sinh_gordon", "user_model",
     "SolveError", "SolveResult", "Status",
     "solve_ground_state", "solve_radii",
 ]

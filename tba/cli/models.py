@@ -34,7 +34,8 @@ def _row(rec):
     else:
         param = ""
     masses = ", ".join(f"{label}: {m:.6g}" for label, m in zip(rec["labels"], rec["masses"]))
-    return (f"{name:<22} {rec['algebra'] or '':<6} {param:<14} {rec['species']:>3}  "
+    also = rec["algebra"] if rec["algebra"] not in (None, rec["name"]) else ""
+    return (f"{name:<22} {also:<6} {param:<14} {rec['species']:>3}  "
             f"{_fraction(rec['c_eff']):<24} {rec['spins_text']:<45} {masses}")
 
 

@@ -22,7 +22,6 @@ from dataclasses import dataclass, field
 from typing import Callable, Optional
 
 import numpy as np
-from scipy import integrate
 
 from tba.models import blocks as _blocks
 from tba.models.charges import ExplicitCharges, OddSpins, SpinRule
@@ -205,17 +204,19 @@ class DiagonalModel:
     def _check_crossing(self, content):
         conj = self.antiparticle
         n = len(content)
+        full = lambda cell: {k: m for k, m in cell.items() if not isinstance(k, _blocks.HalfBlock)}  # noqa: E731
         for a in range(n):
             for b in range(n):
-                half = _blocks.half_content(content[a][b])
-                crossed = {1 - x: m for x, m in half.items()}
-                if _blocks.half_content(content[conj[a]][b]) != crossed:
+                cell, other = content[a][b], content[conj[a]][b]
+                crossed = {1 - k.x: m for k, m in cell.items() if isinstance(k, _blocks.HalfBlock)}
+                halves = {k.x: m for k, m in other.items() if isinstance(k, _blocks.HalfBlock)}
+                if full(cell) != full(other) or crossed != halves:
                     what = ("species are their own antiparticles unless antiparticle= says "
                             "otherwise, so half-blocks <x> must come with <1-x>"
                             if conj[a] == a else f"S_{conj[a]+1}{b+1} must be S_{a+1}{b+1} with x -> 1 - x")
                     raise ValueError(f"blocks: S_{a+1}{b+1} violates crossing S_(a-bar)b(t) = "
                                      f"S_ab(i pi - t): {what}")
-                parity = (-1) ** int(sum(half.values()))
+                parity = (-1) ** int(sum(halves.values()))  # f_x counts twice: even
                 if self.sign[conj[a], b] != self.sign[a, b] * parity:
                     raise ValueError(f"sign: crossing requires S_{conj[a]+1}{b+1}(0) = "
                                      f"{int(self.sign[a, b] * parity):+d} given S_{a+1}{b+1}(0) = "
@@ -278,6 +279,8 @@ class DiagonalModel:
         if self.blocks is not None:
             return np.array([[sum(m * _blocks.key_integral(k) for k, m in cell.items())
                               for cell in row] for row in self.blocks], dtype=float)
+        from scipy import integrate  # only for kernel callables: keeps import tba light
+
         n = self.n_species
         out = np.empty((n, n))
         for a in range(n):
@@ -307,7 +310,8 @@ class DiagonalModel:
     # -- conserved charges ---------------------------------------------------------------------
     def charges(self, spin):
         """q_s^a for every species: the masses for s = 1; for s > 1 the eigenvalues of the
-        spin-s conserved charge (`tba.models.charges`), normalised to 1 on species 1.
+        spin-s conserved charge (`tba.models.charges`: built-in rules normalise them to 1 on
+        the lightest species that carries the charge).
 
         Raises ValueError naming the allowed spins when the model has no such charge."""
         if isinstance(spin, bool) or not isinstance(spin, (int, np.integer)) or spin < 1:
@@ -317,10 +321,7 @@ class DiagonalModel:
         why = self.charge_rule.refusal(int(spin))
         if why is not None:
             raise ValueError(f"spin {spin}: {self.name} has no spin-{spin} charge; {why}")
-        q = np.asarray(self.charge_rule.vector(int(spin)), dtype=float)
-        if abs(q[0]) <= 1e-12 * np.max(np.abs(q)):
-            raise ValueError(f"spin {spin}: the charge of species 1 vanishes; no normalisation")
-        return q / q[0]
+        return np.array(self.charge_rule.vector(int(spin)), dtype=float)
 
     # -- what excited states with real rapidities need (single species, block models) ----
     def _block_sum(self, fn, u):

@@ -28,7 +28,7 @@ import numpy as np
 from tba.models import sine_gordon as _sg
 from tba.models.ade import a_incidence, ade_theory, d_incidence, e_incidence, tadpole_incidence
 from tba.models.base import DiagonalModel, bulk_energy_density
-from tba.models.charges import ExplicitCharges
+from tba.models.charges import ExplicitCharges, OddSpins
 
 #: the largest rank of the infinite families A_n, D_n, T_n (generation is cheap; the TBA grid
 #: grows like the number of species times the Coxeter number)
@@ -123,9 +123,12 @@ def ade_model(algebra):
         description = _FAMILY_TEXT[kind].format(n=n, m={"A": n + 1, "T": 2 * n + 3}.get(kind, h))
     blocks = tuple(tuple(dict(cell) for cell in row) for row in theory.blocks)
     labels = _pair_labels(theory.antiparticle)
+    # one species (T1 = Lee-Yang) keeps every odd spin, q = 1, as every single-species model
+    # (decision; its conserved charges are the spins 1, 5 mod 6 of the spectral rule)
+    rule = OddSpins(1) if n == 1 else theory.charge_rule
     return DiagonalModel(name=name, masses=np.array(theory.masses), blocks=blocks,
                          sign=np.array(theory.sign), antiparticle=theory.antiparticle,
-                         labels=labels, charge_rule=theory.charge_rule,
+                         labels=labels, charge_rule=rule,
                          bulk_energy_density=bulk_energy_density(theory.masses, blocks),
                          description=description)
 

@@ -322,8 +322,10 @@ def cdd_factor(u, power=1):
         u = complex(u)
     except (TypeError, ValueError):
         raise TypeError(f"u must be a number, got {u!r}") from None
-    if u.imag == 0 and not 0 < u.real < math.pi:
-        raise ValueError(f"a real u must lie in (0, pi), got {u.real!r}")
+    if u.imag == 0:
+        if not 0 < u.real < math.pi:
+            raise ValueError(f"a real u must lie in (0, pi), got {u.real!r}")
+        u = min(u.real, math.pi - u.real)  # F_u = F_(pi - u): one representative
     return CDD(factors=(PoleFactor(cmath.sin(u), power),))
 
 

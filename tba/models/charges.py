@@ -27,8 +27,10 @@ Rules (`SpinRule`):
   bound state of soliton and antisoliton at t = +-i u_n/2, u_n = pi (1 - n/N), by the rule above.
 * `ExplicitCharges`: user models with several species: spin 1 and the charges the user gives.
 
-Normalisation (decision): q_1 = masses, and for s > 1, q_s^1 = 1 on species 1 (the lightest);
-`DiagonalModel.charges` applies it.
+Normalisation (decision): q_1 = masses; for s > 1 the built-in rules set q_s = 1 on the first
+species (in mass order) that carries the charge: species 1 in almost every case, the spinor of
+D_n for the spin-(n-1) charge of D_odd (zero on the vector particles). User charges are taken
+as given.
 """
 
 import math
@@ -37,6 +39,15 @@ import numpy as np
 
 #: two eigenvalues of an incidence matrix closer than this are one eigenvalue
 _EIGEN_TOL = 1e-9
+
+
+def _normalised(q):
+    """q / q_a for the first a with q_a != 0 (relative to the largest component)."""
+    q = np.asarray(q, dtype=float)
+    first = np.flatnonzero(np.abs(q) > 1e-12 * np.max(np.abs(q)))[0]
+    out = q / q[first]
+    out[np.abs(out) <= 1e-12] = 0.0
+    return out
 
 
 class SpinRule:
@@ -53,6 +64,7 @@ class SpinRule:
 
     def vector(self, spin):
         raise NotImplementedError
+
 
     def refusal(self, spin):
         """Why ``spin`` is not allowed (one phrase), or None."""
@@ -99,9 +111,6 @@ class ExplicitCharges(SpinRule):
                 raise TypeError(f"charges[{spin}]: expected {n_species} real numbers, got {q!r}") from None
             if vec.shape != (n_species,) or not np.all(np.isfinite(vec)):
                 raise ValueError(f"charges[{spin}]: expected {n_species} finite numbers, got {q!r}")
-            if vec[0] == 0:
-                raise ValueError(f"charges[{spin}]: the charge of species 1 sets the normalisation "
-                                 f"and must not vanish")
             clean[int(spin)] = vec
         self.charges = clean
         self.residues = tuple(sorted({1, *clean}))
@@ -147,7 +156,7 @@ class SpectralCharges(SpinRule):
 
     def vector(self, spin):
         (k,) = self._matches(spin)
-        return self.evecs[:, k]
+        return _normalised(self.evecs[:, k])
 
 
 class SineGordonCharges(SpinRule):
@@ -163,5 +172,5 @@ class SineGordonCharges(SpinRule):
 
     def vector(self, spin):
         sign = (-1) ** ((spin - 1) // 2)
-        return np.array([1.0 if n == 0 else 2 * sign * math.sin(n * spin * math.pi / (2 * self.N))
-                         for n in self.breathers])
+        return _normalised([1.0 if n == 0 else 2 * sign * math.sin(n * spin * math.pi / (2 * self.N))
+                            for n in self.breathers])
