@@ -51,6 +51,9 @@ def test_named_models_of_any_rank(capsys):
     (sg,) = records(capsys, "sine-gordon", "--coupling", "9")
     assert sg["species"] == 10 and sg["parameters"]["N"]["value"] == 9
     assert [r["name"] for r in records(capsys, "e8", "T1", "a2")] == ["ising-e8", "lee-yang", "potts-3"]
+    # --coupling goes to the named models that have a parameter
+    mixed = records(capsys, "A3", "sine-gordon", "--coupling", "2")
+    assert [(r["name"], r["species"]) for r in mixed] == [("A3", 3), ("sine-gordon", 3)]
 
 
 def test_text_listing(capsys):
@@ -62,6 +65,7 @@ def test_text_listing(capsys):
 
 @pytest.mark.parametrize("args, name", [
     (["models", "A0"], "MODEL"), (["models", "nope"], "MODEL"), (["models", "--coupling", "3"], "--coupling"),
+    (["models", "A3", "--coupling", "3"], "--coupling"),
     (["models", "sine-gordon", "--coupling", "x"], "--coupling"),
     (["models", "sine-gordon", "--coupling", "2.5"], "--coupling"),
     (["solve", "--model", "A41", "--radius", "1"], "--model"),

@@ -19,7 +19,7 @@ from reference import leading_order_energy, second_order_energy
 from scipy.special import k1
 
 from tba import solve_ground_state, solve_radii
-from tba.models import get_model, sine_gordon
+from tba.models import sine_gordon
 from tba.models.base import bulk_energy_density
 from tba.models.cdd import higher_spin
 from tba.models.uv import uv_central_charge

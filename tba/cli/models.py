@@ -79,8 +79,8 @@ def add_models_command(sub):
                             "not, and the allowed CDD spins (conserved charges).")
     models.add_argument("names", nargs="*", metavar="MODEL",
                         help="models to show (default: the list); any A<n>, D<n>, T<n>")
-    models.add_argument("--coupling", metavar="V", help="the parameter of the named models "
-                        "(sinh-gordon B, sine-gordon N)")
+    models.add_argument("--coupling", metavar="V", help="the parameter of those named models "
+                        "that have one (sinh-gordon B, sine-gordon N)")
     models.add_argument("--json", action="store_true",
                         help="one JSON object per line: name, parameters, species, masses, "
                         "c_eff, massless, spins")

@@ -29,6 +29,7 @@ from tba.models import sine_gordon as _sg
 from tba.models.ade import a_incidence, ade_theory, d_incidence, e_incidence, tadpole_incidence
 from tba.models.base import DiagonalModel, bulk_energy_density
 from tba.models.charges import ExplicitCharges, OddSpins
+from tba.models.uv import uv_central_charge
 
 #: the largest rank of the infinite families A_n, D_n, T_n (generation is cheap; the TBA grid
 #: grows like the number of species times the Coxeter number)
@@ -86,7 +87,7 @@ def sine_gordon(N):
 
 #: algebra -> (canonical physical name, description)
 _PHYSICAL = {
-    "A1": ("free-fermion", None),
+    "A1": ("free-fermion", "free Majorana fermion, S = -1 (A1)"),
     "A2": ("potts-3", "scaling 3-state Potts model (thermal perturbation), A2"),
     "E6": ("tricritical-potts-3", "tricritical 3-state Potts model (thermal perturbation), E6"),
     "E7": ("tricritical-ising", "tricritical Ising model, thermal perturbation, E7"),
@@ -97,7 +98,6 @@ _INCIDENCE = {"A": a_incidence, "D": d_incidence, "E": e_incidence, "T": tadpole
 _FAMILY_TEXT = {
     "A": "A{n}: Z_{m} parafermions perturbed by their first thermal operator",
     "D": "D{n}: minimal D-series theory",
-    "E": "E{n}",
     "T": "T{n}: non-unitary minimal model M(2, {m}) perturbed by phi_13",
 }
 
@@ -119,8 +119,7 @@ def ade_model(algebra):
     theory = ade_theory(_INCIDENCE[kind](n))
     name, description = _PHYSICAL.get(algebra, (algebra, None))
     if description is None:
-        h = theory.coxeter
-        description = _FAMILY_TEXT[kind].format(n=n, m={"A": n + 1, "T": 2 * n + 3}.get(kind, h))
+        description = _FAMILY_TEXT[kind].format(n=n, m={"A": n + 1, "T": 2 * n + 3}.get(kind))
     blocks = tuple(tuple(dict(cell) for cell in row) for row in theory.blocks)
     labels = _pair_labels(theory.antiparticle)
     # one species (T1 = Lee-Yang) keeps every odd spin, q = 1, as every single-species model
@@ -352,8 +351,6 @@ def model_summary(name, coupling=None):
     ``parameters`` maps the model's parameter to {"range": ..., "value": ...}; a parameter-free
     model has {}. sinh-Gordon without a coupling is summarised at B = 1 with value None (its
     masses, c_eff and spins do not depend on B)."""
-    from tba.models.uv import uv_central_charge
-
     entry = resolve(name)
     parameters = {}
     if entry.parameter is not None:
@@ -374,13 +371,16 @@ def model_summary(name, coupling=None):
 
 
 def model_summaries(names=None, coupling=None):
-    """Summaries of ``names`` (default: `model_names`); a model with an integer parameter and no
-    coupling given is summarised at its listed values (sine-Gordon N = 1..4)."""
+    """Summaries of ``names`` (default: `model_names`). ``coupling`` applies to the named models
+    that have a parameter (ModelError if none has one); a model with an integer parameter and no
+    coupling is summarised at its listed values (sine-Gordon N = 1..4)."""
+    entries = [resolve(name) for name in (model_names() if names is None else names)]
+    if coupling is not None and not any(e.parameter for e in entries):
+        raise ModelError("coupling", "none of the models named has a parameter")
     out = []
-    for name in (model_names() if names is None else names):
-        entry = resolve(name)
+    for entry in entries:
         if entry.parameter == "N" and coupling is None:
-            out.extend(model_summary(name, N) for N in LISTED_SINE_GORDON)
+            out.extend(model_summary(entry.name, N) for N in LISTED_SINE_GORDON)
         else:
-            out.append(model_summary(name, coupling))
+            out.append(model_summary(entry.name, coupling if entry.parameter else None))
     return out

@@ -51,7 +51,7 @@ def _normalised(q):
 
 
 class SpinRule:
-    """Which spins s a model's CDD factors may have, and the charge vectors (unnormalised)."""
+    """Which spins s a model's CDD factors may have, and the charge vectors."""
 
     #: spins are allowed when s mod modulus is in residues (modulus None: exactly `residues`)
     modulus = None
@@ -63,8 +63,8 @@ class SpinRule:
         return spin % self.modulus in self.residues
 
     def vector(self, spin):
+        """The charge vector q_s (one entry per species)."""
         raise NotImplementedError
-
 
     def refusal(self, spin):
         """Why ``spin`` is not allowed (one phrase), or None."""
