@@ -254,3 +254,14 @@ def test_bulk_terms_are_consistent_across_pairs():
     assert e8 == pytest.approx(-1 / (8 * (math.sin(math.pi / 3) + math.sin(2 * math.pi / 5)
                                           + math.sin(math.pi / 15))), rel=1e-14)
     assert get_model("A1").bulk_energy_density is None
+
+
+def test_e8_model_is_the_generated_theory():
+    # ising-e8 carries exactly what the generator gives (published checks in tests/test_ade.py:
+    # Zamolodchikov's masses, S_11 and S_12); only S_ab(0) is new: +1 for a != b
+    from tba.models.ade import E8_COXETER, E8_INCIDENCE, ade_scattering
+
+    masses, blocks = ade_scattering(E8_INCIDENCE, E8_COXETER)
+    e8 = get_model("ising-e8")
+    assert e8.blocks == blocks and np.array_equal(e8.masses, masses)
+    assert np.array_equal(e8.sign, 1 - 2 * np.eye(8))

@@ -24,7 +24,7 @@ with sigma = sin u (Camilo, Fleury, Lencses, Negro and Zamolodchikov, JHEP 2021)
   factor of Al.B. Zamolodchikov (1991): free fermion x resonance(theta_0, -1) is his staircase
   model, kernel 1/cosh(t - theta_0) + 1/cosh(t + theta_0);
 * complex sigma (any other complex u): real analyticity needs u* too, so the factor is
-  F_sigma F_(sigma*) (four poles, at +-Re t + i (pi/2 +- ...)).
+  F_sigma F_(sigma*): four poles, at t = +-Im u + i Re u and +-Im u + i (pi - Re u).
 
 Their kernels -2 sigma cosh t / (sinh^2 t + sigma^2) (twice the real part for a pair) are not
 separable: `kernel(model, t)` gives them (the same for every pair a, b), `singularity_distance`
