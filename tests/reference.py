@@ -420,7 +420,7 @@ def dense_spin_response(masses, kernel, charges, spin, radius, h, x_max=50.0):
     (1 + K diag(L')) deps = -dF with dF_a(t) = (s/2pi) q^a int cosh(s(t - t')) sum_b q^b L_b(t') dt'
     = -s E_s q^a cosh(s t) (the sinh(st) sinh(st') half integrates to zero against the even L),
     dE/dalpha_s = -(1/2pi) sum_a m_a int cosh t L'_a deps_a dt. Derivation here (the spin-s
-    kernel alpha_s s q^a q^b cosh(s(t - t')) of PHYSICS.md section 4 differentiated at 0; common
+    kernel alpha_s s q^a q^b cosh(s(t - t')) of the README's conventions differentiated at 0; common
     practice, no source). A few dense LUs of size n N.
     """
     m = np.asarray(masses, dtype=float)
