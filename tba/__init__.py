@@ -8,9 +8,9 @@ asked for, so ``import tba`` stays light::
     res = tba.solve(tba.sinh_gordon(0.6), 2.0, tba.ttbar(-0.1), state="-1/2,1/2")
     res.energy, res.error, res.status
 
-Models          free_fermion, sinh_gordon, lee_yang, ising_e8, user_model, get_model,
-                DiagonalModel
-Deformations    ttbar, higher_spin, CDD, NO_DEFORMATION
+Models          free_fermion, sinh_gordon, lee_yang, ising_e8, sine_gordon, user_model,
+                get_model, model_names, DiagonalModel, HalfBlock
+Deformations    ttbar, higher_spin, cdd_factor, resonance, CDD, NO_DEFORMATION
 Levels          solve (any level by name), solve_ground_state, solve_radii, solve_excited,
                 solve_lee_yang_one_particle, bethe_yang_energy, level_name
 Derivatives     energy_derivatives, flow_residual
@@ -25,13 +25,16 @@ Results         SolveResult, Status, SolveError
 
 import importlib
 
-from tba.models.cdd import CDD, NO_DEFORMATION, higher_spin, ttbar
+from tba.models.cdd import CDD, NO_DEFORMATION, cdd_factor, higher_spin, resonance, ttbar
 from tba.models import (
     DiagonalModel,
+    HalfBlock,
     free_fermion,
     get_model,
     ising_e8,
     lee_yang,
+    model_names,
+    sine_gordon,
     sinh_gordon,
     user_model,
 )
@@ -95,8 +98,9 @@ def __dir__():
 
 
 __all__ = [
-    "CDD", "NO_DEFORMATION", "higher_spin", "ttbar",
-    "DiagonalModel", "free_fermion", "get_model", "ising_e8", "lee_yang", "sinh_gordon", "user_model",
+    "CDD", "NO_DEFORMATION", "cdd_factor", "higher_spin", "resonance", "ttbar",
+    "DiagonalModel", "HalfBlock", "free_fermion", "get_model", "ising_e8", "lee_yang", "model_names",
+    "sine_gordon", "sinh_gordon", "user_model",
     "SolveError", "SolveResult", "Status",
     "solve", "solve_ground_state", "solve_radii", "energy_derivatives", "flow_residual",
     *_LAZY,

@@ -6,6 +6,7 @@ import pytest
 
 from tba.models.ade import (E8_COXETER, E8_INCIDENCE, TADPOLE_COXETER,
                             TADPOLE_INCIDENCE, ade_scattering, block_transform)
+from tba.models.blocks import HalfBlock
 
 
 def normalise(xs):
@@ -109,11 +110,13 @@ def test_a1_free():
     assert masses.tolist() == [1.0] and blocks == (({},),)
 
 
-def test_a2_is_not_a_product_of_f_blocks():
-    # A_2 = Z_3: S_11 = sinh(t/2 + i pi/3) / sinh(t/2 - i pi/3) (from memory,
-    # Koberle-Swieca), not a product of f_x, so the expansion must be refused
-    with pytest.raises(ValueError, match="not a product"):
-        ade_scattering([[0, 1], [1, 0]], 3)
+def test_a2_is_a_product_of_half_blocks():
+    # A_2 = Z_3 (scaling 3-state Potts): S_11 = sinh(t/2 + i pi/3) / sinh(t/2 - i pi/3) = <2/3>
+    # (R. Koberle and J.A. Swieca, Phys. Lett. B86 (1979) 209; A.B. Zamolodchikov, Int. J. Mod.
+    # Phys. A3 (1988) 743), not a product of f_x blocks: it needs the half-block
+    masses, blocks = ade_scattering([[0, 1], [1, 0]], 3)
+    assert masses.tolist() == [1.0, 1.0]
+    assert blocks[0][0] == {HalfBlock(F(2, 3)): 1} and blocks[0][1] == {HalfBlock(F(1, 3)): 1}
 
 
 @pytest.mark.parametrize("inc,h,match", [

@@ -177,9 +177,10 @@ def test_higher_spin_matches_dense_solver_loose_tol(name, kernel, couplings):
     assert r.error >= abs(r.energy - ref)
 
 
-def test_higher_spin_rejected_for_several_species():
-    # tba/models/cdd.py: spin > 1 only for single-species models
-    with pytest.raises(ValueError, match="spin-3"):
+def test_higher_spin_rejected_where_the_model_has_no_charge():
+    # tba/models/charges.py: E8 has conserved charges of the spins coprime to 30 only
+    # (A.B. Zamolodchikov, Int. J. Mod. Phys. A4 (1989) 4235)
+    with pytest.raises(ValueError, match="spin-3 charge; allowed spins are s = 1, 7, 11"):
         solve_ground_state(MODELS["ising-e8"], 1.0, higher_spin(3, -0.01))
 
 

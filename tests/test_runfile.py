@@ -133,7 +133,7 @@ def test_bad_run_files_name_the_key(what, old, new, key):
         text = with_radii("radii = [1.0, 0.0]")
     if what == "higher spin with two species":
         text = text.replace("alphas = [0.1, -0.1, 0]", "alphas = [0.1]\nhigher_spin = { 3 = 0.01 }")
-        key = "deformation.higher_spin"
+        key = "deformation.higher_spin.3"  # E8 has no spin-3 charge
     assert text != GOOD
     with pytest.raises(RunFileError) as info:
         loads_run(text)

@@ -32,7 +32,7 @@ def cmd_solve(args, out):
     model = build_model(args)
     radii = parse_radii(args.radius)
     alpha = finite("--alpha", args.alpha)
-    deformation = parse_cdd(args.cdd, alpha)
+    deformation = parse_cdd(args.cdd, alpha, model)
     tol = tolerance(args.tol)
     state = parse_state_argument(args.state, model, deformation) if args.state is not None else "ground"
     from tba.solvers.levels import solve_level
@@ -399,8 +399,10 @@ def build_parser():
     demo.add_argument("--out-dir", metavar="DIR", help="write demo.h5 and demo.png here")
     demo.set_defaults(func=cmd_demo)
     from tba.cli.flow import add_flow_commands
+    from tba.cli.models import add_models_command
 
     add_flow_commands(sub, CONVENTIONS)
+    add_models_command(sub)
     return parser
 
 

@@ -10,7 +10,7 @@ from fractions import Fraction
 
 import numpy as np
 
-from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
+from tba.models.catalog import ModelError, get_model
 from tba.models.cdd import CDD
 from tba.solvers.ground import MIN_TOL
 
@@ -22,7 +22,8 @@ conventions:
   d/dalpha E = E dE/dR + P^2/R and E(R, alpha) = E(R + alpha E, 0) for P = 0;
   alpha > 0 is the side where the ground state meets a branch point (Hagedorn),
   alpha < 0 the side where positive excited levels do.
-  --cdd S:A adds exp(i A sinh(S t)) for odd spin S >= 3 (single-species models).
+  --cdd S:A adds exp(i A q_a q_b sinh(S t)) for a spin S >= 2 the model has
+  (conserved charges q, 1 on the lightest species; tba models lists the spins).
   status: converged | no-real-solution | not-converged; energy and error are
   null unless converged. error estimates |E - exact| and is meant to bound it."""
 
@@ -70,7 +71,8 @@ def parse_radii(tokens):
     return radii
 
 
-def parse_cdd(tokens, alpha):
+def parse_cdd(tokens, alpha, model=None):
+    """--alpha and --cdd S:A as a CDD deformation; with ``model``, every spin must be one of its."""
     couplings = {1: alpha} if alpha else {}
     for tok in tokens or []:
         spin, sep, value = tok.partition(":")
@@ -79,11 +81,17 @@ def parse_cdd(tokens, alpha):
         try:
             s = int(spin)
         except ValueError:
-            raise UsageError(f"argument --cdd: spin must be an odd integer, got {spin!r}") from None
-        if s < 3 or s % 2 == 0:
-            raise UsageError(f"argument --cdd: spin must be odd and >= 3 (use --alpha for spin 1), got {s}")
+            raise UsageError(f"argument --cdd: spin must be an integer, got {spin!r}") from None
+        if s < 2:
+            raise UsageError(f"argument --cdd: spin must be >= 2 (use --alpha for spin 1), got {s}")
         couplings[s] = couplings.get(s, 0.0) + finite("--cdd", value)
-    return CDD(couplings)
+    deformation = CDD(couplings)
+    if model is not None:
+        try:
+            deformation.check(model)
+        except ValueError as exc:
+            raise UsageError(f"argument --cdd: {str(exc).split(': ', 1)[-1]}") from None
+    return deformation
 
 
 def tolerance(text):
@@ -94,18 +102,11 @@ def tolerance(text):
 
 
 def build_model(args):
-    if args.model not in MODELS:
-        raise UsageError(f"argument --model: unknown model {args.model!r} (choose from {', '.join(MODELS)})")
-    coupling = None
-    if args.coupling is not None:
-        if args.model not in MODELS_WITH_COUPLING:
-            raise UsageError(f"argument --coupling: model {args.model} has no coupling")
-        coupling = finite("--coupling", args.coupling)
-        if not 0 < coupling < 2:
-            raise UsageError(f"argument --coupling: B must lie in (0, 2), got {args.coupling}")
-    elif args.model in MODELS_WITH_COUPLING:
-        raise UsageError(f"argument --coupling: required for model {args.model}")
-    return get_model(args.model, coupling)
+    coupling = None if args.coupling is None else finite("--coupling", args.coupling)
+    try:
+        return get_model(args.model, coupling)
+    except ModelError as exc:
+        raise UsageError(f"argument --{exc.argument}: {exc.reason}") from None
 
 
 def fmt(x, spec):
@@ -147,9 +148,11 @@ def parse_state_argument(text, model, deformation):
 
 def add_model_arguments(parser):
     """--model and --coupling, shared by every command that solves one model."""
-    parser.add_argument("--model", required=True, metavar="{" + ",".join(MODELS) + "}",
-                        help="the S-matrix")
-    parser.add_argument("--coupling", metavar="B", help="sinh-Gordon coupling B in (0, 2)")
+    parser.add_argument("--model", required=True, metavar="NAME",
+                        help="the S-matrix: free-fermion, sinh-gordon, lee-yang, ising-e8, "
+                        "sine-gordon, ..., or an algebra name (A4, D5, E6, T2); tba models lists them")
+    parser.add_argument("--coupling", metavar="V", help="the model's parameter: sinh-gordon B in "
+                        "(0, 2), sine-gordon N (reflectionless point, integer >= 1)")
 
 
 def add_tol_argument(parser):

@@ -3,26 +3,37 @@
 A model is a physics statement and nothing more: it never iterates. For species
 a, b = 1..n with masses m_a it provides
 
-    S_ab(t)   = sign_ab * prod_x f_x(t)^{n_ab(x)}        (block content), or a user callable
+    S_ab(t)   = S_ab(0) prod_k (B_k(t) / B_k(0))^{n_ab(k)}     (block content), or a user callable
     phi_ab(t) = -i d/dt log S_ab(t)
 
-the statistics of the pseudo-energies (fermionic for every built-in model) and the
-distance of the kernels' nearest singularity from the real axis, which sets the grid
-spacing the trapezoid rule needs.
+over full blocks f_x and half-blocks <x> (`tba.models.blocks`; every block is -1 at t = 0, so
+S_ab(0) = +-1 is kept separately as ``sign``), the statistics of the pseudo-energies (fermionic
+for every built-in model), which species are each other's antiparticles, the conserved charges
+that CDD factors may carry (`tba.models.charges`), and the distance of the kernels' nearest
+singularity from the real axis, which sets the grid spacing the trapezoid rule needs.
+
+Crossing, S_{a-bar b}(t) = S_ab(i pi - t), is checked for block content: f_x is invariant under
+t -> i pi - t and <x> -> -<1-x>, so the half-block content of S_{a-bar b} must be that of S_ab with
+x -> 1 - x, and S_{a-bar b}(0) = S_ab(0) (-1)^{N_ab} with N_ab the number of half-blocks (f_x
+counting as two). A self-conjugate pair therefore has full blocks only (<x><1-x> = -f_x).
 """
 
 from dataclasses import dataclass, field
-from fractions import Fraction
-from typing import Callable, Mapping, Optional
+from typing import Callable, Optional
 
 import numpy as np
 
 from tba.models import blocks as _blocks
+from tba.models.charges import ExplicitCharges, OddSpins, SpinRule
 
 STATISTICS = ("fermion", "boson")
+#: rapidities at which a user's kernel callable is probed when the model is built
+_PROBE = np.array([-3.7, -1.1, -0.2, 0.0, 0.45, 1.9, 5.3])
 
 
 def _finite_positive(name, value):
+    if isinstance(value, bool):
+        raise TypeError(f"{name} must be a real number, got {value!r}")
     try:
         v = float(value)
     except (TypeError, ValueError):
@@ -32,6 +43,30 @@ def _finite_positive(name, value):
     return v
 
 
+def _multiplicity(where, x, mult):
+    if isinstance(mult, bool) or not isinstance(mult, (int, np.integer, float, np.floating)):
+        raise TypeError(f"{where}: multiplicity of x={x} must be an integer, got {mult!r}")
+    if int(mult) != mult:
+        raise ValueError(f"{where}: multiplicity of x={x} must be an integer, got {mult!r}")
+    return int(mult)
+
+
+def _content(where, cell):
+    """Canonical block content of one S_ab: full blocks f_x (x <= 1/2) as far as the half-blocks
+    pair up, the rest as half-blocks."""
+    if not hasattr(cell, "items"):
+        raise TypeError(f"{where}: expected a dict {{x: multiplicity}}, got {type(cell).__name__}")
+    content = {}
+    for key, mult in cell.items():
+        try:
+            k = _blocks.block_key(key)
+        except (TypeError, ValueError) as exc:
+            raise type(exc)(f"{where}: {exc}") from None
+        content[k] = content.get(k, 0) + _multiplicity(where, key, mult)
+    paired = _blocks.pair_half_blocks(_blocks.half_content(content))
+    return dict(sorted(paired.items(), key=lambda kv: _blocks.key_order(kv[0])))
+
+
 @dataclass(frozen=True, eq=False)
 class DiagonalModel:
     """An integrable theory with diagonal (reflectionless) two-body scattering.
@@ -39,44 +74,62 @@ class DiagonalModel:
     Parameters
     ----------
     name : str
-        Short identifier, used in output files.
+        Short identifier, used in output files (the name ``--model`` takes).
     masses : sequence of float
         Particle masses; the lightest sets the unit (it should be 1).
-    blocks : n x n nested sequence of {x: multiplicity}, optional
-        Block content of S_ab = sign_ab prod_x f_x^{n_ab(x)}; x in (0, 1), integer
-        multiplicities (negative ones allowed, e.g. sinh-Gordon is 1 / f_(B/2)).
+    blocks : n x n nested sequence of {key: multiplicity}, optional
+        Block content of S_ab: keys are numbers x in (0, 1) for f_x and `HalfBlock` (or
+        strings ``"<x>"``) for half-blocks; integer multiplicities (negative ones allowed, e.g.
+        sinh-Gordon is 1 / f_(B/2)). Stored in canonical form: <x><1-x> pairs become f_x.
     kernel_function : callable, optional
         Instead of ``blocks``: ``kernel_function(t)`` returning phi_ab(t) with shape
         (n, n) + t.shape. Requires ``pole_distance``.
-    pole_distance : float, optional
-        Distance from the real axis of the nearest singularity of any phi_ab. Computed
-        from the blocks when they are given; required with ``kernel_function``.
+    pole_distance : float or n x n array, optional
+        Distance from the real axis of the nearest singularity of phi_ab (one number for all
+        pairs, or one per pair). Computed from the blocks when they are given; required with
+        ``kernel_function``. After construction ``pole_distance`` is the smallest one and
+        ``pole_distances`` the n x n array.
     sign : n x n array of +-1, optional
         S_ab(0). Default -1 for every pair (true of every block, f_x(0) = -1, and of
-        the free fermion). Only the excited-state quantisation depends on it.
+        the free fermion). Only excited-state quantisation and `s_matrix` depend on it.
     statistics : "fermion" or "boson"
     coupling : float or None
-        The model's own coupling (sinh-Gordon B), recorded in output files.
+        The model's own parameter (sinh-Gordon B, sine-Gordon N), recorded in output files.
     bulk_energy_density : float or None
         The vacuum energy per unit length that the TBA energy E_0 leaves out (E = E_0 + f R),
         where it is known; None otherwise.
     description : str
+    labels : sequence of str, optional
+        A name per species (default "1", "2", ...).
+    antiparticle : sequence of int, optional
+        ``antiparticle[a]`` is the index of the antiparticle of species a (default: every
+        species is its own antiparticle).
+    charge_rule : `tba.models.charges.SpinRule`, optional
+        The conserved charges CDD factors of spin s > 1 may carry. Default: every odd spin with
+        q_s = 1 for one species, spin 1 only for several.
     """
 
     name: str
     masses: np.ndarray
     blocks: Optional[tuple] = None
     kernel_function: Optional[Callable] = None
-    pole_distance: float = np.inf
+    pole_distance: object = np.inf
     sign: Optional[np.ndarray] = None
     statistics: str = "fermion"
     coupling: Optional[float] = None
     bulk_energy_density: Optional[float] = None
     description: str = ""
+    labels: Optional[tuple] = None
+    antiparticle: Optional[tuple] = None
+    charge_rule: Optional[SpinRule] = None
+    pole_distances: np.ndarray = field(default=None, init=False, repr=False)
     _kernel_cache: dict = field(default_factory=dict, repr=False, compare=False)
 
     def __post_init__(self):
-        masses = np.atleast_1d(np.asarray(self.masses, dtype=float))
+        try:
+            masses = np.atleast_1d(np.asarray(self.masses, dtype=float))
+        except (TypeError, ValueError):
+            raise TypeError(f"masses must be a sequence of real numbers, got {self.masses!r}") from None
         if masses.ndim != 1 or masses.size == 0:
             raise ValueError("masses must be a non-empty 1-d sequence")
         for m in masses:
@@ -85,59 +138,157 @@ class DiagonalModel:
         object.__setattr__(self, "masses", masses)
         if self.statistics not in STATISTICS:
             raise ValueError(f"statistics must be one of {STATISTICS}, got {self.statistics!r}")
+        self._set_species(n)
         if (self.blocks is None) == (self.kernel_function is None):
             raise ValueError("give exactly one of blocks and kernel_function")
+        sign = -np.ones((n, n)) if self.sign is None else np.asarray(self.sign, dtype=float)
+        if sign.shape != (n, n) or not np.all(np.abs(sign) == 1) or not np.array_equal(sign, sign.T):
+            raise ValueError(f"sign must be a symmetric {n} x {n} array of +1/-1")
+        object.__setattr__(self, "sign", sign)
         if self.blocks is not None:
-            rows = []
-            if len(self.blocks) != n or any(len(r) != n for r in self.blocks):
-                raise ValueError(f"blocks must be an {n} x {n} nested sequence of dicts")
-            for a in range(n):
-                row = []
-                for b in range(n):
-                    content = {}
-                    for x, mult in dict(self.blocks[a][b]).items():
-                        if int(mult) != mult:
-                            raise ValueError(f"blocks[{a}][{b}]: multiplicity of x={x} must be an integer")
-                        key = _blocks.normalise_x(x)
-                        content[key] = content.get(key, 0) + int(mult)
-                    row.append({x: k for x, k in content.items() if k != 0})
-                rows.append(tuple(row))
-            for a in range(n):
-                for b in range(n):
-                    if rows[a][b] != rows[b][a]:
-                        raise ValueError(f"blocks must be symmetric: S_{a+1}{b+1} != S_{b+1}{a+1}")
-            object.__setattr__(self, "blocks", tuple(rows))
-            xs = [x for r in rows for c in r for x in c]
-            object.__setattr__(self, "pole_distance",
-                               min((_blocks.pole_distance(x) for x in xs), default=np.inf))
+            self._set_blocks(n)
         else:
             if not callable(self.kernel_function):
                 raise TypeError("kernel_function must be callable")
-            _finite_positive("pole_distance", self.pole_distance)
-        sign = -np.ones((n, n)) if self.sign is None else np.asarray(self.sign, dtype=float)
-        if sign.shape != (n, n) or not np.all(np.abs(sign) == 1):
-            raise ValueError(f"sign must be an {n} x {n} array of +1/-1")
-        object.__setattr__(self, "sign", sign)
+            self._set_pole_distances(n, self.pole_distance)
+            self.kernel(_PROBE)  # shape and finiteness, now rather than in the middle of a solve
+        rule = self.charge_rule
+        if rule is None:
+            rule = OddSpins(1) if n == 1 else ExplicitCharges({}, n)
+        elif not isinstance(rule, SpinRule):
+            raise TypeError(f"charge_rule must be a SpinRule, got {type(rule).__name__}")
+        object.__setattr__(self, "charge_rule", rule)
+
+    def _set_species(self, n):
+        labels = tuple(str(a + 1) for a in range(n)) if self.labels is None else tuple(map(str, self.labels))
+        if len(labels) != n:
+            raise ValueError(f"labels: expected {n} labels, got {len(labels)}")
+        object.__setattr__(self, "labels", labels)
+        if self.antiparticle is None:
+            conj = tuple(range(n))
+        else:
+            try:
+                conj = tuple(int(c) for c in self.antiparticle)
+            except (TypeError, ValueError):
+                raise TypeError(f"antiparticle must be a sequence of species indices, got "
+                                f"{self.antiparticle!r}") from None
+            if len(conj) != n or any(not 0 <= c < n for c in conj):
+                raise ValueError(f"antiparticle must list {n} species indices in 0..{n - 1}")
+            for a, c in enumerate(conj):
+                if conj[c] != a:
+                    raise ValueError(f"antiparticle: the antiparticle of species {c} must be {a}")
+                if self.masses[c] != self.masses[a]:
+                    raise ValueError(f"antiparticle: species {a} and {c} have different masses")
+        object.__setattr__(self, "antiparticle", conj)
+
+    def _set_blocks(self, n):
+        rows = self.blocks
+        try:
+            ok = len(rows) == n and all(len(r) == n for r in rows)
+        except TypeError:
+            ok = False
+        if not ok:
+            raise ValueError(f"blocks must be an {n} x {n} nested sequence of dicts")
+        content = tuple(tuple(_content(f"blocks[{a}][{b}]", rows[a][b]) for b in range(n))
+                        for a in range(n))
+        for a in range(n):
+            for b in range(n):
+                if content[a][b] != content[b][a]:
+                    raise ValueError(f"blocks must be symmetric: S_{a+1}{b+1} != S_{b+1}{a+1}")
+        self._check_crossing(content)
+        object.__setattr__(self, "blocks", content)
+        dist = np.array([[min((_blocks.key_pole_distance(k) for k in cell), default=np.inf)
+                          for cell in row] for row in content])
+        self._set_pole_distances(n, dist)
+
+    def _check_crossing(self, content):
+        conj = self.antiparticle
+        n = len(content)
+        full = lambda cell: {k: m for k, m in cell.items() if not isinstance(k, _blocks.HalfBlock)}  # noqa: E731
+        for a in range(n):
+            for b in range(n):
+                cell, other = content[a][b], content[conj[a]][b]
+                crossed = {1 - k.x: m for k, m in cell.items() if isinstance(k, _blocks.HalfBlock)}
+                halves = {k.x: m for k, m in other.items() if isinstance(k, _blocks.HalfBlock)}
+                if full(cell) != full(other) or crossed != halves:
+                    what = ("species are their own antiparticles unless antiparticle= says "
+                            "otherwise, so half-blocks <x> must come with <1-x>"
+                            if conj[a] == a else f"S_{conj[a]+1}{b+1} must be S_{a+1}{b+1} with x -> 1 - x")
+                    raise ValueError(f"blocks: S_{a+1}{b+1} violates crossing S_(a-bar)b(t) = "
+                                     f"S_ab(i pi - t): {what}")
+                parity = (-1) ** int(sum(halves.values()))  # f_x counts twice: even
+                if self.sign[conj[a], b] != self.sign[a, b] * parity:
+                    raise ValueError(f"sign: crossing requires S_{conj[a]+1}{b+1}(0) = "
+                                     f"{int(self.sign[a, b] * parity):+d} given S_{a+1}{b+1}(0) = "
+                                     f"{int(self.sign[a, b]):+d}")
+
+    def _set_pole_distances(self, n, value):
+        if np.ndim(value) == 0:
+            d = np.full((n, n), _finite_positive("pole_distance", value) if self.blocks is None
+                        else float(value))
+        else:
+            try:
+                d = np.asarray(value, dtype=float)
+            except (TypeError, ValueError):
+                raise TypeError("pole_distance must be a number or an n x n array of numbers") from None
+            if d.shape != (n, n):
+                raise ValueError(f"pole_distance must be a number or an {n} x {n} array")
+            for v in d.ravel():
+                if self.blocks is None:
+                    _finite_positive("pole_distance", v)
+            if not np.array_equal(d, d.T):
+                raise ValueError("pole_distance must be symmetric")
+        d.setflags(write=False)
+        object.__setattr__(self, "pole_distances", d)
+        object.__setattr__(self, "pole_distance", float(d.min()))
 
     @property
     def n_species(self):
         return self.masses.size
 
+    # -- kernels and S-matrices --------------------------------------------------------------
     def kernel(self, t):
         """phi_ab(t), shape (n, n) + t.shape."""
         t = np.asarray(t, dtype=float)
         n = self.n_species
         if self.kernel_function is not None:
-            out = np.asarray(self.kernel_function(t), dtype=float)
+            try:
+                out = np.asarray(self.kernel_function(t), dtype=float)
+            except (TypeError, ValueError) as exc:
+                raise ValueError(f"kernel: the callable failed on a float array: {exc}") from None
             if out.shape != (n, n) + t.shape:
-                raise ValueError(f"kernel_function returned shape {out.shape}, expected {(n, n) + t.shape}")
+                raise ValueError(f"kernel: the callable returned shape {out.shape}, expected "
+                                 f"{(n, n) + t.shape}")
+            bad = ~np.isfinite(out)
+            if bad.any():
+                where = t[tuple(np.nonzero(bad)[2:])][0] if t.ndim else float(t)
+                raise ValueError(f"kernel: the callable returned a non-finite value "
+                                 f"({out[bad][0]}) at t = {where:.6g}")
             return out
         # each distinct block once, combined with the multiplicity matrix of every pair
-        xs = sorted({x for row in self.blocks for c in row for x in c}, key=float)
+        keys = sorted({k for row in self.blocks for c in row for k in c}, key=_blocks.key_order)
         out = np.zeros((n, n) + t.shape)
-        for x in xs:
-            mult = np.array([[c.get(x, 0) for c in row] for row in self.blocks], dtype=float)
-            out += mult.reshape((n, n) + (1,) * t.ndim) * _blocks.block_kernel(x, t)
+        for key in keys:
+            mult = np.array([[c.get(key, 0) for c in row] for row in self.blocks], dtype=float)
+            out += mult.reshape((n, n) + (1,) * t.ndim) * _blocks.key_kernel(key, t)
+        return out
+
+    @property
+    def kernel_integrals(self):
+        """int phi_ab(t) dt, n x n (exact for blocks, adaptive quadrature for a kernel callable)."""
+        if self.blocks is not None:
+            return np.array([[sum(m * _blocks.key_integral(k) for k, m in cell.items())
+                              for cell in row] for row in self.blocks], dtype=float)
+        from scipy import integrate  # only for kernel callables: keeps import tba light
+
+        n = self.n_species
+        out = np.empty((n, n))
+        for a in range(n):
+            for b in range(a, n):
+                value = sum(integrate.quad(lambda t: float(self.kernel(np.array([t]))[a, b, 0]),
+                                           lo, hi, limit=400)[0]
+                            for lo, hi in ((-np.inf, 0.0), (0.0, np.inf)))
+                out[a, b] = out[b, a] = value
         return out
 
     @property
@@ -163,10 +314,10 @@ class DiagonalModel:
         return out
 
     def s_matrix(self, t):
-        """S_ab(t) for block models, shape (n, n) + t.shape (complex)."""
+        """S_ab(t) for block models, shape (n, n) + t.shape (complex); t may be complex."""
         if self.blocks is None:
             raise NotImplementedError("s_matrix is only available for models given by blocks")
-        t = np.asarray(t, dtype=float)
+        t = np.asarray(t)
         n = self.n_species
         out = np.ones((n, n) + t.shape, dtype=complex)
         for a in range(n):
@@ -174,9 +325,25 @@ class DiagonalModel:
                 nblocks = sum(abs(k) for k in self.blocks[a][b].values())
                 # each block is -1 at t = 0; sign_ab fixes S_ab(0) overall
                 out[a, b] = self.sign[a, b] * (-1) ** nblocks
-                for x, mult in self.blocks[a][b].items():
-                    out[a, b] *= _blocks.block_s(x, t) ** mult
+                for key, mult in self.blocks[a][b].items():
+                    out[a, b] *= _blocks.key_s(key, t) ** mult
         return out
+
+    # -- conserved charges ---------------------------------------------------------------------
+    def charges(self, spin):
+        """q_s^a for every species: the masses for s = 1; for s > 1 the eigenvalues of the
+        spin-s conserved charge (`tba.models.charges`: built-in rules normalise them to 1 on
+        the lightest species that carries the charge).
+
+        Raises ValueError naming the allowed spins when the model has no such charge."""
+        if isinstance(spin, bool) or not isinstance(spin, (int, np.integer)) or spin < 1:
+            raise ValueError(f"spin must be a positive integer, got {spin!r}")
+        if spin == 1:
+            return self.masses.copy()
+        why = self.charge_rule.refusal(int(spin))
+        if why is not None:
+            raise ValueError(f"spin {spin}: {self.name} has no spin-{spin} charge; {why}")
+        return np.array(self.charge_rule.vector(int(spin)), dtype=float)
 
     # -- what excited states with real rapidities need (single species, block models) ----
     def _block_sum(self, fn, u):
@@ -223,7 +390,32 @@ class DiagonalModel:
         """A JSON-ready summary written into output files."""
         d = {"name": self.name, "masses": self.masses.tolist(), "statistics": self.statistics,
              "pole_distance": float(self.pole_distance), "coupling": self.coupling,
-             "bulk_energy_density": self.bulk_energy_density}
+             "bulk_energy_density": self.bulk_energy_density, "labels": list(self.labels),
+             "antiparticle": list(self.antiparticle), "spins": self.charge_rule.describe()}
         if self.blocks is not None:
             d["blocks"] = [[{str(x): k for x, k in c.items()} for c in row] for row in self.blocks]
+            d["sign"] = self.sign.astype(int).tolist()
         return d
+
+
+def kernel_tails(blocks):
+    """C_ab in phi_ab(t) ~ -C_ab e^{-|t|} at large |t|, from block content (n x n)."""
+    return np.array([[sum(m * _blocks.block_tail(k) for k, m in cell.items()) for cell in row]
+                     for row in blocks], dtype=float)
+
+
+def bulk_energy_density(masses, blocks):
+    """The bulk energy density the TBA leaves out, from the kernels' tails.
+
+    When every kernel decays like phi_ab(t) ~ -C_ab e^{-|t|} with C_ab = kappa m_a m_b (the pole
+    of phit_ab(k) at k = +-i has a residue proportional to m_a m_b), the ground-state TBA energy
+    at small R contains -f R with f = -1 / (2 kappa), i.e. f = -m_1^2 / (2 C_11)
+    (Al.B. Zamolodchikov, Nucl. Phys. B342 (1990) 695 for Lee-Yang, f = -m^2 / (4 sqrt 3); from
+    memory). Returns None when the tails vanish (free particles: f R is not linear in R) or are
+    not proportional to m_a m_b.
+    """
+    masses = np.asarray(masses, dtype=float)
+    kappa = kernel_tails(blocks) / np.outer(masses, masses)
+    if not np.all(kappa > 0) or np.ptp(kappa) > 1e-9 * kappa.max():
+        return None
+    return float(-1.0 / (2.0 * kappa[0, 0]))

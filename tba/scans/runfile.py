@@ -64,7 +64,7 @@ import numpy as np
 
 from tba.solvers.ground import MIN_TOL
 from tba.models.cdd import CDD
-from tba.models import MODELS, MODELS_WITH_COUPLING, get_model
+from tba.models.catalog import ModelError, canonical_name, get_model, model_label
 
 SWEEPS = ("descending", "ascending")
 SPACINGS = ("linear", "log")
@@ -185,7 +185,7 @@ class ModelSpec:
     @property
     def label(self):
         """Coordinate label in output files, e.g. ``sinh-gordon B=0.6``."""
-        return self.name if self.coupling is None else f"{self.name} B={self.coupling!r}"
+        return model_label(self.name, self.coupling)
 
     def build(self):
         return get_model(self.name, self.coupling)
@@ -445,17 +445,15 @@ def _models(value):
         key = f"models[{i}]"
         t = _Table(key, item)
         name = _string(t.key("name"), t.get("name"))
-        if name not in MODELS:
-            raise RunFileError(t.key("name"), f"unknown model {name!r} (choose from {', '.join(MODELS)})")
         coupling = t.get("coupling", None)
-        if name in MODELS_WITH_COUPLING:
-            if coupling is None:
-                raise RunFileError(t.key("coupling"), f"missing (required for {name})")
+        if coupling is not None:
             coupling = _number(t.key("coupling"), coupling)
-            if not 0 < coupling < 2:
-                raise RunFileError(t.key("coupling"), f"B must lie in (0, 2), got {coupling!r}")
-        elif coupling is not None:
-            raise RunFileError(t.key("coupling"), f"model {name} has no coupling")
+        try:
+            get_model(name, coupling)  # checks the name and the coupling
+        except ModelError as exc:
+            raise RunFileError(t.key("name" if exc.argument == "model" else "coupling"),
+                               exc.reason) from None
+        name = canonical_name(name)
         t.finish()
         spec = ModelSpec(name, coupling)
         if spec in specs:
@@ -480,19 +478,17 @@ def _deformation(value, models):
         try:
             spin = int(spin_text)
         except ValueError:
-            raise RunFileError(key, "spin must be an odd integer >= 3") from None
-        if spin < 3 or spin % 2 == 0 or str(spin) != spin_text.strip():
-            raise RunFileError(key, f"spin must be an odd integer >= 3, got {spin_text!r}")
+            raise RunFileError(key, "spin must be an integer >= 2") from None
+        if spin < 2 or str(spin) != spin_text.strip():
+            raise RunFileError(key, f"spin must be an integer >= 2 (spin 1 is alphas), got {spin_text!r}")
         a = _number(key, a)
         if a != 0.0:
             higher[spin] = a
-    if higher:
         for i, m in enumerate(models):
-            n = m.build().n_species
-            if n != 1:
-                raise RunFileError("deformation.higher_spin",
-                                   f"higher-spin CDD factors need single-species models; "
-                                   f"models[{i}] ({m.name}) has {n} species")
+            try:
+                CDD({spin: 1.0}).check(m.build())
+            except ValueError as exc:
+                raise RunFileError(key, str(exc).split(": ", 1)[-1]) from None
     t.finish()
     return alphas, tuple(sorted(higher.items()))
 
