@@ -306,11 +306,12 @@ class DiagonalModel:
             raise NotImplementedError("kernel_transform: not known for a kernel callable")
         k = np.asarray(k, dtype=float)
         n = self.n_species
-        xs = sorted({x for row in self.blocks for c in row for x in c}, key=float)
+        keys = sorted({key for row in self.blocks for c in row for key in c},
+                      key=_blocks.key_order)
         out = np.zeros((n, n) + k.shape)
-        for x in xs:
-            mult = np.array([[c.get(x, 0) for c in row] for row in self.blocks], dtype=float)
-            out += mult.reshape((n, n) + (1,) * k.ndim) * _blocks.block_transform(x, k)
+        for key in keys:
+            mult = np.array([[c.get(key, 0) for c in row] for row in self.blocks], dtype=float)
+            out += mult.reshape((n, n) + (1,) * k.ndim) * _blocks.key_transform(key, k)
         return out
 
     def s_matrix(self, t):
