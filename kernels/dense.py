@@ -301,13 +301,19 @@ def woodbury(A, CVd, Z, cap, b):
 @numba.njit(cache=True, nogil=True)
 def woodbury_transposed(A, CVd, Z, cap, b):
     """J^{-T} b with J^{-T} = A^T - A^T CVd^T cap^{-T} Z^T."""
+    M = b.size
     x = b.copy()
     r = CVd.shape[0]
     if r:
-        w = _small_solve(np.ascontiguousarray(cap.T), Z.T @ b)
+        zb = np.zeros(r)
         for k in range(r):
-            x -= w[k] * CVd[k]
-    out = np.empty(b.size)
+            for i in range(M):
+                zb[k] += Z[i, k] * b[i]
+        w = _small_solve(np.ascontiguousarray(cap.T), zb)
+        for k in range(r):
+            for i in range(M):
+                x[i] -= w[k] * CVd[k, i]
+    out = np.empty(M)
     _mtv(A, x, out)
     return out
 
@@ -619,3 +625,41 @@ def solve_j0(K, dL, A, b, trivial, maxiter):
             return x, new <= 1e-10 * max(np.max(np.abs(x)), 1e-300), it + 1
         change = new
     return x, change <= 1e-10 * max(np.max(np.abs(x)), 1e-300), maxiter
+
+
+@numba.njit(cache=True, nogil=True)
+def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e_start, sign,
+                tol, maxiter, A0, have_A, trivial, n, N):
+    """One grid level of a point in one call: the start (the level's own history extrapolated
+    in R, or ``e_start``), `newton`, `summary`, and the level's new history (this point in
+    front of up to two older radii).
+
+    Returns (e, L, dL, iterations, residual, iteration_error, status, fold, rounding, A,
+    dressing, S, E, P, tail, history_radii, history_g)."""
+    M = drive.size
+    nu = R * drive
+    if use_history:
+        e0 = nu + extrapolate(hist_radii, hist_g, R)
+    else:
+        e0 = e_start
+    e, L, dL, its, res, dE, status, fold, rounding, A, _ = newton(
+        K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial)
+    dressing, S, E, P, tail = summary(K, L, e, wE, wP, V, n, N, trivial)
+    keep = 0
+    if use_history:
+        for a in range(hist_radii.size):
+            if hist_radii[a] != R and keep < 2:
+                keep += 1
+    radii = np.empty(keep + 1)
+    g = np.empty((keep + 1, M))
+    radii[0] = R
+    g[0] = e - nu
+    k = 1
+    if use_history:
+        for a in range(hist_radii.size):
+            if hist_radii[a] != R and k <= keep:
+                radii[k] = hist_radii[a]
+                g[k] = hist_g[a]
+                k += 1
+    return (e, L, dL, its, res, dE, status, fold, rounding, A, dressing, S, E, P, tail,
+            radii, g)

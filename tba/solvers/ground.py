@@ -329,7 +329,7 @@ class State:
     fold_indicator: float
     residual: float
     iterations: int
-    disc: object = field(default=None, repr=False)
+    _disc: object = field(default=None, repr=False)
     jac: object = field(default=None, repr=False)
     L: np.ndarray = field(default=None, repr=False)
     dL: np.ndarray = field(default=None, repr=False)
@@ -341,6 +341,14 @@ class State:
     history: tuple = field(default=None, repr=False)
     #: every grid level of this point, coarsest first (each level's own warm starts)
     levels: list = field(default=None, repr=False)
+    model: object = field(default=None, repr=False)
+
+    @property
+    def disc(self):
+        """The discretised equations of this point (built on first use)."""
+        if self._disc is None:
+            self._disc = Discretization(self.model, self.deformation, self.radius, self.grid)
+        return self._disc
 
     def jacobian(self):
         if self.jac is None:
@@ -490,7 +498,7 @@ def _state(disc, nt, fold=None):
                  dressing=dressing, scalars=S, energy=E, momentum=P,
                  iteration_error=nt.last_dE, rounding_error=float(rounding), tail_error=tail,
                  fold_indicator=float(fold), residual=nt.residual, iterations=nt.iterations,
-                 disc=disc, jac=nt.jac, L=L, dL=nt.dL, A=nt.A)
+                 _disc=disc, jac=nt.jac, L=L, dL=nt.dL, A=nt.A, model=disc.model)
 
 
 # -- warm starts ---------------------------------------------------------------------------------
@@ -516,6 +524,65 @@ def _start(disc, seed, coarse):
     if seed is not None:
         return disc.initial_guess(seed), None
     return disc.nu.copy(), None
+
+
+_NO_HISTORY = (np.zeros(0), np.zeros((0, 1)))
+
+
+@dataclass
+class _Failure:
+    """Why Newton on a grid did not give a solution (the fields of `_Newton` callers read)."""
+
+    message: str
+    iterations: int
+    ok: bool = False
+
+
+def _solve_on(model, deformation, radius, grid, tol, seed, coarse):
+    """Newton on one grid from the best start (`_start`): (State, outcome) with State None if
+    Newton failed. Dense systems take one compiled call for start, iteration, summary and the
+    level's history (`kernels.dense.solve_level`): the path of every point of a scan."""
+    ops = operators(model, grid)
+    if not ops.dense:
+        disc = Discretization(model, deformation, radius, grid)
+        e0, A = _start(disc, seed, coarse)
+        nt = newton(disc, e0, tol, A=A)
+        if not nt.ok:
+            return None, nt
+        state = _state(disc, nt)
+        _link(state, seed)
+        return state, nt
+    U, V, c, Uf, Vf = ops.terms(deformation)
+    n, N = ops.n, ops.N
+    M = n * N
+    same = seed is not None and seed.grid == grid
+    A = seed.A if same and seed.A is not None and seed.A.shape == (M, M) else None
+    use_history = same and seed.history is not None and seed.deformation == deformation
+    disc = None
+    if use_history:
+        hist_r, hist_g = seed.history
+        e_start = _NO_HISTORY[0]
+    else:
+        hist_r, hist_g = np.zeros(0), np.zeros((0, M))
+        disc = Discretization(model, deformation, radius, grid)
+        e_start = np.ascontiguousarray(_start(disc, seed, coarse)[0].reshape(-1))
+    sign = 1 if model.statistics == "fermion" else -1
+    K = ops.matrix if not ops.trivial else _NO_MATRIX
+    (e, L, dL, its, res, dE, status, fold, rounding, A_out, dressing, S, E, P, tail, h_r,
+     h_g) = _dense.solve_level(K, ops.drive_flat, Uf, Vf, c, ops.wE_flat, ops.wP_flat, radius,
+                               hist_r, hist_g, use_history, e_start, sign, float(tol), 60,
+                               A if A is not None else _NO_MATRIX, A is not None, ops.trivial,
+                               n, N)
+    if status != _dense.CONVERGED:
+        return None, _Failure(_DENSE_MESSAGES[status].format(maxiter=60), int(its))
+    shape = (n, N)
+    state = State(grid=grid, radius=radius, deformation=deformation, eps=e.reshape(shape),
+                  dressing=dressing.reshape(shape), scalars=S, energy=float(E),
+                  momentum=float(P), iteration_error=float(dE), rounding_error=float(rounding),
+                  tail_error=float(tail), fold_indicator=float(fold), residual=float(res),
+                  iterations=int(its), _disc=disc, L=L.reshape(shape), dL=dL.reshape(shape),
+                  A=A_out, history=(h_r, h_g), model=model)
+    return state, state
 
 
 def _link(state, seed):
@@ -673,7 +740,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
                 coupling=model.coupling)
     prev = None
     if isinstance(start, SolveResult) and start.converged and isinstance(start._state, State) \
-            and start._state.disc is not None and start._state.disc.model is model:
+            and start._state.model is model:
         prev = start._state
     prev_levels = (prev.levels or [prev]) if prev is not None else []
     r_eff = _effective_radius(prev, radius, deformation) if prev is not None else None
@@ -684,17 +751,16 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
     verdicts = []
     while True:
         grid = _grid(model, deformation, r_eff, tol, level, cutoff_extra)
-        disc = Discretization(model, deformation, radius, grid)
         seed = prev_levels[level] if level < len(prev_levels) else (prev_levels[-1] if prev_levels else None)
         coarse = states[-1] if states else None
-        e0, A = _start(disc, seed, coarse)
-        nt = newton(disc, e0, tol, A=A)
+        state, nt = _solve_on(model, deformation, radius, grid, tol, seed, coarse)
         iterations += nt.iterations
         if deformation.is_zero:
             fold = 1.0
         else:
-            fold = nt.fold_indicator if nt.ok else np.nan
-        if not (nt.ok and fold > 0) and not deformation.is_zero:
+            fold = state.fold_indicator if state is not None else np.nan
+        if not (state is not None and fold > 0) and not deformation.is_zero:
+            state = None
             nt, why = _reach(model, deformation, radius, grid, tol, seed)
             if nt is None:
                 if isinstance(why, _Verdict):
@@ -716,17 +782,17 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
             if verdicts:  # a coarser grid folded, this one reaches the point: undecided
                 return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                    message=_too_close(verdicts[-1], [None]))
-            fold = nt.fold_indicator
-        if not nt.ok:
+            state = _state(nt.disc, nt, nt.fold_indicator)
+            _link(state, seed)
+        if state is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=nt.message)
-        state = _state(disc, nt, fold)
         scale = abs(state.energy)
         if state.tail_error > 1e-3 * tol * scale and cutoff_extra < 60:
             cutoff_extra += 4 + math.log(state.tail_error / (1e-3 * tol * scale))
+            state.history = None
             prev_levels = prev_levels[:level] + [state]
             continue
-        _link(state, seed)
         state.coarse = states[-1] if states else None
         if state.coarse is not None:
             state.coarse.coarse = None  # keep two levels: enough for derivative errors
