@@ -103,13 +103,13 @@ def shard_job(cluster, d, env):
             "submit_to_start_s": min(latency), "job_run_s": min(inside)}
 
 
-def dask_worker(cluster_env):
+def dask_worker(cluster_env, log_dir):
     from dask_jobqueue import SLURMCluster
     from distributed import Client
 
     os.environ.update(cluster_env)
-    with SLURMCluster(queue="compute", cores=1, processes=1, memory="1GB",
-                      walltime="00:10:00") as cluster, Client(cluster) as client:
+    with SLURMCluster(queue="compute", cores=1, processes=1, memory="1GB", walltime="00:10:00",
+                      log_directory=str(log_dir)) as cluster, Client(cluster) as client:
         t0 = time.perf_counter()
         cluster.scale(jobs=1)
         client.wait_for_workers(1, timeout=120)
@@ -137,7 +137,7 @@ def main():
             (tmp / "jobs").mkdir()
             results["array"] = array_of_empty_tasks(cluster, tmp / "jobs")
             results["shard_job"] = shard_job(cluster, tmp / "jobs", env)
-            results["dask"] = dask_worker(env)
+            results["dask"] = dask_worker(env, tmp / "jobs")
         finally:
             cluster.stop()
     print(json.dumps(results, indent=1))

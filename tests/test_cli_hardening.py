@@ -227,6 +227,20 @@ def test_every_printing_command_into_a_closed_pipe(command, store, tmp_path):
     assert "Traceback" not in err and "BrokenPipe" not in err and "Exception ignored" not in err, err
 
 
+@pytest.mark.skipif(not Path("/dev/full").exists(), reason="needs /dev/full (Linux)")
+@pytest.mark.parametrize("command", [["solve", "--model", "free-fermion", "--radius", "1"],
+                                     ["export", "--csv", "STORE"]])
+def test_a_full_disk_is_one_line(command, store):
+    # /dev/full fails every write with ENOSPC: the disk filled up after the checks passed
+    args = [str(store) if a == "STORE" else a for a in command]
+    with open("/dev/full", "w") as full:
+        proc = subprocess.run([sys.executable, "-m", "tba", *args], stdout=full,
+                              stderr=subprocess.PIPE, text=True, cwd=REPO, timeout=300,
+                              env={**os.environ, "PYTHONPATH": str(REPO)})
+    assert proc.returncode == 2 and proc.stderr.count("\n") == 1, proc.stderr
+    assert "No space left on device" in proc.stderr and "Traceback" not in proc.stderr
+
+
 def test_export_into_a_shell_pipeline_with_head(store):
     # the example through a real shell: tba export --csv F.h5 | head
     script = f'"{sys.executable}" -m tba export --csv "{store}" | head -3; echo "status ${{PIPESTATUS[0]}}" >&2'

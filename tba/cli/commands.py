@@ -389,27 +389,35 @@ def build_parser():
 
 
 def main(argv=None):
-    """The ``tba`` command: exit code 0, 2 for bad input (one line on stderr), 1 when a
-    cluster gave up on tasks, 130 after Ctrl-C, 141 when the reader of a pipe went away."""
+    """The ``tba`` command: exit code 0, 2 for bad input or an output that cannot be written
+    (one line on stderr), 1 when a cluster gave up on tasks, 130 after Ctrl-C, 141 when the
+    reader of a pipe went away."""
     try:
         return _main(argv)
     except BrokenPipeError:
-        return _pipe_closed()
+        # stdout (or stderr) is a pipe whose reader has gone (tba export --csv F.h5 | head):
+        # stop quietly, as a program killed by SIGPIPE would, with the status a shell shows
+        # for one. What was computed is saved already (stores are written chunk by chunk).
+        _detach_stdout()
+        return 128 + signal.SIGPIPE
+    except OSError as exc:
+        # an output that failed after the checks passed (a full disk, /dev/full, a file
+        # removed meanwhile): one line naming it where the error does
+        _detach_stdout()
+        what = exc.filename if exc.filename is not None else "input/output failed"
+        print(f"tba: error: {what}: {' '.join(str(exc.strerror or exc).split())}", file=sys.stderr)
+        return 2
 
 
-def _pipe_closed():
-    """stdout (or stderr) is a pipe whose reader has gone (``tba export --csv F.h5 | head``):
-    stop quietly, as a program killed by SIGPIPE would, with the status a shell shows for
-    one, 128 + SIGPIPE = 141. What was computed is saved already (stores are written chunk by
-    chunk); stdout now points at /dev/null so that Python's final flush of what is left in
-    its buffer cannot fail a second time."""
+def _detach_stdout():
+    """Point stdout at /dev/null, so that Python's final flush of what is left in its
+    buffer cannot fail a second time (and print a traceback after our one line)."""
     try:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         os.close(devnull)
     except (OSError, ValueError):  # stdout without a file descriptor (tests, embedding)
         pass
-    return 128 + signal.SIGPIPE
 
 
 def _main(argv):
@@ -419,13 +427,6 @@ def _main(argv):
         return args.func(args, sys.stdout)
     except UsageError as exc:
         print(f"tba: error: {' '.join(str(exc).split())}", file=sys.stderr)
-        return 2
-    except OSError as exc:
-        # a file that could not be read or written after the checks passed (a disk that
-        # filled up, a file removed meanwhile): one line naming it; a broken pipe is main's
-        if exc.filename is None or isinstance(exc, BrokenPipeError):
-            raise
-        print(f"tba: error: {exc.filename}: {exc.strerror or exc}", file=sys.stderr)
         return 2
     except ScanInterrupted as exc:
         print(f"tba: {exc}", file=sys.stderr)

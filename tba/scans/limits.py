@@ -9,10 +9,13 @@ Domain (units of the lightest mass m_1 = 1):
   zero), so a larger radius would come back as an energy 0 with error 0, a bound that no
   longer bounds anything. At the small end the grid's cutoff Lambda ~ log(120 / R) grows
   without bound; below 1e-100 the UV (conformal) limit is reached to every digit anyway.
-* CDD couplings ``|alpha_s| <= MAX_COUPLING`` for every spin. On the alpha > 0 side the
-  ground state's branch point R_c ~ sqrt(2 pi c alpha / 3) (from E_0 = -pi c / 6R) lies far
-  beyond MAX_RADIUS already at alpha ~ 1e6; on the alpha < 0 side E(R, alpha) = E_0(R~) with
-  R~ ~ log |alpha|. The solvers' double-precision sums overflow near |alpha| ~ 1e150.
+* CDD couplings ``|alpha_s| <= MAX_COUPLING`` for every spin. The deformed driving term
+  m (R + alpha E) cosh t has the effective radius R + alpha E, and grids at large effective
+  radius are sized by the peak's width 1/sqrt(m (R + alpha E)). Excited levels have E of
+  order m, so at alpha ~ 1e20 their grids would need petabytes (measured: 700 PiB asked
+  for at alpha = 1e20); up to 1e12 they return a status. (The ground state's branch point
+  grows only like log alpha, E_0'(R~) = 1/alpha with E_0' ~ e^{-m R~}: R_c = 26 at alpha =
+  1e12 for Lee-Yang, so large couplings are not empty of real solutions.)
 * the deformation's rank-one terms: a spin-s factor adds alpha_s s cosh(s t) cosh(s t') to
   the kernel, largest at the grid's cutoff, t = t' = Lambda(R). Products of two such terms
   must stay inside double precision (1e308), so
@@ -62,8 +65,8 @@ def coupling_problem(alpha):
     """Why a CDD coupling (finite float) lies outside the domain, or None."""
     if abs(alpha) > MAX_COUPLING:
         return (f"|alpha| = {abs(alpha):g} is above the limit {MAX_COUPLING:g} (in units of "
-                f"1/m_1^2; beyond it every radius up to {MAX_RADIUS:g} lies past the branch "
-                f"point or R + alpha E is out of double-precision range)")
+                f"1/m_1^2: the grids at the effective radius R + alpha E would not fit in "
+                f"memory)")
     return None
 
 
