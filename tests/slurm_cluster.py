@@ -169,8 +169,30 @@ PartitionName={PARTITION} Nodes={self.node} Default=YES MaxTime=INFINITE State=U
                                    f"{(proc.stderr or proc.stdout).strip()[:300]}")
         return proc.stdout
 
+    def processes(self, job=None):
+        """Pids of the processes this cluster started for jobs (their environment carries
+        our SLURM_CONF), of one job (SLURM_JOB_ID or SLURM_ARRAY_JOB_ID) if given."""
+        mine = f"SLURM_CONF={self.conf}".encode()
+        found = []
+        for d in Path("/proc").iterdir():
+            if not d.name.isdigit() or int(d.name) == os.getpid():
+                continue
+            try:
+                env = (d / "environ").read_bytes().split(b"\0")
+            except OSError:
+                continue
+            if mine not in env or any(p.poll() is None and p.pid == int(d.name)
+                                      for p in self.daemons.values()):
+                continue
+            ids = {e.split(b"=", 1)[1].decode() for e in env
+                   if e.startswith((b"SLURM_JOB_ID=", b"SLURM_ARRAY_JOB_ID="))}
+            if job is None or str(job) in ids:
+                found.append(int(d.name))
+        return found
+
     def stop(self):
-        """Cancel every job of this cluster, wait for them, then stop the daemons we started."""
+        """Cancel every job of this cluster, wait for them, then stop the daemons we started
+        and any job process that outlived them (found by our SLURM_CONF in its environment)."""
         ctld = self.daemons.get("slurmctld")
         if ctld is not None and ctld.poll() is None:
             subprocess.run([self.binaries["scancel"], "--full", "--user=root"], env=self.env,
@@ -188,6 +210,11 @@ PartitionName={PARTITION} Nodes={self.node} Default=YES MaxTime=INFINITE State=U
             except subprocess.TimeoutExpired:
                 p.kill()
                 p.wait()
+        for pid in self.processes():
+            try:
+                os.kill(pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
 
     # -- jobs ---------------------------------------------------------------------------------
 
@@ -217,11 +244,14 @@ PartitionName={PARTITION} Nodes={self.node} Default=YES MaxTime=INFINITE State=U
         return states
 
     def wait(self, job, timeout=120.0):
-        """Wait until every element of ``job`` has finished; returns their states."""
+        """Wait until every element of ``job`` has finished and its processes are gone
+        (a cancelled job is CANCELLED at once but stays in squeue while it is completing);
+        returns their states."""
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             states = self.states(job)
-            if states and all(s in FINISHED for s in states.values()):
+            if (states and all(s in FINISHED for s in states.values())
+                    and not any(j.split("_")[0] == job for j in self.squeue())):
                 return states
             time.sleep(0.2)
         raise AssertionError(f"job {job} still not finished after {timeout:.0f} s: "

@@ -2,9 +2,10 @@
 
 * the job-array script (``scan.sbatch``) through ``sbatch``, then the README's ``tba merge``:
   the merged file equals the serial run's in every stored number;
-* one array element cancelled with ``scancel`` half-way (frozen first with ``scontrol
-  suspend``, so that "half-way" does not depend on the machine's speed), resubmitted alone
-  with ``sbatch --array=I``: its shard resumes from the chunks it had written;
+* one array element cancelled with ``scancel`` half-way (frozen with ``scontrol suspend``
+  to check that it is half-way whatever the machine's speed, resumed, cancelled), then
+  resubmitted alone with ``sbatch --array=I``: its shard resumes from the chunks it had
+  written; no process of the cancelled element survives;
 * the dask-jobqueue ``SLURMCluster`` script (``big_scan.py``) runs the scan on workers that
   are SLURM jobs and writes the serial file's numbers.
 
@@ -198,16 +199,24 @@ def test_a_cancelled_element_resubmitted_alone_resumes_its_shard(slurm, job_env,
         assert slurm.states(job).get(k) in (None, "PENDING", "RUNNING"), slurm.states(job)
         time.sleep(0.02)
     slurm.scontrol("suspend", f"{job}_{k}")
-    before = _done(part)
-    assert 2 <= before < owned, f"shard {k} finished before it could be suspended ({before} chunks)"
+    assert _done(part) < owned, f"shard {k} finished before it could be suspended"
+    # cancelled while running: a suspended job's processes would stay stopped and keep the
+    # file open, since their SIGTERM waits for a SIGCONT that scancel does not send
+    slurm.scontrol("resume", f"{job}_{k}")
     slurm.scancel(f"{job}_{k}")
     states = slurm.wait(job, timeout=240)
     assert states[k] == "CANCELLED" and all(states[i] == "COMPLETED" for i in (1, 3)), states
-    assert _done(part) == before  # nothing was written after the suspension
+    deadline = time.monotonic() + 30
+    while slurm.processes(job):  # the element's processes are gone, not merely marked
+        assert time.monotonic() < deadline, f"processes of job {job} left: {slurm.processes(job)}"
+        time.sleep(0.1)
+    before = _done(part)  # what the cancelled element left in its file (a chunk may have
+    assert 2 <= before < owned, before  # landed between resume and SIGTERM)
 
     again = slurm.sbatch(script, f"--array={k}", cwd=tmp_path, env=job_env)
-    assert slurm.wait(again, timeout=240) == {k: "COMPLETED"}
+    states = slurm.wait(again, timeout=240)
     log = (tmp_path / f"slurm-{again}_{k}.out").read_text()
+    assert states == {k: "COMPLETED"}, log
     assert f"resuming {part} (shard {k}/{SHARDS}): {owned - before} of {owned} chunks" in log, log
     with h5py.File(part, "r") as f:
         mine = f["progress/owned"][...].astype(bool)
