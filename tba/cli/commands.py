@@ -12,27 +12,32 @@ after Ctrl-C; exit code 1 when a cluster gave up on some tasks, with everything 
 
 import argparse
 import csv
-import json
+import os
+import signal
 import sys
 from pathlib import Path
 
 import numpy as np
 
 from tba import __version__
-from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Parser, UsageError,
-                            add_model_arguments, add_tol_argument, build_model, finite,
-                            parse_cdd, parse_radii, parse_state_argument, state_row, table_row,
-                            tolerance)
+from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
+                            add_max_points_argument, add_model_arguments, add_tol_argument,
+                            build_model, check_deformation, coupling, json_text, max_points,
+                            parse_cdd, parse_radii, parse_state_argument, plain, state_row,
+                            table_row, tolerance, whole_number, writable_dir, writable_file)
 from tba.output.report import format_report
+from tba.scans.limits import MAX_POINTS, MAX_SOLVE_POINTS
 from tba.scans.runfile import RunFileError, demo_run_path, load_run, parse_shard
 from tba.store.driver import ScanFailed, ScanInterrupted, run_scan
 from tba.store.hdf5 import NOT_COMPUTED, StoreError, read_store
 
+
 def cmd_solve(args, out):
     model = build_model(args)
-    radii = parse_radii(args.radius)
-    alpha = finite("--alpha", args.alpha)
+    radii = parse_radii(args.radius, max_points(args, MAX_SOLVE_POINTS))
+    alpha = coupling("--alpha", args.alpha)
     deformation = parse_cdd(args.cdd, alpha, model)
+    check_deformation(deformation, radii)
     tol = tolerance(args.tol)
     state = parse_state_argument(args.state, model, deformation) if args.state is not None else "ground"
     from tba.solvers.levels import solve_level
@@ -48,27 +53,35 @@ def cmd_solve(args, out):
         if res.converged:
             start = res
         rec = res.as_record()
-        print(json.dumps(rec) if args.json else row(rec), file=out, flush=True)
+        print(json_text(rec) if args.json else row(rec), file=out, flush=True)
     return 0
+
+
+#: worker processes on one machine: at most this many per core (os.cpu_count())
+WORKERS_PER_CORE = 4
+
+
+def _local_processes(name, n):
+    cores = os.cpu_count() or 1
+    if n > WORKERS_PER_CORE * cores:
+        raise UsageError(f"argument {name}: {n} worker processes on a machine of {cores} cores "
+                         f"(at most {WORKERS_PER_CORE} per core); for more, use --scheduler "
+                         f"with a cluster, or --shard for a job array")
+    return n
 
 
 def _workers(text):
     if text is None:
         return None
-    try:
-        n = int(text)
-    except ValueError:
-        raise UsageError(f"argument --workers: expected a positive integer, got {text!r}") from None
-    if n < 1:
-        raise UsageError(f"argument --workers: expected a positive integer, got {text!r}")
-    return n
+    return _local_processes("--workers", whole_number("--workers", text,
+                                                      what="a positive number of processes"))
 
 
-def _load_run(path):
+def _load_run(path, limit=MAX_POINTS):
     try:
-        return load_run(path)
+        return load_run(path, max_points=limit)
     except RunFileError as exc:
-        raise UsageError(f"{path}: {exc}" if exc.key else str(exc)) from None
+        raise UsageError(str(exc)) from None  # names the file and the key
 
 
 def _scan(run, out_path, args, run_file, log, backend=None, shard=None):
@@ -104,7 +117,7 @@ def _backend(args):
                 n = parse_cluster(args.cluster)
             except ValueError as exc:
                 raise UsageError(f"argument --cluster: {exc}") from None
-            return DaskBackend(local_workers=n)
+            return DaskBackend(local_workers=_local_processes("--cluster", n))
         if not args.scheduler.strip():
             raise UsageError("argument --scheduler: expected an address (tcp://host:port) or "
                              "a scheduler file")
@@ -115,15 +128,17 @@ def _backend(args):
 
 def cmd_run(args, out):
     """Run a scan from a run file into its HDF5 store; resumes an interrupted one."""
-    run = _load_run(args.runfile)
+    _workers(args.workers)  # checked with --dry-run too
+    run = _load_run(args.runfile, max_points(args, MAX_POINTS))
     shard = _shard(args.shard)
     if args.out:
-        out_path = Path(args.out).resolve()
+        out_path = Path(args.out).expanduser().resolve()
     elif shard is not None:  # never the full store's name: a shard holds only its chunks
         full = Path(run.output)
         out_path = full.with_name(f"{full.stem}.part-{shard.index}-of-{shard.count}{full.suffix}")
     else:
         out_path = Path(run.output)
+    writable_file("argument --out" if args.out else f"{args.runfile}: output", out_path)
     run = run.with_output(out_path)
     backend = _backend(args)
     if args.dry_run:
@@ -145,6 +160,7 @@ def cmd_merge(args, out):
     """Combine shard files (or stores) of one run into a full store."""
     from tba.store.merge import merge_stores
 
+    writable_file("argument --out", args.out)
     try:
         summary = merge_stores(args.files, args.out, force=args.force)
     except StoreError as exc:
@@ -197,11 +213,11 @@ def _figure_size(text):
 def cmd_plot(args, out):
     from tba.output.plotting import plot_store
 
-    path = _figure_path(args.output)
+    path = writable_file("argument -o", _figure_path(args.output), replace=False)
     size = _figure_size(args.size) if args.size is not None else None
     if args.dpi is not None and args.dpi <= 0:
         raise UsageError(f"argument --dpi: must be positive, got {args.dpi}")
-    alphas = None if args.alpha is None else [finite("--alpha", a) for a in args.alpha]
+    alphas = None if args.alpha is None else [coupling("--alpha", a) for a in args.alpha]
     data = _read(args.file)
     try:  # a selection the scan does not have fails before any file is touched
         fig = plot_store(data, models=args.model, states=args.state, alphas=alphas,
@@ -223,6 +239,8 @@ EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "couplings", "energy", "e
 
 
 def cmd_export(args, out):
+    if args.output:
+        writable_file("argument -o", args.output, replace=False)
     data = _read(args.file)
     records = list(data.records())
     skipped = int(np.count_nonzero(data["status"] == NOT_COMPUTED))
@@ -230,15 +248,12 @@ def cmd_export(args, out):
     try:
         if args.json:
             for rec in records:
-                print(json.dumps(rec), file=target)
-        else:
+                print(json_text(rec), file=target)
+        else:  # nulls (None, NaN) are empty cells
             writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n")
             writer.writeheader()
-            for rec in records:
-                writer.writerow({**rec, "couplings": json.dumps(rec["couplings"]),
-                                 "coupling": "" if rec["coupling"] is None else rec["coupling"],
-                                 "energy": "" if rec["energy"] is None else rec["energy"],
-                                 "error": "" if rec["error"] is None else rec["error"]})
+            for rec in map(plain, records):
+                writer.writerow({**rec, "couplings": json_text(rec["couplings"])})
     finally:
         if target is not out:
             target.close()
@@ -254,13 +269,17 @@ def cmd_demo(args, out):
     """The built-in demonstration: runs/demo.toml into runs/out/ (or ./tba-demo-out/)."""
     from tba.output.plotting import save_figure
 
+    workers = _workers(args.workers)
     run_file, in_repo = demo_run_path()
     run = _load_run(run_file)
     if args.out_dir:
-        out_dir = Path(args.out_dir).resolve()
+        out_dir = writable_dir("argument --out-dir", Path(args.out_dir).expanduser().resolve())
     else:
-        out_dir = run_file.parent / "out" if in_repo else Path.cwd() / "tba-demo-out"
+        out_dir = writable_dir("tba demo: output directory (choose one with --out-dir)",
+                               run_file.parent / "out" if in_repo else Path.cwd() / "tba-demo-out")
     h5, figure = out_dir / "demo.h5", out_dir / "demo.png"
+    for path in (h5, figure):
+        writable_file("argument --out-dir", path, replace=path == h5)
     run = run.with_output(h5)
     print(f"tba demo: {run.description}\n"
           f"  run file {run_file}; output {h5} and {figure}\n"
@@ -268,7 +287,7 @@ def cmd_demo(args, out):
           f"side, an excited level's on the alpha < 0 side: no real solution there)\n",
           file=out, flush=True)
     try:
-        run_scan(run, h5, workers=_workers(args.workers), force=args.force, run_file=run_file)
+        run_scan(run, h5, workers=workers, force=args.force, run_file=run_file)
     except StoreError as exc:
         if not exc.foreign:
             raise UsageError(str(exc)) from None
@@ -294,18 +313,21 @@ def build_parser():
                            "previous one).", epilog=CONVENTIONS,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     add_model_arguments(solve)
-    solve.add_argument("--radius", required=True, nargs="+", metavar="R",
-                       help="radii: numbers and/or START:STOP:COUNT (both ends included)")
-    solve.add_argument("--alpha", default="0", metavar="A", help="TTbar coupling (default 0)")
+    solve.add_argument("--radius", required=True, nargs="+", action="extend", metavar="R",
+                       help="radii: numbers and/or START:STOP:COUNT (both ends included); "
+                       "repeated --radius options add up")
+    solve.add_argument("--alpha", default="0", action=Once, metavar="A",
+                       help="TTbar coupling (default 0)")
     solve.add_argument("--cdd", action="append", metavar="S:A",
                        help="extra CDD factor of odd spin S >= 3 with coupling A (repeatable)")
     add_tol_argument(solve)
-    solve.add_argument("--state", metavar="N1,N2,...",
+    solve.add_argument("--state", action=Once, metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "
                        "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0): "
                        "single-species models without bound states, and lee-yang's "
                        "one-particle state 0")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
+    add_max_points_argument(solve, MAX_SOLVE_POINTS, "radii")
     solve.set_defaults(func=cmd_solve)
     run = sub.add_parser("run", help="run a scan from a TOML run file (resumable)",
                          description="Solve every point of a run file and write them to an HDF5 "
@@ -315,26 +337,27 @@ def build_parser():
                          "(exit 2) unless --force.", epilog=CONVENTIONS,
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("runfile", metavar="RUNFILE", help="TOML run file (see runs/)")
-    run.add_argument("--out", metavar="FILE", help="HDF5 output (default: the run file's output, "
+    run.add_argument("--out", action=Once, metavar="FILE", help="HDF5 output (default: the run file's output, "
                      "relative to the run file's directory; with --shard I/N that name with "
                      ".part-I-of-N before the suffix)")
     where = run.add_mutually_exclusive_group()
-    where.add_argument("--workers", metavar="N",
+    where.add_argument("--workers", action=Once, metavar="N",
                        help="worker processes on this machine (default: the usable cores)")
-    where.add_argument("--scheduler", metavar="ADDRESS",
+    where.add_argument("--scheduler", action=Once, metavar="ADDRESS",
                        help="run the chunks on an existing dask.distributed cluster: the "
                        "scheduler's address (tcp://host:8786) or its scheduler file; needs "
                        "the cluster extra (pip install 'tba-flow[cluster]')")
-    where.add_argument("--cluster", metavar="local:N",
+    where.add_argument("--cluster", action=Once, metavar="local:N",
                        help="start a dask LocalCluster of N single-threaded worker processes "
                        "for this run (needs the cluster extra)")
-    run.add_argument("--shard", metavar="I/N",
+    run.add_argument("--shard", action=Once, metavar="I/N",
                      help="compute only shard I of N (every N-th chunk, 1 <= I <= N) into a shard "
                      "file, for job arrays; combine the shards with tba merge")
     run.add_argument("--force", action="store_true",
                      help="replace an output file written by a different run or version")
     run.add_argument("--dry-run", action="store_true",
                      help="print the resolved run and the number of chunks, compute nothing")
+    add_max_points_argument(run, MAX_POINTS, "points (models x alphas x radii x states)")
     run.set_defaults(func=cmd_run)
     merge = sub.add_parser("merge", help="combine the shards of a run into one file",
                            description="Merge shard files of one run (tba run --shard I/N), or "
@@ -344,7 +367,8 @@ def build_parser():
                            "what is still missing is listed, and tba run RUNFILE --out FILE "
                            "computes it.")
     merge.add_argument("files", nargs="+", metavar="FILE", help="shard files (or stores) of one run")
-    merge.add_argument("--out", required=True, metavar="FILE", help="the merged HDF5 file")
+    merge.add_argument("--out", required=True, action=Once, metavar="FILE",
+                       help="the merged HDF5 file")
     merge.add_argument("--force", action="store_true",
                        help="replace an --out that is a file of another run, or a shard")
     merge.set_defaults(func=cmd_merge)
@@ -362,7 +386,7 @@ def build_parser():
                           "with T_H = 1/R_c. Colours: alpha (blue < 0, grey 0, red > 0). Units: R "
                           "in 1/m_1, E in m_1; E without the bulk term f R.")
     plot.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
-    plot.add_argument("-o", "--output", required=True, metavar="FIG",
+    plot.add_argument("-o", "--output", required=True, action=Once, metavar="FIG",
                       help="figure file: .png, or .pdf / .svg (vector graphics)")
     plot.add_argument("--model", nargs="+", action="extend", metavar="M",
                       help="models to show, by label (\"sinh-gordon B=0.6\") or name (default all)")
@@ -387,16 +411,19 @@ def build_parser():
     fmt.add_argument("--json", action="store_true", help="one JSON object per line")
     fmt.add_argument("--csv", action="store_true", help="CSV with a header line")
     export.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
-    export.add_argument("-o", "--output", metavar="OUT", help="write here instead of stdout")
+    export.add_argument("-o", "--output", action=Once, metavar="OUT",
+                        help="write here instead of stdout")
     export.set_defaults(func=cmd_export)
     demo = sub.add_parser("demo", help="run the built-in demonstration scan",
                           description="Runs runs/demo.toml (sinh-Gordon B = 0.6 and E8, alpha in "
                           "{-0.1, 0.05, 0.1}) into runs/out/ when run from the source tree, else "
                           "into ./tba-demo-out/; writes demo.h5 and demo.png and prints the report. "
                           "A complete demo.h5 is reused; one from another run is replaced.")
-    demo.add_argument("--workers", metavar="N", help="worker processes (default: the usable cores)")
+    demo.add_argument("--workers", action=Once, metavar="N",
+                      help="worker processes (default: the usable cores)")
     demo.add_argument("--force", action="store_true", help="recompute from scratch")
-    demo.add_argument("--out-dir", metavar="DIR", help="write demo.h5 and demo.png here")
+    demo.add_argument("--out-dir", action=Once, metavar="DIR",
+                      help="write demo.h5 and demo.png here")
     demo.set_defaults(func=cmd_demo)
     from tba.cli.flow import add_flow_commands
     from tba.cli.models import add_models_command
@@ -407,6 +434,38 @@ def build_parser():
 
 
 def main(argv=None):
+    """The ``tba`` command: exit code 0, 2 for bad input or an output that cannot be written
+    (one line on stderr), 1 when a cluster gave up on tasks, 130 after Ctrl-C, 141 when the
+    reader of a pipe went away."""
+    try:
+        return _main(argv)
+    except BrokenPipeError:
+        # stdout (or stderr) is a pipe whose reader has gone (tba export --csv F.h5 | head):
+        # stop quietly, as a program killed by SIGPIPE would, with the status a shell shows
+        # for one. What was computed is saved already (stores are written chunk by chunk).
+        _detach_stdout()
+        return 128 + signal.SIGPIPE
+    except OSError as exc:
+        # an output that failed after the checks passed (a full disk, /dev/full, a file
+        # removed meanwhile): one line naming it where the error does
+        _detach_stdout()
+        what = exc.filename if exc.filename is not None else "input/output failed"
+        print(f"tba: error: {what}: {' '.join(str(exc.strerror or exc).split())}", file=sys.stderr)
+        return 2
+
+
+def _detach_stdout():
+    """Point stdout at /dev/null, so that Python's final flush of what is left in its
+    buffer cannot fail a second time (and print a traceback after our one line)."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):  # stdout without a file descriptor (tests, embedding)
+        pass
+
+
+def _main(argv):
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

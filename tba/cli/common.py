@@ -1,17 +1,25 @@
 """What every command shares: conventions text, one-line usage errors, argument checks.
 
 A bad argument raises `UsageError` with a message naming it; `tba.cli.commands.main` prints it on
-one line and exits with code 2.
+one line and exits with code 2. Checks that need no computing (numbers and their domain,
+`tba.scans.limits`; sizes; output paths that cannot be written) run before any work.
 """
 
 import argparse
+import errno
+import json
 import math
+import os
+import tempfile
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 
 from tba.models.catalog import ModelError, get_model
 from tba.models.cdd import CDD
+from tba.scans.limits import (MAX_SOLVE_POINTS, coupling_problem, deformation_problem,
+                              radius_problem, size_text)
 from tba.solvers.ground import MIN_TOL
 
 CONVENTIONS = """\
@@ -25,19 +33,56 @@ conventions:
   --cdd S:A adds exp(i A q_a q_b sinh(S t)) for a spin S >= 2 the model has
   (conserved charges q, 1 on the lightest species; tba models lists the spins).
   status: converged | no-real-solution | not-converged; energy and error are
-  null unless converged. error estimates |E - exact| and is meant to bound it."""
+  null unless converged. error estimates |E - exact| and is meant to bound it.
+  domain: 1e-100 <= R <= 700, |alpha| <= 1e12 (see README, "Limits")."""
 
 
 class UsageError(Exception):
     """Bad command-line input: reported on one line, exit code 2."""
 
 
+class _NegativeNumbers:
+    """What argparse takes for a value although it starts with "-". argparse's own pattern
+    knows -1 and -.5 only, so ``--alpha -1e-3`` was read as an option; here every spelling
+    Python's float() reads (-1e-3, -1E+5, -1_000.5, -inf) and ranges such as -1:2:3 are
+    values (and then checked by the option: -1 is no radius). No option of tba looks like
+    a negative number, so nothing is lost."""
+
+    @staticmethod
+    def match(text):
+        if not text.startswith("-") or text.startswith("--"):
+            return False
+        try:
+            float(text.split(":", 1)[0])
+        except ValueError:
+            return False
+        return True
+
+
 class Parser(argparse.ArgumentParser):
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._negative_number_matcher = _NegativeNumbers()
+
     def error(self, message):
         raise UsageError(message)
 
 
+class Once(argparse.Action):
+    """A single-valued option: giving it twice is an error, never a silent override of the
+    first value. (Options that take lists, --radius and flow-check's --alpha, accumulate.)"""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        given = vars(namespace).setdefault("_given_once", {})
+        if self.dest in given:
+            raise argparse.ArgumentError(self, f"given twice ({given[self.dest]!r} and {values!r}); "
+                                               f"it takes one value")
+        given[self.dest] = values
+        setattr(namespace, self.dest, values)
+
+
 def finite(name, text):
+    """A float in any spelling Python reads (1e-3, -1E+5, 1_000.5, .5); finite."""
     try:
         value = float(text)
     except ValueError:
@@ -47,32 +92,77 @@ def finite(name, text):
     return value
 
 
-def parse_radii(tokens):
-    """Numbers and START:STOP:COUNT ranges (evenly spaced, both ends included), in order."""
-    radii = []
+def whole_number(name, text, minimum=1, what="a whole number"):
+    """A whole number >= ``minimum``; integral floats (1e6, 8.0) are accepted too."""
+    try:
+        n = int(text)
+    except ValueError:
+        try:
+            value = float(text)
+        except ValueError:
+            value = math.nan
+        if not (math.isfinite(value) and value.is_integer()):
+            raise UsageError(f"argument {name}: expected {what}, got {text!r}") from None
+        n = int(value)
+    if n < minimum:
+        raise UsageError(f"argument {name}: expected {what} >= {minimum}, got {text!r}")
+    return n
+
+
+def coupling(name, text):
+    """A CDD coupling: finite and inside the domain (`tba.scans.limits.MAX_COUPLING`)."""
+    value = finite(name, text)
+    why = coupling_problem(value)
+    if why is not None:
+        raise UsageError(f"argument {name}: {why}")
+    return value
+
+
+def _radius(text):
+    R = finite("--radius", text)
+    if R <= 0:
+        raise UsageError(f"argument --radius: radii must be positive, got {text!r}")
+    why = radius_problem(R)
+    if why is not None:
+        raise UsageError(f"argument --radius: {why}")
+    return R
+
+
+def too_many(name, n, limit, what):
+    return UsageError(f"argument {name}: {n:,} {what} ({size_text(n)} of results), above the "
+                      f"limit of {limit:,}: use a run file and tba run (parallel, resumable, "
+                      f"shards for job arrays), or raise the limit with --max-points N")
+
+
+def parse_radii(tokens, max_points=MAX_SOLVE_POINTS):
+    """Numbers and START:STOP:COUNT ranges (evenly spaced, both ends included), in order.
+    The number of radii is checked against ``max_points`` before any range is allocated."""
+    items, total = [], 0
     for tok in tokens:
         if ":" in tok:
             parts = tok.split(":")
             if len(parts) != 3:
                 raise UsageError(f"argument --radius: expected START:STOP:COUNT, got {tok!r}")
-            start, stop = (finite("--radius", p) for p in parts[:2])
-            try:
-                count = int(parts[2])
-            except ValueError:
-                raise UsageError(f"argument --radius: COUNT must be an integer, got {parts[2]!r}") from None
-            if count < 1 or (count == 1 and start != stop):
-                raise UsageError(f"argument --radius: COUNT must be >= 2 for a range, got {count}")
-            radii.extend(np.linspace(start, stop, count).tolist())
+            start, stop = (_radius(p) for p in parts[:2])
+            n = whole_number("--radius", parts[2], what="COUNT to be a whole number")
+            if n == 1 and start != stop:
+                raise UsageError(f"argument --radius: COUNT must be >= 2 for a range, got {n}")
+            items.append((start, stop, n))
         else:
-            radii.append(finite("--radius", tok))
-    for R in radii:
-        if R <= 0:
-            raise UsageError(f"argument --radius: radii must be positive, got {R:g}")
+            items.append(_radius(tok))
+            n = 1
+        total += n
+        if total > max_points:
+            raise too_many("--radius", total, max_points, "radii")
+    radii = []
+    for item in items:
+        radii.extend(np.linspace(*item).tolist() if isinstance(item, tuple) else [item])
     return radii
 
 
 def parse_cdd(tokens, alpha, model=None):
-    """--alpha and --cdd S:A as a CDD deformation; with ``model``, every spin must be one of its."""
+    """The deformation of --alpha A and --cdd S:A (repeatable, same spins add up); with
+    ``model``, every spin must be one of its."""
     couplings = {1: alpha} if alpha else {}
     for tok in tokens or []:
         spin, sep, value = tok.partition(":")
@@ -84,7 +174,11 @@ def parse_cdd(tokens, alpha, model=None):
             raise UsageError(f"argument --cdd: spin must be an integer, got {spin!r}") from None
         if s < 2:
             raise UsageError(f"argument --cdd: spin must be >= 2 (use --alpha for spin 1), got {s}")
-        couplings[s] = couplings.get(s, 0.0) + finite("--cdd", value)
+        couplings[s] = couplings.get(s, 0.0) + coupling("--cdd", value)
+    for s, a in couplings.items():
+        why = coupling_problem(a)
+        if why is not None:  # several --cdd of one spin add up
+            raise UsageError(f"argument --cdd: spin {s}: {why}")
     deformation = CDD(couplings)
     if model is not None:
         try:
@@ -92,6 +186,16 @@ def parse_cdd(tokens, alpha, model=None):
         except ValueError as exc:
             raise UsageError(f"argument --cdd: {str(exc).split(': ', 1)[-1]}") from None
     return deformation
+
+
+def check_deformation(deformation, radii):
+    """Refuse couplings whose kernel terms overflow at the smallest radius
+    (`tba.scans.limits.deformation_problem`), naming --alpha or --cdd."""
+    smallest = min(radii)
+    for s, a in sorted(deformation.couplings.items()):
+        why = deformation_problem(s, a, smallest)
+        if why is not None:
+            raise UsageError(f"argument {'--alpha' if s == 1 else '--cdd'}: {why}")
 
 
 def tolerance(text):
@@ -107,6 +211,87 @@ def build_model(args):
         return get_model(args.model, coupling)
     except ModelError as exc:
         raise UsageError(f"argument --{exc.argument}: {exc.reason}") from None
+
+
+# -- output ---------------------------------------------------------------------------------
+
+def plain(x):
+    """``x`` with every non-finite float replaced by None (JSON null, an empty CSV cell),
+    numpy scalars as Python numbers."""
+    if isinstance(x, np.generic):
+        x = x.item()
+    if isinstance(x, float):
+        return x if math.isfinite(x) else None
+    if isinstance(x, dict):
+        return {k: plain(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [plain(v) for v in x]
+    return x
+
+
+def json_text(record):
+    """One record as strict JSON: NaN and infinities are null (never the NaN token, which
+    JSON parsers other than Python's refuse)."""
+    return json.dumps(plain(record), allow_nan=False)
+
+
+def _read_only(path):
+    try:
+        return bool(os.statvfs(path).f_flag & os.ST_RDONLY)
+    except OSError:
+        return False
+
+
+def _check_directory(name, target, where):
+    """``where`` (an existing path) must be a directory we can create files in. Tried for
+    real with an unnamed temporary file (O_TMPFILE on Linux: no name appears in the
+    directory), since permission bits say nothing for root, /proc or /sys."""
+    if not where.is_dir():
+        raise UsageError(f"{name}: cannot write {target}: {where} is a file, not a directory")
+    try:
+        with tempfile.TemporaryFile(dir=where):
+            pass
+    except OSError as exc:
+        why = ("on a read-only file system" if exc.errno == errno.EROFS or _read_only(where)
+               else f"not writable ({exc.strerror or exc})")
+        raise UsageError(f"{name}: cannot write {target}: {where} is {why}") from None
+
+
+def _existing_ancestor(path):
+    """The nearest ancestor of ``path`` that exists (``path`` itself excluded)."""
+    p = path.parent
+    while not p.exists() and p != p.parent:
+        p = p.parent
+    return p
+
+
+def writable_file(name, path, replace=True):
+    """Refuse an output file that cannot be written, before any work: a directory given as
+    the file, a path under a regular file, a read-only file system, a file or directory we
+    may not write. ``replace``: the file is written beside itself and renamed into place
+    (HDF5 stores), so its directory must be writable even when the file exists. ``name``
+    names the argument or key in the message. Returns the path."""
+    path = Path(path).expanduser()
+    if path.is_dir():
+        raise UsageError(f"{name}: {path} is a directory; give a file name")
+    if path.exists():
+        if not os.access(path, os.W_OK):
+            why = "is on a read-only file system" if _read_only(path) else "is not writable"
+            raise UsageError(f"{name}: {path} {why}")
+        if replace:
+            _check_directory(name, path, path.parent)
+    else:
+        _check_directory(name, path, _existing_ancestor(path))
+    return path
+
+
+def writable_dir(name, path):
+    """Refuse an output directory that cannot be created or written in (see `writable_file`)."""
+    path = Path(path).expanduser()
+    if path.exists() and not path.is_dir():
+        raise UsageError(f"{name}: {path} is a file, not a directory")
+    _check_directory(name, path, path if path.exists() else _existing_ancestor(path))
+    return path
 
 
 def fmt(x, spec):
@@ -138,23 +323,33 @@ def parse_state_argument(text, model, deformation):
 
     try:
         level = parse_level(text)
-        why = unavailable(model, level, deformation)
-        if why is not None:
-            raise ValueError(why)
-        return level
     except (ValueError, TypeError) as exc:
-        raise UsageError(f"argument --state: {str(exc).split(': ', 1)[-1]}") from None
+        raise UsageError(f"argument --state: {str(exc).removeprefix('state: ')}") from None
+    why = unavailable(model, level, deformation)
+    if why is not None:
+        raise UsageError(f"argument --state: {text!r}: {why}")
+    return level
 
 
 def add_model_arguments(parser):
     """--model and --coupling, shared by every command that solves one model."""
-    parser.add_argument("--model", required=True, metavar="NAME",
+    parser.add_argument("--model", required=True, action=Once, metavar="NAME",
                         help="the S-matrix: free-fermion, sinh-gordon, lee-yang, ising-e8, "
                         "sine-gordon, ..., or an algebra name (A4, D5, E6, T2); tba models lists them")
-    parser.add_argument("--coupling", metavar="V", help="the model's parameter: sinh-gordon B in "
-                        "(0, 2), sine-gordon N (reflectionless point, integer >= 1)")
+    parser.add_argument("--coupling", action=Once, metavar="V", help="the model's parameter: "
+                        "sinh-gordon B in (0, 2), sine-gordon N (reflectionless point, integer >= 1)")
 
 
 def add_tol_argument(parser):
-    parser.add_argument("--tol", default="1e-12", metavar="T",
+    parser.add_argument("--tol", default="1e-12", action=Once, metavar="T",
                         help="relative accuracy asked of each energy (default 1e-12)")
+
+
+def add_max_points_argument(parser, default, what):
+    parser.add_argument("--max-points", default=None, action=Once, metavar="N",
+                        help=f"refuse more than N {what} (default {default:,}; see README, "
+                        f"\"Limits\")")
+
+
+def max_points(args, default):
+    return default if args.max_points is None else whole_number("--max-points", args.max_points)

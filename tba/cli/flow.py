@@ -5,19 +5,19 @@ exit code 2).
 """
 
 import argparse
-import json
 
+from tba.cli.common import (Once, UsageError, add_max_points_argument, add_model_arguments,
+                            add_tol_argument, build_model, check_deformation, coupling, fmt,
+                            json_text, max_points, parse_radii, too_many, tolerance)
 from tba.models.cdd import ttbar
 from tba.physics.flow import BranchPoint, branch_point
+from tba.scans.limits import MAX_SOLVE_POINTS
 from tba.solvers.ground import flow_residual, solve_ground_state
-from tba.cli.common import (UsageError, add_model_arguments, add_tol_argument, build_model, finite,
-                             fmt, parse_radii, tolerance)
-
 
 
 def cmd_branch_point(args, out):
     model = build_model(args)
-    alpha = finite("--alpha", args.alpha)
+    alpha = coupling("--alpha", args.alpha)
     tol = tolerance(args.tol)
     if args.method == "continuation":
         from tba.physics.continuation import locate_fold
@@ -37,7 +37,7 @@ def cmd_branch_point(args, out):
         bp = branch_point(model, alpha, tol)
     rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": args.method}
     if args.json:
-        print(json.dumps(rec), file=out)
+        print(json_text(rec), file=out)
     elif bp.status == "found":
         name = model.name if model.coupling is None else f"{model.name} (B = {model.coupling:g})"
         print(f"{name}, alpha = {alpha:g}: branch point at "
@@ -54,8 +54,13 @@ FLOW_HEADER = (f"{'R':>10} {'alpha':>8} {'E':>22} {'dE/dR':>14} {'dE/dalpha':>14
 
 def cmd_flow_check(args, out):
     model = build_model(args)
-    radii = parse_radii(args.radius)
-    alphas = [finite("--alpha", a) for a in args.alpha]
+    limit = max_points(args, MAX_SOLVE_POINTS)
+    radii = parse_radii(args.radius, limit)
+    alphas = [coupling("--alpha", a) for a in args.alpha]
+    if len(radii) * len(alphas) > limit:
+        raise too_many("--alpha", len(radii) * len(alphas), limit, "points (radii x alphas)")
+    for alpha in alphas:
+        check_deformation(ttbar(alpha), radii)
     tol = tolerance(args.tol)
     if not args.json:
         print(FLOW_HEADER, file=out, flush=True)
@@ -72,7 +77,7 @@ def cmd_flow_check(args, out):
                 rec.update(energy=res.energy, dE_dR=f["dE_dR"], dE_dalpha=f["dE_dalpha1"],
                            residual=f["residual"], residual_error=f["error"], scale=f["scale"])
             if args.json:
-                print(json.dumps(rec), file=out, flush=True)
+                print(json_text(rec), file=out, flush=True)
                 continue
             rel = (lambda k: rec[k] / rec["scale"] if rec[k] is not None and rec["scale"] else None)
             print(f"{R:>10.6g} {alpha:>8.4g} {fmt(rec['energy'], '22.15g'):>22} "
@@ -91,8 +96,8 @@ def add_flow_commands(sub, conventions):
                         "of the deformed equations by continuation.",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(bp)
-    bp.add_argument("--alpha", required=True, metavar="A", help="TTbar coupling")
-    bp.add_argument("--method", choices=("curve", "continuation"), default="curve",
+    bp.add_argument("--alpha", required=True, action=Once, metavar="A", help="TTbar coupling")
+    bp.add_argument("--method", choices=("curve", "continuation"), default="curve", action=Once,
                     help="undeformed curve (default) or pseudo-arclength continuation")
     add_tol_argument(bp)
     bp.add_argument("--json", action="store_true", help="one JSON object")
@@ -104,9 +109,11 @@ def add_flow_commands(sub, conventions):
                         "dE/dalpha - E dE/dR (P = 0) relative to |E dE/dR|.",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(fc)
-    fc.add_argument("--radius", required=True, nargs="+", metavar="R",
-                    help="radii: numbers and/or START:STOP:COUNT")
-    fc.add_argument("--alpha", required=True, nargs="+", metavar="A", help="TTbar couplings")
+    fc.add_argument("--radius", required=True, nargs="+", action="extend", metavar="R",
+                    help="radii: numbers and/or START:STOP:COUNT (repeated options add up)")
+    fc.add_argument("--alpha", required=True, nargs="+", action="extend", metavar="A",
+                    help="TTbar couplings (repeated options add up)")
     add_tol_argument(fc)
     fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
+    add_max_points_argument(fc, MAX_SOLVE_POINTS, "points (radii x alphas)")
     fc.set_defaults(func=cmd_flow_check)

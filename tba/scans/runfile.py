@@ -40,7 +40,11 @@ A state that no model of the run has is refused.
 
 Strict: an unknown key, a missing key, a value of the wrong type or out of range raises
 `RunFileError` (a ValueError) whose message starts with the dotted key, for example
-``models[0].coupling: expected a number, got a string ('0.6')``.
+``models[0].coupling: expected a number, got a string ('0.6')`` (and with the file's name
+when read by `load_run`). Run files are new input, so they are also held to the limits of
+`tba.scans.limits`: radii and couplings inside the domain the solvers represent, and at most
+``max_points`` points (models x alphas x radii x states), checked before any radius range
+is allocated.
 
 The resolved run (`RunSpec`) has every default filled in and the radii written out, sorted
 and without duplicates (alphas likewise); models keep their order. ``RunSpec.to_dict()``
@@ -62,9 +66,11 @@ from pathlib import Path
 
 import numpy as np
 
-from tba.solvers.ground import MIN_TOL
-from tba.models.cdd import CDD
 from tba.models.catalog import ModelError, canonical_name, get_model, model_label
+from tba.models.cdd import CDD
+from tba.scans.limits import (MAX_POINTS, coupling_problem, deformation_problem, radius_problem,
+                              size_text)
+from tba.solvers.ground import MIN_TOL
 
 SWEEPS = ("descending", "ascending")
 SPACINGS = ("linear", "log")
@@ -81,11 +87,13 @@ NOT_IDENTITY_SCAN_KEYS = ("branch_points",)
 
 
 class RunFileError(ValueError):
-    """A run file that cannot be run; the message starts with the dotted key."""
+    """A run file that cannot be run; the message starts with the file (if known), then the
+    dotted key."""
 
-    def __init__(self, key, problem):
-        self.key = key
-        super().__init__(f"{key}: {problem}" if key else problem)
+    def __init__(self, key, problem, file=None):
+        self.key, self.problem, self.file = key, problem, file
+        text = f"{key}: {problem}" if key else problem
+        super().__init__(f"{file}: {text}" if file is not None else text)
 
 
 _MISSING = object()
@@ -273,7 +281,7 @@ class RunSpec:
         }
 
     def to_json(self):
-        return json.dumps(self.to_dict(), indent=1)
+        return json.dumps(self.to_dict(), indent=1, allow_nan=False)
 
     def identity(self):
         """The part of the resolved run that determines the numbers (``scan.branch_points``
@@ -374,28 +382,38 @@ def differing_keys(a, b):
 
 # -- reading ------------------------------------------------------------------------------------
 
-def load_run(path):
-    """Read and resolve a TOML run file; relative ``output`` paths are taken from its directory."""
+def load_run(path, *, max_points=MAX_POINTS):
+    """Read and resolve a TOML run file; relative ``output`` paths are taken from its
+    directory. Errors (`RunFileError`) name the file and the key."""
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
-        raise RunFileError("", f"{path}: no such run file") from None
+        raise RunFileError("", "no such run file", file=path) from None
     except (OSError, UnicodeDecodeError) as exc:
-        raise RunFileError("", f"{path}: cannot read it ({exc})") from None
-    return loads_run(text, base_dir=path.parent, name=path.stem)
+        raise RunFileError("", f"cannot read it ({exc})", file=path) from None
+    try:
+        return loads_run(text, base_dir=path.parent, name=path.stem, max_points=max_points)
+    except RunFileError as exc:
+        raise RunFileError(exc.key, exc.problem, file=path) from None
 
 
-def loads_run(text, base_dir=None, name="run"):
+def loads_run(text, base_dir=None, name="run", *, max_points=MAX_POINTS):
+    """Resolve the text of a run file, held to the limits (`resolve_run` with ``limits``)."""
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise RunFileError("", f"not valid TOML: {exc}") from None
-    return resolve_run(data, base_dir=base_dir, name=name)
+    return resolve_run(data, base_dir=base_dir, name=name, limits=True, max_points=max_points)
 
 
-def resolve_run(data, base_dir=None, name="run"):
-    """Check a run description (a dict as read from TOML) and fill in the defaults."""
+def resolve_run(data, base_dir=None, name="run", *, limits=False, max_points=MAX_POINTS):
+    """Check a run description (a dict as read from TOML) and fill in the defaults.
+
+    ``limits``: also refuse radii and couplings outside the solvers' domain and runs of more
+    than ``max_points`` points (`tba.scans.limits`), before any radius range is allocated.
+    Off by default: that is for runs read back from stores, which were checked as run files
+    when they were written; run files go through `loads_run` / `load_run`, which check."""
     top = _Table("", data)
     description = _string("description", top.get("description", DEFAULTS["description"]))
     name = _string("name", top.get("name", name))
@@ -409,9 +427,16 @@ def resolve_run(data, base_dir=None, name="run"):
             output = Path(base_dir) / output
         output = os.path.abspath(output)
     models = _models(top.get("models"))
-    alphas, higher_spin = _deformation(top.get("deformation"), models)
-    radii = _radii(top.get("radii"))
+    alphas, higher_spin, keys = _deformation(top.get("deformation"), models, limits)
     states = _states(top.get("states", DEFAULTS["states"]))
+    per_radius = len(models) * len(alphas) * len(states)
+    size = _Size(per_radius, max_points, models, alphas, states) if limits else None
+    radii = _radii(top.get("radii"), size)
+    if limits:
+        for (spin, alpha), key in zip([(1, a) for a in alphas] + list(higher_spin), keys):
+            why = deformation_problem(spin, alpha, radii[0])
+            if why is not None:
+                raise RunFileError(key, why)
     solver = _Table("solver", top.get("solver", {}))
     tol = _number("solver.tol", solver.get("tol", DEFAULTS["solver"]["tol"]))
     min_tol = MIN_TOL  # the solver's own limit
@@ -462,14 +487,26 @@ def _models(value):
     return tuple(specs)
 
 
-def _deformation(value, models):
+def _coupling(key, value, limits):
+    a = _number(key, value) + 0.0  # -0.0 is 0
+    why = coupling_problem(a) if limits else None
+    if why is not None:
+        raise RunFileError(key, why)
+    return a
+
+
+def _deformation(value, models, limits):
+    """(sorted alphas, ((spin, alpha_s), ...), the key of each alpha then of each spin)."""
     if value is None:
         _missing("deformation")
     t = _Table("deformation", value)
     raw = _array("deformation.alphas", t.get("alphas"))
     if not raw:
         raise RunFileError("deformation.alphas", "needs at least one value (0 for undeformed)")
-    alphas = tuple(sorted({_number(f"deformation.alphas[{i}]", a) + 0.0 for i, a in enumerate(raw)}))
+    first_key = {}
+    for i, a in enumerate(raw):
+        first_key.setdefault(_coupling(f"deformation.alphas[{i}]", a, limits), f"deformation.alphas[{i}]")
+    alphas = tuple(sorted(first_key))
     hs = _Table("deformation.higher_spin", t.get("higher_spin", {}))
     higher = {}
     for spin_text, a in hs.data.items():
@@ -481,7 +518,7 @@ def _deformation(value, models):
             raise RunFileError(key, "spin must be an integer >= 2") from None
         if spin < 2 or str(spin) != spin_text.strip():
             raise RunFileError(key, f"spin must be an integer >= 2 (spin 1 is alphas), got {spin_text!r}")
-        a = _number(key, a)
+        a = _coupling(key, a, limits)
         if a != 0.0:
             higher[spin] = a
         for i, m in enumerate(models):
@@ -490,24 +527,50 @@ def _deformation(value, models):
             except ValueError as exc:
                 raise RunFileError(key, str(exc).split(": ", 1)[-1]) from None
     t.finish()
-    return alphas, tuple(sorted(higher.items()))
+    higher = tuple(sorted(higher.items()))
+    keys = [first_key[a] for a in alphas] + [hs.key(str(s)) for s, _ in higher]
+    return alphas, higher, keys
 
 
 def _missing(key):
     raise RunFileError(key, "missing (required key)")
 
 
-def _radius(key, value):
+class _Size:
+    """The running count of radii against ``max_points``, checked before each radius range
+    is allocated (a count of 10^8 must be refused, not computed)."""
+
+    def __init__(self, per_radius, max_points, models, alphas, states):
+        self.per_radius, self.max_points = per_radius, max_points
+        self.shape = (f"{len(models)} model(s) x {len(alphas)} alpha(s) x {{}} radii x "
+                      f"{len(states)} state(s)")
+        self.radii = 0
+
+    def add(self, key, n):
+        self.radii += n
+        points = self.radii * self.per_radius
+        if points > self.max_points:
+            raise RunFileError(key, f"{points:,} points ({self.shape.format(f'{self.radii:,}')}; "
+                                    f"{size_text(points)} in memory and about as much on disk) "
+                                    f"exceed the limit of {self.max_points:,} points per run: "
+                                    f"split the scan into several run files (by alpha or radius "
+                                    f"range), or raise the limit with tba run --max-points N")
+
+
+def _radius(key, value, size=None):
     R = _number(key, value)
     if R <= 0:
         raise RunFileError(key, f"radius must be positive, got {R!r}")
+    why = radius_problem(R) if size is not None else None
+    if why is not None:
+        raise RunFileError(key, why)
     return R
 
 
-def _range(key, value):
+def _range(key, value, size=None):
     t = _Table(key, value)
-    start = _radius(t.key("start"), t.get("start"))
-    stop = _radius(t.key("stop"), t.get("stop"))
+    start = _radius(t.key("start"), t.get("start"), size)
+    stop = _radius(t.key("stop"), t.get("stop"), size)
     count = _integer(t.key("count"), t.get("count"))
     spacing = _string(t.key("spacing"), t.get("spacing", "linear"))
     t.finish()
@@ -515,15 +578,18 @@ def _range(key, value):
         raise RunFileError(t.key("spacing"), f"must be one of {', '.join(SPACINGS)}, got {spacing!r}")
     if count < 1 or (count == 1 and start != stop):
         raise RunFileError(t.key("count"), f"must be >= 2 for a range (1 only if start == stop), got {count}")
+    if size is not None:
+        size.add(t.key("count"), count)
     values = np.geomspace(start, stop, count) if spacing == "log" else np.linspace(start, stop, count)
     return [float(v) for v in values]
 
 
-def _radii(value):
+def _radii(value, size=None):
+    """The sorted, merged radii; ``size`` (a `_Size`) checks the domain and the count."""
     if value is None:
         _missing("radii")
     if isinstance(value, dict):
-        values = _range("radii", value)
+        values = _range("radii", value, size)
     else:
         items = _array("radii", value)
         if not items:
@@ -531,7 +597,12 @@ def _radii(value):
         values = []
         for i, item in enumerate(items):
             key = f"radii[{i}]"
-            values.extend(_range(key, item) if isinstance(item, dict) else [_radius(key, item)])
+            if isinstance(item, dict):
+                values.extend(_range(key, item, size))
+            else:
+                values.append(_radius(key, item, size))
+                if size is not None:
+                    size.add(key, 1)
     return tuple(sorted(set(values)))
 
 
