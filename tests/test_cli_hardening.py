@@ -365,7 +365,7 @@ def test_negative_alpha_in_every_spelling(spelling):
     (["solve", "--model", "lee-yang", "--radius", "1", "--cdd", "31:0.01"], "--cdd", "spin-31"),
     (["solve", "--model", "lee-yang", "--radius", "1", "--cdd", "3:7e11", "--cdd", "3:7e11"],
      "--cdd", "spin 3"),
-    (["solve", "--model", "ising-e8", "--radius", "1", "--cdd", "3:0.01"], "--cdd", "single-species"),
+    (["solve", "--model", "ising-e8", "--radius", "1", "--cdd", "3:0.01"], "--cdd", "allowed spins"),
     (["branch-point", "--model", "lee-yang", "--alpha", "-1e200"], "--alpha", "1e+12"),
     (["flow-check", "--model", "lee-yang", "--radius", "1", "--alpha", "-0.1", "1e13"], "--alpha", "1e+12"),
     (["flow-check", "--model", "lee-yang", "--radius", "1e300", "--alpha", "-0.1"], "--radius", "700"),

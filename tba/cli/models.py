@@ -7,10 +7,9 @@ every A<n>, D<n>, T<n> up to n = 40 and every N up to 40 is accepted as well (``
 the keys name, parameters, species, masses, c_eff, massless, spins.
 """
 
-import json
 from fractions import Fraction
 
-from tba.cli.common import UsageError
+from tba.cli.common import UsageError, json_text
 from tba.models.catalog import MAX_RANK, ModelError, model_summaries
 
 _JSON_KEYS = ("name", "parameters", "species", "masses", "c_eff", "massless", "spins")
@@ -56,7 +55,7 @@ def cmd_models(args, out):
                          f"{exc.reason}") from None
     if args.json:
         for rec in records:
-            print(json.dumps({k: rec[k] for k in _JSON_KEYS}), file=out, flush=True)
+            print(json_text({k: rec[k] for k in _JSON_KEYS}), file=out, flush=True)
         return 0
     print(f"{'name (--model)':<22} {'also':<6} {'parameter':<14} {'n':>3}  {'c_eff (R -> 0)':<24} "
           f"{'CDD spins':<45} masses (species: mass)", file=out)
