@@ -13,6 +13,7 @@ after Ctrl-C; exit code 1 when a cluster gave up on some tasks, with everything 
 import argparse
 import csv
 import json
+import signal
 import sys
 from pathlib import Path
 
@@ -24,6 +25,7 @@ from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Parser, Usa
                             parse_cdd, parse_radii, parse_state_argument, state_row, table_row,
                             tolerance)
 from tba.output.report import format_report
+from tba.scans import interrupts
 from tba.scans.runfile import RunFileError, demo_run_path, load_run, parse_shard
 from tba.store.driver import ScanFailed, ScanInterrupted, run_scan
 from tba.store.hdf5 import NOT_COMPUTED, StoreError, read_store
@@ -363,6 +365,7 @@ def build_parser():
 
 def main(argv=None):
     parser = build_parser()
+    interrupts.install()  # Ctrl-C and SIGTERM raised at safe points only: exit 130 / 143
     try:
         args = parser.parse_args(argv)
         return args.func(args, sys.stdout)
@@ -371,13 +374,15 @@ def main(argv=None):
         return 2
     except ScanInterrupted as exc:
         print(f"tba: {exc}", file=sys.stderr)
-        return 130
+        return 128 + exc.signum
     except ScanFailed as exc:
         print(f"tba: error: {exc}", file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print("tba: interrupted; the points printed above are complete", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = interrupts.signal_number(exc)
+        how = "interrupted" if signum == signal.SIGINT else f"terminated ({interrupts.signal_name(signum)})"
+        print(f"tba: {how}; the points printed above are complete", file=sys.stderr)
+        return 128 + signum
 
 
 if __name__ == "__main__":
