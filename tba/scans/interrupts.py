@@ -90,7 +90,8 @@ def _send_again(signum):
 
     def fire():
         _state["retrying"] = False
-        signal.pthread_kill(threading.main_thread().ident, signum)
+        if _state["pending"] == signum:  # not raised meanwhile (by a signal that came later)
+            signal.pthread_kill(threading.main_thread().ident, signum)
 
     _state["retrying"] = True
     timer = threading.Timer(RETRY, fire)

@@ -106,8 +106,9 @@ from tba.scans.codes import (  # noqa: F401 (re-exported: the layout of a store)
 from tba.scans.points import describe_chunk
 from tba.scans.runfile import RunFileError, RunSpec, Shard, differing_keys, resolve_run
 from tba.store.errors import DamagedStore, StoreError, StoreWriteError  # noqa: F401 (re-exported)
-from tba.store.integrity import (branch_checksum, chunk_checksum, decode_history_entry,
-                                 encode_history_entry, encode_recovery_map, header_checksum)
+from tba.store.integrity import (RECOVERY_MAGIC, branch_checksum, chunk_checksum,
+                                 decode_history_entry, encode_history_entry, encode_recovery_map,
+                                 header_checksum)
 from tba.store.lock import holder, partial_path
 
 SCHEMA = "tba-flow scan"
@@ -499,8 +500,7 @@ def _write_contents(f, run, shard, contents):
 def write_history(f, entries):
     """History entries into the slots of a new file: the last HISTORY_SLOTS by invocation."""
     slots = np.zeros(HISTORY_SLOTS, dtype=HISTORY_DTYPE)
-    kept = [e for e in entries if "invocation" in e]  # not the marks of damaged slots
-    for entry in sorted(kept, key=lambda e: e["invocation"])[-HISTORY_SLOTS:]:
+    for entry in sorted(entries, key=lambda e: e["invocation"])[-HISTORY_SLOTS:]:
         slots[(entry["invocation"] - 1) % HISTORY_SLOTS] = encode_history_entry(entry, HISTORY_BYTES)
     f["progress/history"][...] = slots
 
@@ -564,6 +564,8 @@ def write_atomically(path, image, keep=None):
                          f"elsewhere (--out)")
     tmp = partial_path(path)
     try:
+        if tmp.exists():  # ours (this host and pid), left by a dead process of the same pid
+            tmp.unlink()
         fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, 0o666)
         try:
             write_all(fd, image, 0)
@@ -656,6 +658,17 @@ def _hdf5_signature(path):
     return False
 
 
+def _has_recovery_map(path):
+    """True if the raw bytes of ``path`` hold the magic number of a recovery map."""
+    import mmap
+
+    try:
+        with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as buffer:
+            return buffer.find(RECOVERY_MAGIC) >= 0
+    except (OSError, ValueError):
+        return False
+
+
 def _first_line(exc):
     text = str(exc).strip().splitlines()
     line = text[0] if text else type(exc).__name__
@@ -687,6 +700,8 @@ def open_hdf5(path):
             raise StoreError(f"{path}: cannot be read (permission denied)") from None
         if _hdf5_signature(path):
             raise DamagedStore(f"{path}: damaged HDF5 file ({_first_line(exc)})") from None
+        if _has_recovery_map(path):
+            raise DamagedStore(f"{path}: damaged HDF5 file (no HDF5 signature left)") from None
         raise StoreError(f"{path}: not an HDF5 file", foreign=True) from None
 
 
@@ -707,8 +722,10 @@ def load(path, verify=True):
     not HDF5 or not tba-flow scans, unknown schema versions, a run attribute that is not a
     run, missing data sets or data sets of the wrong shape or type, coordinates or a chunk
     table that do not match the run. `DamagedStore`: HDF5 cannot read the structure, or (schema
-    4) the root attributes fail their checksum. Chunks marked done whose values fail their
-    checksum are listed in ``bad_chunks`` (not refused here)."""
+    4) the root attributes fail their checksum, or a chunk marked done holds values no solve
+    gives (an unknown status, "converged" without a finite energy). Chunks marked done whose
+    values fail their checksum are listed in ``bad_chunks`` (not refused here). ``verify``
+    False reads what is there, neither checksums nor values checked."""
     path = Path(path)
     f = open_hdf5(path)
     with f:
@@ -839,7 +856,8 @@ def _load(path, f, verify):
         snap.offsets = _offsets(path, f)
         if verify:
             _verify(snap, mine, offsets, bsum)
-    _check_values(snap, mine, offsets)
+    if verify:
+        _check_values(snap, mine, offsets)
     _consistent(snap, offsets)
     return snap
 
@@ -878,7 +896,9 @@ def _check_coordinates(path, f, run):
 
 def _history(path, f, version):
     """(entries, number of invocations) of a file: the slots of schema 4, the /progress
-    attribute of older schemas. A damaged slot is an entry saying so."""
+    attribute of older schemas. An entry whose slot fails its checksum is replaced by one that
+    says so; a damaged slot that held no entry (invocation numbers run 1, 2, ... and fill the
+    slots in turn) is left out."""
     if version < 4:
         try:
             entries = json.loads(f["progress"].attrs["history"])
@@ -892,12 +912,18 @@ def _history(path, f, version):
         try:
             entry = decode_history_entry(raw)
         except ValueError:
-            damaged.append({"slot": k, "damaged": "this history entry fails its checksum"})
+            damaged.append(k)
             continue
         if entry is not None:
             entries.append(entry)
+    last = max((e["invocation"] for e in entries), default=0)
+    for k in damaged:
+        invocation = last - (last - (k + 1)) % HISTORY_SLOTS  # the latest one in slot k
+        if 1 <= invocation <= last:
+            entries.append({"invocation": invocation, "damaged": "this history entry fails its "
+                                                                  "checksum"})
     entries.sort(key=lambda e: e["invocation"])
-    return entries + damaged, max((e["invocation"] for e in entries), default=0)
+    return entries, last
 
 
 def _offsets(path, f):

@@ -147,7 +147,7 @@ class OutputLock:
             os.close(fd)  # taken, or released and removed meanwhile: look again
             if time.monotonic() > deadline:
                 raise StoreBusy(f"{self.path}: being written by {_describe(_read_info(lp))}; "
-                                f"wait until it has finished, or write to another file")
+                                f"wait until it has finished, or write to another file (--out)")
             time.sleep(0.05)
 
     def _write_info(self):
@@ -194,7 +194,9 @@ def clean_partials(path):
         if not name.startswith(prefix):
             continue
         host, _, pid = name[len(prefix):].rpartition("-")
-        if not pid.isdigit() or host not in ("", platform.node()) or _alive(int(pid)):
+        if not pid.isdigit() or host not in ("", platform.node()):
+            continue
+        if int(pid) != os.getpid() and _alive(int(pid)):  # ours is stale: we hold the lock
             continue
         try:
             os.unlink(path.parent / name)

@@ -88,8 +88,6 @@ class _Merged:
         self.files.append(str(path))
         offset = len(merged.history)
         for entry in snap.history:
-            if "invocation" not in entry:  # the mark of a damaged history slot
-                continue
             entry = dict(entry, invocation=offset + int(entry["invocation"]), file=str(path))
             if snap.shard is not None:
                 entry.setdefault("shard", snap.shard.label)

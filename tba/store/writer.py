@@ -89,8 +89,9 @@ def prepare_store(path, run, force=False, run_file=None, shard=None):
 def _safe(snap):
     """``its 44 computed chunks are safe ...``: what to do with a store that cannot be written."""
     n = int(snap.done.sum())
+    run_file = snap.attrs.get("run_file") or "RUNFILE"
     return (f"its {n} computed chunk{'s are' if n != 1 else ' is'} safe in it: copy it to a "
-            f"writable place and resume the copy there (tba run RUNFILE --out COPY)")
+            f"writable place and resume the copy there (tba run {run_file} --out COPY)")
 
 
 def unwritable_message(path, snap, reason):
@@ -155,7 +156,7 @@ class Store:
         self._prefix = "" if self.shard is None else "shard_points/"
         self._file_done = snap.progress["done"].astype(bool)  # as in the file: bad chunks 1 still
         self._bad_branch = set(snap.bad_branch)
-        self._history = [e for e in snap.history if "invocation" in e]
+        self._history = list(snap.history)
         self._next = snap.invocations + 1
         self._invocation = None
 
