@@ -186,7 +186,7 @@ def _wait_for_chunks(proc, path, n=1, timeout=120):
 
 # -- one writer per file -----------------------------------------------------------------------
 
-def test_a_held_lock_refuses_a_second_writer_in_one_line(tmp_path, reference):
+def test_a_held_lock_refuses_a_second_writer_in_one_line(tmp_path, reference, capsys):
     runfile = _runfile(tmp_path)
     out = tmp_path / "scan.h5"
     with OutputLock(out, command="test writer"):
@@ -201,6 +201,8 @@ def test_a_held_lock_refuses_a_second_writer_in_one_line(tmp_path, reference):
         # in this process too (open-file-description locks), and for a merge into it
         with pytest.raises(StoreBusy, match="being written by test writer"):
             run_scan(load_run(runfile), workers=1, log=io.StringIO())
+        line = _one_line(capsys, 2, ["merge", reference.path, "--out", out])
+        assert "being written by test writer" in line and not out.exists()
     assert holder(out) is None and not lock_path(out).exists()
     run_scan(load_run(runfile), workers=1, log=io.StringIO())
     _same_numbers(read_store(out), reference)
@@ -606,6 +608,54 @@ def test_a_cluster_that_loses_all_its_workers_fails_clearly(tmp_path, reference)
     assert saved >= 1 and f"{saved} of 16 chunks are saved" in message
     assert run_scan(run, workers=1, log=io.StringIO()).chunks_before == saved
     _same_numbers(read_store(run.output), reference)
+
+
+def test_a_local_cluster_that_cannot_start_is_one_line(tmp_path, capsys, monkeypatch):
+    # before: "RuntimeError: Nanny failed to start." with a traceback, when workers died while
+    # the cluster started
+    import tba.scans.cluster
+
+    def dying(n_workers):
+        raise RuntimeError("Nanny failed to start.")
+
+    monkeypatch.setattr(tba.scans.cluster, "local_cluster", dying)
+    runfile = _runfile(tmp_path)
+    line = _one_line(capsys, 2, ["run", runfile, "--cluster", "local:2"])
+    assert line == ("tba: error: argument --cluster: the local cluster could not start: "
+                    "RuntimeError: Nanny failed to start.")
+    assert not (tmp_path / "scan.h5").exists()
+
+
+def _children(pid):
+    out = []
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            out += [int(p) for p in (task / "children").read_text().split()]
+        except OSError:
+            pass
+    return out
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+def test_a_pool_worker_that_dies_fails_its_tasks_and_keeps_the_rest(tmp_path):
+    runfile = _runfile(tmp_path, count=48)
+    out = tmp_path / "scan.h5"
+    proc = subprocess.Popen([sys.executable, "-m", "tba", "run", str(runfile), "--workers", "2"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    _wait_for_chunks(proc, out, n=2)  # the first in the driver, then the pool's
+    workers = [p for p in _children(proc.pid) if b"spawn_main" in Path(f"/proc/{p}/cmdline").read_bytes()]
+    if workers:
+        os.kill(workers[0], signal.SIGKILL)  # as the out-of-memory killer would
+    _, err = proc.communicate(timeout=300)
+    if proc.returncode == 0:  # the pool was done already
+        return
+    assert proc.returncode == 1 and "Traceback" not in err, err
+    last = err.strip().splitlines()[-1]
+    assert re.match(r"tba: error: \d+ tasks? failed: chunk \d+ .*BrokenProcessPool", last), last
+    saved = int(read_store(out).progress["done"].sum())
+    assert f"{saved} of 48 chunks" in last and "run the same command again" in last
+    assert _tba("run", runfile, "--workers", "1").returncode == 0 and read_store(out).complete
 
 
 # -- one failing point, stale files, bounded history ----------------------------------------------

@@ -173,32 +173,38 @@ def merge_stores(paths, out, force=False):
     if out.is_dir():
         raise StoreError(f"{out}: is a directory")
     started = now()
-    snaps = [_verified(load_settled(p)) for p in inputs]
-    for p, snap in zip(inputs, snaps):
-        _check(p, snap, snaps[0], inputs[0])
-    run = snaps[0].run.with_output(out)
+    first = _verified(load_settled(inputs[0]))
+    _check(inputs[0], first, first, inputs[0])
+    run = first.run.with_output(out)
     with OutputLock(out, command="tba merge"):
+        merged = _Merged(run)
+        sources = []
         if out.exists() and not force and out not in seen:
             try:  # a full store of the same run is merged in; anything else is left alone
                 existing = check_store(out, run)
             except StoreError as exc:
                 raise StoreError(f"{str(exc).split('; ')[0]}; refusing to overwrite it with the "
                                  f"merge (use --force to replace it, or another --out)") from None
-            snaps.insert(0, _verified(existing))
-            inputs.insert(0, out)
-        merged = _Merged(run)
-        for p, snap in zip(inputs, snaps):
+            merged.add(out, _verified(existing))
+            sources.append(out)
+        shard_counts = set()
+        for k, p in enumerate(inputs):  # one at a time: the merged arrays, and one input
+            snap = first if k == 0 else _verified(load_settled(p))
+            _check(p, snap, first, inputs[0])
             merged.add(p, snap)
-        run_file = snaps[0].attrs.get("run_file") or None
-        shard_counts = sorted({s.shard.count for s in snaps if s.shard is not None})
+            sources.append(p)
+            if snap.shard is not None:
+                shard_counts.add(snap.shard.count)
+            snap.points = None
         entry = {"invocation": len(merged.contents.history) + 1, "started": started,
                  "finished": now(), "package_version": package_version(),
                  "git_commit": git_commit(), "host": platform.node(),
-                 "merge": [str(p) for p in inputs],
+                 "merge": [str(p) for p in sources],
                  "chunks_merged": int(merged.contents.done.sum()),
                  "branch_points_merged": int((merged.branch_source >= 0).sum())}
         merged.contents.history.append(entry)
-        create_store(out, run, run_file, contents=merged.contents)
+        create_store(out, run, first.attrs.get("run_file") or None, contents=merged.contents)
+    inputs, shard_counts = sources, sorted(shard_counts)
     return _summary(run, out, inputs, merged, shard_counts)
 
 
