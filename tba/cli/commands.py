@@ -7,7 +7,8 @@ together, a cluster that cannot be reached or a missing dask) prints one line on
 naming the argument, key or file and exits with code 2. ``tba solve`` prints points as
 soon as they are solved; ``tba run`` writes each finished chunk to its HDF5 file, so an
 interrupted run keeps what it has written and the same command resumes it (exit code 130
-after Ctrl-C; exit code 1 when a cluster gave up on some tasks, with everything else saved).
+after Ctrl-C, 143 after SIGTERM; exit code 1 when some tasks failed, with everything else
+saved).
 """
 
 import argparse

@@ -16,7 +16,7 @@ from tba.scans.backends import BranchDone, ChunkDone, local_backend
 from tba.scans.codes import BP_FAILED, NOT_COMPUTED
 from tba.scans.interrupts import installed, signal_name, signal_number
 from tba.scans.runfile import Shard
-from tba.store.errors import StoreBusy, StoreError, StoreWriteError
+from tba.store.errors import StoreError, StoreWriteError
 from tba.store.hdf5 import check_store
 from tba.store.lock import OutputLock
 from tba.store.writer import open_store, prepare_store, unwritable_message
@@ -125,13 +125,11 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
             path.parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise StoreError(f"{path}: cannot create its directory ({exc.strerror})") from None
-    with installed():  # signals raised between points and writes, never inside compiled code
+    with installed():  # signals raised at safe points: never in compiled code or mid-write
         lock = OutputLock(path)
         try:
             lock.acquire()
-        except StoreBusy:
-            raise
-        except StoreError:
+        except StoreError:  # busy, or a directory that takes no lock file (read-only)
             if lock.unwritable is None or not path.exists():
                 raise
             return _read_only(run, path, shard, lock.unwritable, log)
