@@ -191,13 +191,12 @@ def test_a_held_lock_refuses_a_second_writer_in_one_line(tmp_path, reference, ca
     out = tmp_path / "scan.h5"
     with OutputLock(out, command="test writer"):
         assert holder(out)["command"] == "test writer"
-        # another process, for a new file and with --force: refused, nothing written
-        for extra in ((), ("--force",)):
-            r = _tba("run", runfile, "--workers", "1", *extra)
-            assert r.returncode == 2 and "Traceback" not in r.stderr, r.stderr
-            line = r.stderr.strip().splitlines()
-            assert len(line) == 1 and "being written by test writer (pid" in line[0]
-            assert not out.exists()
+        # another process, even with --force: refused on one line, nothing written
+        r = _tba("run", runfile, "--workers", "1", "--force")
+        assert r.returncode == 2 and "Traceback" not in r.stderr, r.stderr
+        line = r.stderr.strip().splitlines()
+        assert len(line) == 1 and "being written by test writer (pid" in line[0]
+        assert not out.exists()
         # in this process too (open-file-description locks), and for a merge into it
         with pytest.raises(StoreBusy, match="being written by test writer"):
             run_scan(load_run(runfile), workers=1, log=io.StringIO())
@@ -435,12 +434,12 @@ def test_flipped_bits_anywhere_never_change_what_is_read(tmp_path, reference):
     # In a process of its own, so that a crash inside HDF5 would fail the test, not the suite.
     src = tmp_path / "scan.h5"
     shutil.copy(reference.path, src)
-    r = subprocess.run([sys.executable, "-c", FLIPS, str(src), str(tmp_path / "flipped.h5"), "60", "7"],
+    r = subprocess.run([sys.executable, "-c", FLIPS, str(src), str(tmp_path / "flipped.h5"), "40", "7"],
                        capture_output=True, text=True, timeout=600)
     assert r.returncode == 0, r.stderr[-2000:]
     counts = json.loads(r.stdout.strip().splitlines()[-1])
     assert set(counts) <= {"unchanged", "one-line error"}, counts
-    assert counts["one-line error"] >= 60, counts  # the raw data of every data set is covered
+    assert counts["one-line error"] >= 40, counts  # the raw data of every data set is covered
 
 
 def test_damaged_files_without_a_recovery_map_are_never_touched(tmp_path, monkeypatch, capsys):
@@ -556,26 +555,24 @@ def test_ctrl_c_inside_compiled_code_is_a_clean_interrupt():
 @pytest.mark.parametrize("sig, workers", [(signal.SIGINT, 1), (signal.SIGTERM, 1), (signal.SIGTERM, 2)])
 def test_signals_exit_cleanly_and_close_the_history(tmp_path, sig, workers):
     # before: SIGTERM exited -15 with the history entry unfinished
-    rng = random.Random(sig * 10 + workers)
-    for k in range(2):
-        runfile = _runfile(tmp_path / f"{k}", count=48)
-        out = tmp_path / f"{k}" / "scan.h5"
-        proc = subprocess.Popen([sys.executable, "-m", "tba", "run", str(runfile), "--workers",
-                                 str(workers)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-        _wait_for_chunks(proc, out)
-        time.sleep(rng.uniform(0, 0.3))
-        proc.send_signal(sig)
-        _, err = proc.communicate(timeout=120)
-        if "is complete" in err:  # the scan finished first: nothing to check
-            continue
-        assert proc.returncode == 128 + sig and "Traceback" not in err, err
-        last = err.strip().splitlines()[-1]
-        how = "interrupted" if sig == signal.SIGINT else "terminated (SIGTERM)"
-        assert last.startswith(f"tba: {how}; ") and last.endswith("run the same command again to resume")
-        entry = read_store(out).history[-1]
-        assert entry["finished"] and entry["interrupted"] and entry["signal"] == signal.Signals(sig).name
-        assert _tba("run", runfile, "--workers", "1").returncode == 0
-        assert read_store(out).complete
+    runfile = _runfile(tmp_path, count=48)
+    out = tmp_path / "scan.h5"
+    proc = subprocess.Popen([sys.executable, "-m", "tba", "run", str(runfile), "--workers",
+                             str(workers)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    _wait_for_chunks(proc, out)
+    time.sleep(random.Random(sig * 10 + workers).uniform(0, 0.3))  # at a random moment
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=120)
+    if "is complete" in err:  # the scan finished first: nothing to check
+        return
+    assert proc.returncode == 128 + sig and "Traceback" not in err, err
+    last = err.strip().splitlines()[-1]
+    how = "interrupted" if sig == signal.SIGINT else "terminated (SIGTERM)"
+    assert last.startswith(f"tba: {how}; ") and last.endswith("run the same command again to resume")
+    entry = read_store(out).history[-1]
+    assert entry["finished"] and entry["interrupted"] and entry["signal"] == signal.Signals(sig).name
+    assert _tba("run", runfile, "--workers", "1").returncode == 0
+    assert read_store(out).complete
 
 
 # -- clusters ----------------------------------------------------------------------------------
@@ -639,7 +636,7 @@ def _children(pid):
 @pytest.mark.slow
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
 def test_a_pool_worker_that_dies_fails_its_tasks_and_keeps_the_rest(tmp_path):
-    runfile = _runfile(tmp_path, count=48)
+    runfile = _runfile(tmp_path, count=32)
     out = tmp_path / "scan.h5"
     proc = subprocess.Popen([sys.executable, "-m", "tba", "run", str(runfile), "--workers", "2"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -654,7 +651,7 @@ def test_a_pool_worker_that_dies_fails_its_tasks_and_keeps_the_rest(tmp_path):
     last = err.strip().splitlines()[-1]
     assert re.match(r"tba: error: \d+ tasks? failed: chunk \d+ .*BrokenProcessPool", last), last
     saved = int(read_store(out).progress["done"].sum())
-    assert f"{saved} of 48 chunks" in last and "run the same command again" in last
+    assert f"{saved} of 32 chunks" in last and "run the same command again" in last
     assert _tba("run", runfile, "--workers", "1").returncode == 0 and read_store(out).complete
 
 
