@@ -607,6 +607,22 @@ def test_a_cluster_that_loses_all_its_workers_fails_clearly(tmp_path, reference)
     _same_numbers(read_store(run.output), reference)
 
 
+def test_a_scheduler_without_workers_is_a_clear_failure(tmp_path):
+    import distributed
+
+    from tba.scans.cluster import DaskBackend
+
+    run = load_run(_runfile(tmp_path))
+    with distributed.LocalCluster(n_workers=0, dashboard_address="127.0.0.1:0") as cluster, \
+            distributed.Client(cluster) as client:
+        with pytest.raises(ScanFailed) as info:
+            run_scan(run, backend=DaskBackend(client=client, no_worker_timeout=1), log=io.StringIO())
+    # every chunk and branch point reported, none computed, the file readable
+    assert str(info.value).startswith("18 tasks failed: chunk 0 (free-fermion, alpha = -0.3")
+    assert "the cluster has had no workers for 1 s" in str(info.value)
+    assert int(read_store(run.output).progress["done"].sum()) == 0
+
+
 def test_a_local_cluster_that_cannot_start_is_one_line(tmp_path, capsys, monkeypatch):
     # before: "RuntimeError: Nanny failed to start." with a traceback, when workers died while
     # the cluster started

@@ -153,6 +153,11 @@ class _Workers:
         self.client, self.timeout = client, timeout
         self.checked = self.since = None
 
+    @property
+    def message(self):
+        return (f"the cluster has had no workers for {self.timeout:g} s (all lost, or none "
+                f"started); gave up waiting")
+
     def lost(self):
         if self.timeout is None:
             return False
@@ -278,6 +283,8 @@ class DaskBackend(Backend):
                 pending[pilot] = chunks[0]
                 yield from self._results(run, pending, workers)
             if pending:  # the pilot waited in vain: the cluster has no workers
+                for what in [*chunks[1:], *branch_pairs]:
+                    yield _failed(run, what, workers.message)
                 return
             for chunk in chunks[1:]:
                 future = client.submit(_chunk_task, run_future, chunk, version, pure=False,
@@ -320,10 +327,8 @@ class DaskBackend(Backend):
                         got = True
                         yield item
             if workers.lost():
-                error = (f"the cluster has had no workers for {workers.timeout:g} s (all lost, or "
-                         f"none started); gave up waiting")
                 for what in pending.values():
-                    yield _failed(run, what, error)
+                    yield _failed(run, what, workers.message)
                 return
             if finished and not got:
                 time.sleep(0.05)  # lost results, being computed again
