@@ -348,6 +348,19 @@ def test_a_truncated_file_is_rebuilt_from_its_verified_chunks(tmp_path, referenc
     assert [h.get("chunks_recovered") for h in data.history] == [None, 6, None]
 
 
+def test_a_damaged_file_of_another_tba_version_is_not_rebuilt(tmp_path, monkeypatch):
+    import tba.store.writer
+
+    run = _partial(_runfile(tmp_path), 2, monkeypatch)
+    os.truncate(run.output, os.path.getsize(run.output) // 2)
+    damaged = Path(run.output).read_bytes()
+    monkeypatch.setattr(tba.store.writer, "package_version", lambda: "9.9")
+    with pytest.raises(DamagedStore, match=f"its chunks were computed by tba {re.escape(tba.__version__)}, "
+                                           f"this is tba 9.9, so nothing in it can be recovered"):
+        run_scan(run, workers=1, log=io.StringIO())
+    assert Path(run.output).read_bytes() == damaged
+
+
 def test_a_file_with_a_broken_superblock_is_rebuilt(tmp_path, reference, monkeypatch):
     run = _partial(_runfile(tmp_path), 4, monkeypatch)
     with open(run.output, "r+b") as fh:  # the HDF5 signature and superblock

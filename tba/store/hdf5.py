@@ -516,7 +516,8 @@ def _seal(f, run, shard):
     f.visititems(visit)
     content = {"schema_version": SCHEMA_VERSION, "run_id": run.run_id,
                "shard": None if shard is None else shard.label, "run": run.to_dict(),
-               "run_file": str(f.attrs.get("run_file", "")), "datasets": datasets}
+               "run_file": str(f.attrs.get("run_file", "")),
+               "package_version": str(f.attrs.get("package_version", "")), "datasets": datasets}
     ds = f["recovery/map"]
     ds[()] = np.array(encode_recovery_map(content, ds.dtype.itemsize), dtype=ds.dtype)
     f.attrs["header_checksum"] = header_checksum(f.attrs)

@@ -32,6 +32,7 @@ class Salvage:
     run: object
     shard: object
     run_file: str
+    package_version: str
     chunks: dict = field(default_factory=dict)
     branch: dict = field(default_factory=dict)
     history: list = field(default_factory=list)
@@ -75,14 +76,15 @@ def salvage(path):
             return None
         if run.run_id != content.get("run_id"):
             return None
-        return _read(buffer, run, shard, datasets, str(content.get("run_file") or ""))
+        return _read(buffer, run, shard, datasets, str(content.get("run_file") or ""),
+                     str(content.get("package_version")))
 
 
-def _read(buffer, run, shard, datasets, run_file):
+def _read(buffer, run, shard, datasets, run_file, version):
     def get(name, kind):
         return _array(buffer, datasets[name], STORED[kind]) if name in datasets else None
 
-    out = Salvage(run=run, shard=shard, run_file=run_file)
+    out = Salvage(run=run, shard=shard, run_file=run_file, package_version=version)
     done, checksum = get("progress/done", "u1"), get("progress/checksum", "u8")
     invocation, seconds = get("progress/invocation", "i4"), get("progress/seconds", "f8")
     prefix = "" if shard is None else "shard_points/"

@@ -104,15 +104,22 @@ def recover_store(path, run, shard, run_file, damage, notes):
     saying so), written atomically; the damaged file is kept as ``NAME.damaged-TIME``.
     Returns the new file's `Snapshot`; `DamagedStore` if nothing can be recovered."""
     found = salvage(path)
-    if found is None or found.run.run_id != run.run_id or found.shard != shard:
-        why = ("it has no intact recovery map (written by an older tba, or damaged there too)"
-               if found is None else "its recovery map belongs to another run or shard")
+    if found is None:
+        why = "it has no intact recovery map (written by an older tba, or damaged there too)"
+    elif found.run.run_id != run.run_id or found.shard != shard:
+        why = "its recovery map belongs to another run or shard"
+    elif found.package_version != package_version():
+        why = f"its chunks were computed by tba {found.package_version}, this is tba {package_version()}"
+    else:
+        why = None
+    if why is not None:
         raise DamagedStore(f"{damage}; {why}, so nothing in it can be recovered; use --force "
-                           f"to replace it, or --out") from None
+                           f"to replace it, or --out")
     contents = empty_contents(run, shard)
     offsets = shard_points(run, shard)[0] if shard is not None else None
+    chunks = run.chunks()
     for index, (values, invocation, seconds) in found.chunks.items():
-        sl = chunk_slice(run, run.chunks()[index], offsets)
+        sl = chunk_slice(run, chunks[index], offsets)
         for name in POINT_VARIABLES:
             contents.points[name][sl] = values[name]
         contents.done[index] = True
