@@ -21,6 +21,8 @@ from tba.scans.runfile import Shard, load_run, parse_shard
 from tba.store.driver import ScanInterrupted, run_scan
 from tba.store.hdf5 import BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
 
+from storetools import reseal
+
 RUN = """\
 # shard tests: free fermion and Lee-Yang, both signs of alpha, 7 radii in chunks of 2 (< 1 s)
 output = "scan.h5"
@@ -49,7 +51,9 @@ TOTAL = 16  # chunks: 2 models x 2 alphas x 4 per curve
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
 BRANCH_NUMBERS = [name for name, (kind, _, _) in BRANCH_VARIABLES.items() if kind != "str"]
 #: data sets that record how and when, not what: the rest must equal the serial file's
-METADATA = {"progress/invocation", "progress/seconds", "message", "branch_points/message"}
+# provenance (and the checksums and maps that cover it): may differ between equal files
+METADATA = {"progress/invocation", "progress/seconds", "message", "branch_points/message",
+            "progress/checksum", "branch_points/checksum", "progress/history", "recovery/map"}
 
 
 @pytest.fixture(scope="module")
@@ -162,22 +166,30 @@ def test_merge_refuses_files_that_do_not_belong_together(runfile, shards, tmp_pa
     capsys.readouterr()
     line = refused(shards[0], other, name=other)
     assert "different run" in line and "radii" in line
-    # the same chunk with other numbers in two files: refused, naming the file and the chunk
+    # a tampered shard, alone (it overlaps nothing): its checksum fails, naming the chunk
     bad = tmp_path / "tampered.h5"
     shutil.copy(shards[0], bad)
     with h5py.File(bad, "r+") as f:
         f["shard_points/energy"][1] += 1e-12
+    line = refused(bad, shards[1], name=bad)
+    assert "chunk 0 (free-fermion, alpha = -0.2" in line and "fails its checksum" in line
+    # the same chunk with other numbers in two consistent files: refused, naming the chunk
+    reseal(bad)
     line = refused(shards[0], shards[1], bad, name=bad)
-    assert "chunk 0 (free-fermion, alpha = -0.2" in line and "energy" in line
+    assert "chunk 0 (free-fermion, alpha = -0.2" in line and "other numbers (energy)" in line
     # ... and a branch point
     shutil.copy(shards[0], bad)
     with h5py.File(bad, "r+") as f:
         f["branch_points/branch_radius"][1, 1] *= 1 + 1e-12
-    assert "branch point of lee-yang at alpha = 0.4" in refused(shards[0], bad, name=bad)
+    assert "branch point of lee-yang at alpha = 0.4 fails its checksum" in refused(bad, name=bad)
+    reseal(bad)
+    assert "branch point of lee-yang at alpha = 0.4 differs" in refused(shards[0], bad, name=bad)
     # another tba version, and not a store at all
     shutil.copy(shards[1], bad)
     with h5py.File(bad, "r+") as f:
         f.attrs["package_version"] = "0.0.1"
+    assert "root attributes fail their checksum" in refused(shards[0], bad, name=bad)
+    reseal(bad)
     assert "mix versions" in refused(shards[0], bad, name=bad)
     bad.write_text("not hdf5")
     refused(shards[0], bad, name=bad)

@@ -163,7 +163,7 @@ def test_branch_points_with_h5py(store):
     path, run = store
     with h5py.File(path, "r") as f:
         g = f["branch_points"]
-        assert set(g) == set(BRANCH_VARIABLES)
+        assert set(g) == set(BRANCH_VARIABLES) | {"checksum"}
         for name in BRANCH_VARIABLES:
             ds = g[name]
             assert ds.shape == (2, 3)  # (model, alpha)
@@ -308,7 +308,7 @@ def test_not_a_store_is_never_overwritten(tmp_path):
     path = tmp_path / "tiny.h5"
     path.write_text("not hdf5")
     run = loads_run(TINY, base_dir=tmp_path)
-    with pytest.raises(StoreError, match="not a readable HDF5 file"):
+    with pytest.raises(StoreError, match="not an HDF5 file; refusing to overwrite it"):
         run_scan(run, workers=1)
     assert path.read_text() == "not hdf5"
     with h5py.File(tmp_path / "other.h5", "w") as f:
@@ -338,11 +338,17 @@ def test_long_messages_are_cut_at_a_character_boundary():
 
 
 def _as_schema_1(path):
-    """Turn a store into what schema 1 wrote: version 1, an empty reserved /branch_points."""
+    """Turn a store into what schema 1 wrote: version 1, an empty reserved /branch_points,
+    no momentum, the history as a /progress attribute, no checksums."""
+    history = read_store(path).history
     with h5py.File(path, "r+") as f:
         f.attrs["schema_version"] = 1
-        del f["branch_points"]
+        del f.attrs["header_checksum"]
+        for name in ("branch_points", "momentum", "recovery", "progress/checksum",
+                     "progress/history", "progress/slot"):
+            del f[name]
         f.create_group("branch_points")
+        f["progress"].attrs["history"] = json.dumps(history)
 
 
 def test_schema_1_files_are_refused_for_resume_but_read(tmp_path, capsys):

@@ -7,7 +7,8 @@ together, a cluster that cannot be reached or a missing dask) prints one line on
 naming the argument, key or file and exits with code 2. ``tba solve`` prints points as
 soon as they are solved; ``tba run`` writes each finished chunk to its HDF5 file, so an
 interrupted run keeps what it has written and the same command resumes it (exit code 130
-after Ctrl-C; exit code 1 when a cluster gave up on some tasks, with everything else saved).
+after Ctrl-C, 143 after SIGTERM; exit code 1 when some tasks failed, with everything else
+saved).
 """
 
 import argparse
@@ -27,6 +28,7 @@ from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parse
                             table_row, tolerance, whole_number, writable_dir, writable_file)
 from tba.output.report import format_report
 from tba.scans.limits import MAX_POINTS, MAX_SOLVE_POINTS
+from tba.scans import interrupts
 from tba.scans.runfile import RunFileError, demo_run_path, load_run, parse_shard
 from tba.store.driver import ScanFailed, ScanInterrupted, run_scan
 from tba.store.hdf5 import NOT_COMPUTED, StoreError, read_store
@@ -467,6 +469,7 @@ def _detach_stdout():
 
 def _main(argv):
     parser = build_parser()
+    interrupts.install()  # Ctrl-C and SIGTERM raised at safe points only: exit 130 / 143
     try:
         args = parser.parse_args(argv)
         return args.func(args, sys.stdout)
@@ -475,13 +478,15 @@ def _main(argv):
         return 2
     except ScanInterrupted as exc:
         print(f"tba: {exc}", file=sys.stderr)
-        return 130
+        return 128 + exc.signum
     except ScanFailed as exc:
         print(f"tba: error: {exc}", file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print("tba: interrupted; the points printed above are complete", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = interrupts.signal_number(exc)
+        how = "interrupted" if signum == signal.SIGINT else f"terminated ({interrupts.signal_name(signum)})"
+        print(f"tba: {how}; the points printed above are complete", file=sys.stderr)
+        return 128 + signum
 
 
 if __name__ == "__main__":

@@ -15,7 +15,8 @@ import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from dataclasses import dataclass
 
-from tba.scans.points import solve_branch_point, solve_chunk
+from tba.scans.interrupts import caused_by_interrupt
+from tba.scans.points import describe_chunk, one_line, solve_branch_point, solve_chunk
 from tba.scans.runfile import Chunk
 
 # -- worker processes ---------------------------------------------------------------------------
@@ -28,20 +29,22 @@ def _watch_parent(parent):
 
 
 def _worker_init(parent):
-    # Ctrl-C reaches the whole process group; the driver handles it and stops the workers
+    # Ctrl-C and SIGTERM reach the whole process group (a terminal, a batch system); the
+    # driver handles them, closes its history entry and stops the workers (SIGKILL)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
 
 
 def _stop(executor):
     """Stop the pool now, running chunks included (their results would be lost anyway)."""
-    terminate = getattr(executor, "terminate_workers", None)  # Python >= 3.14
-    if terminate is not None:
-        terminate()
+    kill = getattr(executor, "kill_workers", None)  # Python >= 3.14
+    if kill is not None:
+        kill()
         return
     processes = list((getattr(executor, "_processes", None) or {}).values())
     for p in processes:
-        p.terminate()
+        p.kill()
     executor.shutdown(wait=True, cancel_futures=True)
 
 
@@ -111,14 +114,16 @@ class BranchDone:
 
 @dataclass
 class TaskFailed:
-    """A chunk whose task could not be completed (a cluster gave up on it); ``what`` names
-    the chunk, ``error`` says why, on one line."""
+    """A chunk whose task could not be completed (a cluster gave up on it, its worker process
+    died, or it raised); ``what`` names the chunk, ``error`` says why, on one line."""
 
     what: str
     error: str
     chunk: Chunk | None = None
 
 
+def chunk_failed(run, chunk, exc):
+    return TaskFailed(describe_chunk(run, chunk), one_line(exc), chunk=chunk)
 
 
 class Backend:
@@ -152,12 +157,23 @@ def _branch_points_here(run, pairs):
         yield BranchDone(m, a, solve_branch_point(run, m, a))
 
 
+def _here(run, chunk):
+    """A chunk solved in this process, as a result (`TaskFailed` if it raised: points are
+    isolated in `solve_chunk`, so that is a defect, reported without losing the scan)."""
+    try:
+        return ChunkDone(*solve_chunk(run, chunk))
+    except Exception as exc:  # noqa: BLE001
+        if caused_by_interrupt(exc):
+            raise KeyboardInterrupt from None
+        return chunk_failed(run, chunk, exc)
+
+
 class InProcess(Backend):
     """One chunk after the other in the driver's process, then the branch points."""
 
     def compute(self, run, chunks, branch_pairs):
         for chunk in chunks:
-            yield ChunkDone(*solve_chunk(run, chunk))
+            yield _here(run, chunk)
         yield from _branch_points_here(run, branch_pairs)
 
 
@@ -176,7 +192,7 @@ class ProcessPool(Backend):
 
     def compute(self, run, chunks, branch_pairs):
         if chunks:
-            yield ChunkDone(*solve_chunk(run, chunks[0]))
+            yield _here(run, chunks[0])
         rest = chunks[1:]
         if rest:
             workers = min(self.workers, len(rest))
@@ -185,11 +201,16 @@ class ProcessPool(Backend):
                                            initializer=_worker_init, initargs=(os.getpid(),))
             try:
                 with _single_threaded_children(), _children_ignore_ctrl_c():  # workers start on submit
-                    futures = {executor.submit(solve_chunk, run, chunk) for chunk in rest}
-                while futures:
-                    finished, futures = wait(futures, return_when=FIRST_COMPLETED)
+                    futures = {executor.submit(solve_chunk, run, chunk): chunk for chunk in rest}
+                pending = set(futures)
+                while pending:
+                    finished, pending = wait(pending, return_when=FIRST_COMPLETED)
                     for future in finished:
-                        yield ChunkDone(*future.result())
+                        exc = future.exception()
+                        # a worker that died (killed, out of memory) breaks the pool: its
+                        # chunks and those still queued come back failed, the rest is saved
+                        yield (ChunkDone(*future.result()) if exc is None else
+                               chunk_failed(run, futures[future], exc))
             except BaseException:  # Ctrl-C, an error, or the generator closed early
                 _stop(executor)
                 raise

@@ -10,6 +10,12 @@ for bit.
 A chunk solves one level (`tba.solvers.levels`): the ground state, or an excited level named by its
 Bethe quantum numbers; the states a model lacks have no chunks (`RunSpec.unavailable`).
 
+A point whose solver raises (a defect, or a radius beyond what the grids can hold) never stops
+its chunk: it is stored as not-converged with the exception as its message, and the chain
+goes on from the last converged point. An exception in the flow check's undeformed solve
+keeps the point's energy and marks the check not-converged. An interrupt is never taken
+for a failing point (`tba.scans.interrupts.caused_by_interrupt`).
+
 Flow check (``flow_check = true``, the default): for each converged point with alpha != 0
 and no higher-spin factor, the same level undeformed is solved at
 R~ = sqrt((R + alpha E)^2 - (alpha P)^2) with the exact momentum P = 2 pi sum I_k / R; the
@@ -43,9 +49,12 @@ import numpy as np
 from tba.models.cdd import NO_DEFORMATION
 from tba.physics.flow import branch_point
 from tba.solvers.levels import GROUND, parse_level, solve_level
-from tba.solvers.result import STATUS_CODES
+from tba.solvers.result import STATUS_CODES, Status
 from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
                              FLOW_NOT_APPLICABLE, FLOW_OFF, POINT_VARIABLES)
+from tba.scans.interrupts import caused_by_interrupt
+
+NOT_CONVERGED = STATUS_CODES[Status.NOT_CONVERGED]
 
 _MODEL_CACHE = {}
 
@@ -93,7 +102,11 @@ def _solve_chunk(run, chunk):
     start = start0 = None
     for i in order:
         R = radii[i]
-        res = solve_level(model, R, level, deformation, tol=run.tol, start=start)
+        try:
+            res = solve_level(model, R, level, deformation, tol=run.tol, start=start)
+        except Exception as exc:  # noqa: BLE001 (one point never stops a scan)
+            _failed_point(values, i, exc, run)
+            continue
         if res.converged:
             start = res
             values["momentum"][i] = res.momentum
@@ -116,18 +129,36 @@ def _solve_chunk(run, chunk):
             if not (math.isfinite(r_eff) and r_eff > 0):
                 values["flow_status"][i] = FLOW_NOT_APPLICABLE
                 continue
-            res0 = solve_level(model, r_eff, level, NO_DEFORMATION, tol=run.tol, start=start0)
+            try:
+                res0 = solve_level(model, r_eff, level, NO_DEFORMATION, tol=run.tol, start=start0)
+                if res0.converged and turns != 0:
+                    predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
+                                                                boost, r_eff, res, res0, run.tol)
+                elif res0.converged:
+                    predicted, flow_error = res0.energy, res0.error
+            except Exception as exc:  # noqa: BLE001 (the point keeps its energy)
+                if caused_by_interrupt(exc):
+                    raise KeyboardInterrupt from None
+                values["flow_status"][i] = NOT_CONVERGED
+                values["message"][i] = f"{res.message}; flow check: the solver raised {one_line(exc)}"
+                continue
             values["flow_status"][i] = STATUS_CODES[res0.status]
             if res0.converged:
                 start0 = res0
-                predicted, flow_error = res0.energy, res0.error
-                if turns != 0:
-                    predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
-                                                                boost, r_eff, res, res0, run.tol)
                 values["flow_prediction"][i] = predicted
                 values["flow_error"][i] = flow_error
                 values["flow_residual"][i] = abs(res.energy - predicted)
     return chunk, values, time.perf_counter() - t0
+
+
+def _failed_point(values, i, exc, run):
+    """Store a point whose solver raised as not-converged, with the exception as message (an
+    interrupt that numba turned into another exception is raised again as what it was)."""
+    if caused_by_interrupt(exc):
+        raise KeyboardInterrupt from None
+    values["status"][i] = NOT_CONVERGED
+    values["message"][i] = f"the solver raised {one_line(exc)}; no energy stored"
+    values["flow_status"][i] = FLOW_NO_ENERGY if run.flow_check else FLOW_OFF
 
 
 def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, tol):
@@ -166,8 +197,9 @@ def solve_branch_point(run, model_index, alpha_index):
         with threadpool_limits(limits=1, user_api="blas"):  # the same bits on every executor
             bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
     except Exception as exc:  # noqa: BLE001 (stored, never lost: the scan's points are kept)
-        text = str(exc).splitlines()[0] if str(exc) else ""
-        return {"status": BP_FAILED, "message": f"{type(exc).__name__}: {text}".rstrip(": ")}
+        if caused_by_interrupt(exc):
+            raise KeyboardInterrupt from None
+        return {"status": BP_FAILED, "message": one_line(exc)}
     code = BP_CODES.get(bp.status)
     if code is None:
         return {"status": BP_FAILED, "message": f"unexpected status {bp.status!r}: {bp.message}"}
@@ -176,6 +208,7 @@ def solve_branch_point(run, model_index, alpha_index):
         values.update(branch_radius=bp.radius, branch_radius_error=bp.radius_error, energy=bp.energy,
                       energy_error=bp.energy_error, effective_radius=bp.effective_radius)
     return values
+
 
 def describe_chunk(run, chunk):
     """``chunk 5 (free-fermion, alpha = 0.5, R = 0.3 .. 0.42)``: for messages."""

@@ -1,10 +1,12 @@
 """The scan driver: computes what a store lacks on a backend and writes it as it arrives.
 
 `run_scan` is the only writer of the store for every backend (`tba.scans.backends`,
-`tba.scans.cluster`): it creates or resumes the file (`tba.store.hdf5`), hands the pending
-chunks and branch points to the backend and writes and flushes each result as it arrives.
+`tba.scans.cluster`): it takes the output's lock (`tba.store.lock`), creates, resumes or
+rebuilds the file (`tba.store.writer`), hands the pending chunks and branch points to the
+backend and writes each result in place as it arrives.
 """
 
+import signal
 import sys
 import time
 from dataclasses import dataclass, field
@@ -12,8 +14,12 @@ from pathlib import Path
 
 from tba.scans.backends import BranchDone, ChunkDone, local_backend
 from tba.scans.codes import BP_FAILED, NOT_COMPUTED
+from tba.scans.interrupts import installed, signal_name, signal_number
 from tba.scans.runfile import Shard
-from tba.store.hdf5 import open_store, prepare_store
+from tba.store.errors import StoreError, StoreWriteError
+from tba.store.hdf5 import check_store
+from tba.store.lock import OutputLock
+from tba.store.writer import open_store, prepare_store, unwritable_message
 
 # -- the driver ---------------------------------------------------------------------------------
 
@@ -52,11 +58,12 @@ class ScanSummary:
 
 
 class ScanInterrupted(Exception):
-    """Ctrl-C during a scan; the finished chunks are in the store."""
+    """Ctrl-C (or SIGTERM: ``signum``) during a scan; the finished chunks are in the store."""
 
-    def __init__(self, summary):
-        self.summary = summary
-        super().__init__(f"interrupted; {summary.saved()} are saved in {summary.path}; run the "
+    def __init__(self, summary, signum=signal.SIGINT):
+        self.summary, self.signum = summary, signum
+        how = "interrupted" if signum == signal.SIGINT else f"terminated ({signal_name(signum)})"
+        super().__init__(f"{how}; {summary.saved()} are saved in {summary.path}; run the "
                          f"same command again to resume")
 
 
@@ -89,14 +96,17 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
     """Compute every chunk of ``run`` not yet in the store at ``path`` (default ``run.output``),
     then the branch points not yet stored (``run.branch_points``).
 
-    Resumes an existing store of the same run; never overwrites the file of another run
-    unless ``force`` (`tba.store.hdf5.StoreError`). Where the chunks are computed: ``backend``
-    (a `Backend`, e.g. `tba.scans.cluster.DaskBackend`), else ``workers`` processes on this
-    machine (default: the usable cores). ``shard`` (a `tba.scans.runfile.Shard`) computes only
-    that shard's chunks and branch points into a shard file. ``progress`` None shows a bar
-    on a terminal only. Lines about what is done go to ``log`` (default stderr). Returns a
-    `ScanSummary`; Ctrl-C raises `ScanInterrupted`, chunks a cluster gave up on
-    `ScanFailed` (after everything else is saved).
+    Resumes an existing store of the same run (computing again the chunks that fail their
+    checksums; a damaged store is rebuilt from what verifies, `tba.store.writer.recover_store`);
+    never overwrites the file of another run unless ``force`` (`tba.store.hdf5.StoreError`).
+    Holds the output's lock throughout: a second writer of the same file fails at once
+    (`tba.store.errors.StoreBusy`). Where the chunks are computed: ``backend`` (a `Backend`,
+    e.g. `tba.scans.cluster.DaskBackend`), else ``workers`` processes on this machine (default:
+    the usable cores). ``shard`` (a `tba.scans.runfile.Shard`) computes only that shard's
+    chunks and branch points into a shard file. ``progress`` None shows a bar on a terminal
+    only. Lines about what is done go to ``log`` (default stderr). Returns a `ScanSummary`;
+    Ctrl-C or SIGTERM raises `ScanInterrupted` (the history entry closed), chunks a cluster
+    gave up on `ScanFailed` (after everything else is saved).
 
     Local workers are spawned processes: a script calling this with ``workers > 1`` needs
     the usual ``if __name__ == "__main__":`` guard.
@@ -107,24 +117,65 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
         raise ValueError("no output path: give one in the run file or as an argument")
     if backend is not None and workers is not None:
         raise ValueError("workers: give either workers or backend, not both")
+    path = Path(path)
+    if path.is_dir():
+        raise StoreError(f"{path}: is a directory")
+    if not path.parent.is_dir():
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StoreError(f"{path}: cannot create its directory ({exc.strerror})") from None
+    with installed():  # signals raised at safe points: never in compiled code or mid-write
+        lock = OutputLock(path)
+        try:
+            lock.acquire()
+        except StoreError:  # busy, or a directory that takes no lock file (read-only)
+            if lock.unwritable is None or not path.exists():
+                raise
+            return _read_only(run, path, shard, lock.unwritable, log)
+        try:
+            return _scan(run, path, workers, backend, shard, force, progress, log, run_file)
+        finally:
+            lock.release()
+
+
+def _pending(run, shard, snap):
+    """The chunks and branch-point pairs a store still lacks."""
+    mine = run.chunks() if shard is None else shard.chunks(run)
+    pending = [c for c in mine if not snap.done[c.index]]
+    branch_pending = []
+    if run.branch_points:
+        pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
+                 if shard is None else shard.branch_pairs(run))
+        branch_pending = [(m, a) for m, a in pairs if snap.branch["status"][m, a] == NOT_COMPUTED]
+    return mine, pending, branch_pending
+
+
+def _read_only(run, path, shard, error, log):
+    """A store whose directory cannot be written (no lock can be taken there): fine if it is
+    complete; else one line saying that its chunks are safe and how to go on."""
+    snap = check_store(path, run, shard)
+    mine, pending, branch_pending = _pending(run, shard, snap)
+    if pending or branch_pending:
+        raise StoreError(unwritable_message(path, snap, error.strerror or str(error)))
+    what = "" if shard is None else f" (shard {shard.label})"
+    print(f"tba run: {path}{what} is complete ({len(mine)} chunks); nothing to compute", file=log)
+    return ScanSummary(str(path), len(mine), len(mine), 0, sum(c.size for c in mine), 0.0, 0,
+                       shard=shard)
+
+
+def _scan(run, path, workers, backend, shard, force, progress, log, run_file):
     t0 = time.perf_counter()
     started, summary = False, None
     try:
-        if backend is not None and (force or not Path(path).exists()):
+        if backend is not None and (force or not path.exists()):
             # a new file: reach the cluster first, so that a wrong address leaves no file behind
             backend.start()
             started = True
-        done, created, note, branch_status = prepare_store(path, run, force=force,
-                                                           run_file=run_file, shard=shard)
-        if note:
+        prepared = prepare_store(path, run, force=force, run_file=run_file, shard=shard)
+        for note in prepared.notes:
             print(f"tba run: note: {note}", file=log)
-        mine = run.chunks() if shard is None else shard.chunks(run)
-        pending = [c for c in mine if not done[c.index]]
-        branch_pending = []
-        if run.branch_points:
-            pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
-                     if shard is None else shard.branch_pairs(run))
-            branch_pending = [(m, a) for m, a in pairs if branch_status[m, a] == NOT_COMPUTED]
+        mine, pending, branch_pending = _pending(run, shard, prepared.snapshot)
         if backend is None:
             backend = local_backend(workers, len(pending))
         points = sum(c.size for c in mine)
@@ -139,19 +190,19 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
             backend.start()
             started = True
         summary.workers = backend.workers
-        verb = "writing" if created else "resuming"
+        verb = "writing" if prepared.created else "resuming"
         if pending:
             print(f"tba run: {verb} {path}{what}: {len(pending)} of {len(mine)} chunks to compute, "
                   f"{backend.describe()}", file=log, flush=True)
         else:
             print(f"tba run: {verb} {path}{what}: all {len(mine)} chunks are done; "
                   f"{_count(len(branch_pending), 'branch point')} to compute", file=log, flush=True)
-        _drive(run, path, backend, pending, branch_pending, summary, progress, log)
-    except KeyboardInterrupt:
+        _drive(run, path, prepared, backend, pending, branch_pending, summary, progress, log)
+    except KeyboardInterrupt as exc:
         if summary is None:  # before anything was computed
             raise
         summary.seconds = time.perf_counter() - t0
-        raise ScanInterrupted(summary) from None
+        raise ScanInterrupted(summary, signal_number(exc)) from None
     finally:
         if started:
             backend.close()
@@ -169,9 +220,9 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
     return summary
 
 
-def _drive(run, path, backend, pending, branch_pending, summary, progress, log):
+def _drive(run, path, prepared, backend, pending, branch_pending, summary, progress, log):
     """Write what ``backend`` computes as it arrives: the driver is the only writer."""
-    store = open_store(path, run)
+    store = open_store(path, prepared, run)
     bar = None
     try:
         store.begin_invocation(summary.workers, len(pending), len(branch_pending),
@@ -203,8 +254,14 @@ def _drive(run, path, backend, pending, branch_pending, summary, progress, log):
                                   flush=True)
             finally:
                 results.close()  # stops the workers if we leave early
-        except KeyboardInterrupt:
-            store.end_invocation(interrupted=True)
+        except KeyboardInterrupt as exc:
+            store.end_invocation(interrupted=True, signum=signal_number(exc))
+            raise
+        except StoreWriteError:
+            try:  # the history entry too, if the file still takes writes
+                store.end_invocation(failed=["writing to the file failed"])
+            except StoreError:
+                pass
             raise
         store.end_invocation(failed=[f"{f.what}: {f.error}" for f in summary.failed])
     finally:

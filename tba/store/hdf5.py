@@ -1,13 +1,13 @@
-"""The HDF5 store of a scan: layout, creation, resumable chunk writes, reading back.
+"""The HDF5 store of a scan: layout, creation, validated reading.
 
-Layout (schema version 2; readable with plain h5py, and with xarray through
+Layout (schema version 4; readable with plain h5py, and with xarray through
 ``xarray.open_dataset(path, engine="h5netcdf")`` or ``engine="netcdf4"``)::
 
     /                          root attributes: schema, schema_version, package,
                                package_version, git_commit, created, title, run (the
                                resolved run as JSON), run_id, run_file, models (JSON),
                                conventions, units, status_legend, flow_status_legend,
-                               branch_point_status_legend, layout
+                               branch_point_status_legend, layout, header_checksum
     /model   (model)           dimension scale: label "name" or "name B=coupling"
     /alpha   (alpha)           dimension scale: TTbar coupling (sorted)
     /radius  (radius)          dimension scale: circumference R (sorted)
@@ -22,10 +22,15 @@ Layout (schema version 2; readable with plain h5py, and with xarray through
     /progress/done (chunk)     1 once the chunk's values are written (the resume mask)
     /progress/invocation (chunk)  which invocation of ``tba run`` computed it (0: not yet)
     /progress/seconds (chunk)  wall time of the chunk in its worker
-    /progress attrs            history (JSON list, one entry per invocation of tba run,
-                               written when it starts and when it ends)
+    /progress/checksum (chunk) uint64 checksum of the chunk's stored values (`tba.store.integrity`)
+    /progress/history (slot)   the last HISTORY_SLOTS invocations of tba run (and merges), one
+                               JSON entry per slot (fixed length, with its own checksum);
+                               invocation k lives in slot (k - 1) mod HISTORY_SLOTS
+    /progress/slot (slot)      dimension scale of the history slots
+    /recovery/map              a fixed-length ASCII string: the recovery map (byte offsets of
+                               every data set and the resolved run, `tba.store.integrity`)
     /branch_points/{branch_radius, branch_radius_error, energy, energy_error,
-                    effective_radius, status, message}
+                    effective_radius, status, message, checksum}
                                (model, alpha), attached to the /model and /alpha scales: the
                                ground state's branch point R_c(alpha), E(R_c), R~_* and their
                                errors (`tba.physics.flow.branch_point` at the run's tol); status 0
@@ -64,42 +69,65 @@ work on it and say it is partial; `tba.store.merge` combines shards into a full 
 
 Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it; 3 adds ``/momentum``,
 excited states on the state axis and the status "not-available" (3) for the points of a state
-that a model lacks (set when the file is created). Files of schemas 1 and 2 are still read
-(branch points of schema 1 count as not computed, momentum is NaN) but never resumed.
+that a model lacks (set when the file is created); 4 adds the checksums, the recovery map,
+the history as fixed slots (instead of a ``/progress`` attribute ``history`` that grew with
+every invocation) and HDF5's own metadata checksums (file format of HDF5 1.10). Files of
+schemas 1 to 3 are still read (branch points of schema 1 count as not computed, momentum is
+NaN; no checksums to verify) but never resumed.
 
-Only the scan driver writes: it creates the file complete with every point "not
-computed" (under a temporary name, then renamed), and writes each finished chunk's
-values, flushes, sets its ``done`` flag and flushes again. After the last chunk it computes
-the branch points (``scan.branch_points``), each written the same way: values, flush,
-status, flush; a status other than -1 means stored, and is never computed again. Chunk and
-branch-point writes overwrite bytes in place and never change the file's metadata, so a kill
-loses at most the chunks (or the branch point) in flight.
+How a store is written (`tba.store.writer`): the file is built complete in memory, every point
+"not computed", and written under a temporary name, then renamed; the free space is checked
+first. After that its HDF5 structure is never written again: every data set is contiguous and
+allocated, and the scan driver overwrites only the bytes of values (through the offsets HDF5
+reports), in an order that keeps every moment readable: a chunk's values, invocation, seconds
+and checksum, then its ``done`` flag. So a kill, a full disk or a failed write loses at most
+the chunk in flight, the file never grows, and readers see a consistent snapshot. Every read
+(`read_store`, `check_store`, merges) validates the layout against the run and verifies the
+checksums of the chunks marked done.
 """
 
 import datetime
 import json
 import math
 import os
-import platform
 import subprocess
+import time
+import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import h5py
 import numpy as np
 
-from tba.scans.runfile import RunSpec, Shard, differing_keys, resolve_run
 from tba.scans.codes import (  # noqa: F401 (re-exported: the layout of a store)
     NOT_COMPUTED, NOT_AVAILABLE, FLOW_OFF, FLOW_NOT_APPLICABLE, FLOW_NO_ENERGY, BP_FOUND,
     BP_NONE, BP_NOT_APPLICABLE, BP_FAILED, BP_CODES, STATUS_MEANINGS, FLOW_MEANINGS,
     BRANCH_MEANINGS, MESSAGE_BYTES, POINT_VARIABLES, DIMS, BRANCH_VARIABLES, BRANCH_DIMS)
+from tba.scans.points import describe_chunk
+from tba.scans.runfile import RunFileError, RunSpec, Shard, differing_keys, resolve_run
+from tba.store.errors import DamagedStore, StoreError, StoreWriteError  # noqa: F401 (re-exported)
+from tba.store.integrity import (RECOVERY_MAGIC, branch_checksum, chunk_checksum,
+                                 decode_history_entry, encode_history_entry, encode_recovery_map,
+                                 header_checksum)
+from tba.store.lock import holder, partial_path
 
 SCHEMA = "tba-flow scan"
 #: schema of a shard file (one shard of a run, `tba.scans.runfile.Shard`)
 SHARD_SCHEMA = "tba-flow scan shard"
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 #: schema versions `read_store` understands (only SCHEMA_VERSION is ever resumed)
-READABLE_VERSIONS = (1, 2, 3)
+READABLE_VERSIONS = (1, 2, 3, 4)
+#: HDF5 file format of the stores: that of HDF5 1.10, whose metadata carries checksums
+LIBVER = ("v110", "v110")
+#: invocations kept in /progress/history, and the bytes of one entry
+HISTORY_SLOTS = 128
+HISTORY_BYTES = 1024
+HISTORY_DTYPE = h5py.string_dtype("utf-8", HISTORY_BYTES)
+#: free space asked for beyond the file itself (the lock file, the directory entry)
+SPACE_MARGIN = 1 << 16
+#: a reader that sees a store change under it (a writer holds the lock) reads it again, up
+#: to this many times, this many seconds apart
+READ_RETRIES, READ_RETRY_DELAY = 20, 0.1
 
 CONVENTIONS = """\
 Units: the lightest mass m_1 = 1; R is the circumference of the space circle; hbar = c = 1.
@@ -127,22 +155,27 @@ UNITS = ("radius, flow_radius, branch_points/{branch_radius, branch_radius_error
 
 LAYOUT = ("data sets (model, alpha, radius, state): energy error momentum status iterations message "
           "flow_radius flow_prediction flow_error flow_residual flow_status; /progress: chunk "
-          "table and done mask; /branch_points (model, alpha): branch_radius "
-          "branch_radius_error energy energy_error effective_radius status message")
+          "table, done mask, checksums, history, recovery map; /branch_points (model, alpha): "
+          "branch_radius branch_radius_error energy energy_error effective_radius status message "
+          "checksum")
 
-SHARD_LAYOUT = ("shard of a run: /shard_points (point): energy error status iterations message "
-                "flow_radius flow_prediction flow_error flow_residual flow_status and "
+SHARD_LAYOUT = ("shard of a run: /shard_points (point): energy error momentum status iterations "
+                "message flow_radius flow_prediction flow_error flow_residual flow_status and "
                 "model_index alpha_index radius_index state_index (the point's place in the "
-                "full grid); /progress: chunk table, done mask, owned mask; /branch_points "
-                "(model, alpha) as in a full store, this shard's pairs only")
+                "full grid); /progress: chunk table, done mask, owned mask, checksums, history, "
+                "recovery map; /branch_points (model, alpha) as in a full store, this shard's "
+                "pairs only")
 
 #: messages are fixed-length UTF-8 strings (`MESSAGE_BYTES`): writing a chunk only overwrites
-#: bytes at fixed places in the file and never changes its metadata (see `Store.write_chunk`)
+#: bytes at fixed places in the file and never changes its metadata (see `tba.store.writer`)
 MESSAGE_DTYPE = h5py.string_dtype("utf-8", MESSAGE_BYTES)
 
 PROGRESS_FIELDS = ("model_index", "alpha_index", "state_index", "radius_start", "radius_stop")
 #: index data sets of /shard_points: where each of a shard's points lies in the full grid
 SHARD_INDEX = ("model_index", "alpha_index", "radius_index", "state_index")
+#: the stored type of each kind of `POINT_VARIABLES` / `BRANCH_VARIABLES`
+STORED = {"f8": np.dtype("<f8"), "i1": np.dtype("i1"), "i4": np.dtype("<i4"),
+          "u1": np.dtype("u1"), "u8": np.dtype("<u8"), "str": np.dtype(f"S{MESSAGE_BYTES}")}
 
 
 def shard_points(run, shard):
@@ -153,17 +186,6 @@ def shard_points(run, shard):
         offsets[c.index] = n
         n += c.size
     return offsets, n
-
-
-class StoreError(Exception):
-    """An output file that cannot be used as asked (one line, exit code 2 on the command line).
-
-    ``foreign`` is true when the file exists but belongs to something else (another run,
-    schema or package version, or not a store at all): ``force`` would replace it."""
-
-    def __init__(self, message, foreign=False):
-        super().__init__(message)
-        self.foreign = foreign
 
 
 # -- provenance ---------------------------------------------------------------------------------
@@ -187,7 +209,7 @@ def package_version():
     return __version__
 
 
-def _now():
+def now():
     return datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
 
 
@@ -202,7 +224,7 @@ def _flags(meanings):
             "legend": _legend(meanings)}
 
 
-# -- writing ------------------------------------------------------------------------------------
+# -- values as stored ---------------------------------------------------------------------------
 
 def _encode(text):
     """UTF-8 bytes of at most MESSAGE_BYTES, cut at a character boundary ("..." marks a cut)."""
@@ -212,16 +234,56 @@ def _encode(text):
     return raw
 
 
-def _full(shape, kind, fill):
+def full(shape, kind, fill):
+    """An array of ``shape`` filled with ``fill``, of the stored type of ``kind``."""
     if kind == "str":
-        return np.full(shape, _encode(fill), dtype=MESSAGE_DTYPE)
-    return np.full(shape, fill, dtype=kind)
+        return np.full(shape, _encode(fill), dtype=STORED["str"])
+    return np.full(shape, fill, dtype=STORED[kind])
 
 
-def _as_stored(kind, values):
+def as_stored(kind, values):
+    """``values`` in the stored type of ``kind`` (messages: UTF-8 bytes, cut to fit)."""
     if kind == "str":
-        return np.array([_encode(v) for v in np.ravel(values)], dtype=MESSAGE_DTYPE).reshape(np.shape(values))
-    return np.asarray(values, dtype=kind)
+        return np.array([_encode(v) for v in np.ravel(values)], dtype=STORED["str"]).reshape(np.shape(values))
+    return np.asarray(values, dtype=STORED[kind])
+
+
+def _decode(raw):
+    """Stored messages (bytes) as str objects."""
+    out = np.empty(raw.shape, dtype=object)
+    out.ravel()[:] = [b.decode("utf-8", "replace") for b in raw.ravel()]
+    return out
+
+
+def chunk_slice(run, chunk, offsets=None):
+    """Where the points of ``chunk`` lie in the point arrays: an index into (model, alpha,
+    radius, state) arrays, or into /shard_points with ``offsets`` (`shard_points`)."""
+    if offsets is None:
+        return (chunk.model, chunk.alpha, slice(chunk.radius_start, chunk.radius_stop), chunk.state)
+    return slice(offsets[chunk.index], offsets[chunk.index] + chunk.size)
+
+
+def chunk_values(points, run, chunk, offsets=None):
+    """{name: the chunk's values} from point arrays in the stored types."""
+    sl = chunk_slice(run, chunk, offsets)
+    return {name: points[name][sl] for name in POINT_VARIABLES}
+
+
+def branch_values(branch, m, a):
+    """{name: 0-d array} of the branch point (m, a) (0-d arrays keep the stored types)."""
+    return {name: branch[name][m, a, ...] for name in BRANCH_VARIABLES}
+
+
+def stored_scalar(kind, value):
+    """One value as a 0-d array of the stored type of ``kind``."""
+    return full((), kind, value) if kind == "str" else np.array(value, dtype=STORED[kind])
+
+
+# -- creation -----------------------------------------------------------------------------------
+
+def _recovery_bytes(run):
+    """Room for the recovery map: the resolved run, and an entry per data set."""
+    return len(json.dumps(run.to_dict(), separators=(",", ":"))) + 16384
 
 
 def _write_layout(f, run, run_file, models_info, shard=None):
@@ -229,7 +291,7 @@ def _write_layout(f, run, run_file, models_info, shard=None):
     f.attrs.update({
         "schema": SCHEMA if shard is None else SHARD_SCHEMA, "schema_version": SCHEMA_VERSION,
         "package": "tba-flow", "package_version": package_version(), "git_commit": git_commit(),
-        "created": _now(), "title": run.description or run.name,
+        "created": now(), "title": run.description or run.name,
         "run": run.to_json(), "run_id": run.run_id, "run_file": str(run_file or ""),
         "models": json.dumps(models_info), "conventions": CONVENTIONS, "units": UNITS,
         "status_legend": _legend(STATUS_MEANINGS), "flow_status_legend": _legend(FLOW_MEANINGS),
@@ -238,6 +300,12 @@ def _write_layout(f, run, run_file, models_info, shard=None):
     if shard is not None:
         f.attrs.update({"shard": shard.label, "shard_index": shard.index, "shard_count": shard.count,
                         "layout": SHARD_LAYOUT})
+    # first, so that its bytes lie near the start of the file (a truncated file keeps it)
+    size = _recovery_bytes(run)
+    f.create_group("recovery").create_dataset(
+        "map", data=np.array(b" " * size, dtype=f"S{size}")).attrs["long_name"] = \
+        "recovery map: byte offsets of the data sets and the resolved run (tba.store.integrity)"
+    g = f.create_group("progress")
     scales = {
         "model": f.create_dataset("model", data=np.array([m.label for m in run.models], dtype=object),
                                   dtype=s),
@@ -275,17 +343,17 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         "legend": _legend(BRANCH_MEANINGS),
     })
     shape = (len(run.models), len(run.alphas))
-    for name, (kind, fill, attrs) in BRANCH_VARIABLES.items():
-        ds = bp.create_dataset(name, data=_full(shape, kind, fill))
+    for name, (kind, fill, attrs) in {**BRANCH_VARIABLES, "checksum": (
+            "u8", 0, {"long_name": "checksum of the branch point (tba.store.integrity)"})}.items():
+        ds = bp.create_dataset(name, data=full(shape, kind, fill))
         ds.attrs.update(attrs)
         if name == "status":
             ds.attrs.update(_flags(BRANCH_MEANINGS))
         for i, dim in enumerate(BRANCH_DIMS):
             ds.dims[i].attach_scale(scales[dim])
     chunks = run.chunks()
-    g = f.create_group("progress")
-    g.attrs.update({"chunk_size": run.chunk_size, "n_chunks": len(chunks), "history": "[]",
-                    "long_name": "scan bookkeeping: chunk table and resume mask"})
+    g.attrs.update({"chunk_size": run.chunk_size, "n_chunks": len(chunks),
+                    "long_name": "scan bookkeeping: chunk table, resume mask, checksums, history"})
     scale = g.create_dataset("chunk", data=np.arange(len(chunks), dtype="i4"))
     scale.make_scale("chunk")
     table = {
@@ -295,21 +363,31 @@ def _write_layout(f, run, run_file, models_info, shard=None):
     }
     for name, values in table.items():
         g.create_dataset(name, data=np.array(values, dtype="i4"))
-    g.create_dataset("done", data=np.zeros(len(chunks), dtype="u1")).attrs["long_name"] = \
+    n = len(chunks)
+    g.create_dataset("done", data=np.zeros(n, dtype="u1")).attrs["long_name"] = \
         "1 once the chunk's values are written"
-    g.create_dataset("invocation", data=np.zeros(len(chunks), dtype="i4")).attrs["long_name"] = \
-        "invocation of tba run that computed the chunk (index into history, from 1; 0: not yet)"
-    g.create_dataset("seconds", data=np.full(len(chunks), np.nan)).attrs["long_name"] = \
+    g.create_dataset("invocation", data=np.zeros(n, dtype="i4")).attrs["long_name"] = \
+        "invocation of tba run that computed the chunk (see history; 0: not yet)"
+    g.create_dataset("seconds", data=np.full(n, np.nan)).attrs["long_name"] = \
         "wall time of the chunk in its worker"
+    g.create_dataset("checksum", data=np.zeros(n, dtype="<u8")).attrs["long_name"] = \
+        "checksum of the chunk's stored values, invocation and seconds (tba.store.integrity)"
     extra = ()
     if shard is not None:
         g.create_dataset("owned", data=np.array([shard.owns(c) for c in chunks], dtype="u1")) \
             .attrs["long_name"] = f"1 for the chunks of this shard ({shard.label})"
         extra = ("owned",)
-    for name in (*table, "done", "invocation", "seconds", *extra):
+    for name in (*table, "done", "invocation", "seconds", "checksum", *extra):
         g[name].dims[0].attach_scale(scale)
         if name in table:
             g[name].attrs["long_name"] = f"chunk table: {name.replace('_', ' ')}"
+    slot = g.create_dataset("slot", data=np.arange(HISTORY_SLOTS, dtype="i4"))
+    slot.make_scale("slot")
+    history = g.create_dataset("history", data=np.zeros(HISTORY_SLOTS, dtype=HISTORY_DTYPE))
+    history.attrs["long_name"] = (
+        f"the last {HISTORY_SLOTS} invocations of tba run (and merges): one JSON entry per slot, "
+        f"invocation k in slot (k - 1) mod {HISTORY_SLOTS}, followed by a newline and its checksum")
+    history.dims[0].attach_scale(slot)
 
 
 def mark_unavailable(arrays, run):
@@ -326,7 +404,7 @@ def mark_unavailable(arrays, run):
 
 def _write_points(f, shape, scales, dims):
     for name, (kind, fill, attrs) in POINT_VARIABLES.items():
-        ds = f.create_dataset(name, data=_full(shape, kind, fill))
+        ds = f.create_dataset(name, data=full(shape, kind, fill))
         ds.attrs.update(attrs)
         if name == "status":
             ds.attrs.update(_flags(STATUS_MEANINGS))
@@ -336,14 +414,9 @@ def _write_points(f, shape, scales, dims):
             ds.dims[i].attach_scale(scales[dim])
 
 
-def _write_shard_points(f, run, shard):
-    """/shard_points: the shard's points only (see the module docstring)."""
+def shard_index(run, shard):
+    """The /shard_points index arrays (`SHARD_INDEX`) of a shard."""
     offsets, n = shard_points(run, shard)
-    g = f.create_group("shard_points")
-    g.attrs["long_name"] = (f"the points of shard {shard.label}: its chunks one after the other "
-                            f"in chunk-table order, radii ascending inside a chunk")
-    point = g.create_dataset("point", data=np.arange(n, dtype="i4"))
-    point.make_scale("point")
     index = {name: np.zeros(n, dtype="i4") for name in SHARD_INDEX}
     for c in shard.chunks(run):
         sl = slice(offsets[c.index], offsets[c.index] + c.size)
@@ -351,6 +424,18 @@ def _write_shard_points(f, run, shard):
         index["alpha_index"][sl] = c.alpha
         index["radius_index"][sl] = np.arange(c.radius_start, c.radius_stop)
         index["state_index"][sl] = c.state
+    return index
+
+
+def _write_shard_points(f, run, shard):
+    """/shard_points: the shard's points only (see the module docstring)."""
+    index = shard_index(run, shard)
+    n = len(index["model_index"])
+    g = f.create_group("shard_points")
+    g.attrs["long_name"] = (f"the points of shard {shard.label}: its chunks one after the other "
+                            f"in chunk-table order, radii ascending inside a chunk")
+    point = g.create_dataset("point", data=np.arange(n, dtype="i4"))
+    point.make_scale("point")
     for name, values in index.items():
         ds = g.create_dataset(name, data=values)
         ds.attrs["long_name"] = f"{name.split('_')[0]} index of the point in the full grid"
@@ -358,218 +443,651 @@ def _write_shard_points(f, run, shard):
     _write_points(g, (n,), {"point": point}, ("point",))
 
 
-class Store:
-    """An open store, written by the scan driver only."""
+@dataclass
+class Contents:
+    """What a new store holds beyond "not computed" (a merge, a recovery): point arrays in the
+    stored types (full or shard layout), the done mask, invocation and seconds per chunk,
+    branch-point arrays and history entries. Checksums are computed when written."""
 
-    def __init__(self, path, f, run):
-        self.path, self.f, self.run = Path(path), f, run
-        self._history = json.loads(f["progress"].attrs["history"])
-        self._invocation = None
-        self.shard = _shard_of(f)
-        self._offsets = shard_points(run, self.shard)[0] if self.shard else None
-
-    @property
-    def done(self):
-        return self.f["progress/done"][...].astype(bool)
-
-    @property
-    def branch_status(self):
-        """/branch_points/status (model, alpha); -1 where not computed yet."""
-        return self.f["branch_points/status"][...]
-
-    @property
-    def history(self):
-        return list(self._history)
-
-    def begin_invocation(self, workers, pending, branch_points_pending=0, executor=None):
-        entry = {"invocation": len(self._history) + 1, "started": _now(), "finished": None,
-                 "package_version": package_version(), "git_commit": git_commit(),
-                 "host": platform.node(), "workers": workers, "chunks_pending": pending,
-                 "chunks_computed": 0, "branch_points_pending": branch_points_pending,
-                 "branch_points_computed": 0}
-        if executor is not None:
-            entry["executor"] = executor
-        if self.shard is not None:
-            entry["shard"] = self.shard.label
-        self._history.append(entry)
-        self._invocation = entry
-        self._save_history()
-        return entry["invocation"]
-
-    def end_invocation(self, interrupted=False, failed=None):
-        if self._invocation is not None:
-            self._invocation["finished"] = _now()
-            if interrupted:
-                self._invocation["interrupted"] = True
-            if failed:
-                self._invocation["failed"] = list(failed)
-            self._save_history()
-
-    def _save_history(self):
-        self.f["progress"].attrs["history"] = json.dumps(self._history)
-        self.f.flush()
-
-    def write_chunk(self, chunk, values, seconds):
-        """Write one finished chunk (arrays over its radii, ascending), flush, then mark it done
-        and flush again.
-
-        Every data set has a fixed size and type and was allocated when the file was created,
-        so this overwrites bytes in place and leaves the file's metadata alone: a kill at any
-        moment leaves a readable file in which this chunk is either done or not.
-        """
-        if self.shard is None:
-            group = self.f
-            sl = (chunk.model, chunk.alpha, slice(chunk.radius_start, chunk.radius_stop), chunk.state)
-        else:
-            if chunk.index not in self._offsets:
-                raise ValueError(f"chunk {chunk.index} does not belong to shard {self.shard.label}")
-            group = self.f["shard_points"]
-            sl = slice(self._offsets[chunk.index], self._offsets[chunk.index] + chunk.size)
-        for name, (kind, _, _) in POINT_VARIABLES.items():
-            group[name][sl] = _as_stored(kind, values[name])
-        g = self.f["progress"]
-        g["invocation"][chunk.index] = self._invocation["invocation"] if self._invocation else 0
-        g["seconds"][chunk.index] = seconds
-        self.f.flush()
-        g["done"][chunk.index] = 1
-        self.f.flush()
-        if self._invocation is not None:
-            self._invocation["chunks_computed"] += 1  # saved with the history at the end
-
-    def write_branch_point(self, model, alpha, values):
-        """Write the branch point of (model index, alpha index): ``values`` maps the names of
-        `BRANCH_VARIABLES` to scalars. Values first, flush, then the status (which marks it
-        stored), flush: in place, like `write_chunk`."""
-        g = self.f["branch_points"]
-        for name, (kind, fill, _) in BRANCH_VARIABLES.items():
-            if name != "status":
-                g[name][model, alpha] = _as_stored(kind, values.get(name, fill))
-        self.f.flush()
-        g["status"][model, alpha] = values["status"]
-        self.f.flush()
-        if self._invocation is not None:
-            self._invocation["branch_points_computed"] += 1
-
-    def close(self):
-        if self.f:
-            self.f.close()
-            self.f = None
+    points: dict
+    done: np.ndarray
+    invocation: np.ndarray
+    seconds: np.ndarray
+    branch: dict
+    history: list
 
 
-def _open(path, mode):
-    try:
-        return h5py.File(path, mode)
-    except OSError as exc:
-        text = str(exc)
-        if "lock" in text:
-            raise StoreError(f"{path}: in use by another process (another tba run?)") from None
-        raise StoreError(f"{path}: not a readable HDF5 file ({text.splitlines()[0]}); "
-                         f"refusing to touch it (use --force to replace it)", foreign=True) from None
+def empty_contents(run, shard=None):
+    """`Contents` with every point and branch point "not computed" (the not-available points
+    of a full store marked), to fill in."""
+    shape = run.shape if shard is None else (shard_points(run, shard)[1],)
+    points = {name: full(shape, kind, fill) for name, (kind, fill, _) in POINT_VARIABLES.items()}
+    if shard is None:
+        mark_unavailable(points, run)
+    n = len(run.chunks())
+    bshape = (len(run.models), len(run.alphas))
+    return Contents(points=points, done=np.zeros(n, dtype=bool), invocation=np.zeros(n, dtype="<i4"),
+                    seconds=np.full(n, np.nan), history=[],
+                    branch={name: full(bshape, kind, fill) for name, (kind, fill, _) in BRANCH_VARIABLES.items()})
 
 
-def create_store(path, run, run_file=None, shard=None, fill=None):
-    """Write a new store with every point 'not computed' (atomically: temporary file, rename;
-    an existing file at ``path`` is replaced). With ``shard`` (a `tba.scans.runfile.Shard`), the
-    shard layout. ``fill(f)``, if given, writes into the new file before it is renamed (the
-    merge uses it, so that a merged file appears complete or not at all)."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
+def _write_contents(f, run, shard, contents):
+    group = f if shard is None else f["shard_points"]
+    for name in POINT_VARIABLES:
+        group[name][...] = contents.points[name]
+    g = f["progress"]
+    offsets = shard_points(run, shard)[0] if shard is not None else None
+    checksum = np.zeros(len(contents.done), dtype="<u8")
+    for c in run.chunks():
+        if contents.done[c.index]:
+            checksum[c.index] = chunk_checksum(c.index, chunk_values(contents.points, run, c, offsets),
+                                               contents.invocation[c.index], contents.seconds[c.index])
+    g["done"][...] = contents.done.astype("u1")
+    g["invocation"][...] = contents.invocation
+    g["seconds"][...] = contents.seconds
+    g["checksum"][...] = checksum
+    bp = f["branch_points"]
+    status = contents.branch["status"]
+    bsum = np.zeros(status.shape, dtype="<u8")
+    for m, a in zip(*np.nonzero(status != NOT_COMPUTED)):
+        bsum[m, a] = branch_checksum(m, a, branch_values(contents.branch, m, a))
+    for name in BRANCH_VARIABLES:
+        bp[name][...] = contents.branch[name]
+    bp["checksum"][...] = bsum
+    write_history(f, contents.history)
+
+
+def write_history(f, entries):
+    """History entries into the slots of a new file: the last HISTORY_SLOTS by invocation."""
+    slots = np.zeros(HISTORY_SLOTS, dtype=HISTORY_DTYPE)
+    for entry in sorted(entries, key=lambda e: e["invocation"])[-HISTORY_SLOTS:]:
+        slots[(entry["invocation"] - 1) % HISTORY_SLOTS] = encode_history_entry(entry, HISTORY_BYTES)
+    f["progress/history"][...] = slots
+
+
+def _seal(f, run, shard):
+    """The recovery map and the header checksum: the last writes of a new file."""
+    datasets = {}
+
+    def visit(name, obj):
+        if isinstance(obj, h5py.Dataset) and name != "recovery/map":
+            datasets[name] = [obj.id.get_offset(), obj.dtype.str, list(obj.shape)]
+
+    f.visititems(visit)
+    content = {"schema_version": SCHEMA_VERSION, "run_id": run.run_id,
+               "shard": None if shard is None else shard.label, "run": run.to_dict(),
+               "run_file": str(f.attrs.get("run_file", "")),
+               "package_version": str(f.attrs.get("package_version", "")), "datasets": datasets}
+    ds = f["recovery/map"]
+    ds[()] = np.array(encode_recovery_map(content, ds.dtype.itemsize), dtype=ds.dtype)
+    f.attrs["header_checksum"] = header_checksum(f.attrs)
+
+
+def store_image(run, run_file=None, shard=None, contents=None):
+    """The bytes of a new store (built in memory; nothing touches the disk)."""
     models_info = [m.build().describe() for m in run.models]
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    with h5py.File(f"tba-image-{uuid.uuid4().hex}.h5", "w", driver="core", backing_store=False,
+                   libver=LIBVER) as f:
+        _write_layout(f, run, run_file, models_info, shard)
+        if contents is not None:
+            _write_contents(f, run, shard, contents)
+        _seal(f, run, shard)
+        f.flush()
+        return f.id.get_file_image()
+
+
+def _size(n):
+    for unit in ("bytes", "KB", "MB", "GB"):
+        if n < 1000 or unit == "GB":
+            return f"{n:.0f} {unit}" if unit == "bytes" else f"{n:.1f} {unit}"
+        n /= 1000
+    return f"{n:.1f} TB"
+
+
+def free_space(directory):
+    """Bytes available to this user in the file system of ``directory`` (None if unknown)."""
     try:
-        with h5py.File(tmp, "w") as f:
-            _write_layout(f, run, run_file, models_info, shard)
-            if fill is not None:
-                fill(f)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-
-
-def _shard_of(f):
-    """The `Shard` a file is (None for a full store)."""
-    if f.attrs.get("schema") != SHARD_SCHEMA:
+        st = os.statvfs(directory)
+    except OSError:
         return None
-    return Shard(int(f.attrs["shard_index"]), int(f.attrs["shard_count"]))
+    return st.f_bavail * st.f_frsize
+
+
+def write_atomically(path, image, keep=None):
+    """Write ``image`` to ``path``: free space checked first, then a temporary file next to it,
+    synced, renamed over ``path``. With ``keep``, an existing file at ``path`` is kept under
+    that name. `StoreError` (nothing changed) if the space is missing or a write fails."""
+    path = Path(path)
+    free = free_space(path.parent)
+    if free is not None and free < len(image) + SPACE_MARGIN:
+        raise StoreError(f"{path}: needs {_size(len(image) + SPACE_MARGIN)} of disk space and its "
+                         f"file system has {_size(free)} free; free some space or write the file "
+                         f"elsewhere (--out)")
+    tmp = partial_path(path)
+    try:
+        if tmp.exists():  # ours (this host and pid), left by a dead process of the same pid
+            tmp.unlink()
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, 0o666)
+        try:
+            write_all(fd, image, 0)
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        if keep is not None:
+            os.rename(path, keep)
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise StoreWriteError(f"{path}: could not be written ({exc.strerror or exc}); "
+                              f"nothing was changed") from None
+    finally:
+        try:
+            tmp.unlink()
+        except FileNotFoundError:
+            pass
+    try:  # the rename itself on disk
+        dfd = os.open(path.parent, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except OSError:
+        pass
+
+
+def write_all(fd, data, offset):
+    """``os.pwrite`` until every byte of ``data`` is written at ``offset``."""
+    view = memoryview(data)
+    while view:
+        n = os.pwrite(fd, view, offset)
+        view, offset = view[n:], offset + n
+
+
+def create_store(path, run, run_file=None, shard=None, contents=None, keep=None):
+    """Write a new store with every point 'not computed' (the shard layout with ``shard``; the
+    values of ``contents``, a `Contents`, if given), atomically: an existing file at ``path``
+    is replaced (or kept as ``keep``). Call it holding the lock of ``path``."""
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot create its directory ({exc.strerror})") from None
+    write_atomically(path, store_image(run, run_file, shard, contents), keep=keep)
+
+
+# -- reading and validation ---------------------------------------------------------------------
+
+@dataclass
+class Snapshot:
+    """A store as read and validated (`load`): arrays in the stored types, consistent with
+    the done mask (points of chunks not done are "not computed").
+
+    ``points`` are full (model, alpha, radius, state) arrays, or /shard_points arrays for a
+    shard (``shard``); ``done`` is the mask of chunks whose values are stored and verified;
+    ``bad_chunks`` / ``bad_branch`` list what is marked stored but fails its checksum;
+    ``offsets`` maps data-set names to (byte offset, dtype, shape) for in-place writes
+    (schema 4 only)."""
+
+    path: Path
+    version: int
+    attrs: dict
+    run: RunSpec
+    shard: Shard | None
+    points: dict
+    progress: dict
+    branch: dict
+    history: list
+    invocations: int
+    done: np.ndarray
+    bad_chunks: list = field(default_factory=list)
+    bad_branch: list = field(default_factory=list)
+    offsets: dict = field(default_factory=dict)
+
+
+def _hdf5_signature(path):
+    """True if ``path`` has the HDF5 signature where HDF5 looks for it (0, 512, 1024, ...)."""
+    try:
+        size = os.path.getsize(path)
+        with open(path, "rb") as fh:
+            at = 0
+            while at < size:
+                fh.seek(at)
+                if fh.read(8) == b"\x89HDF\r\n\x1a\n":
+                    return True
+                at = 512 if at == 0 else 2 * at
+    except OSError:
+        pass
+    return False
+
+
+def _has_recovery_map(path):
+    """True if the raw bytes of ``path`` hold the magic number of a recovery map."""
+    import mmap
+
+    try:
+        with open(path, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as buffer:
+            return buffer.find(RECOVERY_MAGIC) >= 0
+    except (OSError, ValueError):
+        return False
+
+
+def _first_line(exc):
+    text = str(exc).strip().splitlines()
+    line = text[0] if text else type(exc).__name__
+    for noise in ("Unable to synchronously ", "Unable to "):
+        line = line.replace(noise, "")
+    return line[:160]
+
+
+def open_hdf5(path):
+    """Open ``path`` read-only for a reader (no HDF5 file locking: the writer never changes
+    the HDF5 structure of a store). One-line `StoreError` if it is not an HDF5 file,
+    `DamagedStore` if it is one that HDF5 cannot open."""
+    path = Path(path)
+    if not path.exists():
+        raise StoreError(f"{path}: no such file")
+    if path.is_dir():
+        raise StoreError(f"{path}: is a directory")
+    try:
+        try:
+            return h5py.File(path, "r", locking=False)
+        except OSError as exc:
+            if "file locking" not in str(exc):
+                raise
+            # open in this process already, with HDF5's file locking (h5py's default): HDF5
+            # shares one handle per file and wants the same setting
+            return h5py.File(path, "r")
+    except OSError as exc:
+        if isinstance(exc, PermissionError):
+            raise StoreError(f"{path}: cannot be read (permission denied)") from None
+        if _hdf5_signature(path):
+            raise DamagedStore(f"{path}: damaged HDF5 file ({_first_line(exc)})") from None
+        if _has_recovery_map(path):
+            raise DamagedStore(f"{path}: damaged HDF5 file (no HDF5 signature left)") from None
+        raise StoreError(f"{path}: not an HDF5 file", foreign=True) from None
+
+
+#: what h5py raises when a file's structure is damaged in ways its open did not notice
+_READ_ERRORS = (OSError, KeyError, ValueError, TypeError, RuntimeError, IndexError, AttributeError,
+                UnicodeDecodeError)
+
+
+def _attr(f, name):
+    v = f.attrs.get(name)
+    return v.decode("utf-8", "replace") if isinstance(v, bytes) else v
+
+
+def load(path, verify=True):
+    """Read and validate the store at ``path`` (any `READABLE_VERSIONS`): a `Snapshot`.
+
+    Refuses with one line (`StoreError`, naming the file and the problem): files that are
+    not HDF5 or not tba-flow scans, unknown schema versions, a run attribute that is not a
+    run, missing data sets or data sets of the wrong shape or type, coordinates or a chunk
+    table that do not match the run. `DamagedStore`: HDF5 cannot read the structure, or (schema
+    4) the root attributes fail their checksum, or a chunk marked done holds values no solve
+    gives (an unknown status, "converged" without a finite energy). Chunks marked done whose
+    values fail their checksum are listed in ``bad_chunks`` (not refused here). ``verify``
+    False reads what is there, neither checksums nor values checked."""
+    path = Path(path)
+    f = open_hdf5(path)
+    with f:
+        try:
+            return _load(path, f, verify)
+        except StoreError:
+            raise
+        except _READ_ERRORS as exc:
+            raise DamagedStore(f"{path}: damaged HDF5 file ({_first_line(exc)})") from None
+
+
+def _require(path, f, name, shape, kinds, exact=None):
+    """Data set ``name`` of ``shape`` whose dtype kind is one of ``kinds`` (and equal to
+    ``exact`` when given); its values."""
+    if name not in f:
+        raise StoreError(f"{path}: data set /{name} is missing (not a complete tba-flow store)",
+                         foreign=True)
+    ds = f[name]
+    if not isinstance(ds, h5py.Dataset):
+        raise StoreError(f"{path}: /{name} is not a data set", foreign=True)
+    if tuple(ds.shape) != tuple(shape):
+        raise StoreError(f"{path}: data set /{name} has shape {tuple(ds.shape)}, its run needs "
+                         f"{tuple(shape)}", foreign=True)
+    if ds.dtype.kind not in kinds or (exact is not None and ds.dtype != exact):
+        raise StoreError(f"{path}: data set /{name} has type {ds.dtype}, expected "
+                         f"{exact or kinds}", foreign=True)
+    return ds
+
+
+def _kinds(kind):
+    return "S" if kind == "str" else STORED[kind].kind
+
+
+def _load(path, f, verify):
+    schema = _attr(f, "schema")
+    if schema not in (SCHEMA, SHARD_SCHEMA):
+        raise StoreError(f"{path}: not a tba-flow scan file", foreign=True)
+    try:
+        version = int(f.attrs.get("schema_version", -1))
+    except (TypeError, ValueError):
+        version = -1
+    if version not in READABLE_VERSIONS:
+        raise StoreError(f"{path}: schema version {version}; this tba reads "
+                         f"{', '.join(map(str, READABLE_VERSIONS))}", foreign=True)
+    if version >= 4 and _attr(f, "header_checksum") != header_checksum(f.attrs):
+        raise DamagedStore(f"{path}: damaged (its root attributes fail their checksum)")
+    attrs = {k: (v.decode("utf-8", "replace") if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
+    try:
+        run_dict = json.loads(attrs["run"])
+        run = resolve_run(run_dict, name=run_dict.get("name", "run"))
+    except KeyError:
+        raise StoreError(f"{path}: has no run attribute (not a complete tba-flow store)",
+                         foreign=True) from None
+    except (ValueError, AttributeError, TypeError) as exc:  # JSON, or RunFileError
+        what = "not a valid run" if isinstance(exc, RunFileError) else "not valid JSON"
+        raise StoreError(f"{path}: its run attribute is {what} ({_first_line(exc)})",
+                         foreign=True) from None
+    if version >= 4 and attrs.get("run_id") != run.run_id:
+        raise DamagedStore(f"{path}: damaged (its run_id does not match its run)")
+    shard = _shard_of(f, path)
+    _check_coordinates(path, f, run)
+    exact = version >= 4  # schema 4 is written in place: exact little-endian types
+    chunks = run.chunks()
+    n = len(chunks)
+    names = (*PROGRESS_FIELDS, "done", "invocation", "seconds") + (("owned",) if shard else ()) \
+        + (("checksum",) if version >= 4 else ())
+    kinds = {"seconds": ("f", "f8"), "checksum": ("u", "u8"), "done": ("u", "u1"),
+             "owned": ("u", "u1")}
+    progress = {}
+    for name in names:
+        k, stored = kinds.get(name, ("i", "i4"))
+        progress[name] = _require(path, f, f"progress/{name}", (n,), k,
+                                  STORED[stored] if exact else None)[...]
+    table = np.stack([progress[name] for name in PROGRESS_FIELDS], axis=1)
+    expected = np.array([[c.model, c.alpha, c.state, c.radius_start, c.radius_stop] for c in chunks],
+                        dtype=table.dtype).reshape(table.shape)
+    if not np.array_equal(table, expected):
+        raise StoreError(f"{path}: its chunk table does not match its run", foreign=True)
+    if shard is not None and not np.array_equal(progress["owned"].astype(bool),
+                                                [shard.owns(c) for c in chunks]):
+        raise StoreError(f"{path}: its /progress/owned mask does not match shard {shard.label}",
+                         foreign=True)
+    done_flags = progress["done"]
+    if not np.isin(done_flags, (0, 1)).all():
+        raise DamagedStore(f"{path}: damaged (/progress/done holds values other than 0 and 1)")
+    offsets = shard_points(run, shard)[0] if shard is not None else None
+    mine = chunks if shard is None else shard.chunks(run)
+    stray = done_flags.astype(bool) & ~np.isin(np.arange(n), [c.index for c in mine])
+    if stray.any():
+        raise DamagedStore(f"{path}: damaged (chunk {int(np.flatnonzero(stray)[0])} is marked done "
+                           f"but does not belong to shard {shard.label})")
+    # the points, read after the done mask: a chunk marked done has its values already
+    if shard is None:
+        group, shape = f, run.shape
+    else:
+        group, shape = f["shard_points"], (shard_points(run, shard)[1],)
+        index = shard_index(run, shard)
+        for name in SHARD_INDEX:
+            if not np.array_equal(_require(path, group, name, shape, "i")[...], index[name]):
+                raise StoreError(f"{path}: /shard_points/{name} does not match shard {shard.label}",
+                                 foreign=True)
+    points = {}
+    for name, (kind, fill, _) in POINT_VARIABLES.items():
+        if name == "momentum" and version < 3:
+            points[name] = full(shape, kind, fill)
+            continue
+        ds = _require(path, group, name, shape, _kinds(kind), STORED[kind] if exact else None)
+        if kind == "str" and ds.dtype.itemsize != MESSAGE_BYTES:
+            raise StoreError(f"{path}: data set /{ds.name.lstrip('/')} holds strings of "
+                             f"{ds.dtype.itemsize} bytes, expected {MESSAGE_BYTES}", foreign=True)
+        points[name] = ds[...].astype(STORED[kind], copy=False)
+    bshape = (len(run.models), len(run.alphas))
+    branch = {}
+    for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+        if version < 2:  # schema 1: the group was reserved, empty
+            branch[name] = full(bshape, kind, fill)
+            continue
+        ds = _require(path, f, f"branch_points/{name}", bshape, _kinds(kind),
+                      STORED[kind] if exact else None)
+        branch[name] = ds[...].astype(STORED[kind], copy=False)
+    bsum = (_require(path, f, "branch_points/checksum", bshape, "u", STORED["u8"])[...]
+            if version >= 4 else None)
+    history, invocations = _history(path, f, version)
+    snap = Snapshot(path=path, version=version, attrs=attrs, run=run, shard=shard, points=points,
+                    progress=progress, branch=branch, history=history, invocations=invocations,
+                    done=done_flags.astype(bool))
+    if version >= 4:
+        snap.offsets = _offsets(path, f)
+        if verify:
+            _verify(snap, mine, offsets, bsum)
+    if verify:
+        _check_values(snap, mine, offsets)
+    _consistent(snap, offsets)
+    return snap
+
+
+def _shard_of(f, path=None):
+    """The `Shard` a file is (None for a full store)."""
+    if _attr(f, "schema") != SHARD_SCHEMA:
+        return None
+    try:
+        return Shard(int(f.attrs["shard_index"]), int(f.attrs["shard_count"]))
+    except (KeyError, TypeError, ValueError):
+        raise StoreError(f"{path}: a shard file without a valid shard_index and shard_count",
+                         foreign=True) from None
+
+
+def _check_coordinates(path, f, run):
+    """The coordinates are those of the run (exported numbers come from them)."""
+    strings = lambda ds: [s.decode("utf-8", "replace") if isinstance(s, bytes) else s  # noqa: E731
+                          for s in ds[...].tolist()]
+    expected = {
+        "model": [m.label for m in run.models], "alpha": list(run.alphas),
+        "radius": list(run.radii), "state": list(run.states),
+        "model_name": [m.name for m in run.models],
+        "model_coupling": [math.nan if m.coupling is None else m.coupling for m in run.models],
+    }
+    for name, values in expected.items():
+        kinds = "f" if name in ("alpha", "radius", "model_coupling") else "SO"
+        ds = _require(path, f, name, (len(values),), kinds)
+        found = ds[...].tolist() if "f" in kinds else strings(ds)
+        same = all(a == b or (isinstance(a, float) and math.isnan(a) and math.isnan(b))
+                   for a, b in zip(found, values))
+        if not same:
+            raise StoreError(f"{path}: its /{name} coordinate does not match its run "
+                             f"(damaged or edited)", foreign=True)
+
+
+def _history(path, f, version):
+    """(entries, number of invocations) of a file: the slots of schema 4, the /progress
+    attribute of older schemas. An entry whose slot fails its checksum is replaced by one that
+    says so; a damaged slot that held no entry (invocation numbers run 1, 2, ... and fill the
+    slots in turn) is left out."""
+    if version < 4:
+        try:
+            entries = json.loads(f["progress"].attrs["history"])
+        except (KeyError, ValueError):
+            raise StoreError(f"{path}: its /progress history attribute is missing or not JSON",
+                             foreign=True) from None
+        return entries, max((int(e.get("invocation", 0)) for e in entries), default=0)
+    slots = _require(path, f, "progress/history", (HISTORY_SLOTS,), "S", HISTORY_DTYPE)[...]
+    entries, damaged = [], []
+    for k, raw in enumerate(slots):
+        try:
+            entry = decode_history_entry(raw)
+        except ValueError:
+            damaged.append(k)
+            continue
+        if entry is not None:
+            entries.append(entry)
+    last = max((e["invocation"] for e in entries), default=0)
+    for k in damaged:
+        invocation = last - (last - (k + 1)) % HISTORY_SLOTS  # the latest one in slot k
+        if 1 <= invocation <= last:
+            entries.append({"invocation": invocation, "damaged": "this history entry fails its "
+                                                                  "checksum"})
+    entries.sort(key=lambda e: e["invocation"])
+    return entries, last
+
+
+def _offsets(path, f):
+    """{data-set name: (byte offset, dtype, shape)} of the data sets written in place."""
+    out = {}
+
+    def visit(name, obj):
+        if isinstance(obj, h5py.Dataset) and obj.dtype.kind in "fiuS" and obj.size:
+            offset = obj.id.get_offset()
+            if offset is None:  # not contiguous, or never allocated: rewritten by another tool
+                raise StoreError(f"{path}: data set /{name} is not stored contiguously (rewritten "
+                                 f"by another tool?); tba cannot write it in place", foreign=True)
+            out[name] = (offset, obj.dtype, tuple(obj.shape))
+
+    f.visititems(visit)
+    return out
+
+
+def _verify(snap, mine, offsets, bsum):
+    """Checksums of the chunks and branch points marked stored: the failing ones into
+    ``bad_chunks`` / ``bad_branch`` (and out of the done mask)."""
+    run, progress = snap.run, snap.progress
+    for c in mine:
+        if snap.done[c.index]:
+            found = chunk_checksum(c.index, chunk_values(snap.points, run, c, offsets),
+                                   progress["invocation"][c.index], progress["seconds"][c.index])
+            if found != int(progress["checksum"][c.index]):
+                snap.bad_chunks.append(c.index)
+    snap.done[snap.bad_chunks] = False
+    status = snap.branch["status"]
+    for m, a in zip(*np.nonzero(status != NOT_COMPUTED)):
+        if branch_checksum(m, a, branch_values(snap.branch, m, a)) != int(bsum[m, a]):
+            snap.bad_branch.append((int(m), int(a)))
+
+
+_POINT_CODES = set(STATUS_MEANINGS) - {NOT_COMPUTED, NOT_AVAILABLE}
+
+
+def _check_values(snap, mine, offsets):
+    """What a chunk marked done must hold: statuses and flow statuses of known codes, and a
+    finite energy with a finite error estimate >= 0 at every converged point (so that no
+    reader ever shows "converged" without a number)."""
+    converged = [c for c, (name, _) in STATUS_MEANINGS.items() if name == "converged"][0]
+    bad = set(snap.bad_chunks)
+    for c in mine:
+        if not snap.done[c.index] or c.index in bad:
+            continue
+        v = chunk_values(snap.points, snap.run, c, offsets)
+        ok = v["status"] == converged
+        problem = None
+        if not set(np.unique(v["status"]).tolist()) <= _POINT_CODES:
+            problem = "a point status that is not a known code"
+        elif not set(np.unique(v["flow_status"]).tolist()) <= set(FLOW_MEANINGS):
+            problem = "a flow status that is not a known code"
+        elif not (np.isfinite(v["energy"][ok]).all() and np.isfinite(v["error"][ok]).all()
+                  and (v["error"][ok] >= 0).all()):
+            problem = "a converged point without a finite energy and error estimate"
+        if problem:
+            raise DamagedStore(f"{snap.path}: {describe_chunk(snap.run, c)} holds {problem} "
+                               f"(damaged or edited)")
+    codes = set(BRANCH_MEANINGS)
+    found = snap.branch["status"]
+    if not set(np.unique(found).tolist()) <= codes:
+        raise DamagedStore(f"{snap.path}: /branch_points/status holds a value that is not a known code")
+    ok = found == BP_FOUND
+    if not (np.isfinite(snap.branch["branch_radius"][ok]).all()
+            and np.isfinite(snap.branch["energy"][ok]).all()):
+        raise DamagedStore(f"{snap.path}: a branch point marked found has no finite R_c and energy")
+
+
+def _consistent(snap, offsets):
+    """Points of chunks that are not done (or failed their checksum) read as not computed,
+    whatever bytes a writer may have put there already; so do branch points that fail
+    their checksum."""
+    run = snap.run
+    mine = run.chunks() if snap.shard is None else snap.shard.chunks(run)
+    for c in mine:
+        if not snap.done[c.index]:
+            sl = chunk_slice(run, c, offsets)
+            for name, (kind, fill, _) in POINT_VARIABLES.items():
+                snap.points[name][sl] = full((), kind, fill)
+    for m, a in snap.bad_branch:
+        for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+            snap.branch[name][m, a] = full((), kind, fill)
+
+
+def load_settled(path, verify=True):
+    """`load`, read again while a writer holds the lock of ``path`` and the file looks
+    damaged or fails checksums (a writer at work may be half-way through a chunk)."""
+    for attempt in range(READ_RETRIES + 1):
+        try:
+            snap = load(path, verify)
+        except DamagedStore:
+            if attempt == READ_RETRIES or holder(path) is None:
+                raise
+        else:
+            if not (snap.bad_chunks or snap.bad_branch) or attempt == READ_RETRIES \
+                    or holder(path) is None:
+                return snap
+        time.sleep(READ_RETRY_DELAY)
+    raise AssertionError("unreachable")
+
+
+def damage_message(snap):
+    """One line for a store whose chunks (or branch points) fail their checksums."""
+    path, run = snap.path, snap.run
+    what = []
+    if snap.bad_chunks:
+        c = run.chunks()[snap.bad_chunks[0]]
+        more = f" (and {len(snap.bad_chunks) - 1} more chunks)" if len(snap.bad_chunks) > 1 else ""
+        what.append(f"{describe_chunk(run, c)}{more}")
+    if snap.bad_branch:
+        m, a = snap.bad_branch[0]
+        more = f" (and {len(snap.bad_branch) - 1} more)" if len(snap.bad_branch) > 1 else ""
+        what.append(f"the branch point of {run.models[m].label} at alpha = {run.alphas[a]:g}{more}")
+    run_file = snap.attrs.get("run_file") or "RUNFILE"
+    shard = f" --shard {snap.shard.label}" if snap.shard is not None else ""
+    return (f"{path}: {' and '.join(what)} fails its checksum (the file is damaged there); "
+            f"tba run {run_file}{shard} --out {path} recomputes it")
+
+
+def check_store(path, run, shard=None):
+    """Read-only check that ``path`` is a store of the same run (and of this schema version:
+    files of other versions are refused), and the same shard of it (None: a full store).
+    Returns its `Snapshot`, whose done mask leaves out the chunks that fail their checksum
+    (``bad_chunks``: to compute again)."""
+    try:
+        snap = load_settled(path)
+    except DamagedStore:
+        raise
+    except StoreError as exc:
+        if not exc.foreign or "--force" in str(exc):
+            raise
+        raise StoreError(f"{exc}; refusing to overwrite it (use --force to replace it, or --out)",
+                         foreign=True) from None
+    found = snap.shard
+    if found != shard:
+        hint = ("merge the shards with tba merge, or resume it with --shard "
+                f"{found.label}" if found is not None and shard is None else
+                "use --out for another file, or --force to replace it")
+        raise StoreError(f"{path}: is {_shard_words(found)} of a run, not "
+                         f"{_shard_words(shard)}; {hint}", foreign=True)
+    if snap.version != SCHEMA_VERSION:
+        raise StoreError(f"{path}: schema version {snap.version}, this tba writes "
+                         f"{SCHEMA_VERSION} and cannot resume it; use --force to replace it, "
+                         f"or --out", foreign=True)
+    if snap.attrs.get("run_id") != run.run_id:
+        keys = differing_keys(snap.run.to_dict(), run.to_dict()) or ["run_id"]
+        raise StoreError(f"{path}: written by a different run (differs in: {', '.join(keys)}); "
+                         f"refusing to overwrite it (use --force to replace it, or --out)", foreign=True)
+    stored = snap.attrs.get("package_version")
+    if stored != package_version():
+        raise StoreError(f"{path}: written by tba {stored}, this is tba {package_version()}; "
+                         f"resuming would mix versions (use --force to start again, or --out)",
+                         foreign=True)
+    return snap
 
 
 def _shard_words(shard):
     return "a full store" if shard is None else f"shard {shard.label}"
 
 
-def check_store(path, run, shard=None):
-    """Read-only check that ``path`` is a store of the same run (and of this schema version:
-    files of other versions are refused), and the same shard of it (None: a full store).
-    Returns (done mask, git commit, branch-point status array (model, alpha))."""
-    with _open(path, "r") as f:
-        if f.attrs.get("schema") in (SCHEMA, SHARD_SCHEMA):
-            found = _shard_of(f)
-            if found != shard:
-                hint = ("merge the shards with tba merge, or resume it with --shard "
-                        f"{found.label}" if found is not None and shard is None else
-                        "use --out for another file, or --force to replace it")
-                raise StoreError(f"{path}: is {_shard_words(found)} of a run, not "
-                                 f"{_shard_words(shard)}; {hint}", foreign=True)
-        if f.attrs.get("schema") not in (SCHEMA, SHARD_SCHEMA):
-            raise StoreError(f"{path}: exists and is not a tba-flow scan file; refusing to "
-                             f"overwrite it (use --force to replace it, or --out)", foreign=True)
-        version = int(f.attrs.get("schema_version", -1))
-        if version != SCHEMA_VERSION:
-            raise StoreError(f"{path}: schema version {version}, this tba writes "
-                             f"{SCHEMA_VERSION} and cannot resume it; use --force to replace it, "
-                             f"or --out", foreign=True)
-        if f.attrs.get("run_id") != run.run_id:
-            old = json.loads(f.attrs["run"])
-            keys = differing_keys(old, run.to_dict()) or ["run_id"]
-            raise StoreError(f"{path}: written by a different run (differs in: {', '.join(keys)}); "
-                             f"refusing to overwrite it (use --force to replace it, or --out)", foreign=True)
-        stored = f.attrs.get("package_version")
-        if stored != package_version():
-            raise StoreError(f"{path}: written by tba {stored}, this is tba {package_version()}; "
-                             f"resuming would mix versions (use --force to start again, or --out)", foreign=True)
-        g = f["progress"]
-        table = np.stack([g[name][...] for name in PROGRESS_FIELDS], axis=1)
-        expected = np.array([[c.model, c.alpha, c.state, c.radius_start, c.radius_stop]
-                             for c in run.chunks()], dtype=table.dtype).reshape(table.shape)
-        if table.shape != expected.shape or not np.array_equal(table, expected):
-            raise StoreError(f"{path}: its chunk table does not match the run; use --force or --out", foreign=True)
-        status = f["branch_points/status"][...] if "branch_points/status" in f else None
-        if status is None or status.shape != (len(run.models), len(run.alphas)):
-            raise StoreError(f"{path}: its /branch_points do not match the run; use --force or --out",
-                             foreign=True)
-        return g["done"][...].astype(bool), str(f.attrs.get("git_commit", "unknown")), status
-
-
-def prepare_store(path, run, force=False, run_file=None, shard=None):
-    """Make sure ``path`` is a store of ``run`` (the shard layout with ``shard``): check an
-    existing one (read-only) or create it. Returns (done mask, created, note, branch-point
-    status (model, alpha)). Nothing is written to an existing file here.
-
-    An existing file of another run, another schema or another package version, or a file
-    that is not a store, is never overwritten unless ``force`` (`StoreError`).
-    """
-    path = Path(path)
-    if path.is_dir():
-        raise StoreError(f"{path}: is a directory")
-    if path.exists() and not force:
-        done, commit, branch_status = check_store(path, run, shard)
-        note = None
-        if commit != git_commit():
-            note = (f"{path} was started at commit {commit[:12]}, this is {git_commit()[:12]}; "
-                    f"each invocation is recorded in the /progress history attribute")
-        return done, False, note, branch_status
-    create_store(path, run, run_file, shard)
-    return (np.zeros(len(run.chunks()), dtype=bool), True, None,
-            np.full((len(run.models), len(run.alphas)), NOT_COMPUTED, dtype="i1"))
-
-
-def open_store(path, run):
-    """Open a checked store for writing (`prepare_store` first)."""
-    return Store(path, _open(path, "r+"), run)
-
-
-# -- reading ------------------------------------------------------------------------------------
+# -- reading for reports, plots, exports --------------------------------------------------------
 
 @dataclass
 class StoreData:
@@ -586,12 +1104,15 @@ class StoreData:
     state: list
     data: dict = field(default_factory=dict)
     progress: dict = field(default_factory=dict)
+    #: the retained history entries (the last HISTORY_SLOTS of schema 4), oldest first
     history: list = field(default_factory=list)
     #: /branch_points arrays (model, alpha), names of `BRANCH_VARIABLES` (schema 1: not computed)
     branch: dict = field(default_factory=dict)
     schema_version: int = SCHEMA_VERSION
     #: the `tba.scans.runfile.Shard` of a shard file (its points only; the rest "not computed")
     shard: Shard | None = None
+    #: invocations recorded in all (more than ``len(history)`` once old entries were dropped)
+    invocations: int = 0
 
     def __getitem__(self, name):
         return self.data[name]
@@ -640,60 +1161,52 @@ class StoreData:
                         }
 
 
-def _strings(ds):
-    return np.array(ds.asstr()[...], dtype=object)
-
-
 def read_store(path):
     """Read a whole store (any tba-flow scan file of a `READABLE_VERSIONS` schema) into a
-    `StoreData`; a schema-1 file has no branch points (all "not computed")."""
+    `StoreData`: validated (`load`), checksums verified, consistent with its done mask even
+    while `tba run` writes it. One-line `StoreError` for a damaged file (saying what `tba
+    run` can recover) or a chunk that fails its checksum (naming it)."""
     path = Path(path)
-    if not path.exists():
-        raise StoreError(f"{path}: no such file")
     try:
-        f = h5py.File(path, "r", locking=False)
-    except OSError as exc:
-        raise StoreError(f"{path}: not a readable HDF5 file ({str(exc).splitlines()[0]})") from None
-    with f:
-        if f.attrs.get("schema") not in (SCHEMA, SHARD_SCHEMA):
-            raise StoreError(f"{path}: not a tba-flow scan file")
-        shard = _shard_of(f)
-        version = int(f.attrs.get("schema_version", -1))
-        if version not in READABLE_VERSIONS:
-            raise StoreError(f"{path}: schema version {version}; this tba reads "
-                             f"{', '.join(map(str, READABLE_VERSIONS))}")
-        attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
-        run = resolve_run(json.loads(attrs["run"]), name=json.loads(attrs["run"]).get("name", "run"))
-        data = {}
-        if shard is None:
-            for name, (kind, fill, _) in POINT_VARIABLES.items():
-                if name not in f:  # schema < 3: no momentum
-                    data[name] = np.full(run.shape, fill, dtype=kind)
-                else:
-                    data[name] = _strings(f[name]) if kind == "str" else f[name][...]
-        else:  # the shard's points into full arrays; the other shards' points "not computed"
-            g = f["shard_points"]
-            where = tuple(g[name][...] for name in SHARD_INDEX)
-            for name, (kind, fill, _) in POINT_VARIABLES.items():
-                full = np.full(run.shape, fill, dtype=object if kind == "str" else kind)
-                full[where] = _strings(g[name]) if kind == "str" else g[name][...]
-                data[name] = full
-            mark_unavailable(data, run)
-        g = f["progress"]
-        names = (*PROGRESS_FIELDS, "done", "invocation", "seconds") + (("owned",) if shard else ())
-        progress = {name: g[name][...] for name in names}
-        couplings = [None if math.isnan(c) else float(c) for c in f["model_coupling"][...]]
-        shape = (len(run.models), len(run.alphas))
-        branch = {}
-        for name, (kind, fill, _) in BRANCH_VARIABLES.items():
-            key = f"branch_points/{name}"
-            if key in f:
-                branch[name] = _strings(f[key]) if kind == "str" else f[key][...]
-            else:  # schema 1: the group was reserved, empty
-                branch[name] = np.full(shape, fill, dtype=object if kind == "str" else kind)
-        return StoreData(path=path, attrs=attrs, run=run, model=list(_strings(f["model"])),
-                         model_name=list(_strings(f["model_name"])), model_coupling=couplings,
-                         alpha=f["alpha"][...], radius=f["radius"][...],
-                         state=list(_strings(f["state"])), data=data, progress=progress,
-                         history=json.loads(g.attrs["history"]), branch=branch,
-                         schema_version=version, shard=shard)
+        snap = load_settled(path)
+    except DamagedStore as exc:
+        from tba.store.recovery import salvage  # the raw bytes: only when HDF5 cannot read them
+
+        found = salvage(path)
+        if found is None:
+            raise
+        where = f" --shard {found.shard.label}" if found.shard is not None else ""
+        run_file = found.run_file or "RUNFILE"
+        raise DamagedStore(f"{exc}; tba run {run_file}{where} --out {path} rebuilds it from the "
+                           f"{len(found.chunks)} of {found.marked} stored chunks whose checksums "
+                           f"verify", recoverable=len(found.chunks)) from None
+    if snap.bad_chunks or snap.bad_branch:
+        raise StoreError(damage_message(snap))
+    return store_data(snap)
+
+
+def store_data(snap):
+    """The `StoreData` of a `Snapshot` (messages decoded; a shard expanded to full arrays)."""
+    run = snap.run
+    data = {}
+    if snap.shard is None:
+        for name, (kind, _, _) in POINT_VARIABLES.items():
+            data[name] = _decode(snap.points[name]) if kind == "str" else snap.points[name]
+    else:  # the shard's points into full arrays; the other shards' points "not computed"
+        where = tuple(shard_index(run, snap.shard)[name] for name in SHARD_INDEX)
+        for name, (kind, fill, _) in POINT_VARIABLES.items():
+            values = _decode(snap.points[name]) if kind == "str" else snap.points[name]
+            arr = np.full(run.shape, fill, dtype=object if kind == "str" else STORED[kind])
+            arr[where] = values
+            data[name] = arr
+        mark_unavailable(data, run)
+    branch = {name: _decode(v) if BRANCH_VARIABLES[name][0] == "str" else v
+              for name, v in snap.branch.items()}
+    progress = dict(snap.progress, done=snap.done.astype("u1"))
+    return StoreData(path=snap.path, attrs=snap.attrs, run=run, model=[m.label for m in run.models],
+                     model_name=[m.name for m in run.models],
+                     model_coupling=[m.coupling for m in run.models],
+                     alpha=np.array(run.alphas), radius=np.array(run.radii),
+                     state=list(run.states), data=data, progress=progress, history=snap.history,
+                     branch=branch, schema_version=snap.version, shard=snap.shard,
+                     invocations=snap.invocations)

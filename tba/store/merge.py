@@ -14,28 +14,30 @@ Decisions:
 * The merged file is a full store, equal in every stored number to the file of a serial run;
   the ``/progress`` history lists every input's invocations (renumbered, with the file and
   shard they come from) and then the merge; ``/progress/invocation`` points into it.
-* It is written complete under a temporary name and then renamed: an interrupted merge
-  leaves no half-merged file. An existing ``--out`` of the same run is merged in as one more
+* Every input is validated and its chunks' checksums verified (`tba.store.hdf5.load`): a
+  damaged file, or a chunk that fails its checksum, is refused with one line naming the file
+  and the chunk, even where no other input overlaps it.
+* It is written complete under a temporary name and then renamed (holding the lock of
+  ``--out``, like ``tba run``): an interrupted merge leaves no half-merged file. An existing ``--out`` of the same run is merged in as one more
   input (so shards that finish late can be added); one of another run, or a shard, is never
   overwritten unless ``force``.
 * Chunks no input holds stay "not computed": the merge says which (per shard, when the inputs
   are shards of one split), and plain ``tba run RUNFILE --out MERGED`` computes just those.
 """
 
-import json
 import platform
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import h5py
 import numpy as np
 
-from tba.scans.runfile import differing_keys, resolve_run
+from tba.scans.runfile import differing_keys
 from tba.scans.points import describe_chunk
-from tba.store.hdf5 import (BRANCH_VARIABLES, MESSAGE_DTYPE, NOT_COMPUTED, POINT_VARIABLES,
-                         SCHEMA, SCHEMA_VERSION, SHARD_INDEX, SHARD_SCHEMA, StoreError, _now,
-                         _shard_of, check_store, create_store, git_commit, mark_unavailable,
-                         package_version)
+from tba.store.errors import StoreError
+from tba.store.hdf5 import (BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, SCHEMA_VERSION,
+                            SHARD_INDEX, check_store, create_store, damage_message, empty_contents,
+                            git_commit, load_settled, now, package_version, shard_index)
+from tba.store.lock import OutputLock
 
 #: numbers compared between files (messages are text)
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
@@ -57,18 +59,12 @@ class MergeSummary:
         return self.chunks_present == self.chunks_total and self.branch_present >= self.branch_total
 
 
-def _read_file(path):
-    try:
-        return h5py.File(path, "r", locking=False)
-    except FileNotFoundError:
-        raise StoreError(f"{path}: no such file") from None
-    except OSError as exc:
-        raise StoreError(f"{path}: not a readable HDF5 file ({str(exc).splitlines()[0]})") from None
-
-
-def _attr(f, name):
-    v = f.attrs.get(name)
-    return v.decode() if isinstance(v, bytes) else v
+def _verified(snap):
+    """``snap`` if its stored chunks and branch points all verify (else one line naming the
+    file and the first chunk that fails)."""
+    if snap.bad_chunks or snap.bad_branch:
+        raise StoreError(f"{damage_message(snap)}; refusing to merge it")
+    return snap
 
 
 class _Merged:
@@ -77,53 +73,39 @@ class _Merged:
     def __init__(self, run):
         self.run = run
         self.chunks = run.chunks()
-        self.data = {name: np.full(run.shape, fill, dtype=MESSAGE_DTYPE if kind == "str" else kind)
-                     for name, (kind, fill, _) in POINT_VARIABLES.items()}
-        self.data["message"][...] = b""
+        self.contents = empty_contents(run)
         shape = (len(run.models), len(run.alphas))
-        self.branch = {name: np.full(shape, fill, dtype=MESSAGE_DTYPE if kind == "str" else kind)
-                       for name, (kind, fill, _) in BRANCH_VARIABLES.items()}
-        self.branch["message"][...] = b""
         self.branch_source = np.full(shape, -1)
-        n = len(self.chunks)
-        self.done = np.zeros(n, dtype=bool)
-        self.source = np.full(n, -1)  # index of the file a chunk was taken from
-        self.invocation = np.zeros(n, dtype="i4")
-        self.seconds = np.full(n, np.nan)
+        self.source = np.full(len(self.chunks), -1)  # index of the file a chunk was taken from
         self.point_chunk = np.full(run.shape, -1, dtype="i4")  # -1: a state the model lacks
         for c in self.chunks:
             self.point_chunk[c.model, c.alpha, c.radius_start:c.radius_stop, c.state] = c.index
-        mark_unavailable(self.data, run)
-        self.history = []
         self.files = []
 
-    def add(self, path, f):
-        """Merge one open file (already checked to be of the same run)."""
-        k = len(self.files)
+    def add(self, path, snap):
+        """Merge one validated file (already checked to be of the same run)."""
+        merged, k = self.contents, len(self.files)
         self.files.append(str(path))
-        shard = _shard_of(f)
-        g = f["progress"]
-        done = g["done"][...].astype(bool)
-        offset = len(self.history)
-        for entry in json.loads(g.attrs["history"]):
+        offset = len(merged.history)
+        for entry in snap.history:
             entry = dict(entry, invocation=offset + int(entry["invocation"]), file=str(path))
-            if shard is not None:
-                entry.setdefault("shard", shard.label)
-            self.history.append(entry)
-        if shard is None:
+            if snap.shard is not None:
+                entry.setdefault("shard", snap.shard.label)
+            merged.history.append(entry)
+        done = snap.done
+        if snap.shard is None:
             where = np.nonzero((self.point_chunk >= 0) & done[self.point_chunk])
-            values = {name: f[name][...][where] for name in POINT_VARIABLES}
+            values = {name: snap.points[name][where] for name in POINT_VARIABLES}
         else:
-            p = f["shard_points"]
-            index = tuple(p[name][...] for name in SHARD_INDEX)
-            chunk_of = self.point_chunk[index]
-            sel = done[chunk_of]
+            index = shard_index(self.run, snap.shard)
+            index = tuple(index[name] for name in SHARD_INDEX)
+            sel = done[self.point_chunk[index]]
             where = tuple(i[sel] for i in index)
-            values = {name: p[name][...][sel] for name in POINT_VARIABLES}
+            values = {name: snap.points[name][sel] for name in POINT_VARIABLES}
         # chunks done here and already merged from an earlier file must agree bit for bit
-        both = self.done[self.point_chunk[where]]
+        both = merged.done[self.point_chunk[where]]
         for name in NUMBERS:
-            old, new = self.data[name][where][both], values[name][both]
+            old, new = merged.points[name][where][both], values[name][both]
             same = (old == new) | (np.isnan(old) & np.isnan(new)) if old.dtype.kind == "f" else old == new
             if not same.all():
                 bad = int(np.flatnonzero(~same)[0])
@@ -133,20 +115,19 @@ class _Merged:
                                  f"({name}) than in {self.files[self.source[c.index]]}; refusing "
                                  f"to merge inconsistent files")
         for name in POINT_VARIABLES:
-            self.data[name][where] = values[name]
-        new_chunks = done & ~self.done
+            merged.points[name][where] = values[name]
+        new_chunks = done & ~merged.done
         self.source[new_chunks] = k
-        self.invocation[new_chunks] = np.where(g["invocation"][...][new_chunks] > 0,
-                                               g["invocation"][...][new_chunks] + offset, 0)
-        self.seconds[new_chunks] = g["seconds"][...][new_chunks]
-        self.done |= done
+        inv = snap.progress["invocation"][new_chunks]
+        merged.invocation[new_chunks] = np.where(inv > 0, inv + offset, 0)
+        merged.seconds[new_chunks] = snap.progress["seconds"][new_chunks]
+        merged.done |= done
         # branch points: (model, alpha) with a status are stored
-        b = f["branch_points"]
-        status = b["status"][...]
+        status = snap.branch["status"]
         have = status != NOT_COMPUTED
         both = have & (self.branch_source >= 0)
         for name in BRANCH_NUMBERS:
-            old, new = self.branch[name][both], b[name][...][both]
+            old, new = merged.branch[name][both], snap.branch[name][both]
             same = (old == new) | (np.isnan(old) & np.isnan(new)) if old.dtype.kind == "f" else old == new
             if not same.all():
                 m, a = (int(x[~same][0]) for x in np.nonzero(both))
@@ -156,35 +137,20 @@ class _Merged:
                                  f"inconsistent files")
         new = have & (self.branch_source < 0)
         for name in BRANCH_VARIABLES:
-            self.branch[name][new] = b[name][...][new]
+            merged.branch[name][new] = snap.branch[name][new]
         self.branch_source[new] = k
 
-    def write(self, f, merge_entry):
-        for name in POINT_VARIABLES:
-            f[name][...] = self.data[name]
-        for name in BRANCH_VARIABLES:
-            f["branch_points"][name][...] = self.branch[name]
-        g = f["progress"]
-        g["invocation"][...] = self.invocation
-        g["seconds"][...] = self.seconds
-        g["done"][...] = self.done.astype("u1")
-        g.attrs["history"] = json.dumps(self.history + [merge_entry])
 
-
-def _check(path, f, first, first_path):
+def _check(path, snap, first, first_path):
     """The file is a store of this schema and tba version, of the same run as ``first``."""
-    schema = _attr(f, "schema")
-    if schema not in (SCHEMA, SHARD_SCHEMA):
-        raise StoreError(f"{path}: not a tba-flow scan file")
-    version = int(f.attrs.get("schema_version", -1))
-    if version != SCHEMA_VERSION:
-        raise StoreError(f"{path}: schema version {version}, this tba merges {SCHEMA_VERSION}")
-    stored = _attr(f, "package_version")
+    if snap.version != SCHEMA_VERSION:
+        raise StoreError(f"{path}: schema version {snap.version}, this tba merges {SCHEMA_VERSION}")
+    stored = snap.attrs.get("package_version")
     if stored != package_version():
         raise StoreError(f"{path}: written by tba {stored}, this is tba {package_version()}; "
                          f"merging would mix versions")
-    if first is not None and _attr(f, "run_id") != _attr(first, "run_id"):
-        keys = differing_keys(json.loads(_attr(first, "run")), json.loads(_attr(f, "run"))) or ["run_id"]
+    if snap.attrs.get("run_id") != first.attrs.get("run_id"):
+        keys = differing_keys(first.run.to_dict(), snap.run.to_dict()) or ["run_id"]
         raise StoreError(f"{path}: from a different run than {first_path} (differs in: "
                          f"{', '.join(keys)}); refusing to merge")
 
@@ -192,8 +158,9 @@ def _check(path, f, first, first_path):
 def merge_stores(paths, out, force=False):
     """Merge the stores ``paths`` (shards, or full stores, of one run) into the full store
     ``out``; returns a `MergeSummary`. `StoreError` (one line, naming the file) for files of
-    different runs or versions, inconsistent overlaps, or an ``out`` that would be
-    overwritten (another run's file, a shard) without ``force``."""
+    different runs or versions, damaged files or chunks that fail their checksums,
+    inconsistent overlaps, an ``out`` another process is writing, or an ``out`` that would
+    be overwritten (another run's file, a shard) without ``force``."""
     out = Path(out).resolve()
     inputs, seen = [], set()
     for p in paths:
@@ -205,51 +172,49 @@ def merge_stores(paths, out, force=False):
         raise StoreError("no files to merge")
     if out.is_dir():
         raise StoreError(f"{out}: is a directory")
-    started = _now()
-    files = [_read_file(p) for p in inputs]
-    try:
-        for p, f in zip(inputs, files):
-            _check(p, f, files[0], inputs[0])
-        run_dict = json.loads(_attr(files[0], "run"))
-        run = resolve_run(run_dict, name=run_dict.get("name", "run")).with_output(out)
-        for p, f in zip(inputs, files):
-            table = np.stack([f["progress"][n][...] for n in ("model_index", "alpha_index",
-                              "state_index", "radius_start", "radius_stop")], axis=1)
-            expected = np.array([[c.model, c.alpha, c.state, c.radius_start, c.radius_stop]
-                                 for c in run.chunks()], dtype=table.dtype).reshape(table.shape)
-            if table.shape != expected.shape or not np.array_equal(table, expected):
-                raise StoreError(f"{p}: its chunk table does not match its run; refusing to merge")
+    started = now()
+    first = _verified(load_settled(inputs[0]))
+    _check(inputs[0], first, first, inputs[0])
+    run = first.run.with_output(out)
+    with OutputLock(out, command="tba merge"):
+        merged = _Merged(run)
+        sources = []
         if out.exists() and not force and out not in seen:
             try:  # a full store of the same run is merged in; anything else is left alone
-                check_store(out, run)
+                existing = check_store(out, run)
             except StoreError as exc:
                 raise StoreError(f"{str(exc).split('; ')[0]}; refusing to overwrite it with the "
                                  f"merge (use --force to replace it, or another --out)") from None
-            files.insert(0, _read_file(out))
-            inputs.insert(0, out)
-        merged = _Merged(run)
-        for p, f in zip(inputs, files):
-            merged.add(p, f)
-        run_file = _attr(files[0], "run_file") or None
-        shard_counts = sorted({s.count for s in map(_shard_of, files) if s is not None})
-    finally:
-        for f in files:
-            f.close()
-    entry = {"invocation": len(merged.history) + 1, "started": started, "finished": _now(),
-             "package_version": package_version(), "git_commit": git_commit(),
-             "host": platform.node(), "merge": [str(p) for p in inputs],
-             "chunks_merged": int(merged.done.sum()),
-             "branch_points_merged": int((merged.branch_source >= 0).sum())}
-    create_store(out, run, run_file, fill=lambda f: merged.write(f, entry))
+            merged.add(out, _verified(existing))
+            sources.append(out)
+        shard_counts = set()
+        for k, p in enumerate(inputs):  # one at a time: the merged arrays, and one input
+            snap = first if k == 0 else _verified(load_settled(p))
+            _check(p, snap, first, inputs[0])
+            merged.add(p, snap)
+            sources.append(p)
+            if snap.shard is not None:
+                shard_counts.add(snap.shard.count)
+            snap.points = None
+        entry = {"invocation": len(merged.contents.history) + 1, "started": started,
+                 "finished": now(), "package_version": package_version(),
+                 "git_commit": git_commit(), "host": platform.node(),
+                 "merge": [str(p) for p in sources],
+                 "chunks_merged": int(merged.contents.done.sum()),
+                 "branch_points_merged": int((merged.branch_source >= 0).sum())}
+        merged.contents.history.append(entry)
+        create_store(out, run, first.attrs.get("run_file") or None, contents=merged.contents)
+    inputs, shard_counts = sources, sorted(shard_counts)
     return _summary(run, out, inputs, merged, shard_counts)
 
 
 def _summary(run, out, inputs, merged, shard_counts):
     chunks = merged.chunks
+    done = merged.contents.done
     n_pairs = len(run.models) * len(run.alphas) if run.branch_points else 0
-    s = MergeSummary(str(out), [str(p) for p in inputs], len(chunks), int(merged.done.sum()), n_pairs,
+    s = MergeSummary(str(out), [str(p) for p in inputs], len(chunks), int(done.sum()), n_pairs,
                      int((merged.branch_source >= 0).sum()) if n_pairs else 0)
-    missing = np.flatnonzero(~merged.done)
+    missing = np.flatnonzero(~done)
     if missing.size:
         if len(shard_counts) == 1:  # shards of one split: say which shard lacks what
             n = shard_counts[0]
