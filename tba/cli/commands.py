@@ -140,7 +140,8 @@ def cmd_run(args, out):
         out_path = full.with_name(f"{full.stem}.part-{shard.index}-of-{shard.count}{full.suffix}")
     else:
         out_path = Path(run.output)
-    writable_file("argument --out" if args.out else f"{args.runfile}: output", out_path)
+    if args.force or not out_path.is_file():  # an existing store: it says what it holds
+        writable_file("argument --out" if args.out else f"{args.runfile}: output", out_path)
     run = run.with_output(out_path)
     backend = _backend(args)
     if args.dry_run:
