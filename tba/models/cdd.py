@@ -127,6 +127,25 @@ class PoleFactor:
         k = sigma_kernel(self.sigma, t)
         return self.power * (2 * k.real if self.is_pair else k)
 
+    def kernel_transform(self, k):
+        """int e^{ikt} kernel(t) dt = power * (-2 pi cosh(k (pi/2 - u)) / cosh(pi k / 2)),
+        sin u = sigma (the transform of the block f_(u/pi), continued to complex u; twice its
+        real part for a pair); real and even in k."""
+        k = np.asarray(k, dtype=float)
+        u = cmath.asin(self.sigma)
+        a = np.pi * np.abs(k)
+        z = (np.pi / 2 - u) * np.abs(k)  # |Re z| < a / 2: the ratio decays like e^{-u_r |k|}
+        with np.errstate(over="ignore"):
+            ratio = (np.exp(z - a / 2) + np.exp(-z - a / 2)) / (1 + np.exp(-a))
+        out = -2 * np.pi * ratio
+        out = 2 * out.real if self.is_pair else out.real
+        return self.power * out
+
+    @property
+    def oscillation(self):
+        """|Im u|: the transform oscillates like cos(k Im u) (resonances at rapidity Im u)."""
+        return abs(cmath.asin(self.sigma).imag)
+
     def value(self, t):
         """The factor at rapidity t (complex; t may be complex)."""
         f = sigma_factor(self.sigma, t)
@@ -272,6 +291,20 @@ class CDD:
         phi = sum(f.kernel(t) for f in self.factors)
         n = model.n_species
         return np.broadcast_to(phi, (n, n) + t.shape).copy()
+
+    def kernel_transform(self, model, k):
+        """int e^{ikt} of `kernel`, shape (n, n) + k.shape; None without factors."""
+        if not self.factors:
+            return None
+        k = np.asarray(k, dtype=float)
+        phit = sum(f.kernel_transform(k) for f in self.factors)
+        n = model.n_species
+        return np.broadcast_to(phit, (n, n) + k.shape).copy()
+
+    @property
+    def oscillation(self):
+        """The largest `PoleFactor.oscillation` (0 without factors)."""
+        return max((f.oscillation for f in self.factors), default=0.0)
 
     def charges(self, model, spin):
         """q^a_s for every species of ``model`` (`DiagonalModel.charges`)."""

@@ -8,7 +8,8 @@ Both give the same Dataset, laid out like the HDF5 store (`tba.store.hdf5`):
   ``flow_residual``, ``flow_status``; per model: ``model_name``, ``model_coupling``;
 * the ground state's branch points per (model, alpha), which the file keeps in its group
   ``/branch_points``: ``branch_radius``, ``branch_radius_error``, ``branch_energy``,
-  ``branch_energy_error``, ``branch_effective_radius``, ``branch_status``, ``branch_message``;
+  ``branch_energy_error``, ``branch_effective_radius``, ``branch_status``, ``branch_message``
+  (the store's checksums and bookkeeping are verified when the file is read and left out);
 * the file's attributes (units, conventions, the resolved run as JSON, status legends) on the
   Dataset and on each variable (``status`` and ``flow_status`` carry CF ``flag_values`` and
   ``flag_meanings``).

@@ -217,7 +217,8 @@ def _polish(label, fam, radius, disc, eps):
             nt = newton(new, e0, 1e-13)
             if not nt.ok:
                 raise RuntimeError(f"{label} point did not converge on the refined grid: {nt.message}")
-            e1, L1, res, energy, fold = nt.e, nt.L, nt.residual, new.energy(nt.L), nt.fold_indicator
+            e1, L1, res, energy = nt.e, nt.L, nt.residual, new.energy(nt.L)
+            fold = nt.jacobian().branch_indicator()
         energies.append(energy)
         disc, eps = new, e1
         out = (energy, fold, res, grid, e1)

@@ -101,7 +101,7 @@ def tangent(fam, disc, jac, L, previous=None, direction=1.0):
 def point(fam, eps, p, disc, jac, L, previous_tangent=None, direction=1.0):
     tg = tangent(fam, disc, jac, L, previous_tangent, direction)
     return Point(eps=eps, p=p, tangent=tg, energy=disc.energy(L),
-                 fold_indicator=jac.fold_indicator(), disc=disc, jac=jac, L=L)
+                 fold_indicator=jac.branch_indicator(), disc=disc, jac=jac, L=L)
 
 
 def correct(fam, eps, p, pred_eps, pred_p, tg, A=None, maxiter=12, accuracy=1e-13):

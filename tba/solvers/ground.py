@@ -68,7 +68,7 @@ class Discretization:
 
     def __init__(self, model, deformation, radius, grid):
         self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
-        ops = self.ops = operators(model, grid)
+        ops = self.ops = operators(model, grid, deformation)
         self.shape = (model.n_species, grid.N)
         self.nu = radius * ops.drive
         self.U, self.V, self.c, self.U_flat, self.V_flat = ops.terms(deformation)
@@ -200,16 +200,26 @@ class DenseJacobian:
         return x.reshape(d.shape)
 
     def fold_indicator(self):
-        """det(1 + C (V L')^T J0^{-1} U) = det J / det J0: 1 undeformed, 0 at a fold."""
+        """det(1 + C (V L')^T J0^{-1} U) = det J / det J0: 1 undeformed, 0 at a fold of the CDD
+        terms."""
         if self.disc.c.size == 0:
             return 1.0
         return float(np.linalg.det(self.cap))
+
+    def branch_indicator(self):
+        """The fold indicator times the sign of det J0: positive on the branch connected to the
+        undeformed large-R theory, for folds of the CDD terms (det cap changes sign) and of the
+        kernel's own equations (det J0 does) alike. Costs a factorisation of J0."""
+        sign, _ = np.linalg.slogdet(jacobian0_matrix(self))
+        return sign * self.fold_indicator()
 
     def bordered_solve(self, f, p, q, a1, a2):
         """Solve [[J, f], [p^T, q]] [x; y] = [a1; a2] (f, p, a1 of the equations' shape).
 
         J is handled as J0 + U^T W with the Woodbury formula, so the bordered matrix may be
-        regular while J itself is singular (at a fold): only J0 is ever inverted."""
+        regular while J itself is singular (at a fold): only J0 is inverted. Where J0 is
+        singular too (a fold of the kernel's own equations) the bordered matrix is solved
+        as it stands."""
         return _bordered(self, f, p, q, a1, a2)
 
     def capacitance_pair(self):
@@ -219,22 +229,72 @@ class DenseJacobian:
 def _bordered(jac, f, p, q, a1, a2):
     f, p, a1 = f.reshape(-1), p.reshape(-1), a1.reshape(-1)
     r = jac.disc.c.size
-    ya, zf = jac.solve0(a1), jac.solve0(f)
-    if r:
-        Z, W = jac.capacitance_pair()
-        M = np.zeros((r + 1, r + 1))
-        M[:r, :r] = np.eye(r) + W @ Z
-        M[:r, r] = W @ zf
-        M[r, :r] = -(p @ Z)
-        M[r, r] = q - p @ zf
-        rhs = np.concatenate([W @ ya, [a2 - p @ ya]])
-        sol = np.linalg.solve(M, rhs)
-        w, y = sol[:r], sol[r]
-        x = ya - Z @ w - zf * y
-    else:
-        y = (a2 - p @ ya) / (q - p @ zf)
-        x = ya - zf * y
+    with np.errstate(all="ignore"):
+        ya, zf = jac.solve0(a1), jac.solve0(f)
+        if r:
+            Z, W = jac.capacitance_pair()
+            M = np.zeros((r + 1, r + 1))
+            M[:r, :r] = np.eye(r) + W @ Z
+            M[:r, r] = W @ zf
+            M[r, :r] = -(p @ Z)
+            M[r, r] = q - p @ zf
+            rhs = np.concatenate([W @ ya, [a2 - p @ ya]])
+            try:
+                sol = np.linalg.solve(M, rhs)
+                w, y = sol[:r], float(sol[r])
+                x = ya - Z @ w - zf * y
+            except np.linalg.LinAlgError:
+                x, y = np.full_like(a1, np.nan), np.nan
+        else:
+            y = float((a2 - p @ ya) / (q - p @ zf))
+            x = ya - zf * y
+    if isinstance(jac, DenseJacobian) and not _bordered_ok(jac, f, p, q, a1, a2, x, y):
+        # J0 itself is (nearly) singular: a fold of the kernel's own equations (a turning
+        # point of the model or of a pole factor), not of the rank-one CDD terms
+        x, y = _bordered_dense(jac, f, p, q, a1, a2)
     return x.reshape(jac.disc.shape), float(y)
+
+
+def jacobian0_matrix(jac):
+    """J0 = 1 + K diag(L') of a dense Jacobian, as a matrix."""
+    J0 = np.eye(jac.size)
+    if not jac.trivial:
+        J0 += jac.K * jac.dLf[None, :]
+    return J0
+
+
+def _full_jacobian(jac):
+    d = jac.disc
+    J = np.eye(jac.size)
+    if not jac.trivial:
+        J += jac.K * jac.dLf[None, :]
+    if d.c.size:
+        J += d.U_flat.T @ jac.CVd
+    return J
+
+
+def _bordered_ok(jac, f, p, q, a1, a2, x, y):
+    """The solution through J0 satisfies the bordered system to near rounding."""
+    if not (np.all(np.isfinite(x)) and math.isfinite(y)):
+        return False
+    d = jac.disc
+    Jx = x + (jac.K @ (jac.dLf * x) if not jac.trivial else 0.0)
+    if d.c.size:
+        Jx = Jx + d.U_flat.T @ (jac.CVd @ x)
+    res = np.max(np.abs(Jx + f * y - a1))
+    scale = np.max(np.abs(a1)) + np.max(np.abs(f)) * abs(y) + np.max(np.abs(x)) + 1e-300
+    return res <= 1e-10 * scale and abs(p @ x + q * y - a2) <= 1e-10 * (abs(a2) + np.max(np.abs(p)) * np.max(np.abs(x)) + abs(q * y) + 1e-300)
+
+
+def _bordered_dense(jac, f, p, q, a1, a2):
+    M = jac.size
+    B = np.zeros((M + 1, M + 1))
+    B[:M, :M] = _full_jacobian(jac)
+    B[:M, M] = f
+    B[M, :M] = p
+    B[M, M] = q
+    sol = np.linalg.solve(B, np.concatenate([a1, [a2]]))
+    return sol[:M], float(sol[M])
 
 
 class KrylovJacobian:
@@ -306,6 +366,10 @@ class KrylovJacobian:
         if self.disc.c.size == 0:
             return 1.0
         return float(np.linalg.det(self._capacitance()[1]))
+
+    def branch_indicator(self):
+        """The fold indicator (no determinant of J0 for systems this large)."""
+        return self.fold_indicator()
 
     def bordered_solve(self, f, p, q, a1, a2):
         return _bordered(self, f, p, q, a1, a2)
@@ -542,7 +606,7 @@ def _solve_on(model, deformation, radius, grid, tol, seed, coarse):
     """Newton on one grid from the best start (`_start`): (State, outcome) with State None if
     Newton failed. Dense systems take one compiled call for start, iteration, summary and the
     level's history (`kernels.dense.solve_level`): the path of every point of a scan."""
-    ops = operators(model, grid)
+    ops = operators(model, grid, deformation)
     if not ops.dense:
         disc = Discretization(model, deformation, radius, grid)
         e0, A = _start(disc, seed, coarse)
@@ -613,34 +677,60 @@ class _Verdict:
 
 def _reach(model, deformation, radius, grid, tol, seed):
     """Follow the curve of solutions to (radius, deformation) on ``grid`` when Newton at the
-    point failed or left the physical branch: in R from ``seed`` (a solved point of the same
-    deformation at another radius), else in the coupling scale from the undeformed solution.
-    Returns (_Newton, None) or (None, _Verdict) or (None, message)."""
+    point failed or left the physical branch. In R from ``seed`` (a solved point of the same
+    deformation at another radius); else in the scale of the spin couplings at fixed R, from
+    the model times the deformation's pole factors; else (no spins, or that base has no
+    solution at R) in R from a large radius. Returns (_Newton, None) or (None, _Verdict) or
+    (None, message)."""
+    tried = None
     if seed is not None and seed.deformation == deformation and seed.radius != radius:
-        out = _follow_radius(model, deformation, radius, grid, tol, seed)
+        out = _follow_radius(model, deformation, radius, grid, tol, seed.radius, seed)
         if out is not None and (out[0] is not None or isinstance(out[1], _Verdict)):
             return out
-    return _follow_scale(model, deformation, radius, grid, tol, seed)
+        tried = out
+    if deformation.couplings:
+        out = _follow_scale(model, deformation, radius, grid, tol, seed)
+        if out[0] is not None or isinstance(out[1], _Verdict):
+            return out
+        tried = out
+    big = max(2.0 * radius, LARGE_RADIUS / _min_mass(model))
+    out = _follow_radius(model, deformation, radius, grid, tol, big, None)
+    if out is not None:
+        return out
+    return tried if tried is not None else (None, "no solution to start a continuation from")
 
 
-def _follow_radius(model, deformation, radius, grid, tol, seed):
-    disc0 = Discretization(model, deformation, seed.radius, grid)
-    e0, A = _start(disc0, seed, None)
+#: where continuations in R start when nothing closer is known: the TBA is a small correction
+#: to the free driving term there, and Newton from that term converges
+LARGE_RADIUS = 4.0
+
+
+def _follow_radius(model, deformation, radius, grid, tol, start_radius, seed):
+    disc0 = Discretization(model, deformation, start_radius, grid)
+    if seed is not None:
+        e0, A = _start(disc0, seed, None)
+    else:
+        e0, A = disc0.nu.copy(), None
     nt = newton(disc0, e0, 1e-14, A=A)
-    if not (nt.ok and nt.fold_indicator > 0):
+    if not (nt.ok and _physical(nt.jacobian())):
         return None
     fam = arclength.Family(model, deformation, None, grid, "radius")
-    pt = arclength.point(fam, nt.e, seed.radius, disc0, nt.jacobian(), nt.L,
-                         direction=radius - seed.radius)
+    pt = arclength.point(fam, nt.e, start_radius, disc0, nt.jacobian(), nt.L,
+                         direction=radius - start_radius)
     return _outcome(fam, pt, radius, tol, "radius")
 
 
+def _physical(jac):
+    return jac.branch_indicator() > 0
+
+
 def _follow_scale(model, deformation, radius, grid, tol, seed):
-    disc0 = Discretization(model, NO_DEFORMATION, radius, grid)
+    base = deformation.pole_part()
+    disc0 = Discretization(model, base, radius, grid)
     nt = newton(disc0, disc0.initial_guess(seed), tol, A=seed.A if seed is not None and
                 seed.grid == grid else None)
     if not nt.ok:
-        return None, f"undeformed equations: {nt.message}"
+        return None, f"the equations without the spin couplings: {nt.message}"
     fam = arclength.Family(model, deformation, radius, grid, "scale")
     pt = arclength.point(fam, nt.e, 0.0, disc0, nt.jacobian(), nt.L, direction=1.0)
     return _outcome(fam, pt, 1.0, tol, "scale")
@@ -651,7 +741,7 @@ def _outcome(fam, pt, target, tol, parameter):
     if out.kind == "target" and out.point is not None:
         p = out.point
         nt = newton(p.disc, p.eps, tol, A=getattr(p.jac, "A", None))
-        if nt.ok and (nt.fold_indicator > 0 or p.disc.deformation.is_zero):
+        if nt.ok and _physical(nt.jacobian()):
             return nt, None
         return None, "the continued solution left the physical branch"
     if out.kind == "fold":
@@ -663,7 +753,7 @@ def _outcome(fam, pt, target, tol, parameter):
         land = arclength.land_near_fold(fam, out.point, target, out.curvature)
         if land is not None:
             nt = newton(land.disc, land.eps, tol, A=getattr(land.jac, "A", None))
-            if nt.ok and nt.fold_indicator > 0:
+            if nt.ok and _physical(nt.jacobian()):
                 return nt, None
         return None, "could not land on the physical branch next to the fold"
     return None, out.message or "continuation failed"
@@ -685,9 +775,13 @@ def _validate(radius, tol):
     return radius, tol
 
 
-def grid_pole_distance(model):
-    """The kernel pole distance the grid rule must respect: none for band-limited kernels."""
-    return math.inf if uses_band_limited_kernels(model) else model.pole_distance
+def grid_pole_distance(model, deformation=None):
+    """The kernel pole distance the grid rule must respect: none for band-limited kernels,
+    else the nearest pole of the model's kernels and of the deformation's pole factors."""
+    if uses_band_limited_kernels(model):
+        return math.inf
+    factors = deformation.singularity_distance if deformation is not None else math.inf
+    return min(model.pole_distance, factors)
 
 
 @functools.lru_cache(maxsize=8192)
@@ -700,8 +794,15 @@ def _grid(model, deformation, r_eff, tol, level, cutoff_extra):
     octave (a slightly wider cutoff, never a coarser grid), so that neighbouring radii share
     grids, operators and inverses of J0."""
     r_q = 2.0 ** (math.floor(64 * math.log2(r_eff)) / 64)
-    return _cached_grid(grid_pole_distance(model), float(np.min(model.masses)), r_q, tol, level,
-                        cutoff_extra, max(deformation.couplings, default=1))
+    return _cached_grid(grid_pole_distance(model, deformation), _min_mass(model), r_q, tol,
+                        level, cutoff_extra, max(deformation.couplings, default=1))
+
+
+def _min_mass(model):
+    m = model._kernel_cache.get("min_mass")
+    if m is None:
+        m = model._kernel_cache["min_mass"] = float(np.min(model.masses))
+    return m
 
 
 def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None):
@@ -759,7 +860,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
             fold = 1.0
         else:
             fold = state.fold_indicator if state is not None else np.nan
-        if not (state is not None and fold > 0) and not deformation.is_zero:
+        if not (state is not None and fold > 0):
             state = None
             nt, why = _reach(model, deformation, radius, grid, tol, seed)
             if nt is None:

@@ -44,12 +44,14 @@ def uses_band_limited_kernels(model):
     return bool(getattr(model, "has_kernel_transform", False))
 
 
-def band_limited_samples(transform, h, N):
+def band_limited_samples(transform, h, N, oscillation=0.0):
     """W(kh) for k = 0 .. N-1 of the even kernel(s) whose transform is ``transform(k)``
-    (returning shape S + k.shape): shape S + (N,)."""
+    (returning shape S + k.shape): shape S + (N,). ``oscillation``: the transform's own
+    oscillation frequency in k (a kernel centred at +-theta has cos(k theta) in it)."""
     omega_max = math.pi / h
     tau = h * np.arange(N)
-    panels = max(1, math.ceil(omega_max * tau[-1] / PANEL_PHASE)) if N > 1 else 1
+    span = (tau[-1] if N > 1 else 0.0) + oscillation
+    panels = max(1, math.ceil(omega_max * span / PANEL_PHASE))
     x, w = np.polynomial.legendre.leggauss(PANEL_NODES)
     edges = np.linspace(0.0, omega_max, panels + 1)
     half = 0.5 * (edges[1:] - edges[:-1])
@@ -59,15 +61,26 @@ def band_limited_samples(transform, h, N):
     return (values * weights) @ np.cos(np.outer(nodes, tau)) / math.pi
 
 
-def kernel_samples(model, grid):
+def kernel_samples(model, grid, deformation=None):
     """Convolution weights w_ab(kh) for k = -(N-1) .. N-1, shape (n, n, 2N - 1): the layout of
-    `kernels.convolution` (``kern[a, b, N - 1 + k]``)."""
+    `kernels.convolution` (``kern[a, b, N - 1 + k]``). With ``deformation``, the kernel of its
+    pole and resonance factors (`tba.models.cdd.CDD.kernel`) is included, band-limited from its
+    transform like the model's."""
     N, h = grid.N, grid.h
+    factors = deformation is not None and deformation.has_poles
     if uses_band_limited_kernels(model):
-        half = band_limited_samples(model.kernel_transform, h, N)  # k = 0 .. N-1
+        if factors:
+            transform = lambda k: model.kernel_transform(k) + deformation.kernel_transform(model, k)  # noqa: E731
+        else:
+            transform = model.kernel_transform
+        half = band_limited_samples(transform, h, N,
+                                    deformation.oscillation if factors else 0.0)  # k = 0 .. N-1
         full = np.concatenate([half[..., :0:-1], half], axis=-1)
     else:
-        full = model.kernel(h * np.arange(-(N - 1), N))
+        offsets = h * np.arange(-(N - 1), N)
+        full = model.kernel(offsets)
+        if factors:
+            full = full + deformation.kernel(model, offsets)
     return np.ascontiguousarray(full * (h / (2 * np.pi)))
 
 
@@ -75,9 +88,9 @@ class Operators:
     """Kernel weights, the dense matrix or FFT convolution, and the grid-dependent arrays of
     one model on one grid (cached per model, see `operators`)."""
 
-    def __init__(self, model, grid):
+    def __init__(self, model, grid, deformation=None):
         n, N = model.n_species, grid.N
-        kern = kernel_samples(model, grid)
+        kern = kernel_samples(model, grid, deformation)
         self.n, self.N = n, N
         self.model, self.grid = model, grid
         self.trivial = not np.any(kern)
@@ -148,13 +161,15 @@ class Operators:
         return self._spectral(f)
 
 
-def operators(model, grid):
-    """The cached `Operators` of ``model`` on ``grid``."""
+def operators(model, grid, deformation=None):
+    """The cached `Operators` of ``model`` on ``grid`` (with the pole factors of
+    ``deformation`` in the kernel, if it has any)."""
     cache = model._kernel_cache
-    key = (grid.h, grid.N)
+    factors = deformation.kernel_key if deformation is not None else None
+    key = (grid.h, grid.N, factors)
     ops = cache.get(key)
     if ops is None:
         if len(cache) > 64:
             cache.clear()
-        ops = cache[key] = Operators(model, grid)
+        ops = cache[key] = Operators(model, grid, deformation if factors is not None else None)
     return ops
