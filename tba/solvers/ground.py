@@ -354,7 +354,9 @@ class State:
         out["dE_dR"] = float(np.sum(disc.wE * self.dL * de))
         if second:
             # d/dR of J e' + F_R = 0: J e'' = -(K + separable)(L'' e'^2), F_R has no eps in it
-            d2L = -self.dL * (1.0 + self.dL) if disc.sign > 0 else -self.dL * (self.dL - 1.0)
+            # d2L/deps2: e^eps / (1 + e^eps)^2 = -L'(1 + L') (fermions), e^eps / (e^eps - 1)^2 =
+            # L'(L' - 1) (bosons)
+            d2L = -self.dL * (1.0 + self.dL) if disc.sign > 0 else self.dL * (self.dL - 1.0)
             X = d2L * de * de
             d2e = jac.solve(-(disc.ops.convolve(X) + disc.separable(X)[1]), rtol=1e-13)
             out["d2E_dR2"] = float(np.sum(disc.wE * (self.dL * d2e + X)))
