@@ -303,8 +303,9 @@ def build_parser():
     solve.add_argument("--state", metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "
                        "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0): "
-                       "single-species models without bound states, and lee-yang's "
-                       "one-particle state 0")
+                       "single-species models without bound states, lee-yang's "
+                       "one-particle state 0, and the free massless models (the sign is the "
+                       "chirality; bosons take repeated integers, e.g. 1,1)")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
     solve.set_defaults(func=cmd_solve)
     run = sub.add_parser("run", help="run a scan from a TOML run file (resumable)",
