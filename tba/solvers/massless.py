@@ -494,10 +494,9 @@ def solve_massless_level(model, radius, state, deformation=None, *, tol=1e-12, s
 
     radius, tol = _validate(radius, tol)
     deformation = NO_DEFORMATION if deformation is None else deformation
-    level = parse_level(state) if not isinstance(state, tuple) or not state else tuple(state)
+    level = parse_level(state)
     if level == "ground":
         raise ValueError("state: the ground state is solved by tba.solve_ground_state")
-    level = tuple(sorted(Fraction(n) for n in level))
     why = refusal(model, level, deformation)
     if why is not None:
         raise ValueError(f"state: {why}")
