@@ -191,3 +191,24 @@ def test_multiplicity_counts_identical_species():
     res = tba.solve_ground_state(three, 0.8)
     exact = -3 * sum((-1) ** (k + 1) * k1(0.8 * k) / k for k in range(1, 200)) / math.pi
     assert abs(res.energy - exact) <= res.error <= 1e-12 * abs(exact)
+
+
+def test_mixed_massive_and_massless_species():
+    # a free massive Majorana fermion next to a massless one, no scattering but TTbar between all
+    # of them (the massive-massless phase -(m M / 2) e^{-t}, docs/physics.md section 9.2):
+    # undeformed E_0(R) = E_NS(R) - pi / (12 R) (the Bessel series, Mussardo 2010, and the CFT);
+    # deformed, P = 0: E = E_0(R + alpha E), solved here with scipy's brentq
+    from scipy.optimize import brentq
+    from scipy.special import k1
+
+    mixed = tba.user_model(masses=[1.0, 1.0, 1.0], blocks=[[{}] * 3] * 3,
+                           chirality=["massive", "right", "left"])
+
+    def E0(R):
+        return -sum((-1) ** (k + 1) * k1(k * R) / k for k in range(1, 400)) / math.pi - math.pi / (12 * R)
+
+    for R, alpha in ((2.0, 0.0), (2.0, 0.1), (1.2, -0.2)):
+        res = tba.solve_ground_state(mixed, R, tba.ttbar(alpha))
+        exact = brentq(lambda E: E - E0(R + alpha * E), -5.0, 0.0, xtol=1e-16, rtol=1e-15) if alpha \
+            else E0(R)
+        assert abs(res.energy - exact) <= res.error <= 1e-12 * abs(exact), (R, alpha)

@@ -145,6 +145,7 @@ class DiagonalModel:
     #: kappa in |phi_ab(t)| <~ e^{-kappa |t|} for models with massless species and a kernel
     #: (None without a kernel): how far a massless plateau acts through the kernels
     kernel_decay: Optional[float] = field(default=None, init=False, repr=False)
+    _massless: bool = field(default=False, init=False, repr=False, compare=False)
     _kernel_cache: dict = field(default_factory=dict, repr=False, compare=False)
 
     def __post_init__(self):
@@ -194,6 +195,7 @@ class DiagonalModel:
             if kind not in CHIRALITIES:
                 raise ValueError(f"chirality: each entry must be one of {CHIRALITIES}, got {kind!r}")
         object.__setattr__(self, "chirality", kinds)
+        object.__setattr__(self, "_massless", any(k != "massive" for k in kinds))
         if self.multiplicity is None:
             mult = (1,) * n
         else:
@@ -320,7 +322,7 @@ class DiagonalModel:
     @property
     def is_massless(self):
         """True when some species is massless (right or left mover)."""
-        return any(k != "massive" for k in self.chirality)
+        return self._massless
 
     @property
     def massive_mass(self):

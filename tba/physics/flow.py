@@ -238,6 +238,9 @@ class ExcitedCurve:
         if res is None:
             res = solve_level(self.model, R, self.state, tol=self.tol, start=self._last)
             res.raise_for_status()
+            if getattr(res._state, "dE_dR", None) is None:
+                raise ValueError(f"state: the solver of {self.model.name}'s level "
+                                 f"{','.join(map(str, self.state))} gives no exact dE/dR")
             self._cache[R] = self._last = res
         return res.energy, res._state.dE_dR, res.error
 

@@ -20,10 +20,10 @@ species: a left mover's L stays finite to the right of the right movers' kink t_
 eps there through kernel tails ~ e^{-kappa |t - t'|}, so the grid reaches u / kappa + 1 beyond
 the outermost kink on each side (missing that costs 1e-10 relative in the flow of
 `tba.models.massless` at M R = 1e-3, unseen by the tail estimate). The shape of the kink does
-not depend on R, so no large-radius spacing applies. Grids stay symmetric about t = 0 and cover every species'
-window: for a model with both chiralities and parity that is their union; a model of one
-chirality pays up to twice the points (decision: one grid for all species keeps the kernels
-Toeplitz and cached per (h, N)).
+not depend on R, so no large-radius spacing applies. Grids stay symmetric about t = 0 and cover
+every species' window: for a model with both chiralities and parity that is their union; a
+model of one chirality pays up to twice the points (decision: one grid for all species keeps
+the kernels Toeplitz and cached per (h, N)).
 
 X = log(1/tol) + margin grows with the refinement level. Spacings are taken from a fixed
 geometric ladder h = 2^{-j/8} so that kernels can be cached and reused across radii.

@@ -71,8 +71,8 @@ def kernel_samples(model, grid):
     `kernels.convolution` (``kern[a, b, N - 1 + k]``)."""
     N, h = grid.N, grid.h
     if model.blocks is not None and not any(cell for row in model.blocks for cell in row):
-        return np.zeros((model.n_species, model.n_species, 2 * N - 1))  # free particles
-    if uses_band_limited_kernels(model):
+        full = np.zeros((model.n_species, model.n_species, 2 * N - 1))  # free particles
+    elif uses_band_limited_kernels(model):
         half = band_limited_samples(model.kernel_transform, h, N)  # k = 0 .. N-1
         full = np.concatenate([half[..., :0:-1], half], axis=-1)
     else:
