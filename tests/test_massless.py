@@ -132,7 +132,7 @@ def test_scale_independence():
         assert abs(energies[1].energy - energies[2].energy) <= energies[1].error + energies[2].error
 
 
-@pytest.mark.parametrize("model, c", [THEORIES[0], THEORIES[2]])
+@pytest.mark.parametrize("model, c", THEORIES)
 def test_branch_radius(model, c):
     # R_c = sqrt(2 pi c alpha / 3), where the ground state's square root vanishes (docs/physics.md
     # section 4), from the undeformed curve; below it no real solution
@@ -144,11 +144,12 @@ def test_branch_radius(model, c):
     assert below.status is tba.Status.NO_REAL_SOLUTION, below.message
 
 
-def test_fold_second_branch_and_complex_pair():
-    # c = 24: the fold of the TBA (pseudo-arclength) at R_c = sqrt(16 pi alpha); the complex pair
+@pytest.mark.parametrize("model, c", THEORIES)
+def test_fold_second_branch_and_complex_pair(model, c):
+    # the fold of the TBA (pseudo-arclength) at R_c = sqrt(2 pi c alpha / 3); the complex pair
     # below it is the complex root of the closed form, the second branch above it the other real
-    # root (docs/physics.md section 7; the Nambu-Goto spectrum, Arvis 1983)
-    model, c, alpha = STRING, 24.0, 0.1
+    # root (docs/physics.md section 7; for c = 24 the Nambu-Goto spectrum, Arvis 1983)
+    alpha = 0.1
     R_c = math.sqrt(2 * math.pi * c * alpha / 3)
     fold = tba.locate_fold(model, tba.ttbar(alpha), start=1.5 * R_c)
     assert abs(fold.value - R_c) <= fold.value_error <= 1e-12 * R_c
