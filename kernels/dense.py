@@ -197,8 +197,10 @@ def jacobian0(K, dL, trivial):
 
 @numba.njit(cache=True, nogil=True)
 def inverse_j0(K, dL, trivial):
-    """J0^{-1} = (1 + K diag(L'))^{-1}, C-contiguous."""
+    """J0^{-1} = (1 + K diag(L'))^{-1}, C-contiguous (the identity itself without a kernel)."""
     J0 = jacobian0(K, dL, trivial)
+    if trivial:
+        return J0
     if J0.shape[0] <= SMALL:
         if _gauss_jordan(J0):
             return J0
@@ -541,8 +543,11 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
 def summary(K, L, e, wE, wP, V, n, N, trivial):
     """What a solved grid level keeps: (dressing -K L, scalars V L, E, P, tail estimate).
 
-    The tail estimate is sum over species and both ends of |wE L| / |eps'| at the cutoff:
-    int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda) / eps'(Lambda)."""
+    The tail estimate is sum over species and both ends of |wE L| / r at the cutoff, with r the
+    decay rate of the integrand there: int_Lambda^inf cosh t e^{-eps} dt ~ cosh(Lambda) L(Lambda)
+    / eps'(Lambda) where eps grows; on the plateau side of a massless species (eps and L
+    constant, weight e^{-|t|}) the weight's own rate |d log wE / dt| (per grid step: the larger
+    of the two differences; for massive species the eps difference always is)."""
     M = e.size
     dressing = np.zeros(M)
     if not trivial:
@@ -561,7 +566,7 @@ def summary(K, L, e, wE, wP, V, n, N, trivial):
     tail = 0.0
     for a in range(n):
         for i, j in ((a * N, a * N + 1), (a * N + N - 1, a * N + N - 2)):
-            slope = max(abs(e[i] - e[j]), 1e-300)
+            slope = max(abs(e[i] - e[j]), abs(np.log(abs(wE[i]) / abs(wE[j]))), 1e-300)
             tail += abs(wE[i] * L[i]) / slope
     return dressing, S, E, P, tail
 

@@ -9,10 +9,12 @@ asked for, so ``import tba`` stays light::
     res.energy, res.error, res.status
 
 Models          free_fermion, sinh_gordon, lee_yang, ising_e8, sine_gordon, user_model,
+                massless_fermion, massless_bosons, tricritical_to_ising (massless),
                 get_model, model_names, DiagonalModel, HalfBlock
 Deformations    ttbar, higher_spin, cdd_factor, resonance, CDD, NO_DEFORMATION
 Levels          solve (any level by name), solve_ground_state, solve_radii, solve_excited,
-                solve_lee_yang_one_particle, bethe_yang_energy, level_name
+                solve_lee_yang_one_particle, bethe_yang_energy, level_name,
+                solve_massless_level, free_levels (the levels of free massless models)
 Derivatives     energy_derivatives, flow_residual
 Flow            predict, predict_ground_state, cft_energy, cft_branch_radius, branch_point,
                 level_branch_point
@@ -33,9 +35,12 @@ from tba.models import (
     get_model,
     ising_e8,
     lee_yang,
+    massless_bosons,
+    massless_fermion,
     model_names,
     sine_gordon,
     sinh_gordon,
+    tricritical_to_ising,
     user_model,
 )
 from tba.solvers.result import SolveError, SolveResult, Status
@@ -49,6 +54,8 @@ _LAZY = {
     "bethe_yang_energy": "tba.solvers.excited",
     "solve_lee_yang_one_particle": "tba.solvers.lee_yang",
     "level_name": "tba.solvers.levels",
+    "solve_massless_level": "tba.solvers.massless",
+    "free_levels": "tba.solvers.massless",
     "predict": "tba.physics.flow",
     "predict_ground_state": "tba.physics.flow",
     "cft_energy": "tba.physics.flow",
@@ -71,7 +78,8 @@ def solve(model, radius, deformation=None, *, state="ground", tol=1e-12, start=N
 
     ``state`` names the level: ``"ground"``, or its Bethe quantum numbers I_k as a string
     (``"-1/2,1/2"``, ``"0"``) or a sequence (``["1/2", "-1/2"]``); half-odd numbers for an
-    even number of particles, integers for an odd one. ``deformation`` is a `CDD` (default:
+    even number of particles, integers for an odd one (free massless models: the sign is the
+    chirality, and bosons take repeated integers, ``"1,1"``). ``deformation`` is a `CDD` (default:
     none), ``tol`` the relative accuracy asked of the energy, ``start`` a solved neighbour
     to start from. Raises ValueError when the model does not have the level (E8 has no
     excited levels here; Lee-Yang only its one-particle level "0").
@@ -100,7 +108,8 @@ def __dir__():
 __all__ = [
     "CDD", "NO_DEFORMATION", "cdd_factor", "higher_spin", "resonance", "ttbar",
     "DiagonalModel", "HalfBlock", "free_fermion", "get_model", "ising_e8", "lee_yang", "model_names",
-    "sine_gordon", "sinh_gordon", "user_model",
+    "sine_gordon", "sinh_gordon", "user_model", "massless_fermion", "massless_bosons",
+    "tricritical_to_ising",
     "SolveError", "SolveResult", "Status",
     "solve", "solve_ground_state", "solve_radii", "energy_derivatives", "flow_residual",
     *_LAZY,

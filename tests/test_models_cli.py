@@ -31,7 +31,9 @@ def test_listing_json(capsys):
                  "tricritical-potts-3", "A3", "A8", "D4", "D8", "T2", "T4", "sine-gordon N=1",
                  "sine-gordon N=4"):
         assert name in by_name, name
-    assert not any(r["massless"] for r in recs)
+    # the massless models of issue 12, and only they (tests/test_massless.py checks them)
+    assert {r["name"] for r in recs if r["massless"]} == {"massless-fermion", "massless-bosons",
+                                                          "tricritical-to-ising"}
     # c_eff = 2r/(h+2): A_n 2n/(n+3), D_n 1; tadpoles 2n/(2n+3); sine-Gordon 1
     assert by_name["A5"]["c_eff"] == pytest.approx(10 / 8, rel=1e-13)
     assert by_name["D7"]["c_eff"] == pytest.approx(1.0, rel=1e-13)

@@ -261,7 +261,7 @@ def test_registry_names():
     assert canonical_name("a5") == "A5" and canonical_name("E7") == "tricritical-ising"
     assert "D17" in MODELS and "D3" not in MODELS and "nope" not in MODELS
     assert MODELS["A3"]().n_species == 3 and MODELS["sinh-gordon"](0.6).coupling == 0.6
-    assert set(MODELS_WITH_COUPLING) == {"sinh-gordon", "sine-gordon"}
+    assert set(MODELS_WITH_COUPLING) == {"sinh-gordon", "sine-gordon", "massless-bosons"}
     names = model_names()
     assert names[:4] == ["free-fermion", "sinh-gordon", "lee-yang", "ising-e8"]
     assert "A1" not in names and "A3" in names and list(MODELS) == names

@@ -327,8 +327,9 @@ def build_parser():
     solve.add_argument("--state", action=Once, metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "
                        "number of particles, integers for an odd one; e.g. 1/2,-1/2 or 0): "
-                       "single-species models without bound states, and lee-yang's "
-                       "one-particle state 0")
+                       "single-species models without bound states, lee-yang's "
+                       "one-particle state 0, and the free massless models (the sign is the "
+                       "chirality; bosons take repeated integers, e.g. 1,1)")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(solve, MAX_SOLVE_POINTS, "radii")
     solve.set_defaults(func=cmd_solve)

@@ -337,7 +337,8 @@ def add_model_arguments(parser):
                         help="the S-matrix: free-fermion, sinh-gordon, lee-yang, ising-e8, "
                         "sine-gordon, ..., or an algebra name (A4, D5, E6, T2); tba models lists them")
     parser.add_argument("--coupling", action=Once, metavar="V", help="the model's parameter: "
-                        "sinh-gordon B in (0, 2), sine-gordon N (reflectionless point, integer >= 1)")
+                        "sinh-gordon B in (0, 2), sine-gordon N (reflectionless point, integer >= 1), "
+                        "massless-bosons n (the number of bosons)")
 
 
 def add_tol_argument(parser):

@@ -10,7 +10,7 @@ the keys name, parameters, species, masses, c_eff, massless, spins.
 from fractions import Fraction
 
 from tba.cli.common import UsageError, json_text
-from tba.models.catalog import MAX_RANK, ModelError, model_summaries
+from tba.models.catalog import MAX_RANK, ModelError, model_names, model_summaries, resolve
 
 _JSON_KEYS = ("name", "parameters", "species", "masses", "c_eff", "massless", "spins")
 
@@ -36,6 +36,12 @@ def _row(rec):
     also = rec["algebra"] if rec["algebra"] not in (None, rec["name"]) else ""
     return (f"{name:<22} {also:<6} {param:<14} {rec['species']:>3}  "
             f"{_fraction(rec['c_eff']):<24} {rec['spins_text']:<45} {masses}")
+
+
+def _massless_names():
+    """'a, b and c': the massless models of the registry."""
+    names = [n for n in model_names() if resolve(n).massless]
+    return ", ".join(names[:-1]) + " and " + names[-1] if len(names) > 1 else "".join(names)
 
 
 def cmd_models(args, out):
@@ -64,9 +70,11 @@ def cmd_models(args, out):
     if not args.names:
         print(f"\nAlso A<n> (n <= {MAX_RANK}), D<n> (4 <= n <= {MAX_RANK}), T<n> (n <= {MAX_RANK}) "
               f"and sine-gordon N <= {MAX_RANK}: tba models A12, tba models sine-gordon --coupling 9. "
-              f"Algebra names (A4, E6, t2, ...) work with --model too.\nAll models are massive; "
-              f"c_eff from the dilogarithm sum of the plateau equations (sinh-gordon: the limit, "
-              f"reached logarithmically). A conjugate pair is k, kbar.", file=out)
+              f"Algebra names (A4, E6, t2, ...) work with --model too.\n{_massless_names()} "
+              f"are massless: their masses are the "
+              f"scales M of the right (R) and left (L) movers. c_eff from the dilogarithm sum of "
+              f"the plateau equations (sinh-gordon: the limit, reached logarithmically; massless "
+              f"models: kink by kink). A conjugate pair is k, kbar.", file=out)
     return 0
 
 

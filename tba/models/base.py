@@ -12,6 +12,14 @@ for every built-in model), which species are each other's antiparticles, the con
 that CDD factors may carry (`tba.models.charges`), and the distance of the kernels' nearest
 singularity from the real axis, which sets the grid spacing the trapezoid rule needs.
 
+Massive and massless species. Each species has a chirality: ``massive`` (energy and momentum
+m cosh t, m sinh t), ``right`` or ``left`` (massless: (M/2) e^{+t} and +-(M/2) e^{+-t}, with M
+the species' entry of ``masses``: a scale, arbitrary for free massless species). In light-cone
+form e_a +- p_a = mu_a^+- e^{+-t} with (mu^+, mu^-) = (m, m), (M, 0) or (0, M): the energies
+and momenta every solver uses (`energies`, `momenta`). A species may also stand for g_a
+identical copies (``multiplicity``; n free bosons are one right and one left species with
+g = n): L_b then counts g_b times in every sum over species.
+
 Crossing, S_{a-bar b}(t) = S_ab(i pi - t), is checked for block content: f_x is invariant under
 t -> i pi - t and <x> -> -<1-x>, so the half-block content of S_{a-bar b} must be that of S_ab with
 x -> 1 - x, and S_{a-bar b}(0) = S_ab(0) (-1)^{N_ab} with N_ab the number of half-blocks (f_x
@@ -27,6 +35,7 @@ from tba.models import blocks as _blocks
 from tba.models.charges import ExplicitCharges, OddSpins, SpinRule
 
 STATISTICS = ("fermion", "boson")
+CHIRALITIES = ("massive", "right", "left")
 #: rapidities at which a user's kernel callable is probed when the model is built
 _PROBE = np.array([-3.7, -1.1, -0.2, 0.0, 0.45, 1.9, 5.3])
 
@@ -106,7 +115,13 @@ class DiagonalModel:
         species is its own antiparticle).
     charge_rule : `tba.models.charges.SpinRule`, optional
         The conserved charges CDD factors of spin s > 1 may carry. Default: every odd spin with
-        q_s = 1 for one species, spin 1 only for several.
+        q_s = 1 for one species, spin 1 only for several. Models with massless species take
+        spin 1 (TTbar) only.
+    chirality : sequence of "massive", "right", "left", optional
+        Per species (default: all massive). A massless species' entry of ``masses`` is its
+        scale M: driving term (M R / 2) e^{+-t}.
+    multiplicity : sequence of positive int, optional
+        Identical copies per species (default 1 each).
     """
 
     name: str
@@ -122,7 +137,15 @@ class DiagonalModel:
     labels: Optional[tuple] = None
     antiparticle: Optional[tuple] = None
     charge_rule: Optional[SpinRule] = None
+    chirality: Optional[tuple] = None
+    multiplicity: Optional[tuple] = None
     pole_distances: np.ndarray = field(default=None, init=False, repr=False)
+    #: (mu^+, mu^-) per species, shape (n, 2): the light-cone masses
+    light_cone_masses: np.ndarray = field(default=None, init=False, repr=False)
+    #: kappa in |phi_ab(t)| <~ e^{-kappa |t|} for models with massless species and a kernel
+    #: (None without a kernel): how far a massless plateau acts through the kernels
+    kernel_decay: Optional[float] = field(default=None, init=False, repr=False)
+    _massless: bool = field(default=False, init=False, repr=False, compare=False)
     _kernel_cache: dict = field(default_factory=dict, repr=False, compare=False)
 
     def __post_init__(self):
@@ -139,6 +162,7 @@ class DiagonalModel:
         if self.statistics not in STATISTICS:
             raise ValueError(f"statistics must be one of {STATISTICS}, got {self.statistics!r}")
         self._set_species(n)
+        self._set_chirality(n)
         if (self.blocks is None) == (self.kernel_function is None):
             raise ValueError("give exactly one of blocks and kernel_function")
         sign = -np.ones((n, n)) if self.sign is None else np.asarray(self.sign, dtype=float)
@@ -152,12 +176,46 @@ class DiagonalModel:
                 raise TypeError("kernel_function must be callable")
             self._set_pole_distances(n, self.pole_distance)
             self.kernel(_PROBE)  # shape and finiteness, now rather than in the middle of a solve
+        if self.is_massless:
+            object.__setattr__(self, "kernel_decay", self._kernel_decay())
         rule = self.charge_rule
         if rule is None:
-            rule = OddSpins(1) if n == 1 else ExplicitCharges({}, n)
+            rule = OddSpins(1) if n == 1 and not self.is_massless else ExplicitCharges({}, n)
         elif not isinstance(rule, SpinRule):
             raise TypeError(f"charge_rule must be a SpinRule, got {type(rule).__name__}")
+        elif self.is_massless and rule.as_dict() != ExplicitCharges({}, n).as_dict():
+            raise ValueError("charge_rule: models with massless species take spin 1 (TTbar) only")
         object.__setattr__(self, "charge_rule", rule)
+
+    def _set_chirality(self, n):
+        kinds = ("massive",) * n if self.chirality is None else tuple(self.chirality)
+        if len(kinds) != n:
+            raise ValueError(f"chirality: expected {n} entries, got {len(kinds)}")
+        for kind in kinds:
+            if kind not in CHIRALITIES:
+                raise ValueError(f"chirality: each entry must be one of {CHIRALITIES}, got {kind!r}")
+        object.__setattr__(self, "chirality", kinds)
+        object.__setattr__(self, "_massless", any(k != "massive" for k in kinds))
+        if self.multiplicity is None:
+            mult = (1,) * n
+        else:
+            try:
+                mult = tuple(self.multiplicity)
+            except TypeError:
+                raise TypeError(f"multiplicity must be a sequence of positive integers, got "
+                                f"{self.multiplicity!r}") from None
+            if len(mult) != n or any(isinstance(g, bool) or not isinstance(g, (int, np.integer))
+                                     or g < 1 for g in mult):
+                raise ValueError(f"multiplicity must list {n} positive integers, got {mult!r}")
+            mult = tuple(int(g) for g in mult)
+        object.__setattr__(self, "multiplicity", mult)
+        m = self.masses
+        mu = np.array([[m[a] * (k != "left"), m[a] * (k != "right")] for a, k in enumerate(kinds)])
+        mu.setflags(write=False)
+        object.__setattr__(self, "light_cone_masses", mu)
+        for a, c in enumerate(self.antiparticle):
+            if kinds[a] != kinds[c]:
+                raise ValueError(f"antiparticle: species {a} and {c} have different chiralities")
 
     def _set_species(self, n):
         labels = tuple(str(a + 1) for a in range(n)) if self.labels is None else tuple(map(str, self.labels))
@@ -207,6 +265,8 @@ class DiagonalModel:
         full = lambda cell: {k: m for k, m in cell.items() if not isinstance(k, _blocks.HalfBlock)}  # noqa: E731
         for a in range(n):
             for b in range(n):
+                if self.chirality[a] != "massive" or self.chirality[b] != "massive":
+                    continue  # massless crossing is not t -> i pi - t (docs/physics.md section 9)
                 cell, other = content[a][b], content[conj[a]][b]
                 crossed = {1 - k.x: m for k, m in cell.items() if isinstance(k, _blocks.HalfBlock)}
                 halves = {k.x: m for k, m in other.items() if isinstance(k, _blocks.HalfBlock)}
@@ -245,6 +305,75 @@ class DiagonalModel:
     @property
     def n_species(self):
         return self.masses.size
+
+    def _kernel_decay(self):
+        """1 for block content (every block decays like e^{-|t|}); for a kernel callable the
+        rate measured between t = 8 and 16, at most 1; None when every kernel vanishes."""
+        if self.blocks is not None:
+            return 1.0 if any(cell for row in self.blocks for cell in row) else None
+        near, far = np.abs(self.kernel(np.array([8.0, 16.0]))).transpose(2, 0, 1)
+        if not np.any(near) and not np.any(far):
+            return None
+        with np.errstate(divide="ignore"):
+            rates = np.log(near[near > 0] / np.maximum(far[near > 0], 1e-300)) / 8.0
+        return float(np.clip(rates.min(), 1e-2, 1.0)) if rates.size else 1.0
+
+    # -- energies and momenta of the species ---------------------------------------------------
+    @property
+    def is_massless(self):
+        """True when some species is massless (right or left mover)."""
+        return self._massless
+
+    @property
+    def massive_mass(self):
+        """The smallest mass of the massive species (None if there is none)."""
+        m = [self.masses[a] for a, k in enumerate(self.chirality) if k == "massive"]
+        return float(min(m)) if m else None
+
+    @property
+    def massless_scales(self):
+        """((mu^+, mu^-), ...) of the massless species: what the grid rule needs of them."""
+        return tuple((float(p), float(q)) for (p, q), k in zip(self.light_cone_masses, self.chirality)
+                     if k != "massive")
+
+    @property
+    def has_multiplicity(self):
+        return any(g != 1 for g in self.multiplicity)
+
+    def energies(self, t):
+        """e_a(t): m_a cosh t, (M_a / 2) e^t (right), (M_a / 2) e^{-t} (left); shape (n,) + t.shape."""
+        return self._light_cone(t, +1)
+
+    def momenta(self, t):
+        """p_a(t): m_a sinh t, (M_a / 2) e^t (right), -(M_a / 2) e^{-t} (left)."""
+        return self._light_cone(t, -1)
+
+    def _light_cone(self, t, sign):
+        t = np.asarray(t, dtype=float)
+        if not self.is_massless:  # m cosh t, m sinh t exactly as the massive solvers always had
+            return np.multiply.outer(self.masses, np.cosh(t) if sign > 0 else np.sinh(t))
+        mu = self.light_cone_masses
+        ep, em = 0.5 * np.exp(t), 0.5 * np.exp(-t)
+        out = np.empty((self.n_species,) + t.shape)
+        for a, kind in enumerate(self.chirality):
+            if kind == "massive":
+                out[a] = self.masses[a] * (np.cosh(t) if sign > 0 else np.sinh(t))
+            else:
+                out[a] = mu[a, 0] * ep + sign * mu[a, 1] * em
+        return out
+
+    def ttbar_phase(self, t):
+        """The TTbar phase per unit coupling, p_a e_b - e_a p_b at rapidity difference t,
+        = (mu_a^+ mu_b^- e^t - mu_a^- mu_b^+ e^{-t}) / 2: m_a m_b sinh t for massive pairs,
+        (M_a M_b / 2) e^t for a right mover a and a left mover b, 0 for two right movers
+        (docs/physics.md section 9). Shape (n, n) + t.shape; complex t continues it."""
+        t = np.asarray(t)
+        t = t if np.iscomplexobj(t) else t.astype(float)
+        if not self.is_massless:
+            return np.multiply.outer(np.outer(self.masses, self.masses), np.sinh(t))
+        mu = self.light_cone_masses
+        return 0.5 * (np.multiply.outer(np.outer(mu[:, 0], mu[:, 1]), np.exp(t))
+                      - np.multiply.outer(np.outer(mu[:, 1], mu[:, 0]), np.exp(-t)))
 
     # -- kernels and S-matrices --------------------------------------------------------------
     def kernel(self, t):
@@ -318,6 +447,10 @@ class DiagonalModel:
         """S_ab(t) for block models, shape (n, n) + t.shape (complex); t may be complex."""
         if self.blocks is None:
             raise NotImplementedError("s_matrix is only available for models given by blocks")
+        if self.is_massless:
+            raise NotImplementedError("s_matrix: the blocks of a massless pair fix S up to a "
+                                      "constant phase (only the kernel is used); see the model's "
+                                      "description")
         t = np.asarray(t)
         n = self.n_species
         out = np.ones((n, n) + t.shape, dtype=complex)
@@ -396,6 +529,9 @@ class DiagonalModel:
         if self.blocks is not None:
             d["blocks"] = [[{str(x): k for x, k in c.items()} for c in row] for row in self.blocks]
             d["sign"] = self.sign.astype(int).tolist()
+        if self.is_massless or self.has_multiplicity:
+            d["chirality"] = list(self.chirality)
+            d["multiplicity"] = list(self.multiplicity)
         return d
 
 

@@ -6,6 +6,9 @@ Names (what ``--model`` and run files take), one canonical name per model:
   ``ising-e8`` (= E8), ``potts-3`` (= A2, scaling 3-state Potts), ``tricritical-ising``
   (= E7, thermal perturbation), ``tricritical-potts-3`` (= E6), ``sine-gordon`` (coupling N:
   the reflectionless point beta^2 = 8 pi / (N + 1), N = 1..40);
+* massless models (`tba.models.massless`): ``massless-fermion`` (c = 1/2), ``massless-bosons``
+  (coupling n: n free bosons, c = n, n = 1..1024), ``tricritical-to-ising`` (the massless flow
+  from c = 7/10 to c = 1/2);
 * the ADE families by their algebra names: ``A<n>`` (n = 1..40), ``D<n>`` (n = 4..40), ``E6``,
   ``E7``, ``E8`` and the tadpoles ``T<n>`` (n = 1..40), case-insensitive. An algebra name with a
   physical name (A1, A2, E6, E7, E8, T1) builds that model, which keeps its physical name.
@@ -30,6 +33,7 @@ from tba.models import sine_gordon as _sg
 from tba.models.ade import a_incidence, ade_theory, d_incidence, e_incidence, tadpole_incidence
 from tba.models.base import DiagonalModel, bulk_energy_density
 from tba.models.charges import ExplicitCharges, OddSpins
+from tba.models.massless import MAX_BOSONS, massless_bosons, massless_fermion, tricritical_to_ising
 from tba.models.uv import uv_central_charge
 
 #: the largest rank of the infinite families A_n, D_n, T_n (generation is cheap; the TBA grid
@@ -170,7 +174,8 @@ def ising_e8():
 
 
 def user_model(masses, blocks=None, kernel=None, pole_distance=None, statistics="fermion",
-               name="user", sign=None, antiparticle=None, charges=None, labels=None):
+               name="user", sign=None, antiparticle=None, charges=None, labels=None,
+               chirality=None, multiplicity=None):
     """A user-defined diagonal model.
 
     Give either ``blocks`` ({key: multiplicity} per pair a, b; keys are numbers x for f_x and
@@ -179,7 +184,9 @@ def user_model(masses, blocks=None, kernel=None, pole_distance=None, statistics=
     species, ``blocks`` may be a single dict and ``kernel`` may return t.shape.
     ``antiparticle`` pairs species (half-blocks need it), ``charges`` = {spin: [q_1, ..., q_n]}
     gives a several-species model conserved charges for higher-spin CDD factors (one species:
-    every odd spin with q = 1).
+    every odd spin with q = 1). ``chirality`` ("massive", "right" or "left" per species) declares
+    massless species, whose entry of ``masses`` is their scale M; ``multiplicity`` the number of
+    identical copies of each species.
     """
     try:
         masses = np.atleast_1d(np.asarray(masses, dtype=float))
@@ -206,7 +213,8 @@ def user_model(masses, blocks=None, kernel=None, pole_distance=None, statistics=
     return DiagonalModel(name=name, masses=masses, blocks=blocks, kernel_function=kernel_function,
                          pole_distance=np.inf if pole_distance is None else pole_distance,
                          statistics=statistics, sign=sign, antiparticle=antiparticle,
-                         charge_rule=rule, labels=labels, description="user-defined model")
+                         charge_rule=rule, labels=labels, chirality=chirality,
+                         multiplicity=multiplicity, description="user-defined model")
 
 
 def _coupling_in_open_interval(B):
@@ -223,15 +231,21 @@ def _coupling_in_open_interval(B):
 
 # -- the registry --------------------------------------------------------------------------
 
+#: parameters that are integers (written without a decimal point in labels)
+INTEGER_PARAMETERS = ("N", "n")
+
+
 @dataclass(frozen=True)
 class Entry:
     """A built-in model: its canonical name, its constructor, its parameter (if any)."""
 
     name: str
     build: Callable
-    parameter: Optional[str] = None       # "B", "N"
+    parameter: Optional[str] = None       # "B", "N", "n"
     parameter_range: str = ""
     algebra: Optional[str] = None
+    #: the model has massless species (known without building it: figures ask)
+    massless: bool = False
 
     def make(self, coupling=None):
         if self.parameter is None:
@@ -250,7 +264,7 @@ class Entry:
         """``name`` or ``name B=0.6`` / ``name N=3``: the coordinate label in output files."""
         if self.parameter is None or coupling is None:
             return self.name
-        value = int(coupling) if self.parameter == "N" else coupling
+        value = int(coupling) if self.parameter in INTEGER_PARAMETERS else coupling
         return f"{self.name} {self.parameter}={value!r}"
 
 
@@ -263,6 +277,9 @@ _NAMED = {e.name: e for e in [
     Entry("tricritical-ising", lambda: ade_model("E7"), algebra="E7"),
     Entry("tricritical-potts-3", lambda: ade_model("E6"), algebra="E6"),
     Entry("sine-gordon", sine_gordon, "N", f"integer, 1 <= N <= {_sg.MAX_N}"),
+    Entry("massless-fermion", massless_fermion, massless=True),
+    Entry("massless-bosons", massless_bosons, "n", f"integer, 1 <= n <= {MAX_BOSONS}", massless=True),
+    Entry("tricritical-to-ising", tricritical_to_ising, massless=True),
 ]}
 _BY_ALGEBRA = {e.algebra: e for e in _NAMED.values() if e.algebra}
 
@@ -343,6 +360,9 @@ MODELS_WITH_COUPLING = frozenset(e.name for e in _NAMED.values() if e.parameter)
 
 #: the sine-Gordon points the listing shows (every N up to the maximum is accepted)
 LISTED_SINE_GORDON = range(1, 5)
+#: the values of each integer parameter that the listing shows without a coupling: sine-Gordon
+#: N = 1..4, one boson and the 24 of the Nambu-Goto string
+LISTED_VALUES = {"sine-gordon": LISTED_SINE_GORDON, "massless-bosons": (1, 24)}
 
 
 def model_summary(name, coupling=None):
@@ -366,7 +386,7 @@ def model_summary(name, coupling=None):
         model = entry.make(coupling)
     return {"name": entry.name, "parameters": parameters, "species": model.n_species,
             "masses": model.masses.tolist(), "c_eff": uv_central_charge(model),
-            "massless": False,  # every model here is massive
+            "massless": model.is_massless,
             "spins": model.charge_rule.as_dict(),
             "algebra": entry.algebra, "labels": list(model.labels),
             "spins_text": model.charge_rule.describe(), "description": model.description}
@@ -375,14 +395,15 @@ def model_summary(name, coupling=None):
 def model_summaries(names=None, coupling=None):
     """Summaries of ``names`` (default: `model_names`). ``coupling`` applies to the named models
     that have a parameter (ModelError if none has one); a model with an integer parameter and no
-    coupling is summarised at its listed values (sine-Gordon N = 1..4)."""
+    coupling is summarised at its listed values (`LISTED_VALUES`: sine-Gordon N = 1..4,
+    massless-bosons n = 1 and 24)."""
     entries = [resolve(name) for name in (model_names() if names is None else names)]
     if coupling is not None and not any(e.parameter for e in entries):
         raise ModelError("coupling", "none of the models named has a parameter")
     out = []
     for entry in entries:
-        if entry.parameter == "N" and coupling is None:
-            out.extend(model_summary(entry.name, N) for N in LISTED_SINE_GORDON)
+        if entry.name in LISTED_VALUES and coupling is None:
+            out.extend(model_summary(entry.name, v) for v in LISTED_VALUES[entry.name])
         else:
             out.append(model_summary(entry.name, coupling if entry.parameter else None))
     return out

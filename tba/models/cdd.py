@@ -5,7 +5,9 @@ Convention of the project (README, section Conventions): every S_ab is multiplie
     Phi_ab(t) = prod_s exp(i alpha_s q_s^a q_s^b sinh(s t)) * eps * prod_j F_(sigma_j)(t)^(p_j)
 
 Spin terms. q_1^a = m_a (spin 1 is the TTbar deformation with coupling alpha; alpha > 0 is the
-side where the ground state meets a square-root branch point at finite radius, Hagedorn); for
+side where the ground state meets a square-root branch point at finite radius, Hagedorn; with
+massless species its phase is alpha (p_a e_b - e_a p_b), `DiagonalModel.ttbar_phase`, which is
+alpha m_a m_b sinh t for massive pairs and vanishes between two right movers); for
 s > 1, q_s^a are the model's conserved charges (`DiagonalModel.charges`, `tba.models.charges`):
 only the spins the model has are accepted. They add to the kernel
 
@@ -321,6 +323,9 @@ class CDD:
         n = model.n_species
         phase = np.zeros((n, n) + t.shape, dtype=complex)
         for s, a in self.couplings.items():
+            if s == 1:  # p_a e_b - e_a p_b: m_a m_b sinh t, or its massless forms
+                phase += a * model.ttbar_phase(t)
+                continue
             q = self.charges(model, s)
             phase += a * np.multiply.outer(np.outer(q, q), np.sinh(s * t))
         out = np.exp(1j * phase) * self.sign

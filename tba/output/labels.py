@@ -14,6 +14,7 @@ Models that are not listed in `MODEL_TITLES` keep their command-line name.
 
 from fractions import Fraction
 
+from tba.models.catalog import ModelError, resolve
 from tba.solvers.levels import GROUND, parse_level
 
 #: the panels of a figure (`tba.output.plotting`) and its file formats: here, so that the
@@ -32,6 +33,9 @@ MODEL_TITLES = {
     "sinh-gordon": "sinh-Gordon",
     "lee-yang": "scaling Lee-Yang",
     "ising-e8": "E8 (Ising in a magnetic field)",
+    "massless-fermion": "massless Majorana fermion",
+    "massless-bosons": "free massless bosons",
+    "tricritical-to-ising": "massless flow tricritical Ising → Ising",
 }
 _COUNTS = {1: "one", 2: "two", 3: "three", 4: "four", 5: "five", 6: "six", 7: "seven", 8: "eight"}
 
@@ -42,10 +46,25 @@ def number(x):
     return text[:-2] if text.endswith(".0") else text
 
 
+def _entry(name):
+    try:
+        return resolve(name)
+    except ModelError:  # a file written by another version may name a model unknown here
+        return None
+
+
 def model_title(name, coupling=None):
-    """``sinh-Gordon, B = 0.6``; ``scaling Lee-Yang``."""
+    """``sinh-Gordon, B = 0.6``; ``scaling Lee-Yang``; ``free massless bosons, n = 24``."""
     title = MODEL_TITLES.get(name, name)
-    return title if coupling is None else f"{title}, B = {number(coupling)}"
+    entry = _entry(name)
+    parameter = entry.parameter if entry is not None and entry.parameter else "B"
+    return title if coupling is None else f"{title}, {parameter} = {number(coupling)}"
+
+
+def is_massless(name):
+    """True for the built-in models with massless species (their gap falls like 1/R)."""
+    entry = _entry(name)
+    return entry is not None and entry.massless
 
 
 def particles(state):

@@ -48,7 +48,8 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
-from tba.output.labels import FORMATS, PANELS, column_title, model_title, number, particles
+from tba.output.labels import (FORMATS, PANELS, column_title, is_massless, model_title, number,
+                               particles)
 from tba.output.report import CONVERGED, last_real_points
 from tba.solvers.levels import GROUND, level_name
 from tba.store.hdf5 import BP_FOUND, NOT_AVAILABLE
@@ -441,8 +442,10 @@ def _gap_panel(ax, data, sel, m, s, colors):
         gap = _curve(data, "energy", m, a, s) - _curve(data, "energy", m, a, sel.ground)
         curves.append(gap)
         ax.plot(R, gap, marker="o", ms=2.5, color=colors[alpha], **_style(alpha))
-    ax.axhline(particles(data.state[s]), ls=":", lw=1.0, color="0.5", zorder=1)
     _no_data(ax, curves)
+    if is_massless(data.model_name[m]):  # a conformal gap 2 pi (D + Dbar) / R: no threshold
+        return set()
+    ax.axhline(particles(data.state[s]), ls=":", lw=1.0, color="0.5", zorder=1)
     return {"threshold"}
 
 

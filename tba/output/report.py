@@ -9,7 +9,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tba.output.labels import RADIUS_FORMAT, VALUE_FORMAT, level_title, number
+from tba.output.labels import RADIUS_FORMAT, VALUE_FORMAT, is_massless, level_title, number
+from tba.solvers.levels import GROUND
 from tba.solvers.result import STATUS_CODES, Status
 from tba.store.hdf5 import (BP_FOUND, BP_NONE, BRANCH_MEANINGS, FLOW_MEANINGS, NOT_AVAILABLE,
                          NOT_COMPUTED, STATUS_MEANINGS)
@@ -217,11 +218,13 @@ def _format_report(data):
     ok = status == CONVERGED
     if ok.any():
         err = np.where(ok, data["error"], -np.inf)
-        rel = np.where(ok, data["error"] / np.abs(data["energy"]), -np.inf)
+        rel = np.where(ok, data["error"] / _accuracy_scale(data), -np.inf)
         i = np.unravel_index(int(np.argmax(err)), err.shape)
         j = np.unravel_index(int(np.argmax(rel)), rel.shape)
         lines.append(f"worst error estimate: {err[i]:.3g} at {_where(data, i)}")
-        lines.append(f"worst relative error estimate: {rel[j]:.3g} (tol {run.tol:g}) at {_where(data, j)}")
+        lines.append(f"worst relative error estimate: {rel[j]:.3g} (tol {run.tol:g}, relative to "
+                     f"|E|; excited levels max(|E|, m_1), massless ones max(|E|, 1/R)) at "
+                     f"{_where(data, j)}")
     else:
         lines.append("worst error estimate: - (no converged point)")
     lines.append("")
@@ -328,6 +331,18 @@ def _branch_section(data):
             for c in failed:
                 lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}: {c.why}")
     return lines
+
+
+def _accuracy_scale(data):
+    """What the tolerance of each point is relative to (dims model, alpha, radius, state): |E|
+    for the ground state, max(|E|, m_1) for excited levels, max(|E|, 1/R) for excited levels of
+    massless models (whose energies pass through zero, tba.solvers.massless)."""
+    E = np.abs(np.asarray(data["energy"], dtype=float))
+    R = np.asarray(data.radius, dtype=float)[None, None, :, None]
+    massless = np.array([is_massless(name) for name in data.model_name])[:, None, None, None]
+    excited = np.array([state != GROUND for state in data.state])[None, None, None, :]
+    floor = np.where(massless, 1.0 / R, 1.0)
+    return np.where(excited, np.maximum(E, floor), E)
 
 
 def _where(data, index):

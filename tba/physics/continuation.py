@@ -29,7 +29,9 @@ import scipy.sparse.linalg
 from tba.models.cdd import CDD
 from tba.solvers import arclength
 from tba.solvers.grid import choose_grid
-from tba.solvers.ground import Discretization, _interpolate, grid_pole_distance, newton, solve_ground_state
+from tba.solvers.result import Status
+from tba.solvers.ground import (Discretization, _interpolate, grid_masses, grid_pole_distance, newton,
+                                solve_ground_state)
 
 PARAMETERS = ("radius", "alpha")
 
@@ -63,7 +65,8 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
     """The fold of the deformed ground state, by pseudo-arclength continuation.
 
     parameter="radius": at fixed couplings, the branch radius R_c (alpha > 0); the curve
-    is followed from ``start`` (a radius above R_c, default twice the CFT estimate).
+    is followed from ``start`` (a radius above R_c, default twice the CFT estimate with c = 1,
+    doubled until it has a real solution: c = 24 has R_c = sqrt(16 pi alpha)).
     parameter="alpha": at fixed ``radius``, the TTbar coupling alpha_c where the fold lies.
 
     The fold is located on two grids of increasing resolution; their difference is the error
@@ -82,10 +85,17 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
         p0 = float(start) if start is not None else max(deformation.alpha, 1e-3)
         r_ref, toward = float(radius), math.inf  # alpha increases towards alpha_c
     r_design = _design_radius(model, deformation, r_ref, parameter)
+    if parameter == "radius" and start is None:
+        for _ in range(12):
+            if solve_ground_state(model, p0, deformation, tol=tol).status is not Status.NO_REAL_SOLUTION:
+                break
+            p0 *= 2.0
     folds = []
     for level in (0, 1):
-        grid = choose_grid(grid_pole_distance(model), float(np.min(model.masses)), r_design, tol,
-                           level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1))
+        min_mass, massless, kernel_decay = grid_masses(model)
+        grid = choose_grid(grid_pole_distance(model), min_mass, r_design, tol, level,
+                           cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
+                           massless=massless, kernel_decay=kernel_decay)
         fam = arclength.Family(model, deformation, radius, grid, parameter)
         if parameter == "radius":
             res = solve_ground_state(model, p0, deformation, tol=tol)
@@ -172,7 +182,8 @@ def second_branch(fold, radius):
 
 def _transfer(disc_from, eps, disc_to):
     """eps on another grid: interpolate the kernel part, rebuild driving and CDD terms."""
-    L = ComplexEquations.occupation(eps)[0] if np.iscomplexobj(eps) else disc_from.occupation(eps)[0]
+    L = (ComplexEquations(disc_from).occupation(eps)[0] if np.iscomplexobj(eps)
+         else disc_from.occupation(eps)[0])
     S = np.einsum("rij,ij->r", disc_from.V, L)
     sep = np.einsum("r,rij->ij", disc_from.c * S, disc_from.U)
     g = eps - disc_from.nu - sep
@@ -201,10 +212,11 @@ def _polish(label, fam, radius, disc, eps):
     model, deformation = fam.model, fam.deformation
     energies, out = [], None
     for level in (0, 1):
-        grid = choose_grid(grid_pole_distance(model), float(np.min(model.masses)), abs(r_eff),
+        min_mass, massless, kernel_decay = grid_masses(model)
+        grid = choose_grid(grid_pole_distance(model), min_mass, abs(r_eff),
                            1e-12, level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
                            strip=strip, decay_radius=min(abs(r_eff), r_eff.real) if r_eff.real > 0
-                           else abs(r_eff))
+                           else abs(r_eff), massless=massless, kernel_decay=kernel_decay)
         new = Discretization(model, deformation, radius, grid)
         e0 = _transfer(disc, eps, new)
         if is_complex:
@@ -223,7 +235,7 @@ def _polish(label, fam, radius, disc, eps):
         disc, eps = new, e1
         out = (energy, fold, res, grid, e1)
     energy, fold, res, grid, e1 = out
-    scale = float(np.sum(np.abs(disc.wE * (ComplexEquations.occupation(e1)[0] if is_complex
+    scale = float(np.sum(np.abs(disc.wE * (ComplexEquations(disc).occupation(e1)[0] if is_complex
                                              else disc.occupation(e1)[0]))))
     error = abs(energies[1] - energies[0]) + 64 * np.finfo(float).eps * scale
     if not is_complex and fold > 0:
@@ -236,16 +248,23 @@ class ComplexEquations:
     """The discretised equations with complex pseudo-energies (and, optionally, complex radius).
 
     L(eps) = log(1 + e^{-eps}) continued from the real axis (principal branch of
-    log1p in the variable e^{-|Re eps|}); the real kernel operators act on real and
-    imaginary parts separately.
+    log1p in the variable e^{-|Re eps|}), or -log(1 - e^{-eps}) for bosons (Re eps > 0); the
+    real kernel operators act on real and imaginary parts separately.
     """
 
     def __init__(self, disc, radius=None):
         self.disc = disc
         self.nu = disc.nu if radius is None else disc.nu * (radius / disc.radius)
 
-    @staticmethod
-    def occupation(e):
+    def occupation(self, e):
+        if self.disc.sign < 0:  # bosons, as the real kernels.statistics: log1p where e^-eps is
+            # small (exactly 0 far out), expm1 where eps is small (every digit of 1 - e^-eps)
+            far = e.real > math.log(2.0)
+            x = np.exp(-np.where(far, e, 1.0))
+            near = np.where(far, 1.0, e)
+            L = np.where(far, -np.log1p(-x), -np.log(-np.expm1(-near)))
+            dL = np.where(far, -x / (1 - x), -1 / np.expm1(near))
+            return L, dL
         pos = e.real >= 0
         x = np.exp(np.where(pos, -e, e))
         # numpy's complex log1p drops the real part of tiny arguments: series there
@@ -272,12 +291,20 @@ class ComplexEquations:
         Uf = d.U.reshape(r, n * N)
         CVd = d.c[:, None] * (d.V * dL).reshape(r, n * N)
         if d.ops.dense:
-            J = np.eye(n * N, dtype=complex)
-            if not d.ops.trivial:
-                J += d.ops.matrix * dL.reshape(1, -1)
+            # J = J0 + U^T CVd by the Woodbury formula, as for real solutions: J0 = 1 + K diag(L')
+            # is well conditioned, while the rank-one terms span many orders of magnitude on a
+            # massless grid (e_a(t) ~ e^|t| at the far ends)
+            b = rhs.reshape(-1)
+            if d.ops.trivial:
+                y, Z = b.astype(complex), Uf.T.astype(complex)
+            else:
+                lu = scipy.linalg.lu_factor(np.eye(n * N) + d.ops.matrix * dL.reshape(1, -1),
+                                            check_finite=False)
+                y = scipy.linalg.lu_solve(lu, b, check_finite=False)
+                Z = scipy.linalg.lu_solve(lu, Uf.T, check_finite=False) if r else None
             if r:
-                J += Uf.T @ CVd
-            return scipy.linalg.solve(J, rhs.reshape(-1), check_finite=False).reshape(d.shape)
+                y = y - Z @ np.linalg.solve(np.eye(r) + CVd @ Z, CVd @ y)
+            return y.reshape(d.shape)
 
         def matvec(x):
             x = np.asarray(x).reshape(d.shape)
@@ -299,10 +326,17 @@ class ComplexEquations:
         for it in range(maxiter):
             L, dL = self.occupation(e)
             F = self.residual(e, L)
-            r = float(np.max(np.abs(F)))
             delta = self.solve_linear(dL, -F)
+            if self.disc.sign < 0:  # bosons: keep Re eps > 0, where L is defined
+                lam = 1.0
+                while np.any((e + lam * delta).real <= 0) and lam > 1e-6:
+                    lam *= 0.5
+                delta = lam * delta
             e = e + delta
-            if float(np.max(np.abs(delta))) < 1e-13 * max(1.0, float(np.max(np.abs(e.real[:, e.shape[1] // 2])))):
+            # converged when the step is at rounding level everywhere: relative to |eps| where
+            # that is large (the far ends of a massless grid), else to the scale of eps at t = 0
+            scale = max(1.0, float(np.max(np.abs(e.real[:, e.shape[1] // 2]))))
+            if float(np.max(np.abs(delta) / np.maximum(scale, np.abs(e)))) < 1e-13:
                 L, dL = self.occupation(e)
                 return e, L, dL, float(np.max(np.abs(self.residual(e, L)))), True
             if not np.all(np.isfinite(e)):

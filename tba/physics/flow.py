@@ -215,24 +215,32 @@ def predict_ground_state(model, radius, alpha, tol=1e-13, curve=None):
 
 class ExcitedCurve:
     """An undeformed excited level E_n(R, 0), named by its Bethe quantum numbers, by TBA on
-    demand (warm starts, cache, exact dE/dR)."""
+    demand (warm starts, cache, exact dE/dR); any excited level with real rapidities, massless
+    ones included (`tba.solvers.levels`)."""
 
     def __init__(self, model, state, tol=1e-13):
-        from tba.solvers.excited import parse_state
+        from tba.solvers.levels import parse_level, unavailable
 
-        self.model, self.state, self.tol = model, parse_state(state), tol
+        self.model, self.state, self.tol = model, parse_level(state), tol
+        why = "the ground state has its own curve" if self.state == "ground" else \
+            unavailable(model, self.state)
+        if why is not None:
+            raise ValueError(f"state: {why}")
         self.momentum_number = sum(self.state)
         self._cache = {}
         self._last = None
 
     def __call__(self, radius):
-        from tba.solvers.excited import solve_excited
+        from tba.solvers.levels import solve_level
 
         R = float(radius)
         res = self._cache.get(R)
         if res is None:
-            res = solve_excited(self.model, R, self.state, tol=self.tol, start=self._last)
+            res = solve_level(self.model, R, self.state, tol=self.tol, start=self._last)
             res.raise_for_status()
+            if getattr(res._state, "dE_dR", None) is None:
+                raise ValueError(f"state: the solver of {self.model.name}'s level "
+                                 f"{','.join(map(str, self.state))} gives no exact dE/dR")
             self._cache[R] = self._last = res
         return res.energy, res._state.dE_dR, res.error
 

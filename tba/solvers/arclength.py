@@ -40,9 +40,10 @@ class Family:
         self._Discretization = Discretization
         self.model, self.deformation, self.radius, self.grid = model, deformation, radius, grid
         self.parameter = parameter
-        # weights of eps in the arclength norm: a change of eps by m_a cosh t (what a change
-        # of the effective radius does) counts as one unit, spread over the grid
-        drive = np.outer(model.masses, np.cosh(grid.t))
+        # weights of eps in the arclength norm: a change of eps by e_a(t) = m_a cosh t (what a
+        # change of the effective radius does) counts as one unit, spread over the grid; massless
+        # e_a(t) vanishes on one side: floored at the smallest scale there
+        drive = np.maximum(model.energies(grid.t), float(np.min(model.masses)))
         self.theta = 1.0 / (drive * drive * drive.size)
 
     def deformation_at(self, p):

@@ -178,6 +178,9 @@ def parse_state(numbers_):
 
 
 def check_model(model):
+    if model.is_massless or model.has_multiplicity:
+        raise ValueError("model: real-rapidity excited states need one massive species of "
+                         "multiplicity 1 (free massless models: tba.solvers.massless)")
     if model.n_species != 1:
         raise ValueError(f"model: excited states need a single-species model ({model.name} has "
                          f"{model.n_species})")

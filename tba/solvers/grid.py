@@ -11,6 +11,20 @@ At large radius the integrands are sharply peaked (width ~ 1/sqrt(m R)) and expo
 small, so the strip bound is taken relative to e^{-m R} (``_large_radius_spacing``). The cutoff Lambda is where m R (cosh Lambda - 1)
 exceeds X, so that the neglected tails are e^{-X} relative to the peak.
 
+Massless species decay on one side only. A right mover (driving term (M R / 2) e^t) has
+L ~ exp(-(M R / 2) e^t) on the right of its kink t_k = log(2 / (M R)), and a plateau on the
+left, where the energy weight e^t makes the integrand decay like e^{t - t_k}; so its window is
+[t_k - u - log u - 1, t_k + log u] with u = X + 2 (a left mover: the mirror image), ~X e-folds
+wide on the plateau side (``_massless_extent``). With kernels a plateau also acts on the other
+species: a left mover's L stays finite to the right of the right movers' kink t_k and feeds their
+eps there through kernel tails ~ e^{-kappa |t - t'|}, so the grid reaches u / kappa + 1 beyond
+the outermost kink on each side (missing that costs 1e-10 relative in the flow of
+`tba.models.massless` at M R = 1e-3, unseen by the tail estimate). The shape of the kink does
+not depend on R, so no large-radius spacing applies. Grids stay symmetric about t = 0 and cover
+every species' window: for a model with both chiralities and parity that is their union; a
+model of one chirality pays up to twice the points (decision: one grid for all species keeps
+the kernels Toeplitz and cached per (h, N)).
+
 X = log(1/tol) + margin grows with the refinement level. Spacings are taken from a fixed
 geometric ladder h = 2^{-j/8} so that kernels can be cached and reused across radii.
 """
@@ -97,8 +111,31 @@ def _large_radius_spacing(mr, X):
     return lo
 
 
+def _massless_extent(scales, radius, decay_radius, u, kernel_decay, min_mass):
+    """Half-width covering the windows of the massless species (module docstring).
+
+    ``scales``: (mu^+, mu^-) per massless species (one of them zero). The driving side's end,
+    where (mu R / 2) e^|t| = u, uses the decay radius (Re R for a complex radius); the plateau
+    side's end, u + log u + 1 e-folds before the kink, uses |R| (the larger: a longer plateau).
+    With a kernel (``kernel_decay`` kappa) the grid reaches u / kappa + 1 beyond the outermost
+    kink, massive species' kinks (log(2 / m R), or 0) included."""
+    half, kink = 0.0, -math.inf
+    for mu_plus, mu_minus in scales:
+        mu = mu_plus or mu_minus
+        drive_end = math.log(2 * u / (mu * decay_radius))
+        plateau_end = u + math.log(u) + 1.0 - math.log(2 / (mu * radius))
+        half = max(half, drive_end, plateau_end)
+        kink = max(kink, math.log(2 / (mu * radius)))
+    if kernel_decay is not None:
+        if min_mass is not None:
+            kink = max(kink, math.log(2 / (min_mass * radius)), 0.0)
+        half = max(half, kink + u / kernel_decay + 1.0)
+    return half
+
+
 def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, max_spin=1,
-                strip=math.pi / 2, shift=0.0, decay_radius=None, quantum=None):
+                strip=math.pi / 2, shift=0.0, decay_radius=None, quantum=None, massless=(),
+                kernel_decay=None):
     """The grid for a point with effective radius ``r_eff`` (> 0) at relative tolerance ``tol``.
 
     Level 0 resolves log(1/tol) e-folds; every further level is LEVEL_STEPS ladder steps
@@ -111,21 +148,28 @@ def choose_grid(pole_distance, min_mass, r_eff, tol, level=0, cutoff_extra=0.0, 
     boost rapidity: states with momentum have a driving term m R~ cosh(t - beta).
     ``decay_radius`` (default ``r_eff``) sets the cutoff: for a complex radius R the integrands
     decay like e^{-Re(R) cosh t}, so pass |R| as ``r_eff`` and Re R here. ``quantum``
-    (default N_QUANTUM) is what the half-width in points is rounded up to.
+    (default N_QUANTUM) is what the half-width in points is rounded up to. ``massless``:
+    (mu^+, mu^-) of each massless species (`DiagonalModel.massless_scales`); ``min_mass`` is then
+    the smallest mass of the massive species, None if there are none, and ``kernel_decay`` the
+    model's `DiagonalModel.kernel_decay`.
     """
     X0 = exponent(tol, 0)
     d = min(pole_distance, strip / max_spin)
-    mr = min_mass * r_eff
     # strip bound e^{-2 pi d / h} times the integrand's size near the strip edge, which grows
     # like 2 pi e / h when the best half-width d - h / 2pi is used
     h = 2 * math.pi * d / X0
     for _ in range(3):
         h = 2 * math.pi * d / (X0 + math.log(2 * math.pi * math.e / h))
-    h = min(h, _large_radius_spacing(mr, X0))
+    if min_mass is not None:
+        h = min(h, _large_radius_spacing(min_mass * r_eff, X0))
     h = ladder(h) * 2.0 ** (-LEVEL_STEPS * level / LADDER_STEPS_PER_OCTAVE)
     X = exponent(tol, level)
-    md = min_mass * (r_eff if decay_radius is None else decay_radius)
-    lam = math.acosh(1.0 + (X + 2.0 + cutoff_extra) / md) + abs(shift)
+    decay = r_eff if decay_radius is None else decay_radius
+    u = X + 2.0 + cutoff_extra
+    lam = 0.0 if min_mass is None else math.acosh(1.0 + u / (min_mass * decay))
+    if massless:
+        lam = max(lam, _massless_extent(massless, r_eff, decay, u, kernel_decay, min_mass))
+    lam += abs(shift)
     half = math.ceil(lam / h)
     q = N_QUANTUM if quantum is None else quantum
     half = q * math.ceil(half / q)

@@ -98,15 +98,13 @@ class Discretization:
         return float(np.sum(self.wE * L))
 
     def coupling_derivative(self, L, spin):
-        """dF/dalpha_s at fixed eps: (s / 2pi) q_a [cosh(s t) C - sinh(s t) S], with
-        C, S = sum_b q_b int {cosh, sinh}(s t') L_b(t') dt'. Works whether or not the
-        deformation contains this spin (derivatives at alpha_s = 0)."""
-        t, h = self.grid.t, self.grid.h
-        q = self.deformation.charges(self.model, spin)
-        ch, sh = np.cosh(spin * t), np.sinh(spin * t)
-        C = h * float(q @ L @ ch)
-        S = h * float(q @ L @ sh)
-        return (spin / (2 * np.pi)) * np.outer(q, C * ch - S * sh)
+        """dF/dalpha_s at fixed eps: (s / 2pi) [U_0 (V_0 . L) - U_1 (V_1 . L)] with the rows of
+        `Operators.charge_rows` (massive: q_a cosh(s t) and q_a sinh(s t); spin 1: e_a, p_a).
+        Works whether or not the deformation contains this spin (derivatives at alpha_s = 0)."""
+        U, V = self.ops.charge_rows(self.deformation, spin)
+        C = float(np.sum(V[0] * L))
+        S = float(np.sum(V[1] * L))
+        return (spin / (2 * np.pi)) * (C * U[0] - S * U[1])
 
     # -- the Jacobian --------------------------------------------------------------------
     def jacobian(self, dL, A=None):
@@ -428,7 +426,9 @@ class State:
         out["dE_dR"] = float(np.sum(disc.wE * self.dL * de))
         if second:
             # d/dR of J e' + F_R = 0: J e'' = -(K + separable)(L'' e'^2), F_R has no eps in it
-            d2L = -self.dL * (1.0 + self.dL) if disc.sign > 0 else -self.dL * (self.dL - 1.0)
+            # d2L/deps2: e^eps / (1 + e^eps)^2 = -L'(1 + L') (fermions), e^eps / (e^eps - 1)^2 =
+            # L'(L' - 1) (bosons)
+            d2L = -self.dL * (1.0 + self.dL) if disc.sign > 0 else self.dL * (self.dL - 1.0)
             X = d2L * de * de
             d2e = jac.solve(-(disc.ops.convolve(X) + disc.separable(X)[1]), rtol=1e-13)
             out["d2E_dR2"] = float(np.sum(disc.wE * (self.dL * d2e + X)))
@@ -693,7 +693,7 @@ def _reach(model, deformation, radius, grid, tol, seed):
         if out[0] is not None or isinstance(out[1], _Verdict):
             return out
         tried = out
-    big = max(2.0 * radius, LARGE_RADIUS / _min_mass(model))
+    big = max(2.0 * radius, LARGE_RADIUS / _mass_scale(model))
     out = _follow_radius(model, deformation, radius, grid, tol, big, None)
     if out is not None:
         return out
@@ -785,8 +785,25 @@ def grid_pole_distance(model, deformation=None):
 
 
 @functools.lru_cache(maxsize=8192)
-def _cached_grid(pole_distance, min_mass, r_q, tol, level, cutoff_extra, max_spin):
-    return choose_grid(pole_distance, min_mass, r_q, tol, level, cutoff_extra, max_spin=max_spin)
+def _cached_grid(pole_distance, min_mass, r_q, tol, level, cutoff_extra, max_spin, massless,
+                 kernel_decay):
+    return choose_grid(pole_distance, min_mass, r_q, tol, level, cutoff_extra, max_spin=max_spin,
+                       massless=massless, kernel_decay=kernel_decay)
+
+
+def _mass_scale(model):
+    """The smallest mass of the model, massive or light-cone: the scale of "large R"."""
+    min_mass, massless, _ = grid_masses(model)
+    return min(m for m in (min_mass, *massless) if m)
+
+
+def grid_masses(model):
+    """(smallest mass of the massive species or None, the light-cone masses of the massless ones,
+    the kernels' decay rate): what the grid rule needs of the species
+    (`tba.solvers.grid.choose_grid`: ``min_mass``, ``massless``, ``kernel_decay``)."""
+    if not model.is_massless:
+        return float(np.min(model.masses)), (), None
+    return model.massive_mass, model.massless_scales, model.kernel_decay
 
 
 def _grid(model, deformation, r_eff, tol, level, cutoff_extra):
@@ -794,15 +811,9 @@ def _grid(model, deformation, r_eff, tol, level, cutoff_extra):
     octave (a slightly wider cutoff, never a coarser grid), so that neighbouring radii share
     grids, operators and inverses of J0."""
     r_q = 2.0 ** (math.floor(64 * math.log2(r_eff)) / 64)
-    return _cached_grid(grid_pole_distance(model, deformation), _min_mass(model), r_q, tol,
-                        level, cutoff_extra, max(deformation.couplings, default=1))
-
-
-def _min_mass(model):
-    m = model._kernel_cache.get("min_mass")
-    if m is None:
-        m = model._kernel_cache["min_mass"] = float(np.min(model.masses))
-    return m
+    min_mass, massless, kernel_decay = grid_masses(model)
+    return _cached_grid(grid_pole_distance(model, deformation), min_mass, r_q, tol, level,
+                        cutoff_extra, max(deformation.couplings, default=1), massless, kernel_decay)
 
 
 def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None):

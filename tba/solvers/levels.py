@@ -5,12 +5,18 @@ scans (run files' ``states``). Names:
 
 * ``"ground"``: `tba.solvers.ground.solve_ground_state` (every model, every deformation);
 * quantum numbers, e.g. ``"-1/2,1/2"`` or ``"0"``: real-rapidity excited states
-  (`tba.solvers.excited.solve_excited`: single-species models without bound states) and, for the
-  Lee-Yang model, its zero-momentum one-particle state ``"0"``
-  (`tba.solvers.lee_yang.solve_lee_yang_one_particle`, TTbar factor only).
+  (`tba.solvers.excited.solve_excited`: single-species models without bound states), for the
+  Lee-Yang model its zero-momentum one-particle state ``"0"``
+  (`tba.solvers.lee_yang.solve_lee_yang_one_particle`, TTbar factor only), and for the free
+  massless models right movers (I > 0) and left movers (I < 0)
+  (`tba.solvers.massless.solve_massless_level`; bosons take repeated integers, "1,1").
 
 `level_name` writes a level in canonical form (quantum numbers sorted, as fractions), so that
-"1/2,-1/2", "-0.5, 0.5" and ["1/2", "-1/2"] name the same level.
+"1/2,-1/2", "-0.5, 0.5" and ["1/2", "-1/2"] name the same level. Names are parsed without a
+model: the rules of the massive excited states (half-odd numbers for an even number of
+particles, integers for an odd one, distinct) are applied there, and a name that breaks them
+but is made of integers and half-integers (a bosonic "1,1" or "-1,1") is kept for the model to
+accept or refuse (`unavailable`).
 """
 
 from fractions import Fraction
@@ -27,7 +33,27 @@ def parse_level(text):
         if text.strip() == GROUND:
             return GROUND
         text = text.split(",")
-    return parse_state(text)
+    try:
+        return parse_state(text)
+    except ValueError:
+        numbers = _half_integers(text)
+        if numbers is None:
+            raise
+        return numbers
+
+
+def _half_integers(items):
+    """The sorted quantum numbers of ``items`` if each is an integer or half-integer, else None."""
+    out = []
+    for n in items:
+        try:
+            value = Fraction(n.strip()) if isinstance(n, str) else Fraction(n)
+        except (TypeError, ValueError):
+            return None
+        if value.denominator > 2:
+            return None
+        out.append(value)
+    return tuple(sorted(out)) if out else None
 
 
 def level_name(level):
@@ -41,6 +67,10 @@ def unavailable(model, level, deformation=None):
     level = parse_level(level)
     if level == GROUND:
         return None
+    if model.is_massless:
+        from tba.solvers.massless import refusal
+
+        return refusal(model, level, deformation)
     if model.name == "lee-yang":
         if level != (0,):
             return "lee-yang has one excited level here: its one-particle state 0"
@@ -49,6 +79,7 @@ def unavailable(model, level, deformation=None):
         return None
     try:
         check_model(model)
+        parse_state(level)
     except ValueError as exc:
         return str(exc).split(": ", 1)[-1]
     return None
@@ -63,6 +94,10 @@ def solve_level(model, radius, level, deformation=None, *, tol=1e-12, start=None
     why = unavailable(model, level, deformation)
     if why is not None:
         raise ValueError(f"state: {why}")
+    if model.is_massless:
+        from tba.solvers.massless import solve_massless_level
+
+        return solve_massless_level(model, radius, level, deformation, tol=tol, start=start)
     if model.name == "lee-yang":
         from tba.solvers.lee_yang import solve_lee_yang_one_particle
 

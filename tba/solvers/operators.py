@@ -21,6 +21,13 @@ becomes sum_j w_ab(t_i - t_j) L_b(t_j), a block-Toeplitz product. Two rules give
 W is computed by Gauss-Legendre quadrature over [0, pi/h] in panels (the kernels are even, so
 W(tau) = (1/pi) int_0^{pi/h} phit(k) cos(k tau) dk), to a few ulps of max |phi|; the tests
 compare it with the closed form of the cut-off tail for a block.
+
+The driving terms, energy and momentum weights come from the model's e_a(t), p_a(t) (m cosh t,
+m sinh t for massive species; (M/2) e^{+-t} for massless ones), and so do the two rank-one terms
+of the TTbar factor, whose kernel is e_a(t) e_b(t') - p_a(t) p_b(t') for every kind of pair
+(docs/physics.md section 9). A species of multiplicity g_b counts g_b times wherever L_b is
+summed over species: its kernel columns, its energy and momentum weights and the rank-one
+scalars carry g_b.
 """
 
 import math
@@ -68,7 +75,10 @@ def kernel_samples(model, grid, deformation=None):
     transform like the model's."""
     N, h = grid.N, grid.h
     factors = deformation is not None and deformation.has_poles
-    if uses_band_limited_kernels(model):
+    if (model.blocks is not None and not factors
+            and not any(cell for row in model.blocks for cell in row)):
+        full = np.zeros((model.n_species, model.n_species, 2 * N - 1))  # free particles
+    elif uses_band_limited_kernels(model):
         if factors:
             transform = lambda k: model.kernel_transform(k) + deformation.kernel_transform(model, k)  # noqa: E731
         else:
@@ -91,6 +101,9 @@ class Operators:
     def __init__(self, model, grid, deformation=None):
         n, N = model.n_species, grid.N
         kern = kernel_samples(model, grid, deformation)
+        g = np.asarray(model.multiplicity, dtype=float) if model.has_multiplicity else None
+        if g is not None:
+            kern = np.ascontiguousarray(kern * g[None, :, None])
         self.n, self.N = n, N
         self.model, self.grid = model, grid
         self.trivial = not np.any(kern)
@@ -102,10 +115,14 @@ class Operators:
         else:
             self.matrix = None
             self._spectral = SpectralConvolver(kern)
-        t, h, m = grid.t, grid.h, model.masses
-        self.drive = np.outer(m, np.cosh(t))
+        t, h = grid.t, grid.h
+        self.drive = model.energies(t)
+        self.momentum = model.momenta(t)
+        self.weight = h if g is None else h * g[:, None]  # measure of the sums over species
         self.wE = -(h / (2 * np.pi)) * self.drive
-        self.wP = -(h / (2 * np.pi)) * np.outer(m, np.sinh(t))
+        self.wP = -(h / (2 * np.pi)) * self.momentum
+        if g is not None:
+            self.wE, self.wP = self.wE * g[:, None], self.wP * g[:, None]
         self.drive_flat = np.ascontiguousarray(self.drive.reshape(-1))
         self.wE_flat = np.ascontiguousarray(self.wE.reshape(-1))
         self.wP_flat = np.ascontiguousarray(self.wP.reshape(-1))
@@ -114,20 +131,32 @@ class Operators:
         self._terms = {}
         self.t = t
 
-    def separable(self, deformation, spin):
-        """(U, V, c) of the two rank-one terms of a spin-s CDD factor: kernel
-        coefficient q_a q_b (cosh(st) cosh(st') - sinh(st) sinh(st'))."""
-        alpha = deformation.couplings[spin]
-        q = deformation.charges(self.model, spin)
-        key = (spin, tuple(q))
+    def charge_rows(self, deformation, spin):
+        """(U, V) of a spin-s CDD factor, U = [q_a cosh(st), q_a sinh(st)] on the grid (spin 1:
+        [e_a(t), p_a(t)], which is the same for massive species) and V = weight * U: the kernel
+        coefficient q_a q_b (cosh(st) cosh(st') - sinh(st) sinh(st')) is U_0 V_0 - U_1 V_1."""
+        if spin == 1:
+            key = 1
+        else:
+            q = deformation.charges(self.model, spin)
+            key = (spin, tuple(q))
         UV = self._spin.get(key)
         if UV is None:
-            t, h = self.grid.t, self.grid.h
-            ch, sh = np.cosh(spin * t), np.sinh(spin * t)
-            U = np.stack([np.outer(q, ch), np.outer(q, sh)])
-            UV = self._spin[key] = (U, h * U)
+            if spin == 1:
+                U = np.stack([self.drive, self.momentum])
+            else:
+                t = self.grid.t
+                ch, sh = np.cosh(spin * t), np.sinh(spin * t)
+                U = np.stack([np.outer(q, ch), np.outer(q, sh)])
+            UV = self._spin[key] = (U, self.weight * U)
+        return UV
+
+    def separable(self, deformation, spin):
+        """(U, V, c) of the two rank-one terms of a spin-s CDD factor (`charge_rows`)."""
+        alpha = deformation.couplings[spin]
+        U, V = self.charge_rows(deformation, spin)
         coef = alpha * spin / (2 * np.pi)
-        return UV[0], UV[1], np.array([coef, -coef])
+        return U, V, np.array([coef, -coef])
 
     def terms(self, deformation):
         """(U, V, c, U_flat, V_flat) of every separable CDD term of ``deformation`` (cached:

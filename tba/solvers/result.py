@@ -69,7 +69,7 @@ class SolveResult:
 
     def _fields(self):
         """(name, value) pairs shown by the reprs: full precision for R, alpha and E."""
-        label = self.model if self.coupling is None else f"{self.model} B={self.coupling!r}"
+        label = _model_label(self.model, self.coupling)
         cdd = ", ".join(("alpha" if s == 1 else f"alpha_{s}") + f" = {a!r}"
                         for s, a in self.couplings.items()) or "alpha = 0"
         level = ",".join(str(n) for n in self.state) if self.state else "ground"
@@ -128,6 +128,18 @@ class SolveResult:
                 "rapidities": [float(t) for t in self.rapidities] if ok else None}
                if self.state else {}),
         }
+
+
+def _model_label(name, coupling):
+    """``name``, or ``name B=0.6`` / ``name N=3`` / ``name n=24`` with the model's parameter."""
+    if coupling is None:
+        return name
+    from tba.models.catalog import ModelError, model_label
+
+    try:
+        return model_label(name, coupling)
+    except ModelError:  # a user model with a coupling
+        return f"{name} B={coupling!r}"
 
 
 def _number(n):
