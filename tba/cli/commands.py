@@ -471,10 +471,12 @@ def _detach_stdout():
 
 def _main(argv):
     parser = build_parser()
-    interrupts.install()  # Ctrl-C and SIGTERM raised at safe points only: exit 130 / 143
     try:
-        args = parser.parse_args(argv)
-        return args.func(args, sys.stdout)
+        # Ctrl-C and SIGTERM raised at safe points only (exit 130 / 143); the caller's
+        # handlers are back when main returns (main called from Python, tests)
+        with interrupts.installed():
+            args = parser.parse_args(argv)
+            return args.func(args, sys.stdout)
     except UsageError as exc:
         print(f"tba: error: {' '.join(str(exc).split())}", file=sys.stderr)
         return 2

@@ -11,7 +11,11 @@ the interrupt is lost. With `installed` handlers:
   noted and sent again `RETRY` seconds later, until the main thread is back in plain
   Python code, where it is raised;
 * inside a `deferred` block (a chunk being written to the store) it is raised when the
-  block ends, so that what the block writes is written whole.
+  block ends, so that what the block writes is written whole;
+* where Python swallows exceptions (a garbage-collector callback, such as the one
+  dask.distributed registers, a ``__del__``, a weakref callback: they reach
+  ``sys.unraisablehook``) the interrupt raised there is caught by our hook and sent again
+  `RETRY` seconds later, instead of being printed and lost.
 
 SIGINT raises KeyboardInterrupt, SIGTERM `Terminated` (a KeyboardInterrupt, so that every
 clean-up of an interrupted scan applies to both); `signal_number` says which one it was
@@ -38,7 +42,7 @@ class Terminated(KeyboardInterrupt):
         self.signum = signum
 
 
-_state = {"depth": 0, "pending": None, "retrying": False}
+_state = {"depth": 0, "pending": None, "retrying": False, "previous_hook": sys.unraisablehook}
 
 
 def signal_number(exc):
@@ -54,8 +58,22 @@ def _exception(signum):
     if signum == signal.SIGINT:
         exc = KeyboardInterrupt()
         exc.signum = signum
-        return exc
-    return Terminated(signum)
+    else:
+        exc = Terminated(signum)
+    exc.raised_by_handler = True
+    return exc
+
+
+def _unraisable(unraisable):
+    """sys.unraisablehook while the handlers are installed: an interrupt of ours that Python
+    had to swallow is sent again; everything else goes to the previous hook."""
+    exc = unraisable.exc_value
+    if getattr(exc, "raised_by_handler", False):
+        signum = signal_number(exc)
+        _state["pending"] = signum
+        _send_again(signum)
+        return
+    _state["previous_hook"](unraisable)
 
 
 def caused_by_interrupt(exc):
@@ -122,18 +140,23 @@ def install():
         if current is _handler or current == signal.SIG_IGN or current is None:
             continue
         previous[signum] = signal.signal(signum, _handler)
+    if previous and sys.unraisablehook is not _unraisable:
+        _state["previous_hook"] = sys.unraisablehook
+        sys.unraisablehook = _unraisable
     return previous
 
 
 @contextlib.contextmanager
 def installed():
     """The handlers for the duration of the block (main thread), then the previous ones."""
+    hook = sys.unraisablehook
     previous = install()
     try:
         yield
     finally:
         for signum, handler in previous.items():
             signal.signal(signum, handler)
+        sys.unraisablehook = hook
 
 
 @contextlib.contextmanager
