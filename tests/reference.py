@@ -54,7 +54,7 @@ def free_fermion_ns_energy_derivative(radius, mass=1.0):
 
     Source: the series of ``free_fermion_ns_energy``; the Bessel identity is standard
     (Abramowitz & Stegun 9.6.26, from memory). Used to locate the branch point of the
-    TTbar-deformed free fermion: 1 - alpha E'(R') = 0 (PHYSICS.md section 4).
+    TTbar-deformed free fermion: 1 - alpha E'(R') = 0 (docs/physics.md section 4).
     """
     mR = mass * radius
     k = np.arange(1, free_fermion_ns_terms(radius, mass) + 1, dtype=float)
@@ -69,7 +69,7 @@ def deformed_free_fermion_branch(alpha, mass=1.0):
     """Branch point of the TTbar-deformed free-fermion ground state, alpha > 0.
 
     Returns (R'_*, R_c) with E_NS'(R'_*) = 1/alpha and R_c = R'_* - alpha E_NS(R'_*)
-    (PHYSICS.md section 4: dR/dR' = 1 - alpha E'(R') vanishes there). E_NS' decreases
+    (docs/physics.md section 4: dR/dR' = 1 - alpha E'(R') vanishes there). E_NS' decreases
     monotonically from +inf (R -> 0) to 0, so the root is unique; found with
     ``scipy.optimize.brentq``.
     """
@@ -88,7 +88,7 @@ def deformed_free_fermion_branch(alpha, mass=1.0):
 def deformed_free_fermion_energy(radius, alpha, mass=1.0):
     """Ground state of the TTbar-deformed free fermion from the flow relation, or None.
 
-    Solves E = E_NS(R + alpha E) (PHYSICS.md section 4: E_0(R, alpha) = E_0(R + alpha E_0, 0),
+    Solves E = E_NS(R + alpha E) (docs/physics.md section 4: E_0(R, alpha) = E_0(R + alpha E_0, 0),
     Smirnov & Zamolodchikov 2017, Cavaglia et al. 2016, from memory) on the branch connected
     to alpha = 0, as an equation for R' = R + alpha E: g(R') = R' - alpha E_NS(R') - R = 0,
     solved with ``scipy.optimize.brentq``; then E = E_NS(R') (no cancellation in R' - R).
@@ -119,7 +119,7 @@ def plateau_matrix(blocks):
 
     Derivation (here): in the plateau region eps_a is t-independent, and
     eps_a = nu_a - (1/2pi) sum_b int phi_ab(t - t') L_b dt' with nu_a negligible gives
-    eps_a = sum_b N_ab L_b. Every block has int phi_x dt = -2pi (PHYSICS.md section 1),
+    eps_a = sum_b N_ab L_b. Every block has int phi_x dt = -2pi (docs/physics.md section 1),
     so each f_x with multiplicity n contributes +n to N_ab.
     """
     n = len(blocks)
@@ -133,7 +133,7 @@ def plateau_solution(N_ab, dps=40):
     In logarithms, eps_a = sum_b N_ab log(1 + e^{-eps_b}), y_a = e^{eps_a}. Damped
     fixed-point iteration in mpmath to a starting point, then ``mpmath.findroot``
     (Newton) to ``dps`` digits. Source: Al.B. Zamolodchikov, Nucl. Phys. B342 (1990) 695
-    (from memory), as summarised in PHYSICS.md section 3.
+    (from memory), as summarised in docs/physics.md section 3.
     """
     N_ab = np.asarray(N_ab, dtype=int)
     n = len(N_ab)
@@ -169,7 +169,7 @@ def rogers_dilog(x):
 def c_eff_dilogarithm(blocks, dps=40):
     """c_eff = (6/pi^2) sum_a L(1/(1 + y_a)) from the plateau solution of ``blocks``.
 
-    Source: PHYSICS.md section 3 (Zamolodchikov 1990, Klassen & Melzer 1990, from memory).
+    Source: docs/physics.md section 3 (Zamolodchikov 1990, Klassen & Melzer 1990, from memory).
     Returns an mpmath number.
     """
     with mpmath.workdps(dps + 10):
@@ -185,7 +185,7 @@ def c_eff_dilogarithm(blocks, dps=40):
 def leading_order_energy(masses, radius):
     """E_LO = -sum_a (m_a/pi) K_1(m_a R): first iteration of the TBA, first Bessel term.
 
-    Source: PHYSICS.md section 3 ("common practice").
+    Source: docs/physics.md section 3 ("common practice").
     """
     m = np.asarray(masses, dtype=float)
     return float(-np.sum(m * k1(m * radius)) / math.pi)
@@ -235,7 +235,7 @@ def second_order_energy(masses, kernel, radius, h=0.01, x_max=50.0):
 # --------------------------------------------------------------------------------------
 
 def dense_tba_energy(masses, kernel, radius, h, x_max=50.0):
-    """E_0 from a deliberately plain discretisation of the ground-state TBA (PHYSICS.md section 1).
+    """E_0 from a deliberately plain discretisation of the ground-state TBA (docs/physics.md section 1).
 
     Uniform grid t_k = k h covering m_1 R (cosh t - 1) <= ``x_max``, full dense matrix
     (h/2pi) phi_ab(t_i - t_j), Newton's method with numpy.linalg.solve from eps = nu until
@@ -275,7 +275,7 @@ def free_fermion_ns_energy_complex(radius, mass=1.0):
     """(E_NS(z), dE_NS/dz) for complex z with Re z > 0: the Bessel series continued.
 
     E_NS(z) = -(m/pi) sum_k (-1)^(k+1) K_1(k m z) / k, dE/dz = -(m^2/pi) sum_k (-1)^(k+1) K_1'(k m z).
-    Source: PHYSICS.md section 2 (textbook, Mussardo 2010, from memory). Each term is analytic
+    Source: docs/physics.md section 2 (textbook, Mussardo 2010, from memory). Each term is analytic
     in Re z > 0 and decays like e^{-k m Re z}, so the series is the analytic continuation of the
     real one; ``scipy.special.kv`` and ``kvp`` accept complex arguments. About 60/(m Re z) + 50
     terms: the tail is below e^{-60} (common practice, no source).
@@ -316,7 +316,7 @@ def dense_tba_complex(masses, kernel, radius, h, x_max=50.0):
     complex Newton from eps = nu. The derivative solves the linearised equations
     (1 + K diag(L')) de/dR = m cosh t, L' = -1/(1 + e^{eps}), and dE/dR = -(1/2pi) sum m cosh t L' de h:
     the complex derivative, since every step is holomorphic in R. Derivation here
-    (PHYSICS.md section 1 equations continued to complex R; common practice, no source).
+    (docs/physics.md section 1 equations continued to complex R; common practice, no source).
     The grid covers m_1 Re(R) (cosh t - 1) <= ``x_max``.
     """
     m = np.asarray(masses, dtype=float)
@@ -353,7 +353,7 @@ def flow_root(energy_and_derivative, radius, alpha, guess, tol=1e-14, maxiter=60
 
     ``energy_and_derivative(z)`` returns (E_0(z), dE_0/dz). Stops when the Newton step is below
     ``tol |R'|`` (near the fold 1 - alpha E_0' is small, so rounding alone makes steps of a few
-    1e-16 |R'|: 1e-14 leaves room for that). PHYSICS.md section 4: every
+    1e-16 |R'|: 1e-14 leaves room for that). docs/physics.md section 4: every
     solution of the deformed ground-state equations at radius R has the effective radius
     R' = R + alpha E and energy E_0(R'); the physical one is the root continuously connected to
     R' = R, the others are the second branch (real) and, past R_c, a complex-conjugate pair.

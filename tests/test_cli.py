@@ -37,7 +37,7 @@ def test_json_contract_and_values():
 
 def test_no_real_solution_is_null():
     # alpha = 0.5 at R = 0.3 lies below the free fermion's branch point (CFT estimate
-    # R_c ~ sqrt(2 pi c alpha / 3) = 0.72; PHYSICS.md section 4)
+    # R_c ~ sqrt(2 pi c alpha / 3) = 0.72; docs/physics.md section 4)
     proc = run("solve", "--model", "free-fermion", "--radius", "0.3", "--alpha", "0.5", "--json")
     assert proc.returncode == 0, proc.stderr
     rec = json.loads(proc.stdout)
@@ -48,7 +48,7 @@ def test_no_real_solution_is_null():
 def test_table_output_lists_every_radius(capsys):
     assert main(["solve", "--model", "sinh-gordon", "--coupling", "0.6", "--radius", "1", "2"]) == 0
     lines = capsys.readouterr().out.splitlines()
-    assert lines[0].split()[:3] == ["model", "B", "R"]
+    assert lines[0].split()[:3] == ["model", "coupling", "R"]
     assert len(lines) == 3 and all("converged" in line for line in lines[1:])
 
 
@@ -126,7 +126,7 @@ def test_bad_state_one_line_exit_2(args, name, capsys):
 
 def test_branch_point_json():
     # free fermion at alpha = 0.2: R_c from the exact curve E_NS'(R~) = 1/alpha,
-    # R_c = R~ - alpha E_NS(R~) (PHYSICS.md section 4; Bessel series via scipy.special.k1)
+    # R_c = R~ - alpha E_NS(R~) (docs/physics.md section 4; Bessel series via scipy.special.k1)
     proc = run("branch-point", "--model", "free-fermion", "--alpha", "0.2", "--json")
     assert proc.returncode == 0, proc.stderr
     rec = json.loads(proc.stdout)
@@ -145,7 +145,7 @@ def test_branch_point_json():
 
 
 def test_flow_check_residuals_are_small(capsys):
-    # the Burgers equation d_alpha E = E d_R E holds for the ground state (PHYSICS.md section 4)
+    # the Burgers equation d_alpha E = E d_R E holds for the ground state (docs/physics.md section 4)
     assert main(["flow-check", "--model", "lee-yang", "--radius", "1", "2", "--alpha", "-0.1",
                  "0.2", "--json"]) == 0
     recs = [json.loads(line) for line in capsys.readouterr().out.splitlines()]

@@ -205,7 +205,7 @@ def test_solve_into_head_stops_quietly():
     lines = [proc.stdout.readline() for _ in range(2)]
     code, err = _reader_gone(proc)
     assert code == 128 + signal.SIGPIPE
-    assert lines[0].split()[:3] == [b"model", b"B", b"R"] and b"converged" in lines[1]
+    assert lines[0].split()[:3] == [b"model", b"coupling", b"R"] and b"converged" in lines[1]
     assert err == "", err
 
 

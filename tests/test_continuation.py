@@ -1,6 +1,6 @@
 """Continuation through the fold of the deformed ground state: the fold (R_c), the second real
 branch and the complex-conjugate pair, each against the corresponding root of the flow
-relation R' = R + alpha E_0(R') (PHYSICS.md section 4).
+relation R' = R + alpha E_0(R') (docs/physics.md section 4).
 
 Every solution of the TTbar-deformed ground-state equations at radius R is an undeformed
 solution at the effective radius R' = R + alpha E (the CDD term only shifts the radius), so:
@@ -30,7 +30,7 @@ SG = sinh_gordon(0.6)
 LY = lee_yang()
 MODELS = {"free-fermion": FF, "sinh-gordon": SG, "lee-yang": LY}
 
-# sinh-Gordon kernel written out from PHYSICS.md section 2 (not taken from the package):
+# sinh-Gordon kernel written out from docs/physics.md section 2 (not taken from the package):
 # phi(t) = 2 sin(pi B/2) cosh t / (sinh^2 t + sin^2(pi B/2)), B = 0.6
 _S = math.sin(math.pi * 0.6 / 2)
 
@@ -70,7 +70,7 @@ def _check_fold(fold, bp):
 @pytest.mark.parametrize("alpha", [0.05, 0.2, 1.0])
 @pytest.mark.parametrize("name", ["free-fermion", "sinh-gordon"])
 def test_fold_matches_branch_point(name, alpha):
-    # two independent routes to R_c (README/PHYSICS.md section 4): pseudo-arclength
+    # two independent routes to R_c (README/docs/physics.md section 4): pseudo-arclength
     # continuation of the deformed equations to dR/ds = 0, and E_0'(R'_*) = 1/alpha on the
     # undeformed curve
     fold, bp = fold_and_branch(name, alpha)
@@ -91,7 +91,7 @@ def test_fold_matches_branch_point_e8():
 
 def test_fold_in_alpha_at_fixed_radius_is_the_inverse_of_rc():
     # parameter="alpha": the coupling alpha_c at which R = 0.5 is the branch radius must satisfy
-    # R_c(alpha_c) = 0.5 (same fold, crossed in the other parameter; PHYSICS.md section 4)
+    # R_c(alpha_c) = 0.5 (same fold, crossed in the other parameter; docs/physics.md section 4)
     fold = locate_fold(SG, ttbar(0.1), parameter="alpha", radius=0.5)
     assert fold.parameter == "alpha"
     bp = branch_point(SG, fold.value)

@@ -26,7 +26,7 @@ ALPHAS = [-0.5, -0.1, 0.1, 0.3]
 @pytest.mark.parametrize("alpha", ALPHAS)
 @pytest.mark.parametrize("R", [1.0, 3.0])
 def test_flow_relation(name, alpha, R):
-    # E_0(R, alpha) = E_0(R + alpha E_0(R, alpha), 0) (PHYSICS.md section 4; Smirnov &
+    # E_0(R, alpha) = E_0(R + alpha E_0(R, alpha), 0) (docs/physics.md section 4; Smirnov &
     # Zamolodchikov 2017, Cavaglia et al. 2016, from memory). R = 1, 3 lie above the branch
     # radius for alpha <= 0.3 in every model (sinh-Gordon: R_c = 0.64 at alpha = 0.3, below).
     model = MODELS[name]
@@ -41,7 +41,7 @@ def test_flow_relation(name, alpha, R):
     assert r.error >= mismatch - r0.error
     assert r.effective_radius == pytest.approx(R_eff, rel=1e-14)
     # alpha E < 0 for alpha > 0 (E < 0): the effective radius shrinks and E_0 (increasing in
-    # R) drops (sign convention, PHYSICS.md section 4); a wrong sign of the CDD kernel would
+    # R) drops (sign convention, docs/physics.md section 4); a wrong sign of the CDD kernel would
     # move it the other way
     assert (r.energy - solve_ground_state(model, R).energy) * alpha < 0
 
@@ -90,9 +90,9 @@ def dense_reference(kernel, R, couplings, h=0.05, X=50.0):
 
     Uniform grid t_k = k h covering R (cosh t - 1) <= X; the full kernel matrix
     phi(t_i - t_j) + sum_s alpha_s s cosh(s (t_i - t_j)) (kernel convention of
-    PHYSICS.md section 4, no separable trick); damped fixed-point iteration
+    docs/physics.md section 4, no separable trick); damped fixed-point iteration
     eps <- (eps + nu - (h/2pi) Phi L(eps)) / 2 until L stops changing; then
-    E = -(1/2pi) sum h cosh t L (PHYSICS.md section 1). The trapezoid rule converges
+    E = -(1/2pi) sum h cosh t L (docs/physics.md section 1). The trapezoid rule converges
     exponentially for these analytic integrands (common practice, no source).
     """
     n = int(math.ceil(math.acosh(1 + X / R) / h))
@@ -121,7 +121,7 @@ _S06 = math.sin(math.pi * 0.3)
 
 
 def _sg_kernel(t):
-    # sinh-Gordon B = 0.6 (PHYSICS.md section 2)
+    # sinh-Gordon B = 0.6 (docs/physics.md section 2)
     return 2 * _S06 * np.cosh(t) / (np.sinh(t) ** 2 + _S06 ** 2)
 
 
@@ -156,7 +156,7 @@ def test_dense_reference_is_converged(name, kernel, couplings):
 
 @pytest.mark.parametrize("name, kernel, couplings", SPIN3_CASES)
 def test_higher_spin_matches_dense_solver(name, kernel, couplings):
-    # spin-3 CDD kernel alpha_3 * 3 cosh(3t) (PHYSICS.md section 4), default tol 1e-12.
+    # spin-3 CDD kernel alpha_3 * 3 cosh(3t) (docs/physics.md section 4), default tol 1e-12.
     # Regression: at commit f20d048 these came back NOT_CONVERGED (the grid rule ignored that
     # a cosh(3t) term in eps brings the singularities of L towards the real axis)
     r = solve_ground_state(MODELS[name], 1.0, _deformation(couplings))
@@ -168,7 +168,7 @@ def test_higher_spin_matches_dense_solver(name, kernel, couplings):
 
 @pytest.mark.parametrize("name, kernel, couplings", SPIN3_CASES)
 def test_higher_spin_matches_dense_solver_loose_tol(name, kernel, couplings):
-    # a looser tolerance must work too and its error estimate must hold (PHYSICS.md section 4
+    # a looser tolerance must work too and its error estimate must hold (docs/physics.md section 4
     # for the spin-3 kernel convention)
     r = solve_ground_state(MODELS[name], 1.0, _deformation(couplings), tol=1e-8)
     assert r.converged, r.message
@@ -193,7 +193,7 @@ ALPHA_BRANCH = 0.3
 
 
 def test_sinh_gordon_no_real_solution():
-    # below R_c the two solutions are complex (PHYSICS.md section 4)
+    # below R_c the two solutions are complex (docs/physics.md section 4)
     r = solve_ground_state(SG, 0.3, ttbar(ALPHA_BRANCH))
     assert r.status is Status.NO_REAL_SOLUTION
     assert math.isnan(r.energy) and math.isnan(r.error)
@@ -233,7 +233,7 @@ def test_branch_radius_status_switches_cleanly(branch_radius_from_status):
 
 def test_branch_radius_matches_flow_relation(branch_radius_from_status):
     # independent R_c: R(R') = R' - alpha E_0(R') from UNDEFORMED solves has its minimum at
-    # the branch point, E_0'(R'_*) = 1/alpha (PHYSICS.md section 4)
+    # the branch point, E_0'(R'_*) = 1/alpha (docs/physics.md section 4)
     def radius_of(Rp):
         r0 = solve_ground_state(SG, Rp)
         assert r0.converged

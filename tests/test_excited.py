@@ -18,7 +18,7 @@ SG = sinh_gordon(0.6)
 def free_fermion_level(state):
     """Exact free-fermion level (textbook, e.g. Mussardo, Statistical Field Theory (2010)):
     E = E_sector(R) + sum_j cosh t_j with R sinh t_j = 2 pi n_j; NS sector (half-odd n_j) for an
-    even particle number, R sector (integer n_j) for an odd one (PHYSICS.md section 2), with
+    even particle number, R sector (integer n_j) for an odd one (docs/physics.md section 2), with
     E_NS = -(1/pi) sum (-1)^(k+1) K_1(kR)/k, E_R = +(1/pi) sum K_1(kR)/k (scipy.special.k1).
     Returns (R -> (E, dE/dR, 0), momentum quantum number)."""
     n = np.array([float(Fraction(x)) for x in state])
@@ -61,7 +61,7 @@ def test_free_fermion_exact_spectrum(state, R):
 @pytest.mark.parametrize("R", [1.0, 3.0])
 def test_free_fermion_deformed_follows_flow(state, alpha, R):
     # Burgers flow with the P^2/R term solved by characteristics (Smirnov & Zamolodchikov,
-    # Nucl. Phys. B915 (2017) 363; the boosted effective radius of PHYSICS.md section 5),
+    # Nucl. Phys. B915 (2017) 363; the boosted effective radius of docs/physics.md section 5),
     # applied to the exact undeformed level
     level, k = free_fermion_level(state)
     res = solve_excited(FF, R, state, ttbar(alpha))
@@ -76,7 +76,7 @@ def test_free_fermion_deformed_follows_flow(state, alpha, R):
 
 
 def test_free_fermion_positive_level_has_no_real_solution_below_branch_point():
-    # alpha < 0 pushes positive levels into a branch point (PHYSICS.md section 4)
+    # alpha < 0 pushes positive levels into a branch point (docs/physics.md section 4)
     res = solve_excited(FF, 1.0, ("1/2", "-1/2"), ttbar(-0.1))
     assert res.status is Status.NO_REAL_SOLUTION
     assert math.isnan(res.energy) and res.as_record()["energy"] is None
@@ -97,7 +97,7 @@ def _status_bisection(model, state, alpha, lo, hi, rel=2e-10, tol=1e-9):
 
 def test_branch_radius_from_solver_matches_undeformed_curve_free_fermion():
     # alpha < 0: the branch radius predicted from the undeformed curve, min over R~ of
-    # R~ - alpha E(R~) (PHYSICS.md section 4), against where the solver stops finding a real
+    # R~ - alpha E(R~) (docs/physics.md section 4), against where the solver stops finding a real
     # solution; exact free-fermion level as the curve
     state, alpha = ("1/2", "-1/2"), -0.1
     level, _ = free_fermion_level(state)
@@ -116,7 +116,7 @@ def test_branch_radius_from_solver_matches_undeformed_curve_sinh_gordon():
 
 
 def test_sinh_gordon_approaches_bethe_yang_exponentially():
-    # finite-size corrections beyond Bethe-Yang are O(e^{-mR}) (Luscher 1986; PHYSICS.md
+    # finite-size corrections beyond Bethe-Yang are O(e^{-mR}) (Luscher 1986; docs/physics.md
     # section 5: the difference falls by ~10 per 2 units of R between R = 4 and 10)
     state = ("1/2", "-1/2")
     radii = [4.0, 6.0, 8.0, 10.0]
@@ -137,7 +137,7 @@ def test_sinh_gordon_approaches_bethe_yang_exponentially():
 @pytest.mark.parametrize("alpha", [-0.1, 0.1])
 def test_sinh_gordon_deformed_follows_flow_from_own_levels(state, alpha):
     # deformed 2- and 3-particle levels against the flow prediction built from the model's own
-    # undeformed levels (characteristics, PHYSICS.md sections 4-5)
+    # undeformed levels (characteristics, docs/physics.md sections 4-5)
     # (radii where every one of these levels is real; where levels stop being real is tested
     # by the branch-radius tests)
     curve = ExcitedCurve(SG, state)
@@ -204,7 +204,7 @@ def test_models_outside_the_real_rapidity_scheme_are_refused():
 
 @pytest.mark.parametrize("state", [("1/2", "-1/2"), ("0",)], ids=["-1/2,1/2", "0"])
 def test_sinh_gordon_levels_are_analytic_through_the_self_dual_point(state):
-    # S depends on B through sin(pi B / 2) only (PHYSICS.md section 2): a level is analytic and
+    # S depends on B through sin(pi B / 2) only (docs/physics.md section 2): a level is analytic and
     # even in 1 - B. A polynomial in (1 - B)^2 through B in [0.70, 0.84] (poles far enough for
     # the plain trapezoid rule) must predict the levels at 0.9, 0.95 and 1 (poles subtracted;
     # at B = 1 the particle at rest sits on a grid point, where e^-eps has a double zero)
@@ -221,7 +221,7 @@ def test_sinh_gordon_levels_are_analytic_through_the_self_dual_point(state):
 @pytest.mark.parametrize("R", [1.0, 2.0])
 def test_self_dual_sinh_gordon_moving_level_follows_the_flow(alpha, R):
     # P != 0: the deformed level is the undeformed one at R~ = sqrt((R + alpha E)^2 - (alpha P)^2),
-    # boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~ (PHYSICS.md sections 4 and 5)
+    # boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~ (docs/physics.md sections 4 and 5)
     state = ("1/2", "3/2")
     res = solve_excited(sinh_gordon(1.0), R, state, ttbar(alpha))
     assert res.converged, res.message
@@ -235,7 +235,7 @@ def test_self_dual_sinh_gordon_moving_level_follows_the_flow(alpha, R):
 
 def test_self_dual_sinh_gordon_approaches_bethe_yang_and_bounds_its_error():
     # the difference from Bethe-Yang falls like e^{-m R} times a decreasing power of R
-    # (PHYSICS.md section 5; Luscher): per two units of R by a factor between e^{-2} and e^{-2}/4
+    # (docs/physics.md section 5; Luscher): per two units of R by a factor between e^{-2} and e^{-2}/4
     state = ("1/2", "-1/2")
     gaps = [solve_excited(sinh_gordon(1.0), R, state).energy
             - bethe_yang_energy(sinh_gordon(1.0), R, state)[0] for R in (4.0, 6.0, 8.0)]
@@ -253,7 +253,7 @@ def test_strongly_boosted_level_is_a_genuine_solution(B, R, approx):
     # alpha < 0 and P != 0 drive R~ = sqrt((R + alpha E)^2 - (alpha P)^2) towards 0. A solution
     # must keep R + alpha E > |alpha P| with the exact momentum 2 pi sum I_k / R (otherwise the
     # driving term is unbounded below and the numbers depend on the grid's cutoff), and then it
-    # obeys the boosted flow relation (PHYSICS.md sections 4 and 5). The energies lie on the
+    # obeys the boosted flow relation (docs/physics.md sections 4 and 5). The energies lie on the
     # branch that comes from large R at alpha = -0.05 (R = 0.6 at B = 1 is reached only along it).
     alpha, state = -0.05, ("1/2", "3/2")
     res = solve_excited(sinh_gordon(B), R, state, ttbar(alpha))

@@ -48,7 +48,7 @@ from tba.store.writer import open_store, prepare_store
 from reference import free_fermion_ns_energy
 from storetools import data_offset, flip_bit, reseal
 
-# Free fermion at alpha = 0.5 has no real ground state below R ~ 0.6 (PHYSICS.md section 4):
+# Free fermion at alpha = 0.5 has no real ground state below R ~ 0.6 (docs/physics.md section 4):
 # those points cost a continuation each (~0.1 s), which keeps a scan busy long enough.
 RUN = """\
 # fault tests: free fermion, both signs of alpha, {count} radii in chunks of 2 (1-3 s)

@@ -2,7 +2,7 @@
 the flow equation from exact derivatives, the branch point R_c(alpha) and the command line
 around it.
 
-Convention (README, PHYSICS.md section 4): S -> S exp(+i alpha m_a m_b sinh t), so
+Convention (README, docs/physics.md section 4): S -> S exp(+i alpha m_a m_b sinh t), so
 d/dalpha E = E dE/dR + P^2/R, and alpha > 0 is the Hagedorn side.
 """
 
@@ -39,7 +39,7 @@ def nambu_goto_energy(radius, alpha, n, n_bar, dimension=26):
 
         E_NG = sqrt( sigma^2 R^2 + 4 pi sigma (N + Ntilde - (D - 2)/12) + (2 pi (N - Ntilde)/R)^2 )
 
-    Identification with the project's closed form (PHYSICS.md section 4): string tension
+    Identification with the project's closed form (docs/physics.md section 4): string tension
     sigma = 1/(2 alpha); E_NG contains the bulk term sigma R, the TBA/CFT energy does not, so
     E = E_NG - sigma R; c = D - 2 = 24 transverse bosons, (N, Ntilde) = (Delta, Delta_bar).
     Evaluated with 40-digit mpmath, so the cancellation in E_NG - sigma R costs nothing.
@@ -77,7 +77,7 @@ def test_cft_branch_radius_is_string_hagedorn_and_closed_form_ends_there():
         sigma = 1 / (2 * alpha)
         beta_h = 4 * math.pi * math.sqrt(1 / (2 * math.pi * sigma))
         assert cft_branch_radius(24, alpha) == pytest.approx(beta_h, rel=1e-14)
-        # the closed form's square root vanishes there (PHYSICS.md section 4): real just above,
+        # the closed form's square root vanishes there (docs/physics.md section 4): real just above,
         # NaN just below, and E(R_c) = -R_c / (2 alpha) (the square root is zero)
         for c in (0.5, 24):
             Rc = cft_branch_radius(c, alpha)
@@ -89,7 +89,7 @@ def test_cft_branch_radius_is_string_hagedorn_and_closed_form_ends_there():
 
 
 def cft_level(c, delta, delta_bar):
-    """Undeformed CFT level E(R) = 2 pi (D + Dbar - c/12)/R and dE/dR (PHYSICS.md section 4)."""
+    """Undeformed CFT level E(R) = 2 pi (D + Dbar - c/12)/R and dE/dR (docs/physics.md section 4)."""
     def level(Rt):
         E = 2 * math.pi * (delta + delta_bar - c / 12) / Rt
         return E, -E / Rt, 0.0
@@ -108,7 +108,7 @@ def cft_level(c, delta, delta_bar):
 ])
 def test_predict_reproduces_cft_closed_form(radius, alpha, c, delta, delta_bar):
     # the characteristics of the Burgers equation, applied to the undeformed CFT level, must
-    # give the closed form (PHYSICS.md section 4: both solve d_alpha E = E E' + P^2/R with
+    # give the closed form (docs/physics.md section 4: both solve d_alpha E = E E' + P^2/R with
     # P R = 2 pi (Delta - Delta_bar) fixed)
     k = delta - delta_bar
     pred = predict(cft_level(c, delta, delta_bar), radius, alpha, k=k)
@@ -124,7 +124,7 @@ def test_predict_reproduces_cft_closed_form(radius, alpha, c, delta, delta_bar):
 @pytest.mark.parametrize("radius, alpha", [(2.0, 0.2), (0.6, 0.2), (0.46, 0.2), (1.0, -0.5), (0.3, -1.0)])
 def test_predict_ground_state_free_fermion_against_bessel(radius, alpha):
     # outside reference: E = E_NS(R + alpha E) solved with brentq on the Bessel series
-    # (reference.deformed_free_fermion_energy; PHYSICS.md sections 2 and 4)
+    # (reference.deformed_free_fermion_energy; docs/physics.md sections 2 and 4)
     pred = predict_ground_state(FF, radius, alpha)
     exact = deformed_free_fermion_energy(radius, alpha)
     assert abs(pred.energy - exact) <= 1e-12 * abs(exact)
@@ -134,7 +134,7 @@ def test_predict_ground_state_free_fermion_against_bessel(radius, alpha):
 
 def test_predict_ground_state_matches_direct_deformed_solve_sinh_gordon():
     # two routes to the same number: the flow prediction from the undeformed curve and the
-    # deformed TBA solved directly (PHYSICS.md section 4: E(R, alpha) = E(R + alpha E, 0))
+    # deformed TBA solved directly (docs/physics.md section 4: E(R, alpha) = E(R + alpha E, 0))
     curve = UndeformedCurve(SG)
     for radius, alpha in [(0.6, 0.2), (1.0, 0.3), (2.0, -0.3), (0.5, -1.0)]:
         pred = predict_ground_state(SG, radius, alpha, curve=curve)
@@ -165,7 +165,7 @@ def _flow_residual_grid(model):
 
 
 def test_flow_residual_grid_sinh_gordon():
-    # d_alpha E - E d_R E - P^2/R = 0 (PHYSICS.md section 4; Smirnov & Zamolodchikov 2017,
+    # d_alpha E - E d_R E - P^2/R = 0 (docs/physics.md section 4; Smirnov & Zamolodchikov 2017,
     # Cavaglia et al. 2016, from memory) from the exact (linearised) derivatives, on a
     # 20 x 20 grid R in [0.8, 4], alpha in [-0.3, 0.3] (R_c(0.3) = 0.65 < 0.8: all real)
     assert _flow_residual_grid(SG) <= 1e-10
@@ -217,7 +217,7 @@ def test_exact_derivatives_against_finite_differences(model, radius, alpha):
 @pytest.mark.parametrize("alpha", [0.05, 0.2, 1.0])
 def test_branch_point_free_fermion_against_bessel(alpha):
     # outside reference: E_NS'(R'_*) = 1/alpha by brentq on the Bessel series, R_c = R'_* -
-    # alpha E_NS(R'_*) (reference.deformed_free_fermion_branch; PHYSICS.md section 4)
+    # alpha E_NS(R'_*) (reference.deformed_free_fermion_branch; docs/physics.md section 4)
     r_star, r_c = deformed_free_fermion_branch(alpha)
     bp = branch_point(FF, alpha)
     assert bp.status == "found"
@@ -234,7 +234,7 @@ def test_branch_point_free_fermion_against_bessel(alpha):
     (LY, 0.4, (1e-2, 1e-3, 1e-4), 1e-5),
 ], ids=["free-fermion", "lee-yang"])
 def test_branch_radius_small_alpha_tends_to_cft(model, c, alphas, tol_smallest):
-    # R_c -> sqrt(2 pi c alpha / 3) as alpha -> 0 (PHYSICS.md section 4, the CFT closed form with
+    # R_c -> sqrt(2 pi c alpha / 3) as alpha -> 0 (docs/physics.md section 4, the CFT closed form with
     # E_0 -> -pi c/(6R)). The corrections: for Lee-Yang the bulk term -f R of the TBA energy
     # gives R_c/R_cft - 1 = alpha f / 2 = -0.072 alpha at leading order (derived here from
     # E = -pi c/(6R) - f R; the next term, R^(7/5) in E, corrects it by ~alpha^(1/5) relative);
@@ -281,7 +281,7 @@ def test_cli_converges_just_above_rc_and_reports_no_real_solution_below(capsys):
         assert strict["energy"] is None
     above = _cli_solve(capsys, bp.radius * (1 + 1e-6), alpha, tol="1e-10")
     assert above["status"] == "converged", above["message"]
-    # its energy is E_0(R') at the root R' > R'_* of R' - alpha E_0(R') = R (PHYSICS.md
+    # its energy is E_0(R') at the root R' > R'_* of R' - alpha E_0(R') = R (docs/physics.md
     # section 4; g increases on [R'_*, R], brentq). Near the square-root point the root is
     # ill-conditioned (g' ~ 1e-3 there), hence 1e-9 rather than 1e-12.
     curve = UndeformedCurve(SG)

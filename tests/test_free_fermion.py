@@ -31,7 +31,7 @@ def _params(radii):
 
 
 def test_reference_series_is_converged():
-    # Bessel series (PHYSICS.md section 2): the truncated alternating series must not
+    # Bessel series (docs/physics.md section 2): the truncated alternating series must not
     # change when many more terms are added; and dE/dR from the K_1' series agrees with
     # a centred difference (common practice, no source).
     for R in [1e-3, 0.1, 2.0]:
@@ -44,14 +44,14 @@ def test_reference_series_is_converged():
 
 
 def test_reference_ultraviolet_limit():
-    # E_NS -> -pi c/(6R) with c = 1/2 (PHYSICS.md section 3; textbook)
+    # E_NS -> -pi c/(6R) with c = 1/2 (docs/physics.md section 3; textbook)
     R = 1e-3
     assert -6 * R * free_fermion_ns_energy(R) / math.pi == pytest.approx(0.5, abs=1e-5)
 
 
 @pytest.mark.parametrize("R", _params(RADII))
 def test_energy_matches_bessel_series(R):
-    # Bessel series, PHYSICS.md section 2 (checked there to 1e-14); solver tol = 1e-12
+    # Bessel series, docs/physics.md section 2 (checked there to 1e-14); solver tol = 1e-12
     r = solve_ground_state(FF, R)
     assert r.status is Status.CONVERGED, r.message
     exact = free_fermion_ns_energy(R)
@@ -79,7 +79,7 @@ def test_former_identical_grid_radii(R):
 
 @pytest.mark.parametrize("R", [40.0, 80.0])
 def test_large_radius_absolute(R):
-    # Bessel series (PHYSICS.md section 2); E ~ e^{-R} is tiny, so an absolute check
+    # Bessel series (docs/physics.md section 2); E ~ e^{-R} is tiny, so an absolute check
     r = solve_ground_state(FF, R)
     exact = free_fermion_ns_energy(R)
     assert r.converged
@@ -113,7 +113,7 @@ def _deformed_cases():
 
 @pytest.mark.parametrize("alpha, R", _deformed_cases())
 def test_deformed_matches_flow_of_exact_series(alpha, R):
-    # flow relation E(R, alpha) = E(R + alpha E, 0) (PHYSICS.md section 4; Smirnov &
+    # flow relation E(R, alpha) = E(R + alpha E, 0) (docs/physics.md section 4; Smirnov &
     # Zamolodchikov 2017, Cavaglia et al. 2016, from memory) with the exact series inside
     r = solve_ground_state(FF, R, ttbar(alpha))
     assert r.status is Status.CONVERGED, r.message
@@ -126,7 +126,7 @@ def test_deformed_matches_flow_of_exact_series(alpha, R):
 
 def test_deformed_reference_sanity():
     # the reference itself: at the branch point the CFT-like estimate R_c ~ sqrt(2 pi c alpha / 3)
-    # holds only roughly (c = 1/2, PHYSICS.md section 4), and for alpha < 0 the deformed energy
+    # holds only roughly (c = 1/2, docs/physics.md section 4), and for alpha < 0 the deformed energy
     # lies above the undeformed one at the same R (alpha E > 0 enlarges the radius).
     for alpha in [0.1, 0.3, 0.5]:
         r_star, Rc = deformed_free_fermion_branch(alpha)

@@ -17,7 +17,7 @@ SG = sinh_gordon(0.6)
 
 
 def c_eff(result):
-    # E_0 -> -pi c_eff / (6 R) as R -> 0 (PHYSICS.md section 3)
+    # E_0 -> -pi c_eff / (6 R) as R -> 0 (docs/physics.md section 3)
     return -6 * result.radius * result.energy / math.pi
 
 
@@ -26,7 +26,7 @@ def c_eff(result):
 # --------------------------------------------------------------------------------------
 
 def test_dilogarithm_reference_lee_yang():
-    # PHYSICS.md section 3: Lee-Yang plateau y = golden ratio, L(1/phi^2) = pi^2/15, c = 2/5
+    # docs/physics.md section 3: Lee-Yang plateau y = golden ratio, L(1/phi^2) = pi^2/15, c = 2/5
     with mpmath.workdps(40):
         golden = (1 + mpmath.sqrt(5)) / 2
         assert plateau_matrix(LY.blocks).tolist() == [[1]]  # one f_(2/3) block
@@ -41,9 +41,9 @@ def test_dilogarithm_reference_lee_yang():
 
 
 def test_dilogarithm_reference_e8_from_model_blocks():
-    # E8 from the model's own (generated) blocks: c = 1/2 (PHYSICS.md section 2 table;
+    # E8 from the model's own (generated) blocks: c = 1/2 (docs/physics.md section 2 table;
     # Zamolodchikov 1989, Klassen & Melzer 1990, from memory). Each S_ab block contributes +1
-    # to N_ab; S_11 = f_(2/3) f_(2/5) f_(1/15) gives N_11 = 3 (PHYSICS.md section 2).
+    # to N_ab; S_11 = f_(2/3) f_(2/5) f_(1/15) gives N_11 = 3 (docs/physics.md section 2).
     N = plateau_matrix(E8.blocks)
     assert N[0, 0] == 3 and N[0, 1] == 4
     assert (N == N.T).all()
@@ -54,7 +54,7 @@ def test_dilogarithm_reference_e8_from_model_blocks():
 @pytest.mark.parametrize("model, c_exact", [(LY, 0.4), (E8, 0.5)], ids=["lee-yang", "ising-e8"])
 def test_uv_central_charge(model, c_exact):
     # -6 R E_0/pi at R = 1e-5 against 2/5 and 1/2 and against the dilogarithm value computed
-    # from the model's blocks (PHYSICS.md section 3); corrections are powers of R (bulk term
+    # from the model's blocks (docs/physics.md section 3); corrections are powers of R (bulk term
     # ~R^2, conformal perturbation theory), far below 1e-6 here (common practice)
     r = solve_ground_state(model, 1e-5)
     assert r.converged, r.message
@@ -66,7 +66,7 @@ def test_uv_central_charge(model, c_exact):
 
 def test_sinh_gordon_ceff_monotonic_towards_one():
     # sinh-Gordon: c_eff -> 1 as R -> 0 logarithmically slowly, from below
-    # (PHYSICS.md section 2 table; Zamolodchikov 1990 / Arinshtein et al. 1979, from memory)
+    # (docs/physics.md section 2 table; Zamolodchikov 1990 / Arinshtein et al. 1979, from memory)
     radii = [1.0, 0.3, 0.1, 1e-2, 1e-3, 1e-4, 1e-5, 1e-6]
     cs = []
     for R in radii:
@@ -80,7 +80,7 @@ def test_sinh_gordon_ceff_monotonic_towards_one():
 
 
 def test_sinh_gordon_weak_strong_duality():
-    # S depends on B only through sin(pi B/2): B -> 2 - B is a symmetry (PHYSICS.md section 2)
+    # S depends on B only through sin(pi B/2): B -> 2 - B is a symmetry (docs/physics.md section 2)
     for R in [0.05, 0.5, 2.0]:
         a = solve_ground_state(sinh_gordon(0.6), R)
         b = solve_ground_state(sinh_gordon(1.4), R)
@@ -100,7 +100,7 @@ def test_sinh_gordon_weak_strong_duality():
 @pytest.mark.parametrize("B", [0.9, 1.0, 1.2])
 @pytest.mark.parametrize("R", [1e-4, 1e-2, 0.5])
 def test_sinh_gordon_near_self_dual_point_converges(B, R):
-    # B = 1 (self-dual point, PHYSICS.md section 2) is a valid coupling and the default
+    # B = 1 (self-dual point, docs/physics.md section 2) is a valid coupling and the default
     # tolerance must be reachable there (common practice). Regression: at commit b42f842
     # Newton stopped once the residual fell below 64 eps max|nu| (nu at the grid edge is
     # huge) with the energy still ~5e-12 off, and these points came back NOT_CONVERGED.
@@ -116,7 +116,7 @@ def test_sinh_gordon_near_self_dual_point_converges(B, R):
 
 @pytest.mark.parametrize("model", [LY, SG, E8], ids=["lee-yang", "sinh-gordon", "ising-e8"])
 def test_large_radius_expansion(model):
-    # Leading order -sum_a m_a K_1(m_a R)/pi (PHYSICS.md section 3, common practice) and the
+    # Leading order -sum_a m_a K_1(m_a R)/pi (docs/physics.md section 3, common practice) and the
     # next order derived in tests/reference.py:second_order_energy (derivation there; common
     # practice, no source): Bessel k = 2 term plus one iteration of the kernel. The remainder
     # is O(e^{-3R}); the O(e^{-2R}) correction is checked in size AND sign.
@@ -179,7 +179,7 @@ def test_dense_reference_is_converged():
 # --------------------------------------------------------------------------------------
 
 def test_user_blocks_equal_lee_yang():
-    # Lee-Yang is S = f_(2/3) (PHYSICS.md section 2; Zamolodchikov 1990)
+    # Lee-Yang is S = f_(2/3) (docs/physics.md section 2; Zamolodchikov 1990)
     um = user_model(masses=[1], blocks={Fraction(2, 3): 1})
     assert um.pole_distance == pytest.approx(LY.pole_distance)
     for R in [1e-3, 0.5, 2.0, 10.0]:
@@ -190,7 +190,7 @@ def test_user_blocks_equal_lee_yang():
 
 def test_user_kernel_equal_sinh_gordon():
     # sinh-Gordon kernel phi = 2 sin(pi B/2) cosh t / (sinh^2 t + sin^2(pi B/2)),
-    # poles at distance pi B/2 (PHYSICS.md section 2)
+    # poles at distance pi B/2 (docs/physics.md section 2)
     B = 0.6
     s = math.sin(math.pi * B / 2)
     um = user_model(masses=[1], kernel=lambda t: 2 * s * np.cosh(t) / (np.sinh(t) ** 2 + s * s),

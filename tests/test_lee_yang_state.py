@@ -18,7 +18,7 @@ def _above(res):
 
 
 def test_mass_gap_and_mu_term():
-    # E_1 - E_0 -> m at large R (PHYSICS.md section 5), approached through the mu-term of the
+    # E_1 - E_0 -> m at large R (docs/physics.md section 5), approached through the mu-term of the
     # bound-state pole of S at 2 pi i / 3: ~ e^{-m R sin(pi/3)} = e^{-sqrt(3) m R / 2}
     # (Luscher 1986; Klassen & Melzer 1991 - from memory)
     gaps = {}
@@ -33,7 +33,7 @@ def test_mass_gap_and_mu_term():
 
 
 def test_uv_limit_is_the_identity_state():
-    # UV: E_1 R -> 2 pi (0 - c/12), c = -22/5, i.e. 11 pi / 15 (PHYSICS.md section 5), within
+    # UV: E_1 R -> 2 pi (0 - c/12), c = -22/5, i.e. 11 pi / 15 (docs/physics.md section 5), within
     # 1e-4 at R = 1e-3
     res = solve_lee_yang_one_particle(1e-3)
     assert res.converged, res.message
@@ -75,7 +75,7 @@ def test_level_is_analytic_through_the_pinch():
 @pytest.mark.parametrize("alpha", [-0.1, 0.1])
 @pytest.mark.parametrize("R", [1.0, 4.0])
 def test_deformed_follows_flow(alpha, R):
-    # P = 0: E(R, alpha) = E(R + alpha E, 0) (PHYSICS.md section 4), on both sides of R*
+    # P = 0: E(R, alpha) = E(R + alpha E, 0) (docs/physics.md section 4), on both sides of R*
     res = solve_lee_yang_one_particle(R, ttbar(alpha))
     assert res.converged, res.message
     ref = solve_lee_yang_one_particle(R + alpha * res.energy)
@@ -85,7 +85,7 @@ def test_deformed_follows_flow(alpha, R):
 
 def test_branch_point_for_negative_alpha():
     # alpha < 0: R(R') = R' - alpha E_1(R') has a minimum R_c over the undeformed radius R'
-    # (PHYSICS.md section 4: the flow by characteristics); below R_c the level has no real
+    # (docs/physics.md section 4: the flow by characteristics); below R_c the level has no real
     # solution, above it does
     alpha = -0.1
     opt = minimize_scalar(lambda r: r - alpha * solve_lee_yang_one_particle(r).energy,

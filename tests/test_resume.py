@@ -22,7 +22,7 @@ from tba.scans.runfile import load_run, loads_run
 from tba.store.driver import ScanInterrupted, run_scan
 from tba.store.hdf5 import BP_FOUND, BP_NONE, BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, read_store
 
-# Free fermion at alpha = 0.5 has no real ground state below R ~ 0.6 (PHYSICS.md section 4,
+# Free fermion at alpha = 0.5 has no real ground state below R ~ 0.6 (docs/physics.md section 4,
 # CFT estimate 0.72): each of those points costs the solver a continuation (~0.1 s), which
 # keeps the scan running long enough to be killed half-way.
 RUN = """\

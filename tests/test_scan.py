@@ -88,7 +88,7 @@ def test_flow_residuals_are_small_and_statuses_say_why(tmp_path):
     d = read_store(run.output)
     ok = d["flow_status"] == STATUS_CODES[Status.CONVERGED]
     assert ok.sum() >= 15
-    # E(R, alpha) = E_0(R + alpha E, 0) exactly for the TTbar ground state (PHYSICS.md section 4):
+    # E(R, alpha) = E_0(R + alpha E, 0) exactly for the TTbar ground state (docs/physics.md section 4):
     # the residual must lie within the error estimates of both solves (plus the propagated
     # |alpha E_0'| error, which is below the deformed point's own estimate away from the fold)
     bound = 2 * d["error"] + d["flow_error"] + 1e-15
@@ -132,7 +132,7 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     assert "converged" in report and "12 of 12 done (complete)" in report
     assert "flow residual" in report and "worst error estimate" in report
     # branch points at alpha = 0.3 (R_c ~ 0.48 for Lee-Yang, 0.53 for the free fermion, by
-    # the CFT estimate sqrt(2 pi c alpha / 3), PHYSICS.md section 4), with T_H = 1/R_c and the
+    # the CFT estimate sqrt(2 pi c alpha / 3), docs/physics.md section 4), with T_H = 1/R_c and the
     # check against the scan's last real point
     assert "branch points of the ground state" in report and "last real point" in report
     assert "T_H = 1/R_c" in report
@@ -308,14 +308,14 @@ def test_scan_of_excited_levels(levels_store):
     for s in (1, 3):
         assert np.all(st[ly, :, :, s] == NOT_AVAILABLE)
         assert all("one-particle" in m for m in d["message"][ly, :, :, s].ravel())
-    # P R = 2 pi sum I_k (momentum quantisation, PHYSICS.md section 5): 2 pi * 2 for 1/2,3/2
+    # P R = 2 pi sum I_k (momentum quantisation, docs/physics.md section 5): 2 pi * 2 for 1/2,3/2
     ok = st[sg, :, :, 3] == STATUS_CODES[Status.CONVERGED]
     assert ok.all()
     P = d["momentum"][sg, :, :, 3]
     assert np.allclose(P * d.radius[None, :], 4 * np.pi, rtol=1e-12, atol=0)
     assert np.all(d["momentum"][sg, :, :, :3][d["status"][sg, :, :, :3] == 0] == pytest.approx(0, abs=1e-12))
     # the flow relation, boosted for P != 0, is exact: residual within the error estimates
-    # (PHYSICS.md section 4; the deformed driving term (R + alpha E) cosh t - alpha P sinh t,
+    # (docs/physics.md section 4; the deformed driving term (R + alpha E) cosh t - alpha P sinh t,
     # section 5)
     checked = d["flow_status"] == STATUS_CODES[Status.CONVERGED]
     assert checked[sg, :, :, 3].all() and checked[ly, :, :, 2].sum() >= 5

@@ -54,7 +54,7 @@ DIMS = ("model", "alpha", "radius", "state")
 def free_fermion_ns(R):
     # NS-sector ground state of the free Majorana fermion, bulk term excluded:
     # E(R) = -(1/pi) sum_k (-1)^(k+1) K_1(k R)/k  (textbook, e.g. Mussardo, Statistical Field
-    # Theory (2010); PHYSICS.md section 2), with scipy.special.k1
+    # Theory (2010); docs/physics.md section 2), with scipy.special.k1
     k = np.arange(1, int(60 / R) + 50)
     return -math.fsum(((-1.0) ** (k + 1) * k1(k * R) / k).tolist()) / math.pi
 
@@ -69,7 +69,7 @@ def free_fermion_ns_slope(R):
 def free_fermion_branch_point(alpha):
     """Exact R_c of the TTbar-deformed free-fermion ground state from the Bessel series:
     E_0'(R~) = 1/alpha, R_c = R~ - alpha E_0(R~) (characteristics of the Burgers flow,
-    PHYSICS.md section 4; E_0 from Mussardo, Statistical Field Theory (2010))."""
+    docs/physics.md section 4; E_0 from Mussardo, Statistical Field Theory (2010))."""
     Rt = brentq(lambda R: free_fermion_ns_slope(R) - 1 / alpha, 0.02, 5.0, xtol=1e-15,
                 rtol=4 * np.finfo(float).eps)
     return Rt - alpha * free_fermion_ns(Rt), free_fermion_ns(Rt), Rt
@@ -237,7 +237,7 @@ def test_free_fermion_energies_against_bessel_series(store):
 
 def test_flow_prediction_of_the_free_fermion(store):
     # the flow prediction is the undeformed energy at R' = R + alpha E: for the free fermion
-    # that is the Bessel series at R' (PHYSICS.md section 2 and 4)
+    # that is the Bessel series at R' (docs/physics.md section 2 and 4)
     path, run = store
     data = read_store(path)
     checked = 0
@@ -260,7 +260,7 @@ def test_missing_values_are_nan_with_a_status(store):
     status = data["status"]
     no_real = status == STATUS_CODES[Status.NO_REAL_SOLUTION]
     # alpha = 0.5 at R = 0.3 lies past the branch point (CFT estimate sqrt(2 pi c alpha/3),
-    # PHYSICS.md section 4: 0.72 for the free fermion, 0.65 for Lee-Yang)
+    # docs/physics.md section 4: 0.72 for the free fermion, 0.65 for Lee-Yang)
     assert no_real[:, 2, 0, 0].all()
     assert np.isnan(data["energy"][no_real]).all() and np.isnan(data["error"][no_real]).all()
     assert (data["flow_status"][no_real] == 12).all()  # no-energy

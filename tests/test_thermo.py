@@ -1,7 +1,7 @@
 """Mirror-channel thermodynamics (tba.physics.thermo): f, s, u, c from the ground state at R = 1/T.
 
     f = T E(1/T) + f_bulk,  s = R E' - E,  u = E' + f_bulk,  c = -R^2 E''     (tba.physics.thermo docstring;
-    PHYSICS.md section 6)
+    docs/physics.md section 6)
 
 checked against the exact free-fermion Bessel series, the bulk term against a fit of the
 small-R expansion, and the Hagedorn bound T_H = 1/R_c for alpha > 0.
@@ -23,7 +23,7 @@ FF = free_fermion()
 
 def free_fermion_series(radius):
     """(E_NS, E_NS', E_NS'') from the Bessel series E_NS(R) = -(1/pi) sum_k (-1)^(k+1) K_1(kR)/k
-    (PHYSICS.md section 2; textbook, Mussardo 2010, from memory), differentiated term by term
+    (docs/physics.md section 2; textbook, Mussardo 2010, from memory), differentiated term by term
     with scipy.special.kvp (d^n/dx^n K_1): E' = -(1/pi) sum (-1)^(k+1) K_1'(kR),
     E'' = -(1/pi) sum (-1)^(k+1) k K_1''(kR). About 60/R + 50 terms (tail < e^{-60});
     math.fsum for the sums."""
@@ -59,7 +59,7 @@ def test_free_fermion_thermodynamics_against_bessel_series():
 
 def test_free_fermion_thermodynamics_high_temperature_limit():
     # T -> infinity: f -> -pi c T^2 / 6, s -> pi c T / 3, c_v -> pi c T / 3 with c = 1/2 (CFT,
-    # E = -pi c/(6R); PHYSICS.md section 3), corrections O(m^2 log T) relative to T^2
+    # E = -pi c/(6R); docs/physics.md section 3), corrections O(m^2 log T) relative to T^2
     T = 1e3
     (p,) = thermodynamics(FF, [T], tol=1e-13)
     c = 0.5
@@ -69,7 +69,7 @@ def test_free_fermion_thermodynamics_high_temperature_limit():
 
 
 def test_deformed_free_fermion_thermodynamics_from_the_flow_relation():
-    # alpha > 0 below the Hagedorn temperature: E(R) = E_NS(R'), R' = R + alpha E (PHYSICS.md
+    # alpha > 0 below the Hagedorn temperature: E(R) = E_NS(R'), R' = R + alpha E (docs/physics.md
     # section 4, reference.deformed_free_fermion_energy), so u = dE/dR = E_NS'(R') / (1 - alpha E_NS'(R'))
     # (chain rule, derived here); E_NS' from the series above
     alpha = 0.2
@@ -153,7 +153,7 @@ def test_e8_bulk_term_from_small_r_fit():
 # --------------------------------------------------------------------------------------
 
 def test_no_real_solution_above_hagedorn_temperature_sinh_gordon():
-    # T_H = 1/R_c (PHYSICS.md section 6), R_c from the undeformed curve (branch_point)
+    # T_H = 1/R_c (docs/physics.md section 6), R_c from the undeformed curve (branch_point)
     sg = sinh_gordon(0.6)
     alpha = 0.2
     t_h = 1 / branch_point(sg, alpha).radius
@@ -164,7 +164,7 @@ def test_no_real_solution_above_hagedorn_temperature_sinh_gordon():
     for p in points[2:]:
         assert math.isnan(p.free_energy) and math.isnan(p.specific_heat)
     # approaching T_H from below: E ~ E_c + const sqrt(R - R_c) at a square-root branch point
-    # (PHYSICS.md section 4), so u = E' ~ (T_H - T)^(-1/2) and c = -R^2 E'' ~ (T_H - T)^(-3/2)
+    # (docs/physics.md section 4), so u = E' ~ (T_H - T)^(-1/2) and c = -R^2 E'' ~ (T_H - T)^(-3/2)
     # (derived here): a factor 100 in T_H - T multiplies them by ~10 and ~1000
     (near,) = thermodynamics(sg, [t_h * (1 - 1e-6)], ttbar(alpha))
     assert near.energy_density / points[1].energy_density == pytest.approx(10, rel=0.05)

@@ -54,7 +54,7 @@ def test_tol_edges_accepted():
 
 @pytest.mark.parametrize("B", [0, 2, -1, 2.5, math.nan, math.inf, -0.0])
 def test_sinh_gordon_coupling_out_of_range(B):
-    # 0 < B < 2 (sinh_gordon docstring; PHYSICS.md section 2)
+    # 0 < B < 2 (sinh_gordon docstring; docs/physics.md section 2)
     with pytest.raises(ValueError, match="B|coupling"):
         sinh_gordon(B)
 

@@ -298,11 +298,11 @@ def fmt(x, spec):
     return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else format(x, spec)
 
 
-TABLE_HEADER = f"{'model':<13} {'B':>5} {'R':>12} {'alpha':>9} {'E_0':>22} {'error':>8} {'it':>3}  status"
+TABLE_HEADER = f"{'model':<20} {'coupling':>8} {'R':>12} {'alpha':>9} {'E_0':>22} {'error':>8} {'it':>3}  status"
 
 
 def table_row(rec):
-    return (f"{rec['model']:<13} {fmt(rec['coupling'], '5.3g'):>5} {rec['radius']:>12.6g} "
+    return (f"{rec['model']:<20} {fmt(rec['coupling'], '8.6g'):>8} {rec['radius']:>12.6g} "
             f"{rec['alpha']:>9.4g} {fmt(rec['energy'], '22.15g'):>22} {fmt(rec['error'], '8.1e'):>8} "
             f"{rec['iterations']:>3}  {rec['status']}")
 
