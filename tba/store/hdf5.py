@@ -562,7 +562,7 @@ def write_atomically(path, image, keep=None):
     if free is not None and free < len(image) + SPACE_MARGIN:
         raise StoreError(f"{path}: needs {_size(len(image) + SPACE_MARGIN)} of disk space and its "
                          f"file system has {_size(free)} free; free some space or write the file "
-                         f"elsewhere (--out)")
+                         f"elsewhere (--output)")
     tmp = partial_path(path)
     try:
         if tmp.exists():  # ours (this host and pid), left by a dead process of the same pid
@@ -1043,7 +1043,7 @@ def damage_message(snap):
     run_file = snap.attrs.get("run_file") or "RUNFILE"
     shard = f" --shard {snap.shard.label}" if snap.shard is not None else ""
     return (f"{path}: {' and '.join(what)} fails its checksum (the file is damaged there); "
-            f"tba run {run_file}{shard} --out {path} recomputes it")
+            f"tba run {run_file}{shard} --output {path} recomputes it")
 
 
 def check_store(path, run, shard=None):
@@ -1058,27 +1058,27 @@ def check_store(path, run, shard=None):
     except StoreError as exc:
         if not exc.foreign or "--force" in str(exc):
             raise
-        raise StoreError(f"{exc}; refusing to overwrite it (use --force to replace it, or --out)",
+        raise StoreError(f"{exc}; refusing to overwrite it (use --force to replace it, or --output)",
                          foreign=True) from None
     found = snap.shard
     if found != shard:
         hint = ("merge the shards with tba merge, or resume it with --shard "
                 f"{found.label}" if found is not None and shard is None else
-                "use --out for another file, or --force to replace it")
+                "use --output for another file, or --force to replace it")
         raise StoreError(f"{path}: is {_shard_words(found)} of a run, not "
                          f"{_shard_words(shard)}; {hint}", foreign=True)
     if snap.version != SCHEMA_VERSION:
         raise StoreError(f"{path}: schema version {snap.version}, this tba writes "
                          f"{SCHEMA_VERSION} and cannot resume it; use --force to replace it, "
-                         f"or --out", foreign=True)
+                         f"or --output", foreign=True)
     if snap.attrs.get("run_id") != run.run_id:
         keys = differing_keys(snap.run.to_dict(), run.to_dict()) or ["run_id"]
         raise StoreError(f"{path}: written by a different run (differs in: {', '.join(keys)}); "
-                         f"refusing to overwrite it (use --force to replace it, or --out)", foreign=True)
+                         f"refusing to overwrite it (use --force to replace it, or --output)", foreign=True)
     stored = snap.attrs.get("package_version")
     if stored != package_version():
         raise StoreError(f"{path}: written by tba {stored}, this is tba {package_version()}; "
-                         f"resuming would mix versions (use --force to start again, or --out)",
+                         f"resuming would mix versions (use --force to start again, or --output)",
                          foreign=True)
     return snap
 
@@ -1131,13 +1131,14 @@ class StoreData:
         """Mask of the chunks this file is responsible for (all of them in a full store)."""
         return self.progress.get("owned", np.ones(self.n_chunks, dtype="u1")).astype(bool)
 
-    def records(self, include_not_computed=False):
-        """One dict per point with the keys of ``tba solve --json`` plus ``state``."""
+    def records(self, include_not_computed=False, deprecated=True):
+        """One dict per point with the keys of ``tba solve --json`` plus ``state``
+        (``deprecated``: with the earlier key ``couplings`` beside ``cdd_couplings``)."""
         st = self.data["status"]
         names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
         for m in range(len(self.model)):
             for a, alpha in enumerate(self.alpha):
-                couplings = dict(self.run.deformation(float(alpha)).couplings)
+                cdd = {str(k): float(v) for k, v in self.run.deformation(float(alpha)).couplings.items()}
                 for r, R in enumerate(self.radius):
                     for s, state in enumerate(self.state):
                         i = (m, a, r, s)
@@ -1145,12 +1146,12 @@ class StoreData:
                         if code in (NOT_COMPUTED, NOT_AVAILABLE) and not include_not_computed:
                             continue
                         ok = names.get(code) == "converged"
-                        yield {
+                        rec = {
                             "model": self.model_name[m],
-                            "coupling": self.model_coupling[m],
+                            "coupling": _model_coupling(self.model_coupling[m]),
                             "radius": float(R),
                             "alpha": float(alpha),
-                            "couplings": {str(k): v for k, v in couplings.items()},
+                            "cdd_couplings": dict(cdd),
                             "energy": float(self.data["energy"][i]) if ok else None,
                             "error": float(self.data["error"][i]) if ok else None,
                             "momentum": float(self.data["momentum"][i]) if ok else None,
@@ -1159,6 +1160,14 @@ class StoreData:
                             "message": self.data["message"][i],
                             "state": state,
                         }
+                        if deprecated:
+                            rec["couplings"] = dict(cdd)
+                        yield rec
+
+
+def _model_coupling(value):
+    """A model's coupling as a plain float, None for none (NaN in the file)."""
+    return None if value is None or math.isnan(float(value)) else float(value)
 
 
 def read_store(path):
@@ -1177,7 +1186,7 @@ def read_store(path):
             raise
         where = f" --shard {found.shard.label}" if found.shard is not None else ""
         run_file = found.run_file or "RUNFILE"
-        raise DamagedStore(f"{exc}; tba run {run_file}{where} --out {path} rebuilds it from the "
+        raise DamagedStore(f"{exc}; tba run {run_file}{where} --output {path} rebuilds it from the "
                            f"{len(found.chunks)} of {found.marked} stored chunks whose checksums "
                            f"verify", recoverable=len(found.chunks)) from None
     if snap.bad_chunks or snap.bad_branch:
