@@ -138,14 +138,15 @@ for Lee-Yang, "0" is its one-particle state).
 Deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t) (phi_ab += alpha m_a m_b cosh t),
 higher odd spins s: exp(i alpha_s sinh(s t)) (single-species models).
 Then d/dalpha E = E dE/dR + P^2/R. With TTbar alone the deformed level is the undeformed one
-at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~
-(for P = 0: E(R, alpha) = E_0(R + alpha E, 0)). flow_radius is R~, flow_prediction that
-expression with E_0 solved at R~ (the same level undeformed), flow_residual = |energy -
+at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_n(R~, 0) + alpha P^2 R / R~
+(for P = 0: E(R, alpha) = E_n(R + alpha E, 0)). flow_radius is R~, flow_prediction E_flow that
+expression with E_n(R~, 0) solved at R~ (the same level undeformed), flow_residual = |energy -
 flow_prediction|, flow_error the error estimate of the prediction: the undeformed solve's
 times (R + alpha E) / R~, plus for P != 0 |d prediction / dE| times the error of E.
 alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
-/branch_points: R_c(alpha) = R~ - alpha E_0(R~) where E_0'(R~) = 1/alpha (TTbar only);
-energy there E(R_c, alpha) = E_0(R~); Hagedorn temperature T_H = 1/R_c.
+/branch_points: R_c(alpha) = R~ - alpha E_0(R~, 0) where E_0'(R~, 0) = 1/alpha (TTbar only;
+E_0 the ground state); energy there E(R_c) = E_0(R_c, alpha) = E_0(R~, 0) (read as
+branch_energy); Hagedorn temperature T_H = 1/R_c. Names: docs/glossary.md.
 error estimates |energy - exact| and is meant to bound it; tol is relative."""
 
 UNITS = ("radius, flow_radius, branch_points/{branch_radius, branch_radius_error, "
