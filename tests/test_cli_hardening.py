@@ -459,7 +459,7 @@ def test_branch_point_by_continuation_prints_strict_json():
                               "--method", "continuation", "--json")
     assert code == 0, err
     rec = _strict(out)
-    assert rec["status"] == "found" and rec["effective_radius"] is None and rec["radius"] > 0
+    assert rec["status"] == "found" and rec["branch_effective_radius"] is None and rec["branch_radius"] > 0
 
 
 def test_every_json_and_export_path_is_strict(store):

@@ -279,3 +279,15 @@ def test_output_options_spelled_one_way_old_spellings_hidden(store, tmp_path, ca
     one_line_error(tba_main("export", "--json", store, "--out", tmp_path), "--out")
     one_line_error(tba_main("export", "--json", store, "-o", tmp_path), "-o")
     one_line_error(tba_main("run", "x.toml", "--out", "a.h5", "--output", "b.h5"), "given twice")
+
+
+def test_chunk_messages_name_the_level_and_print_ten_digits(tmp_path):
+    from tba.scans.points import describe_chunk
+
+    run = loads_run(RUN.replace("start = 1.0", "start = 0.39354558").replace("stop = 2.0",
+                                                                          "stop = 0.3935456"),
+                    base_dir=tmp_path)
+    texts = [describe_chunk(run, c) for c in run.chunks()]
+    assert any(t.endswith(", state 0)") for t in texts)
+    assert any(t.endswith(", ground state)") for t in texts)
+    assert all("R = 0.39354558 .. 0.3935456" in t for t in texts), texts

@@ -381,9 +381,9 @@ def test_a_flipped_bit_in_a_chunk_is_named_and_computed_again(tmp_path, referenc
     # /energy is (model, alpha, radius, state) = (1, 2, 16, 1): radius 9 of alpha 0.5 is in chunk 12
     flip_bit(out, data_offset(out, "energy") + 8 * (16 + 9) + 3, bit=5)
     line = _one_line(capsys, 2, ["export", "--csv", out])
-    assert line == (f"tba: error: {out}: chunk 12 (free-fermion, alpha = 0.5, R = 0.613477 .. "
-                    f"0.769614) fails its checksum (the file is damaged there); tba run {runfile} "
-                    f"--out {out} recomputes it")
+    assert line == (f"tba: error: {out}: chunk 12 (free-fermion, alpha = 0.5, R = 0.6134766008 .. "
+                    f"0.7696136341) fails its checksum (the file is damaged there); tba run {runfile} "
+                    f"--output {out} recomputes it")
     assert "chunk 12 (free-fermion" in _one_line(capsys, 2, ["merge", out, "--out", tmp_path / "m.h5"])
     log = io.StringIO()
     summary = run_scan(run, workers=1, log=log)

@@ -46,8 +46,8 @@ tol = 1e-10
 chunk_size = 2
 """
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
-SOLVE_KEYS = {"model", "coupling", "radius", "alpha", "couplings", "energy", "error", "status",
-              "iterations", "message"}
+SOLVE_KEYS = {"model", "coupling", "radius", "alpha", "cdd_couplings", "energy", "error", "status",
+              "iterations", "message", "couplings"}  # couplings: deprecated, one release
 
 
 def _write(tmp_path, text=RUN, name="scan.toml"):
@@ -177,7 +177,7 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     assert len(rows) == 20 and set(rows[0]) == SOLVE_KEYS | {"state", "momentum"}
     for rec, row in zip(records, rows):
         assert row["energy"] == ("" if rec["energy"] is None else repr(rec["energy"]))
-        assert float(row["radius"]) == rec["radius"] and json.loads(row["couplings"]) == rec["couplings"]
+        assert float(row["radius"]) == rec["radius"] and json.loads(row["cdd_couplings"]) == rec["cdd_couplings"]
 
 
 def test_export_matches_tba_solve_for_the_same_chain(tmp_path, capsys):

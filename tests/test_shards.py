@@ -211,7 +211,7 @@ def test_a_partial_merge_says_what_is_missing_and_tba_run_completes_it(runfile, 
     err = capsys.readouterr().err
     assert "11 of 16 chunks and 3 of 4 branch points; incomplete" in err
     assert "missing: shard 2/3: 5 of its 5 chunks missing" in err
-    assert "missing: 1 of 4 branch points missing" in err and f"--out {merged}" in err
+    assert "missing: 1 of 4 branch points missing" in err and f"--output {merged}" in err
     assert main(["report", str(merged)]) == 0
     assert "11 of 16 done (incomplete" in capsys.readouterr().out
     assert main(["run", str(runfile), "--out", str(merged), "--workers", "1"]) == 0

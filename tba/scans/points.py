@@ -212,11 +212,15 @@ def solve_branch_point(run, model_index, alpha_index):
 
 
 def describe_chunk(run, chunk):
-    """``chunk 5 (free-fermion, alpha = 0.5, R = 0.3 .. 0.42)``: for messages."""
-    state = f", {run.states[chunk.state]}" if len(run.states) > 1 else ""
+    """``chunk 5 (free-fermion, alpha = 0.5, R = 0.3 .. 0.42)``, with ``, state 0`` or
+    ``, ground state`` when the run has several states: for messages. Radii and alpha to 10
+    significant digits, as in tables (docs/glossary.md)."""
+    level = run.states[chunk.state]
+    state = ("" if len(run.states) == 1 else
+             ", ground state" if level == "ground" else f", state {level}")
     return (f"chunk {chunk.index} ({run.models[chunk.model].label}, alpha = "
-            f"{run.alphas[chunk.alpha]:g}, R = {run.radii[chunk.radius_start]:.6g} .. "
-            f"{run.radii[chunk.radius_stop - 1]:.6g}{state})")
+            f"{run.alphas[chunk.alpha]:.10g}, R = {run.radii[chunk.radius_start]:.10g} .. "
+            f"{run.radii[chunk.radius_stop - 1]:.10g}{state})")
 
 
 def one_line(exc):

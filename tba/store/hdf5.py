@@ -1040,7 +1040,7 @@ def damage_message(snap):
     if snap.bad_branch:
         m, a = snap.bad_branch[0]
         more = f" (and {len(snap.bad_branch) - 1} more)" if len(snap.bad_branch) > 1 else ""
-        what.append(f"the branch point of {run.models[m].label} at alpha = {run.alphas[a]:g}{more}")
+        what.append(f"the branch point of {run.models[m].label} at alpha = {run.alphas[a]:.10g}{more}")
     run_file = snap.attrs.get("run_file") or "RUNFILE"
     shard = f" --shard {snap.shard.label}" if snap.shard is not None else ""
     return (f"{path}: {' and '.join(what)} fails its checksum (the file is damaged there); "

@@ -132,7 +132,7 @@ class _Merged:
             if not same.all():
                 m, a = (int(x[~same][0]) for x in np.nonzero(both))
                 raise StoreError(f"{path}: the branch point of {self.run.models[m].label} at alpha = "
-                                 f"{self.run.alphas[a]:g} differs ({name}) from the one in "
+                                 f"{self.run.alphas[a]:.10g} differs ({name}) from the one in "
                                  f"{self.files[self.branch_source[m, a]]}; refusing to merge "
                                  f"inconsistent files")
         new = have & (self.branch_source < 0)

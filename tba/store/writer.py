@@ -248,7 +248,7 @@ class Store:
                 self._write("branch_points/checksum", k, checksum)
                 self._write("branch_points/status", k, stored["status"])
         except OSError as exc:
-            label = f"the branch point of {self.run.models[model].label} at alpha = {self.run.alphas[alpha]:g}"
+            label = f"the branch point of {self.run.models[model].label} at alpha = {self.run.alphas[alpha]:.10g}"
             raise self._failed(label, exc) from None
         if self._invocation is not None:
             self._invocation["branch_points_computed"] += 1
