@@ -205,15 +205,15 @@ def test_out_option_and_bad_workers(tmp_path, capsys):
     assert main(["run", str(runfile), "--workers", "0"]) == 2
     assert "--workers" in capsys.readouterr().err
     other = tmp_path / "sub" / "elsewhere.h5"
-    assert main(["run", str(runfile), "--out", str(other), "--workers", "1"]) == 0
+    assert main(["run", str(runfile), "-o", str(other), "--workers", "1"]) == 0
     assert other.exists() and not (tmp_path / "scan.h5").exists()
     # a different run into the same file: refused, exit 2, one line; --force replaces it
     runfile2 = _write(tmp_path, RUN.replace("count = 5", "count = 3"), "other.toml")
     capsys.readouterr()
-    assert main(["run", str(runfile2), "--out", str(other)]) == 2
+    assert main(["run", str(runfile2), "-o", str(other)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "different run" in err[0] and "radii" in err[0]
-    assert main(["run", str(runfile2), "--out", str(other), "--force", "--workers", "1"]) == 0
+    assert main(["run", str(runfile2), "-o", str(other), "--force", "--workers", "1"]) == 0
     assert len(read_store(other).radius) == 3
 
 

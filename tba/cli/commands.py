@@ -22,10 +22,11 @@ import numpy as np
 
 from tba import __version__
 from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
-                            add_max_points_argument, add_output_argument, require_output, spelled, add_model_arguments, add_tol_argument,
-                            build_model, check_deformation, coupling, json_text, max_points,
-                            parse_alphas, parse_cdd, parse_radii, parse_state_argument, plain,
-                            state_row, table_row, too_many, tolerance, whole_number, writable_dir,
+                            add_max_points_argument, add_model_arguments, add_output_argument,
+                            add_tol_argument, build_model, check_deformation, coupling, json_text,
+                            max_points, parse_alphas, parse_cdd, parse_radii,
+                            parse_state_argument, plain, require_output, spelled, state_row,
+                            table_row, too_many, tolerance, whole_number, writable_dir,
                             writable_file)
 from tba.output.report import format_report
 from tba.scans.limits import MAX_POINTS, MAX_SOLVE_POINTS
