@@ -291,3 +291,14 @@ def test_chunk_messages_name_the_level_and_print_ten_digits(tmp_path):
     assert any(t.endswith(", state 0)") for t in texts)
     assert any(t.endswith(", ground state)") for t in texts)
     assert all("R = 0.39354558 .. 0.3935456" in t for t in texts), texts
+
+
+def test_report_names_the_cdd_couplings(tmp_path):
+    text = RUN.replace("alphas = [-0.1, 0.1]", "alphas = [0.1]\nhigher_spin = { 3 = -0.01 }")
+    run = loads_run(text.replace('states = ["ground", "0"]', "").replace("count = 2", "count = 1")
+                    .replace("stop = 2.0", "stop = 1.0"), base_dir=tmp_path)
+    run_scan(run, workers=1, log=io.StringIO())
+    report = format_report(read_store(run.output))
+    assert "CDD couplings at every alpha: alpha_3 = -0.01" in report
+    recs = list(read_store(run.output).records())
+    assert recs[0]["cdd_couplings"] == {"1": 0.1, "3": -0.01}

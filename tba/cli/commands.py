@@ -349,7 +349,7 @@ def build_parser():
                        "one-particle state 0, and the free massless models (the sign is the "
                        "chirality; bosons take repeated integers, e.g. 1,1)")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
-    add_max_points_argument(solve, MAX_SOLVE_POINTS, "radii")
+    add_max_points_argument(solve, MAX_SOLVE_POINTS, "points (radii x alphas)")
     solve.set_defaults(func=cmd_solve)
     run = sub.add_parser("run", help="run a scan from a TOML run file (resumable)",
                          description="Solve every point of a run file and write them to an HDF5 "

@@ -366,7 +366,7 @@ TABLE_HEADER = (f"{'model':<20} {'coupling':>8} {'R':>16} {'alpha':>16} {'E':>22
 
 
 def table_row(rec):
-    return (f"{rec['model']:<20} {fmt(rec['coupling'], '8.6g'):>8} {rec['radius']:{R_SPEC}} "
+    return (f"{rec['model']:<20} {fmt(rec['coupling'], '.10g'):>8} {rec['radius']:{R_SPEC}} "
             f"{rec['alpha']:{ALPHA_SPEC}} {fmt(rec['energy'], ENERGY_SPEC):>22} "
             f"{fmt(rec['error'], '8.1e'):>8} {rec['iterations']:>3}  {rec['status']}")
 
