@@ -205,6 +205,8 @@ def test_branch_status_is_an_enum_equal_to_its_string():
     text = repr(bp)
     assert text.startswith("BranchPoint(free-fermion, alpha = 0.2: found, R_c = ")
     assert repr(bp.radius) in text and repr(bp.energy) in text and "np.float" not in text
+    table = bp._repr_html_()
+    assert "<caption>BranchPoint</caption>" in table and "E(R_c)" in table and repr(bp.radius) in table
     rec = bp.as_record(deprecated=False)
     assert "radius" not in rec and all(type(rec[k]) is float for k in
                                        ("branch_radius", "branch_energy", "hagedorn_temperature"))

@@ -362,6 +362,21 @@ class BranchPoint:
                 f"E(R_c) = {self.energy!r} +- {self.energy_error:.2g}, "
                 f"T_H = {self.hagedorn_temperature!r})")
 
+    def _repr_html_(self):
+        """A two-column table for notebooks, like `SolveResult`'s."""
+        import html
+
+        rows = [("model", self.model), ("alpha", repr(self.alpha)), ("status", self.status.value)]
+        if self.found:
+            rows += [("R_c", f"{self.radius!r} +- {self.radius_error:.2g}"),
+                     ("E(R_c)", f"{self.energy!r} +- {self.energy_error:.2g}"),
+                     ("R~_*", repr(self.effective_radius)),
+                     ("T_H = 1/R_c", repr(self.hagedorn_temperature))]
+        rows.append(("message", self.message))
+        body = "".join(f"<tr><th style='text-align:left'>{html.escape(k)}</th>"
+                       f"<td style='text-align:left'>{html.escape(v)}</td></tr>" for k, v in rows)
+        return f"<table><caption>BranchPoint</caption>{body}</table>"
+
 
 def branch_point(model, alpha, tol=1e-13, curve=None):
     """R_c(alpha) of the ground state from the undeformed curve: E_0'(R~_*) = 1/alpha.
@@ -389,6 +404,6 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     Rt = math.exp(x)
     E, dE, err = curve(Rt)
     Rc = Rt - alpha * E
-    return BranchPoint(model.name, alpha, BranchStatus.FOUND, radius=Rc, energy=E, effective_radius=Rt,
-                       radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
+    return BranchPoint(model.name, alpha, BranchStatus.FOUND, radius=Rc, energy=E,
+                       effective_radius=Rt, radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
                        message=f"E_0'(R~) = 1/alpha at R~ = {Rt:.15g}")
