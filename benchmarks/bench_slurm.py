@@ -82,14 +82,14 @@ def shard_job(cluster, d, env):
     direct = []
     for k in range(3):
         t0 = time.perf_counter()
-        subprocess.run(command + ["--out", f"direct-{k}.h5"], cwd=d, env=env, check=True,
+        subprocess.run(command + ["-o", f"direct-{k}.h5"], cwd=d, env=env, check=True,
                        capture_output=True)
         direct.append(time.perf_counter() - t0)
     through, latency, inside = [], [], []
     for k in range(3):
         script = d / f"shard-{k}.sh"
         script.write_text(f"#!/bin/bash\ndate +%s.%N > start-{k}\n"
-                          + " ".join(command + ["--out", f"job-{k}.h5"])
+                          + " ".join(command + ["-o", f"job-{k}.h5"])
                           + f"\ndate +%s.%N > end-{k}\n")
         t0, w0 = time.perf_counter(), time.time()
         job = cluster.sbatch(script, "--cpus-per-task=1", cwd=d, env=env)

@@ -22,7 +22,7 @@ Continuation    locate_fold, second_branch, complex_pair
 Thermodynamics  thermodynamics
 Scans           scan, scan_run (in memory), open_scan (a file): xarray Datasets;
                 plot_scan (a matplotlib Figure)
-Results         SolveResult, Status, SolveError
+Results         SolveResult, Status, SolveError, BranchPoint, BranchStatus
 """
 
 import importlib
@@ -62,6 +62,8 @@ _LAZY = {
     "cft_branch_radius": "tba.physics.flow",
     "branch_point": "tba.physics.flow",
     "level_branch_point": "tba.physics.flow",
+    "BranchPoint": "tba.physics.flow",
+    "BranchStatus": "tba.physics.flow",
     "locate_fold": "tba.physics.continuation",
     "second_branch": "tba.physics.continuation",
     "complex_pair": "tba.physics.continuation",

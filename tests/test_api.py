@@ -96,4 +96,4 @@ def test_records_are_plain_python_values():
     json.dumps(record)
     for key in ("radius", "alpha", "energy", "error", "momentum"):
         assert type(record[key]) is float, key
-    assert all(type(v) is float for v in record["couplings"].values())
+    assert all(type(v) is float for v in record["cdd_couplings"].values())

@@ -138,8 +138,8 @@ def test_branch_point_json():
         return -sum((-1) ** (k + 1) * kvp(1, k * R) for k in range(1, int(60 / R) + 50)) / math.pi
     Rt = brentq(lambda R: dE(R) - 5.0, 0.05, 5.0, xtol=1e-15)
     R_c = Rt - 0.2 * free_fermion_exact(Rt)
-    assert rec["radius"] == pytest.approx(R_c, rel=1e-11)
-    assert rec["energy"] == pytest.approx(free_fermion_exact(Rt), rel=1e-11)
+    assert rec["branch_radius"] == pytest.approx(R_c, rel=1e-11)
+    assert rec["branch_energy"] == pytest.approx(free_fermion_exact(Rt), rel=1e-11)
     proc = run("branch-point", "--model", "free-fermion", "--alpha", "-0.2", "--json")
     assert json.loads(proc.stdout)["status"] == "none"
 

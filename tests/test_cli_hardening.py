@@ -369,7 +369,7 @@ def test_negative_alpha_in_every_spelling(spelling):
     (["branch-point", "--model", "lee-yang", "--alpha", "-1e200"], "--alpha", "1e+12"),
     (["flow-check", "--model", "lee-yang", "--radius", "1", "--alpha", "-0.1", "1e13"], "--alpha", "1e+12"),
     (["flow-check", "--model", "lee-yang", "--radius", "1e300", "--alpha", "-0.1"], "--radius", "700"),
-    (["solve", "--model", "lee-yang", "--radius", "1", "--alpha", "0.1", "--alpha", "0.2"],
+    (["branch-point", "--model", "lee-yang", "--alpha", "0.1", "--alpha", "0.2"],
      "--alpha", "given twice"),
     (["solve", "--model", "lee-yang", "--model", "free-fermion", "--radius", "1"], "--model", "twice"),
     (["solve", "--model", "lee-yang", "--radius", "1", "--tol", "1e-10", "--tol", "1e-11"], "--tol", "twice"),
@@ -459,7 +459,7 @@ def test_branch_point_by_continuation_prints_strict_json():
                               "--method", "continuation", "--json")
     assert code == 0, err
     rec = _strict(out)
-    assert rec["status"] == "found" and rec["effective_radius"] is None and rec["radius"] > 0
+    assert rec["status"] == "found" and rec["branch_effective_radius"] is None and rec["branch_radius"] > 0
 
 
 def test_every_json_and_export_path_is_strict(store):

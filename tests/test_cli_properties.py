@@ -122,7 +122,8 @@ def bad_argument_lists(draw):
         name = draw(st.text(max_size=15).filter(lambda t: t not in MODELS))
         return _replace(SOLVE, "--model", name)
     if kind == "twice":
-        option, value = draw(st.sampled_from([("--alpha", "0.1"), ("--tol", "1e-10"),
+        # (solve --alpha takes several values, so it is not among the single-valued options)
+        option, value = draw(st.sampled_from([("--tol", "1e-10"),
                                               ("--coupling", "0.5"), ("--model", "lee-yang"),
                                               ("--state", "1/2,-1/2")]))
         return SOLVE + [option, value, option, value]
@@ -151,8 +152,11 @@ def bad_argument_lists(draw):
         return draw(st.sampled_from([["plot", "DIR/keep.h5", "-o", target],
                                      ["export", "--csv", "DIR/keep.h5", "-o", target],
                                      ["merge", "DIR/keep.h5", "--out", target],
+                                     ["merge", "DIR/keep.h5", "-o", target],
                                      ["run", "RUNFILE", "--out", target],
-                                     ["demo", "--out-dir", "DIR/keep.h5"]]))
+                                     ["run", "RUNFILE", "--output", target],
+                                     ["demo", "--out-dir", "DIR/keep.h5"],
+                                     ["demo", "--output-dir", "DIR/keep.h5"]]))
     option, value = draw(st.sampled_from([("--workers", "0"), ("--workers", "-3"),
                                           ("--shard", "0/3"), ("--shard", "4/3"),
                                           ("--max-points", "0"), ("--cluster", "local:0"),

@@ -110,7 +110,7 @@ def _two_workers(client):
 
 def test_local_cluster_from_the_command_line_equals_serial(runfile, reference, tmp_path, capsys):
     out = tmp_path / "dask.h5"
-    assert main(["run", str(runfile), "--cluster", "local:2", "--out", str(out)]) == 0
+    assert main(["run", str(runfile), "--cluster", "local:2", "-o", str(out)]) == 0
     err = capsys.readouterr().err
     assert "dask local cluster, 2 worker processes" in err
     assert f"computed {TOTAL} chunks (0 were already done) and 4 branch points" in err
@@ -190,7 +190,7 @@ def test_a_killed_driver_is_resumed_from_its_file(runfile, reference, tmp_path, 
     lc, client = cluster
     _two_workers(client)
     out = tmp_path / "driver.h5"
-    args = ["run", str(runfile), "--scheduler", lc.scheduler_address, "--out", str(out)]
+    args = ["run", str(runfile), "--scheduler", lc.scheduler_address, "-o", str(out)]
     proc = subprocess.Popen([sys.executable, "-m", "tba", *args], stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 120
@@ -223,19 +223,19 @@ def test_cluster_options_fail_on_one_line(runfile, tmp_path, capsys, monkeypatch
              (["--cluster", "local:2", "--workers", "2"], "--workers"),
              (["--scheduler", "tcp://x:1", "--cluster", "local:2"], "--cluster")]
     for extra, option in cases:
-        assert main(["run", str(runfile), "--out", str(out), *extra]) == 2
+        assert main(["run", str(runfile), "-o", str(out), *extra]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and err[0].startswith("tba: error: ") and option in err[0], err
     # nobody listens there: one line naming --scheduler, and no file is created
     monkeypatch.setattr(tba.scans.cluster, "CONNECT_TIMEOUT", 1)
-    assert main(["run", str(runfile), "--out", str(out), "--scheduler", "tcp://127.0.0.1:9"]) == 2
+    assert main(["run", str(runfile), "-o", str(out), "--scheduler", "tcp://127.0.0.1:9"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--scheduler" in err[0] and "127.0.0.1:9" in err[0], err
     assert not out.exists()
     # without dask: one line naming the option, and plain tba run still works
     monkeypatch.setitem(sys.modules, "distributed", None)
     for option, value in (("--scheduler", "tcp://127.0.0.1:8786"), ("--cluster", "local:2")):
-        assert main(["run", str(runfile), "--out", str(out), option, value]) == 2
+        assert main(["run", str(runfile), "-o", str(out), option, value]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and option in err[0] and "tba-flow[cluster]" in err[0], err
         assert not out.exists()

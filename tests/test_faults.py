@@ -201,7 +201,7 @@ def test_a_held_lock_refuses_a_second_writer_in_one_line(tmp_path, reference, ca
         # in this process too (open-file-description locks), and for a merge into it
         with pytest.raises(StoreBusy, match="being written by test writer"):
             run_scan(load_run(runfile), workers=1, log=io.StringIO())
-        line = _one_line(capsys, 2, ["merge", reference.path, "--out", out])
+        line = _one_line(capsys, 2, ["merge", reference.path, "-o", out])
         assert "being written by test writer" in line and not out.exists()
     assert holder(out) is None and not lock_path(out).exists()
     run_scan(load_run(runfile), workers=1, log=io.StringIO())
@@ -259,7 +259,7 @@ def test_creation_checks_the_free_space_first(tmp_path):
         assert r.returncode == 2 and "Traceback" not in r.stderr
         assert re.fullmatch(r"tba: error: \S+scan\.h5: needs [\d.]+ KB of disk space and its file "
                             r"system has [\d.]+ KB free; free some space or write the file "
-                            r"elsewhere \(--out\)\n", r.stderr), r.stderr
+                            r"elsewhere \(--output\)\n", r.stderr), r.stderr
         assert sorted(os.listdir(fs)) == ["run.toml"]  # no file, no temporary file, no lock
 
 
@@ -319,7 +319,7 @@ def test_a_read_only_file_system_says_the_chunks_are_safe(tmp_path, monkeypatch,
         subprocess.run(["mount", "-o", "remount,ro", str(fs)], check=True)
         line = _one_line(capsys, 2, ["run", fs / "run.toml", "--workers", "1"])
         assert "cannot be written (Read-only file system); its 4 computed chunks are safe" in line
-        assert "--out COPY" in line and "--force" not in line
+        assert "--output COPY" in line and "--force" not in line
         assert main(["report", str(run.output)]) == 0
         assert Path(run.output).read_bytes() == before
 
@@ -381,10 +381,10 @@ def test_a_flipped_bit_in_a_chunk_is_named_and_computed_again(tmp_path, referenc
     # /energy is (model, alpha, radius, state) = (1, 2, 16, 1): radius 9 of alpha 0.5 is in chunk 12
     flip_bit(out, data_offset(out, "energy") + 8 * (16 + 9) + 3, bit=5)
     line = _one_line(capsys, 2, ["export", "--csv", out])
-    assert line == (f"tba: error: {out}: chunk 12 (free-fermion, alpha = 0.5, R = 0.613477 .. "
-                    f"0.769614) fails its checksum (the file is damaged there); tba run {runfile} "
-                    f"--out {out} recomputes it")
-    assert "chunk 12 (free-fermion" in _one_line(capsys, 2, ["merge", out, "--out", tmp_path / "m.h5"])
+    assert line == (f"tba: error: {out}: chunk 12 (free-fermion, alpha = 0.5, R = 0.6134766008 .. "
+                    f"0.7696136341) fails its checksum (the file is damaged there); tba run {runfile} "
+                    f"--output {out} recomputes it")
+    assert "chunk 12 (free-fermion" in _one_line(capsys, 2, ["merge", out, "-o", tmp_path / "m.h5"])
     log = io.StringIO()
     summary = run_scan(run, workers=1, log=log)
     assert summary.chunks_computed == 1 and "chunk 12 (free-fermion" in log.getvalue()
@@ -531,7 +531,7 @@ def test_foreign_or_edited_files_are_one_line_errors(tmp_path, reference, capsys
     before = path.read_bytes()
     for argv in (["report", path], ["export", "--json", path], ["export", "--csv", path],
                  ["plot", path, "-o", tmp_path / "fig.png"],
-                 ["merge", path, "--out", tmp_path / "merged.h5"]):
+                 ["merge", path, "-o", tmp_path / "merged.h5"]):
         line = _one_line(capsys, 2, argv)
         assert str(path) in line and message in line, (argv, line)
     assert path.read_bytes() == before and not (tmp_path / "merged.h5").exists()

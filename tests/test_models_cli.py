@@ -108,7 +108,7 @@ def test_higher_spin_on_the_command_line(capsys):
     # potts-3 has a spin-5 charge (same sign on both species): a real ground state for alpha_5 < 0
     assert main(["solve", "--model", "A2", "--radius", "1", "--cdd", "5:-1e-9", "--json"]) == 0
     (rec,) = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
-    assert rec["status"] == "converged" and rec["couplings"] == {"5": -1e-9}
+    assert rec["status"] == "converged" and rec["cdd_couplings"] == {"5": -1e-9}
 
 
 RUN = """\

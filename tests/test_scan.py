@@ -46,8 +46,8 @@ tol = 1e-10
 chunk_size = 2
 """
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
-SOLVE_KEYS = {"model", "coupling", "radius", "alpha", "couplings", "energy", "error", "status",
-              "iterations", "message"}
+SOLVE_KEYS = {"model", "coupling", "radius", "alpha", "cdd_couplings", "energy", "error", "status",
+              "iterations", "message", "couplings"}  # couplings: deprecated, one release
 
 
 def _write(tmp_path, text=RUN, name="scan.toml"):
@@ -177,7 +177,7 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     assert len(rows) == 20 and set(rows[0]) == SOLVE_KEYS | {"state", "momentum"}
     for rec, row in zip(records, rows):
         assert row["energy"] == ("" if rec["energy"] is None else repr(rec["energy"]))
-        assert float(row["radius"]) == rec["radius"] and json.loads(row["couplings"]) == rec["couplings"]
+        assert float(row["radius"]) == rec["radius"] and json.loads(row["cdd_couplings"]) == rec["cdd_couplings"]
 
 
 def test_export_matches_tba_solve_for_the_same_chain(tmp_path, capsys):
@@ -205,15 +205,15 @@ def test_out_option_and_bad_workers(tmp_path, capsys):
     assert main(["run", str(runfile), "--workers", "0"]) == 2
     assert "--workers" in capsys.readouterr().err
     other = tmp_path / "sub" / "elsewhere.h5"
-    assert main(["run", str(runfile), "--out", str(other), "--workers", "1"]) == 0
+    assert main(["run", str(runfile), "-o", str(other), "--workers", "1"]) == 0
     assert other.exists() and not (tmp_path / "scan.h5").exists()
     # a different run into the same file: refused, exit 2, one line; --force replaces it
     runfile2 = _write(tmp_path, RUN.replace("count = 5", "count = 3"), "other.toml")
     capsys.readouterr()
-    assert main(["run", str(runfile2), "--out", str(other)]) == 2
+    assert main(["run", str(runfile2), "-o", str(other)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "different run" in err[0] and "radii" in err[0]
-    assert main(["run", str(runfile2), "--out", str(other), "--force", "--workers", "1"]) == 0
+    assert main(["run", str(runfile2), "-o", str(other), "--force", "--workers", "1"]) == 0
     assert len(read_store(other).radius) == 3
 
 

@@ -77,7 +77,7 @@ def shards(runfile, tmp_path_factory):
     paths = []
     for k in (1, 2, 3):
         path = d / f"part-{k}.h5"
-        assert main(["run", str(runfile), "--shard", f"{k}/3", "--out", str(path), "--workers", "1"]) == 0
+        assert main(["run", str(runfile), "--shard", f"{k}/3", "-o", str(path), "--workers", "1"]) == 0
         paths.append(path)
     return paths
 
@@ -136,7 +136,7 @@ def test_three_shards_merged_equal_the_serial_file(runfile, serial, shards, tmp_
                                                         if (2 * m + a) % 3 == k - 1]
     merged = tmp_path / "merged.h5"
     capsys.readouterr()
-    assert main(["merge", *map(str, shards), "--out", str(merged)]) == 0
+    assert main(["merge", *map(str, shards), "-o", str(merged)]) == 0
     err = capsys.readouterr().err
     assert f"{TOTAL} of {TOTAL} chunks and 4 of 4 branch points; complete" in err and "missing" not in err
     _equal_to_serial(merged, serial)
@@ -144,7 +144,7 @@ def test_three_shards_merged_equal_the_serial_file(runfile, serial, shards, tmp_
     assert d.shard is None and d.complete
     assert [h.get("shard") for h in d.history] == ["1/3", "2/3", "3/3", None] and d.history[-1]["merge"]
     # a merged file is a full store of the run: plain tba run finds nothing to do
-    assert main(["run", str(runfile), "--out", str(merged)]) == 0
+    assert main(["run", str(runfile), "-o", str(merged)]) == 0
     assert "nothing to compute" in capsys.readouterr().err
 
 
@@ -152,7 +152,7 @@ def test_merge_refuses_files_that_do_not_belong_together(runfile, shards, tmp_pa
     out = tmp_path / "out.h5"
 
     def refused(*files, name):
-        assert main(["merge", *map(str, files), "--out", str(out)]) == 2
+        assert main(["merge", *map(str, files), "-o", str(out)]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and err[0].startswith("tba: error: ") and str(name) in err[0], err
         assert not out.exists()
@@ -162,7 +162,7 @@ def test_merge_refuses_files_that_do_not_belong_together(runfile, shards, tmp_pa
     other_run = tmp_path / "other.toml"
     other_run.write_text(RUN.replace("count = 7", "count = 6"))
     other = tmp_path / "other-1.h5"
-    assert main(["run", str(other_run), "--shard", "1/3", "--out", str(other), "--workers", "1"]) == 0
+    assert main(["run", str(other_run), "--shard", "1/3", "-o", str(other), "--workers", "1"]) == 0
     capsys.readouterr()
     line = refused(shards[0], other, name=other)
     assert "different run" in line and "radii" in line
@@ -193,13 +193,13 @@ def test_merge_refuses_files_that_do_not_belong_together(runfile, shards, tmp_pa
     assert "mix versions" in refused(shards[0], bad, name=bad)
     bad.write_text("not hdf5")
     refused(shards[0], bad, name=bad)
-    # an --out that is a file of another run is not overwritten, unless --force
+    # an -o/--output that is a file of another run is not overwritten, unless --force
     shutil.copy(other, out)
-    assert main(["merge", str(shards[0]), "--out", str(out)]) == 2
+    assert main(["merge", str(shards[0]), "-o", str(out)]) == 2
     err = capsys.readouterr().err
     assert "is shard 1/3 of a run, not a full store; refusing to overwrite it" in err and "--force" in err
     assert read_store(out).shard == Shard(1, 3) and len(read_store(out).radius) == 6
-    assert main(["merge", str(shards[0]), "--out", str(out), "--force"]) == 0
+    assert main(["merge", str(shards[0]), "-o", str(out), "--force"]) == 0
     assert len(read_store(out).radius) == 7
 
 
@@ -207,18 +207,18 @@ def test_a_partial_merge_says_what_is_missing_and_tba_run_completes_it(runfile, 
                                                                         tmp_path, capsys):
     merged = tmp_path / "merged.h5"
     capsys.readouterr()
-    assert main(["merge", str(shards[0]), str(shards[2]), "--out", str(merged)]) == 0
+    assert main(["merge", str(shards[0]), str(shards[2]), "-o", str(merged)]) == 0
     err = capsys.readouterr().err
     assert "11 of 16 chunks and 3 of 4 branch points; incomplete" in err
     assert "missing: shard 2/3: 5 of its 5 chunks missing" in err
-    assert "missing: 1 of 4 branch points missing" in err and f"--out {merged}" in err
+    assert "missing: 1 of 4 branch points missing" in err and f"--output {merged}" in err
     assert main(["report", str(merged)]) == 0
     assert "11 of 16 done (incomplete" in capsys.readouterr().out
-    assert main(["run", str(runfile), "--out", str(merged), "--workers", "1"]) == 0
+    assert main(["run", str(runfile), "-o", str(merged), "--workers", "1"]) == 0
     assert "computed 5 chunks (11 were already done) and 1 branch point" in capsys.readouterr().err
     _equal_to_serial(merged, serial)
     # a late shard merged into the complete file: it overlaps consistently
-    assert main(["merge", str(shards[1]), "--out", str(merged)]) == 0
+    assert main(["merge", str(shards[1]), "-o", str(merged)]) == 0
     assert "16 of 16 chunks and 4 of 4 branch points; complete" in capsys.readouterr().err
     _equal_to_serial(merged, serial)
     d = read_store(merged)
@@ -257,13 +257,13 @@ def test_a_shard_resumes_and_is_not_mistaken_for_another(runfile, serial, tmp_pa
     # a shard file is never resumed as another shard, nor as the full store
     for extra, words in ((["--shard", "1/3"], "is shard 2/3 of a run, not shard 1/3"),
                          ([], "is shard 2/3 of a run, not a full store")):
-        assert main(["run", str(runfile), "--out", str(path), *extra]) == 2
+        assert main(["run", str(runfile), "-o", str(path), *extra]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and words in err[0], err
     for bad in ("0/3", "4/3", "x"):
         assert main(["run", str(runfile), "--shard", bad]) == 2
         assert "argument --shard" in capsys.readouterr().err
-    # without --out a shard gets its own name next to the run's output, never the full store's
+    # without -o/--output a shard gets its own name next to the run's output, never the full store's
     assert main(["run", str(runfile), "--shard", "3/3", "--dry-run"]) == 0
     out = capsys.readouterr().out
     assert "scan.part-3-of-3.h5" in out and "shard 3/3: 5 chunks (9 points) and 1 branch points" in out
@@ -316,11 +316,11 @@ def test_shards_of_a_run_with_excited_levels_merged_equal_the_serial_file(tmp_pa
     parts = []
     for k in (1, 2):
         part = tmp_path / f"part-{k}.h5"
-        assert main(["run", str(path), "--shard", f"{k}/2", "--out", str(part), "--workers", "1"]) == 0
+        assert main(["run", str(path), "--shard", f"{k}/2", "-o", str(part), "--workers", "1"]) == 0
         assert np.all(read_store(part)["status"][1, :, :, 1] == NOT_AVAILABLE)
         parts.append(part)
     merged = tmp_path / "merged.h5"
-    assert main(["merge", *map(str, parts), "--out", str(merged)]) == 0
+    assert main(["merge", *map(str, parts), "-o", str(merged)]) == 0
     _equal_to_serial(merged, tmp_path / "serial.h5")
     d = read_store(merged)
     assert d.complete and np.all(d["status"][1, :, :, 1] == NOT_AVAILABLE)

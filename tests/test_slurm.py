@@ -122,7 +122,7 @@ def serial(tmp_path_factory):
     d = tmp_path_factory.mktemp("serial")
     (d / "runs").mkdir()
     (d / "runs" / "big.toml").write_text(RUN)
-    assert main(["run", str(d / "runs" / "big.toml"), "--out", str(d / "serial.h5"),
+    assert main(["run", str(d / "runs" / "big.toml"), "-o", str(d / "serial.h5"),
                  "--workers", "1"]) == 0
     return d / "serial.h5"
 

@@ -276,12 +276,13 @@ def test_records_have_the_solve_json_keys(store):
     path, run = store
     recs = list(read_store(path).records())
     assert len(recs) == run.n_points
-    keys = {"model", "coupling", "radius", "alpha", "couplings", "energy", "error", "momentum",
-            "status", "iterations", "message", "state"}
+    keys = {"model", "coupling", "radius", "alpha", "cdd_couplings", "energy", "error", "momentum",
+            "status", "iterations", "message", "state", "couplings"}  # couplings: deprecated
     assert all(set(r) == keys for r in recs)
     nr = [r for r in recs if r["status"] == "no-real-solution"]
     assert nr and all(r["energy"] is None and r["error"] is None for r in nr)
-    assert recs[0]["couplings"] == {"1": -0.2}
+    assert recs[0]["cdd_couplings"] == recs[0]["couplings"] == {"1": -0.2}
+    assert all(set(r) == keys - {"couplings"} for r in read_store(path).records(deprecated=False))
     assert all(isinstance(r["message"], str) and r["message"] for r in recs)
 
 

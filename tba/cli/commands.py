@@ -22,10 +22,12 @@ import numpy as np
 
 from tba import __version__
 from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
-                            add_max_points_argument, add_model_arguments, add_tol_argument,
-                            build_model, check_deformation, coupling, json_text, max_points,
-                            parse_cdd, parse_radii, parse_state_argument, plain, state_row,
-                            table_row, tolerance, whole_number, writable_dir, writable_file)
+                            add_max_points_argument, add_model_arguments, add_output_argument,
+                            add_tol_argument, build_model, check_deformation, coupling, json_text,
+                            max_points, parse_alphas, parse_cdd, parse_radii,
+                            parse_state_argument, plain, require_output, spelled, state_row,
+                            table_row, too_many, tolerance, whole_number, writable_dir,
+                            writable_file)
 from tba.output.report import format_report
 from tba.scans.limits import MAX_POINTS, MAX_SOLVE_POINTS
 from tba.scans import interrupts
@@ -36,26 +38,33 @@ from tba.store.hdf5 import NOT_COMPUTED, StoreError, read_store
 
 def cmd_solve(args, out):
     model = build_model(args)
-    radii = parse_radii(args.radius, max_points(args, MAX_SOLVE_POINTS))
-    alpha = coupling("--alpha", args.alpha)
-    deformation = parse_cdd(args.cdd, alpha, model)
-    check_deformation(deformation, radii)
+    limit = max_points(args, MAX_SOLVE_POINTS)
+    radii = parse_radii(args.radius, limit)
+    alphas = parse_alphas(args.alpha or ["0"], limit)
+    if len(radii) * len(alphas) > limit:
+        raise too_many("--alpha", len(radii) * len(alphas), limit, "points (radii x alphas)")
+    deformations = [parse_cdd(args.cdd, alpha, model) for alpha in alphas]
+    for deformation in deformations:
+        check_deformation(deformation, radii)
     tol = tolerance(args.tol)
-    state = parse_state_argument(args.state, model, deformation) if args.state is not None else "ground"
+    state = (parse_state_argument(args.state, model, deformations[0]) if args.state is not None
+             else "ground")
+    for deformation in deformations[1:]:  # the level must exist at every alpha
+        if state != "ground":
+            parse_state_argument(args.state, model, deformation)
     from tba.solvers.levels import solve_level
 
-    solve = lambda R, start: solve_level(model, R, state, deformation, tol=tol,  # noqa: E731
-                                         start=start)
     header, row = (TABLE_HEADER, table_row) if state == "ground" else (STATE_HEADER, state_row)
     if not args.json:
         print(header, file=out, flush=True)
-    start = None
-    for R in radii:
-        res = solve(R, start)
-        if res.converged:
-            start = res
-        rec = res.as_record()
-        print(json_text(rec) if args.json else row(rec), file=out, flush=True)
+    for deformation in deformations:  # one curve per alpha, radii in the order given
+        start = None
+        for R in radii:
+            res = solve_level(model, R, state, deformation, tol=tol, start=start)
+            if res.converged:
+                start = res
+            rec = res.as_record()
+            print(json_text(rec) if args.json else row(rec), file=out, flush=True)
     return 0
 
 
@@ -133,15 +142,16 @@ def cmd_run(args, out):
     _workers(args.workers)  # checked with --dry-run too
     run = _load_run(args.runfile, max_points(args, MAX_POINTS))
     shard = _shard(args.shard)
-    if args.out:
-        out_path = Path(args.out).expanduser().resolve()
+    if args.output:
+        out_path = Path(args.output).expanduser().resolve()
     elif shard is not None:  # never the full store's name: a shard holds only its chunks
         full = Path(run.output)
         out_path = full.with_name(f"{full.stem}.part-{shard.index}-of-{shard.count}{full.suffix}")
     else:
         out_path = Path(run.output)
     if args.force or not out_path.is_file():  # an existing store: it says what it holds
-        writable_file("argument --out" if args.out else f"{args.runfile}: output", out_path)
+        writable_file(f"argument {spelled(args, 'output', '-o/--output')}" if args.output
+                      else f"{args.runfile}: output", out_path)
     run = run.with_output(out_path)
     backend = _backend(args)
     if args.dry_run:
@@ -163,9 +173,10 @@ def cmd_merge(args, out):
     """Combine shard files (or stores) of one run into a full store."""
     from tba.store.merge import merge_stores
 
-    writable_file("argument --out", args.out)
+    output = require_output(args)
+    writable_file(f"argument {spelled(args, 'output', '-o/--output')}", output)
     try:
-        summary = merge_stores(args.files, args.out, force=args.force)
+        summary = merge_stores(args.files, output, force=args.force)
     except StoreError as exc:
         raise UsageError(str(exc)) from None
     s = summary
@@ -176,7 +187,7 @@ def cmd_merge(args, out):
     for line in s.missing:
         print(f"tba merge: missing: {line}", file=sys.stderr)
     if not s.complete:
-        print(f"tba merge: run tba run RUNFILE --out {s.path} to compute what is missing "
+        print(f"tba merge: run tba run RUNFILE --output {s.path} to compute what is missing "
               f"(or merge the missing shards into it)", file=sys.stderr)
     return 0
 
@@ -216,7 +227,8 @@ def _figure_size(text):
 def cmd_plot(args, out):
     from tba.output.plotting import plot_store
 
-    path = writable_file("argument -o", _figure_path(args.output), replace=False)
+    path = writable_file(f"argument {spelled(args, 'output', '-o/--output')}",
+                         _figure_path(require_output(args)), replace=False)
     size = _figure_size(args.size) if args.size is not None else None
     if args.dpi is not None and args.dpi <= 0:
         raise UsageError(f"argument --dpi: must be positive, got {args.dpi}")
@@ -237,13 +249,15 @@ def cmd_plot(args, out):
     return 0
 
 
-EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "couplings", "energy", "error", "momentum",
-               "status", "iterations", "message", "state"]
+#: CSV columns; ``couplings`` is the deprecated name of ``cdd_couplings``, kept for one release
+EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "cdd_couplings", "energy", "error",
+               "momentum", "status", "iterations", "message", "state", "couplings"]
 
 
 def cmd_export(args, out):
     if args.output:
-        writable_file("argument -o", args.output, replace=False)
+        writable_file(f"argument {spelled(args, 'output', '-o/--output')}", args.output,
+                      replace=False)
     data = _read(args.file)
     records = list(data.records())
     skipped = int(np.count_nonzero(data["status"] == NOT_COMPUTED))
@@ -256,7 +270,8 @@ def cmd_export(args, out):
             writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n")
             writer.writeheader()
             for rec in map(plain, records):
-                writer.writerow({**rec, "couplings": json_text(rec["couplings"])})
+                writer.writerow({**rec, "cdd_couplings": json_text(rec["cdd_couplings"]),
+                                 "couplings": json_text(rec["couplings"])})
     finally:
         if target is not out:
             target.close()
@@ -275,14 +290,15 @@ def cmd_demo(args, out):
     workers = _workers(args.workers)
     run_file, in_repo = demo_run_path()
     run = _load_run(run_file)
-    if args.out_dir:
-        out_dir = writable_dir("argument --out-dir", Path(args.out_dir).expanduser().resolve())
+    name = f"argument {spelled(args, 'output_dir', '--output-dir')}"
+    if args.output_dir:
+        out_dir = writable_dir(name, Path(args.output_dir).expanduser().resolve())
     else:
-        out_dir = writable_dir("tba demo: output directory (choose one with --out-dir)",
+        out_dir = writable_dir("tba demo: output directory (choose one with --output-dir)",
                                run_file.parent / "out" if in_repo else Path.cwd() / "tba-demo-out")
     h5, figure = out_dir / "demo.h5", out_dir / "demo.png"
     for path in (h5, figure):
-        writable_file("argument --out-dir", path, replace=path == h5)
+        writable_file(name, path, replace=path == h5)
     run = run.with_output(h5)
     print(f"tba demo: {run.description}\n"
           f"  run file {run_file}; output {h5} and {figure}\n"
@@ -317,10 +333,12 @@ def build_parser():
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     add_model_arguments(solve)
     solve.add_argument("--radius", required=True, nargs="+", action="extend", metavar="R",
-                       help="radii: numbers and/or START:STOP:COUNT (both ends included); "
-                       "repeated --radius options add up")
-    solve.add_argument("--alpha", default="0", action=Once, metavar="A",
-                       help="TTbar coupling (default 0)")
+                       help="radii: numbers and/or START:STOP:COUNT ranges (evenly spaced, both "
+                       "ends included; START:STOP:COUNT:log for geometric spacing); repeated "
+                       "--radius options add up")
+    solve.add_argument("--alpha", nargs="+", action="extend", metavar="A",
+                       help="TTbar couplings (default 0): numbers and/or ranges, one curve per "
+                       "alpha; repeated --alpha options add up")
     solve.add_argument("--cdd", action="append", metavar="S:A",
                        help="extra CDD factor of odd spin S >= 3 with coupling A (repeatable)")
     add_tol_argument(solve)
@@ -331,7 +349,7 @@ def build_parser():
                        "one-particle state 0, and the free massless models (the sign is the "
                        "chirality; bosons take repeated integers, e.g. 1,1)")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
-    add_max_points_argument(solve, MAX_SOLVE_POINTS, "radii")
+    add_max_points_argument(solve, MAX_SOLVE_POINTS, "points (radii x alphas)")
     solve.set_defaults(func=cmd_solve)
     run = sub.add_parser("run", help="run a scan from a TOML run file (resumable)",
                          description="Solve every point of a run file and write them to an HDF5 "
@@ -341,9 +359,9 @@ def build_parser():
                          "(exit 2) unless --force.", epilog=CONVENTIONS,
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("runfile", metavar="RUNFILE", help="TOML run file (see runs/)")
-    run.add_argument("--out", action=Once, metavar="FILE", help="HDF5 output (default: the run file's output, "
-                     "relative to the run file's directory; with --shard I/N that name with "
-                     ".part-I-of-N before the suffix)")
+    add_output_argument(run, "FILE", "HDF5 output (default: the run file's output, relative to "
+                        "the run file's directory; with --shard I/N that name with .part-I-of-N "
+                        "before the suffix)")
     where = run.add_mutually_exclusive_group()
     where.add_argument("--workers", action=Once, metavar="N",
                        help="worker processes on this machine (default: the usable cores)")
@@ -367,14 +385,13 @@ def build_parser():
                            description="Merge shard files of one run (tba run --shard I/N), or "
                            "partial stores of it, into a full store. Files of different runs or "
                            "tba versions, and chunks stored twice with different numbers, are "
-                           "refused (exit 2). An existing --out of the same run is merged in; "
-                           "what is still missing is listed, and tba run RUNFILE --out FILE "
+                           "refused (exit 2). An existing --output of the same run is merged in; "
+                           "what is still missing is listed, and tba run RUNFILE --output FILE "
                            "computes it.")
     merge.add_argument("files", nargs="+", metavar="FILE", help="shard files (or stores) of one run")
-    merge.add_argument("--out", required=True, action=Once, metavar="FILE",
-                       help="the merged HDF5 file")
+    add_output_argument(merge, "FILE", "the merged HDF5 file", required=True)
     merge.add_argument("--force", action="store_true",
-                       help="replace an --out that is a file of another run, or a shard")
+                       help="replace an --output that is a file of another run, or a shard")
     merge.set_defaults(func=cmd_merge)
     report = sub.add_parser("report", help="summary of a scan file",
                             description="Progress, points per status, worst error estimate, "
@@ -390,8 +407,8 @@ def build_parser():
                           "with T_H = 1/R_c. Colours: alpha (blue < 0, grey 0, red > 0). Units: R "
                           "in 1/m_1, E in m_1; E without the bulk term f R.")
     plot.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
-    plot.add_argument("-o", "--output", required=True, action=Once, metavar="FIG",
-                      help="figure file: .png, or .pdf / .svg (vector graphics)")
+    add_output_argument(plot, "FIG", "figure file: .png, or .pdf / .svg (vector graphics)",
+                        required=True)
     plot.add_argument("--model", nargs="+", action="extend", metavar="M",
                       help="models to show, by label (\"sinh-gordon B=0.6\") or name (default all)")
     plot.add_argument("--state", nargs="+", action="extend", metavar="S",
@@ -415,8 +432,7 @@ def build_parser():
     fmt.add_argument("--json", action="store_true", help="one JSON object per line")
     fmt.add_argument("--csv", action="store_true", help="CSV with a header line")
     export.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
-    export.add_argument("-o", "--output", action=Once, metavar="OUT",
-                        help="write here instead of stdout")
+    add_output_argument(export, "OUT", "write here instead of stdout")
     export.set_defaults(func=cmd_export)
     demo = sub.add_parser("demo", help="run the built-in demonstration scan",
                           description="Runs runs/demo.toml (sinh-Gordon B = 0.6 and E8, alpha in "
@@ -426,8 +442,7 @@ def build_parser():
     demo.add_argument("--workers", action=Once, metavar="N",
                       help="worker processes (default: the usable cores)")
     demo.add_argument("--force", action="store_true", help="recompute from scratch")
-    demo.add_argument("--out-dir", action=Once, metavar="DIR",
-                      help="write demo.h5 and demo.png here")
+    add_output_argument(demo, "DIR", "write demo.h5 and demo.png here", directory=True)
     demo.set_defaults(func=cmd_demo)
     from tba.cli.flow import add_flow_commands
     from tba.cli.models import add_models_command

@@ -78,7 +78,33 @@ class Once(argparse.Action):
             raise argparse.ArgumentError(self, f"given twice ({given[self.dest]!r} and {values!r}); "
                                                f"it takes one value")
         given[self.dest] = values
+        vars(namespace).setdefault("_spelled", {})[self.dest] = option_string
         setattr(namespace, self.dest, values)
+
+
+def spelled(args, dest, default):
+    """The option string the user wrote for ``dest`` (an alias such as --out for -o/--output
+    is named as written), ``default`` if it was not given."""
+    return getattr(args, "_spelled", {}).get(dest) or default
+
+
+def add_output_argument(parser, metavar, help, required=False, directory=False):
+    """``-o/--output FILE`` (``--output-dir DIR`` with ``directory``), with the earlier
+    spelling ``--out`` (``--out-dir``) as a hidden alias kept for old scripts. ``required`` is
+    checked by `require_output` (argparse cannot require one of two spellings)."""
+    if directory:
+        parser.add_argument("--output-dir", dest="output_dir", action=Once, metavar=metavar, help=help)
+        parser.add_argument("--out-dir", dest="output_dir", action=Once, help=argparse.SUPPRESS)
+    else:
+        parser.add_argument("-o", "--output", dest="output", action=Once, metavar=metavar,
+                            help=help + (" (required)" if required else ""))
+        parser.add_argument("--out", dest="output", action=Once, help=argparse.SUPPRESS)
+
+
+def require_output(args):
+    if args.output is None:
+        raise UsageError("the following arguments are required: -o/--output")
+    return args.output
 
 
 def finite(name, text):
@@ -134,30 +160,63 @@ def too_many(name, n, limit, what):
                       f"shards for job arrays), or raise the limit with --max-points N")
 
 
-def parse_radii(tokens, max_points=MAX_SOLVE_POINTS):
-    """Numbers and START:STOP:COUNT ranges (evenly spaced, both ends included), in order.
-    The number of radii is checked against ``max_points`` before any range is allocated."""
+RANGE_SYNTAX = "START:STOP:COUNT (evenly spaced) or START:STOP:COUNT:log (geometric)"
+
+
+def parse_range(name, tok, value):
+    """One range token of an option: ``START:STOP:COUNT`` (evenly spaced) or
+    ``START:STOP:COUNT:log`` (geometric spacing, START and STOP > 0), both ends included.
+    ``value(text)`` reads and checks one end. Returns (start, stop, count, log)."""
+    parts = tok.split(":")
+    log = len(parts) == 4 and parts[3].strip().lower() == "log"
+    if len(parts) != 3 and not log:
+        raise UsageError(f"argument {name}: expected a number or {RANGE_SYNTAX}, got {tok!r}")
+    start, stop = (value(p) for p in parts[:2])
+    n = whole_number(name, parts[2], what="COUNT to be a whole number")
+    if n == 1 and start != stop:
+        raise UsageError(f"argument {name}: COUNT must be >= 2 for a range, got {n}")
+    if log and not (start > 0 and stop > 0):
+        raise UsageError(f"argument {name}: a log range needs START > 0 and STOP > 0, got {tok!r}")
+    return start, stop, n, log
+
+
+def range_values(start, stop, n, log):
+    """The values of a parsed range, both ends exactly as given."""
+    values = (np.geomspace(start, stop, n) if log else np.linspace(start, stop, n)).tolist()
+    values[0], values[-1] = start, stop
+    return values
+
+
+def parse_values(name, tokens, value, max_points=MAX_SOLVE_POINTS, what="values"):
+    """Numbers and ranges (`parse_range`), in order, each read by ``value(text)``. The count
+    is checked against ``max_points`` before any range is allocated."""
     items, total = [], 0
     for tok in tokens:
         if ":" in tok:
-            parts = tok.split(":")
-            if len(parts) != 3:
-                raise UsageError(f"argument --radius: expected START:STOP:COUNT, got {tok!r}")
-            start, stop = (_radius(p) for p in parts[:2])
-            n = whole_number("--radius", parts[2], what="COUNT to be a whole number")
-            if n == 1 and start != stop:
-                raise UsageError(f"argument --radius: COUNT must be >= 2 for a range, got {n}")
-            items.append((start, stop, n))
+            items.append(parse_range(name, tok, value))
+            n = items[-1][2]
         else:
-            items.append(_radius(tok))
+            items.append(value(tok))
             n = 1
         total += n
         if total > max_points:
-            raise too_many("--radius", total, max_points, "radii")
-    radii = []
+            raise too_many(name, total, max_points, what)
+    out = []
     for item in items:
-        radii.extend(np.linspace(*item).tolist() if isinstance(item, tuple) else [item])
-    return radii
+        out.extend(range_values(*item) if isinstance(item, tuple) else [item])
+    return out
+
+
+def parse_radii(tokens, max_points=MAX_SOLVE_POINTS):
+    """--radius: numbers and ranges (`parse_range`: linear or log), in order."""
+    return parse_values("--radius", tokens, _radius, max_points, "radii")
+
+
+def parse_alphas(tokens, max_points=MAX_SOLVE_POINTS):
+    """--alpha (solve, flow-check): TTbar couplings, numbers and ranges, in order; a value
+    given twice is solved once."""
+    alphas = parse_values("--alpha", tokens, lambda t: coupling("--alpha", t), max_points, "alphas")
+    return list(dict.fromkeys(alphas))
 
 
 def parse_cdd(tokens, alpha, model=None):
@@ -298,23 +357,28 @@ def fmt(x, spec):
     return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else format(x, spec)
 
 
-TABLE_HEADER = f"{'model':<20} {'coupling':>8} {'R':>12} {'alpha':>9} {'E_0':>22} {'error':>8} {'it':>3}  status"
+#: digits in tables: radii and alphas to 10 significant digits (0.3935456 and 0.39354558 stay
+#: apart), energies to 15; JSON carries every digit (shortest round trip)
+R_SPEC, ALPHA_SPEC, ENERGY_SPEC = "16.10g", "16.10g", "22.15g"
+
+TABLE_HEADER = (f"{'model':<20} {'coupling':>8} {'R':>16} {'alpha':>16} {'E':>22} {'error':>8} "
+                f"{'it':>3}  status")
 
 
 def table_row(rec):
-    return (f"{rec['model']:<20} {fmt(rec['coupling'], '8.6g'):>8} {rec['radius']:>12.6g} "
-            f"{rec['alpha']:>9.4g} {fmt(rec['energy'], '22.15g'):>22} {fmt(rec['error'], '8.1e'):>8} "
-            f"{rec['iterations']:>3}  {rec['status']}")
+    return (f"{rec['model']:<20} {fmt(rec['coupling'], '.10g'):>8} {rec['radius']:{R_SPEC}} "
+            f"{rec['alpha']:{ALPHA_SPEC}} {fmt(rec['energy'], ENERGY_SPEC):>22} "
+            f"{fmt(rec['error'], '8.1e'):>8} {rec['iterations']:>3}  {rec['status']}")
 
 
-STATE_HEADER = f"{'state':<16} {'R':>12} {'alpha':>9} {'E':>22} {'error':>8} {'P':>14}  status"
+STATE_HEADER = f"{'state':<16} {'R':>16} {'alpha':>16} {'E':>22} {'error':>8} {'P':>18}  status"
 
 
 def state_row(rec):
     state = ",".join(str(Fraction(n)) for n in rec["state"])
-    return (f"{state:<16} {rec['radius']:>12.6g} {rec['alpha']:>9.4g} "
-            f"{fmt(rec['energy'], '22.15g'):>22} {fmt(rec['error'], '8.1e'):>8} "
-            f"{fmt(rec['momentum'], '14.8g'):>14}  {rec['status']}")
+    return (f"{state:<16} {rec['radius']:{R_SPEC}} {rec['alpha']:{ALPHA_SPEC}} "
+            f"{fmt(rec['energy'], ENERGY_SPEC):>22} {fmt(rec['error'], '8.1e'):>8} "
+            f"{fmt(rec['momentum'], '18.12g'):>18}  {rec['status']}")
 
 
 def parse_state_argument(text, model, deformation):

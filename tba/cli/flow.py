@@ -6,11 +6,13 @@ exit code 2).
 
 import argparse
 
-from tba.cli.common import (Once, UsageError, add_max_points_argument, add_model_arguments,
-                            add_tol_argument, build_model, check_deformation, coupling, fmt,
-                            json_text, max_points, parse_radii, too_many, tolerance)
+from tba.cli.common import (ENERGY_SPEC, R_SPEC, Once, UsageError, add_max_points_argument,
+                            add_model_arguments, add_tol_argument, build_model, check_deformation,
+                            coupling, fmt, json_text, max_points, parse_alphas, parse_radii,
+                            too_many, tolerance)
 from tba.models.cdd import ttbar
-from tba.physics.flow import BranchPoint, branch_point
+from tba.output.labels import number
+from tba.physics.flow import BranchPoint, BranchStatus, branch_point
 from tba.scans.limits import MAX_SOLVE_POINTS
 from tba.solvers.ground import flow_residual, solve_ground_state
 
@@ -30,7 +32,7 @@ def cmd_branch_point(args, out):
             except RuntimeError as exc:
                 raise UsageError(f"argument --method: continuation failed: {exc}") from None
             bp = BranchPoint(
-                model.name, alpha, "found", radius=fold.value, energy=fold.energy,
+                model.name, alpha, BranchStatus.FOUND, radius=fold.value, energy=fold.energy,
                 radius_error=fold.value_error, energy_error=fold.energy_error,
                 message=f"fold located by pseudo-arclength continuation in {fold.steps} steps")
     else:
@@ -38,25 +40,33 @@ def cmd_branch_point(args, out):
     rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": args.method}
     if args.json:
         print(json_text(rec), file=out)
-    elif bp.status == "found":
-        name = model.name if model.coupling is None else f"{model.name} (B = {model.coupling:g})"
-        print(f"{name}, alpha = {alpha:g}: branch point at "
-              f"R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, E_0(R_c) = {bp.energy:.15g} "
-              f"+- {bp.energy_error:.1e} (T_H = {1 / bp.radius:.12g}); status {bp.status}", file=out)
+    elif bp.found:
+        print(f"{_model_words(model)}, alpha = {number(alpha)}: branch point at "
+              f"R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, E(R_c) = {bp.energy:.15g} "
+              f"+- {bp.energy_error:.1e} (T_H = {bp.hagedorn_temperature:.12g}); status "
+              f"{bp.status.value}", file=out)
     else:
-        print(f"{model.name}, alpha = {alpha:g}: status {bp.status}: {bp.message}", file=out)
+        print(f"{_model_words(model)}, alpha = {number(alpha)}: status {bp.status.value}: "
+              f"{bp.message}", file=out)
     return 0
 
 
-FLOW_HEADER = (f"{'R':>10} {'alpha':>8} {'E':>22} {'dE/dR':>14} {'dE/dalpha':>14} "
-               f"{'residual/|E E_R|':>16} {'error/|E E_R|':>13}  status")
+def _model_words(model):
+    """``sinh-gordon B=0.6`` (the model label of files and figures), or the name."""
+    from tba.models.catalog import model_label
+
+    return model.name if model.coupling is None else model_label(model.name, model.coupling)
+
+
+FLOW_HEADER = (f"{'R':>16} {'alpha':>12} {'E':>22} {'dE/dR':>20} {'dE/dalpha1':>20} "
+               f"{'residual':>9} {'error':>8} {'relative':>9} {'rel. error':>10}  status")
 
 
 def cmd_flow_check(args, out):
     model = build_model(args)
     limit = max_points(args, MAX_SOLVE_POINTS)
     radii = parse_radii(args.radius, limit)
-    alphas = [coupling("--alpha", a) for a in args.alpha]
+    alphas = parse_alphas(args.alpha, limit)
     if len(radii) * len(alphas) > limit:
         raise too_many("--alpha", len(radii) * len(alphas), limit, "points (radii x alphas)")
     for alpha in alphas:
@@ -69,21 +79,25 @@ def cmd_flow_check(args, out):
         for R in radii:
             res = solve_ground_state(model, R, ttbar(alpha), tol=tol, start=start)
             rec = {"model": model.name, "coupling": model.coupling, "radius": R, "alpha": alpha,
-                   "status": res.status.value, "energy": None, "dE_dR": None, "dE_dalpha": None,
-                   "residual": None, "residual_error": None, "scale": None}
+                   "status": res.status.value, "energy": None, "dE_dR": None, "dE_dalpha1": None,
+                   "residual": None, "residual_error": None, "relative_residual": None,
+                   "relative_error": None, "scale": None}
             if res.converged:
                 start = res
                 f = flow_residual(res)
-                rec.update(energy=res.energy, dE_dR=f["dE_dR"], dE_dalpha=f["dE_dalpha1"],
-                           residual=f["residual"], residual_error=f["error"], scale=f["scale"])
+                rec.update(energy=res.energy, dE_dR=f["dE_dR"], dE_dalpha1=f["dE_dalpha1"],
+                           residual=f["residual"], residual_error=f["error"],
+                           relative_residual=f["relative_residual"],
+                           relative_error=f["relative_error"], scale=f["scale"])
+            rec["dE_dalpha"] = rec["dE_dalpha1"]  # deprecated name, kept for one release
             if args.json:
                 print(json_text(rec), file=out, flush=True)
                 continue
-            rel = (lambda k: rec[k] / rec["scale"] if rec[k] is not None and rec["scale"] else None)
-            print(f"{R:>10.6g} {alpha:>8.4g} {fmt(rec['energy'], '22.15g'):>22} "
-                  f"{fmt(rec['dE_dR'], '14.8g'):>14} {fmt(rec['dE_dalpha'], '14.8g'):>14} "
-                  f"{fmt(rel('residual'), '16.2e'):>16} {fmt(rel('residual_error'), '13.1e'):>13}"
-                  f"  {rec['status']}", file=out, flush=True)
+            print(f"{R:{R_SPEC}} {alpha:>12.10g} {fmt(rec['energy'], ENERGY_SPEC):>22} "
+                  f"{fmt(rec['dE_dR'], '20.15g'):>20} {fmt(rec['dE_dalpha1'], '20.15g'):>20} "
+                  f"{fmt(rec['residual'], '9.2e'):>9} {fmt(rec['residual_error'], '8.1e'):>8} "
+                  f"{fmt(rec['relative_residual'], '9.2e'):>9} "
+                  f"{fmt(rec['relative_error'], '10.1e'):>10}  {rec['status']}", file=out, flush=True)
     return 0
 
 
@@ -105,14 +119,16 @@ def add_flow_commands(sub, conventions):
 
     fc = sub.add_parser("flow-check", help="Burgers-flow residuals over radii and alphas",
                         description="For each radius and alpha: E, the exact derivatives dE/dR and "
-                        "dE/dalpha from the linearised TBA, and the flow residual "
-                        "dE/dalpha - E dE/dR (P = 0) relative to |E dE/dR|.",
+                        "dE/dalpha1 from the linearised TBA, and the Burgers residual "
+                        "dE/dalpha1 - E dE/dR (P = 0) with its error estimate, absolute and "
+                        "relative to |E dE/dR|.",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(fc)
     fc.add_argument("--radius", required=True, nargs="+", action="extend", metavar="R",
-                    help="radii: numbers and/or START:STOP:COUNT (repeated options add up)")
+                    help="radii: numbers and/or START:STOP:COUNT ranges (START:STOP:COUNT:log "
+                    "for geometric spacing; repeated options add up)")
     fc.add_argument("--alpha", required=True, nargs="+", action="extend", metavar="A",
-                    help="TTbar couplings (repeated options add up)")
+                    help="TTbar couplings: numbers and/or ranges (repeated options add up)")
     add_tol_argument(fc)
     fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(fc, MAX_SOLVE_POINTS, "points (radii x alphas)")

@@ -105,8 +105,8 @@ class DiagonalModel:
     coupling : float or None
         The model's own parameter (sinh-Gordon B, sine-Gordon N), recorded in output files.
     bulk_energy_density : float or None
-        The vacuum energy per unit length that the TBA energy E_0 leaves out (E = E_0 + f R),
-        where it is known; None otherwise.
+        The vacuum energy per unit length f that the TBA energy E leaves out (the energy
+        with the bulk term is E + f R), where it is known; None otherwise.
     description : str
     labels : sequence of str, optional
         A name per species (default "1", "2", ...).

@@ -78,7 +78,7 @@ LABELS = {
     "branch_y": r"branch radius $R_c$ [$m_1^{-1}$]",
     "branch_t": r"Hagedorn temperature $T_H = 1/R_c$ [$m_1$]",
     "alpha_key": r"$\alpha$ [$m_1^{-2}$]",
-    "prediction": r"$E_\mathrm{flow}$: same level at $\alpha = 0$, $\tilde R$",
+    "prediction": r"flow prediction $E_\mathrm{flow}$ from $E_n(\tilde R, 0)$",
     "branch_point": r"branch point $(R_c, E(R_c))$",
     "last_real": "last real point (branch point below)",
     "estimate": "error estimates (sum)",

@@ -194,6 +194,9 @@ def _format_report(data):
     lines.append(f"  {len(data.model)} model(s) x {len(data.alpha)} alpha(s) x {len(R)} radii "
                  f"({R.min():{RADIUS_FORMAT}} .. {R.max():{RADIUS_FORMAT}}) x {len(data.state)} state(s) = "
                  f"{run.n_points} points; tol {run.tol:g}")
+    if run.higher_spin:  # the CDD couplings besides alpha, the same at every alpha
+        lines.append("  CDD couplings at every alpha: " + ", ".join(
+            f"alpha_{s} = {number(a)}" for s, a in run.higher_spin))
     done = data.progress["done"].astype(bool)
     if data.shard is not None:
         owned = data.owned

@@ -17,6 +17,7 @@ Ground-state branch point (alpha > 0): dR/dR~ = 1 - alpha E'(R~) vanishes at E'(
 R_c = R~_* - alpha E(R~_*); below R_c the two real solutions become a complex pair.
 """
 
+import enum
 import math
 from dataclasses import dataclass
 
@@ -280,13 +281,39 @@ def level_branch_point(level, alpha, radius_range=(1e-2, 20.0)):
 
 # -- the ground state's branch point ---------------------------------------------------------------
 
+class BranchStatus(str, enum.Enum):
+    """Outcome of a branch-point search. The members compare equal to their strings
+    (``BranchStatus.FOUND == "found"``), which are part of the JSON and file contract: `found`
+    and `none` (alpha <= 0) from `branch_point`, and in scan files also `not-applicable`
+    (higher-spin factors), `failed` and `not-computed`."""
+
+    FOUND = "found"
+    NONE = "none"
+    NOT_APPLICABLE = "not-applicable"
+    FAILED = "failed"
+    NOT_COMPUTED = "not-computed"
+
+    def __str__(self):
+        return self.value
+
+
+#: deprecated JSON keys of a branch point, kept for one release beside the new ones
+#: (old name -> new name; see README, "Renamed outputs")
+DEPRECATED_BRANCH_KEYS = {"radius": "branch_radius", "radius_error": "branch_radius_error",
+                          "energy": "branch_energy", "energy_error": "branch_energy_error",
+                          "effective_radius": "branch_effective_radius"}
+
+
 @dataclass
 class BranchPoint:
-    """Where the deformed ground state stops being real (alpha > 0)."""
+    """Where the deformed ground state stops being real (alpha > 0): the branch radius R_c
+    (``radius``), the energy there E(R_c) = E_0(R_c, alpha) = E_0(R~_*, 0) (``energy``), the
+    effective radius R~_* and their error estimates. ``status`` is a `BranchStatus` (a string
+    given to the constructor is converted)."""
 
     model: str
     alpha: float
-    status: str  # "found" or "none" (alpha <= 0: no branch point on this side)
+    status: BranchStatus  # FOUND, or NONE (alpha <= 0: no branch point on this side)
     radius: float = math.nan
     energy: float = math.nan
     effective_radius: float = math.nan
@@ -294,13 +321,61 @@ class BranchPoint:
     energy_error: float = math.nan
     message: str = ""
 
-    def as_record(self):
-        ok = self.status == "found"
-        return {"model": self.model, "alpha": self.alpha, "status": self.status,
-                "radius": self.radius if ok else None, "energy": self.energy if ok else None,
-                "effective_radius": self.effective_radius if ok else None,
-                "radius_error": self.radius_error if ok else None,
-                "energy_error": self.energy_error if ok else None, "message": self.message}
+    def __post_init__(self):
+        self.status = BranchStatus(self.status)
+        self.alpha = float(self.alpha)
+        for name in ("radius", "energy", "effective_radius", "radius_error", "energy_error"):
+            setattr(self, name, float(getattr(self, name)))  # plain floats, never numpy ones
+
+    @property
+    def found(self):
+        return self.status is BranchStatus.FOUND
+
+    @property
+    def hagedorn_temperature(self):
+        """T_H = 1/R_c (NaN unless found)."""
+        return 1.0 / self.radius if self.found and self.radius > 0 else math.nan
+
+    def as_record(self, deprecated=True):
+        """The JSON-ready record (plain Python floats; None unless found): ``branch_radius``
+        R_c, ``branch_energy`` E(R_c), ``branch_effective_radius`` R~_*, their errors and
+        ``hagedorn_temperature``. ``deprecated``: also the keys of earlier versions (`radius`,
+        `energy`, ...; `DEPRECATED_BRANCH_KEYS`), kept for one release."""
+        ok = self.found
+        value = lambda x: float(x) if ok else None  # noqa: E731
+        rec = {"model": self.model, "alpha": float(self.alpha), "status": self.status.value,
+               "branch_radius": value(self.radius), "branch_radius_error": value(self.radius_error),
+               "branch_energy": value(self.energy), "branch_energy_error": value(self.energy_error),
+               "branch_effective_radius": value(self.effective_radius),
+               "hagedorn_temperature": value(self.hagedorn_temperature), "message": self.message}
+        if deprecated:
+            rec.update({old: rec[new] for old, new in DEPRECATED_BRANCH_KEYS.items()})
+        return rec
+
+    def __repr__(self):
+        """One line with every digit: ``BranchPoint(lee-yang, alpha = 0.1: found, R_c =
+        0.39354557319965 +- 1.1e-14, E(R_c) = ... +- ..., T_H = ...)``."""
+        head = f"{self.model}, alpha = {self.alpha!r}: {self.status.value}"
+        if not self.found:
+            return f"BranchPoint({head}, {self.message!r})"
+        return (f"BranchPoint({head}, R_c = {self.radius!r} +- {self.radius_error:.2g}, "
+                f"E(R_c) = {self.energy!r} +- {self.energy_error:.2g}, "
+                f"T_H = {self.hagedorn_temperature!r})")
+
+    def _repr_html_(self):
+        """A two-column table for notebooks, like `SolveResult`'s."""
+        import html
+
+        rows = [("model", self.model), ("alpha", repr(self.alpha)), ("status", self.status.value)]
+        if self.found:
+            rows += [("R_c", f"{self.radius!r} +- {self.radius_error:.2g}"),
+                     ("E(R_c)", f"{self.energy!r} +- {self.energy_error:.2g}"),
+                     ("R~_*", repr(self.effective_radius)),
+                     ("T_H = 1/R_c", repr(self.hagedorn_temperature))]
+        rows.append(("message", self.message))
+        body = "".join(f"<tr><th style='text-align:left'>{html.escape(k)}</th>"
+                       f"<td style='text-align:left'>{html.escape(v)}</td></tr>" for k, v in rows)
+        return f"<table><caption>BranchPoint</caption>{body}</table>"
 
 
 def branch_point(model, alpha, tol=1e-13, curve=None):
@@ -315,7 +390,7 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     if not math.isfinite(alpha):
         raise ValueError(f"alpha must be finite, got {alpha!r}")
     if alpha <= 0:
-        return BranchPoint(model.name, alpha, "none",
+        return BranchPoint(model.name, alpha, BranchStatus.NONE,
                            message="the ground state has no branch point for alpha <= 0")
     curve = curve or UndeformedCurve(model, tol)
     g = lambda x: curve.derivative(math.exp(x)) - 1.0 / alpha  # noqa: E731 (monotone in x = log R~)
@@ -329,6 +404,6 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     Rt = math.exp(x)
     E, dE, err = curve(Rt)
     Rc = Rt - alpha * E
-    return BranchPoint(model.name, alpha, "found", radius=Rc, energy=E, effective_radius=Rt,
-                       radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
+    return BranchPoint(model.name, alpha, BranchStatus.FOUND, radius=Rc, energy=E,
+                       effective_radius=Rt, radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
                        message=f"E_0'(R~) = 1/alpha at R~ = {Rt:.15g}")

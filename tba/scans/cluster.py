@@ -205,7 +205,7 @@ def _failed(run, what, error):
     """`TaskFailed` for a chunk or a branch-point pair ``what``."""
     if isinstance(what, tuple):
         m, a = what
-        return TaskFailed(f"branch point of {run.models[m].label} at alpha = {run.alphas[a]:g}",
+        return TaskFailed(f"branch point of {run.models[m].label} at alpha = {run.alphas[a]:.10g}",
                           error)
     return TaskFailed(describe_chunk(run, what), error, chunk=what)
 

@@ -19,10 +19,10 @@ for a failing point (`tba.scans.interrupts.caused_by_interrupt`).
 Flow check (``flow_check = true``, the default): for each converged point with alpha != 0
 and no higher-spin factor, the same level undeformed is solved at
 R~ = sqrt((R + alpha E)^2 - (alpha P)^2) with the exact momentum P = 2 pi sum I_k / R; the
-prediction E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~ and the flow residual
+prediction E R~ = (R + alpha E) E_n(R~, 0) + alpha P^2 R / R~ and the flow residual
 |E(R, alpha) - prediction| are stored. With TTbar the deformed equations are the undeformed
 ones at R~ in a boosted frame, so the relation is exact; for P = 0 it is
-E(R, alpha) = E_0(R + alpha E, 0).
+E(R, alpha) = E_n(R + alpha E, 0).
 
 Branch points (``branch_points = true``, the default): the ground state's branch point
 R_c(alpha) once per model and alpha (`solve_branch_point`: `tba.physics.flow.branch_point` at the
@@ -164,9 +164,10 @@ def _failed_point(values, i, exc, run):
 def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, tol):
     """The flow prediction of a level with P != 0 and its error estimate.
 
-    E R~ = A E_0(R~) + alpha P^2 R / R~ with A = R + alpha E and R~ = sqrt(A^2 - (alpha P)^2)
-    (E_0 = res0 at R~). The prediction depends on E through A and R~, so its error estimate is
-    (A / R~) err(E_0) + |d prediction / dE| err(E), with E_0'(R~) from a second undeformed
+    E R~ = A E_n(R~, 0) + alpha P^2 R / R~ with A = R + alpha E and R~ = sqrt(A^2 - (alpha P)^2)
+    (E_n(R~, 0) = res0, the level undeformed). The prediction depends on E through A and R~,
+    so its error estimate is (A / R~) err(E_n(R~, 0)) + |d prediction / dE| err(E), with
+    E_n'(R~, 0) from a second undeformed
     solve at R~ (1 + 1e-6); NaN if that solve fails."""
     e0 = res0.energy
     predicted = (a_eff * e0 + boost * boost * R / (alpha * r_eff)) / r_eff
@@ -211,11 +212,15 @@ def solve_branch_point(run, model_index, alpha_index):
 
 
 def describe_chunk(run, chunk):
-    """``chunk 5 (free-fermion, alpha = 0.5, R = 0.3 .. 0.42)``: for messages."""
-    state = f", {run.states[chunk.state]}" if len(run.states) > 1 else ""
+    """``chunk 5 (free-fermion, alpha = 0.5, R = 0.3 .. 0.42)``, with ``, state 0`` or
+    ``, ground state`` when the run has several states: for messages. Radii and alpha to 10
+    significant digits, as in tables (docs/glossary.md)."""
+    level = run.states[chunk.state]
+    state = ("" if len(run.states) == 1 else
+             ", ground state" if level == "ground" else f", state {level}")
     return (f"chunk {chunk.index} ({run.models[chunk.model].label}, alpha = "
-            f"{run.alphas[chunk.alpha]:g}, R = {run.radii[chunk.radius_start]:.6g} .. "
-            f"{run.radii[chunk.radius_stop - 1]:.6g}{state})")
+            f"{run.alphas[chunk.alpha]:.10g}, R = {run.radii[chunk.radius_start]:.10g} .. "
+            f"{run.radii[chunk.radius_stop - 1]:.10g}{state})")
 
 
 def one_line(exc):

@@ -1010,18 +1010,26 @@ def energy_derivatives(result, spins=(1,), second=False):
     fine = result._state
     d_fine = fine.derivatives(spins, second)
     d_coarse = fine.coarse.derivatives(spins, second) if fine.coarse is not None else None
-    out = dict(d_fine)
+    out = {key: float(value) for key, value in d_fine.items()}
     for key, value in d_fine.items():
         floor = 64 * _EPS * abs(value) * np.sqrt(fine.eps.size)
-        out[key + "_error"] = (abs(value - d_coarse[key]) if d_coarse else abs(value)) + floor
-    return out
+        out[key + "_error"] = float((abs(value - d_coarse[key]) if d_coarse else abs(value)) + floor)
+    return out  # plain Python floats
 
 
 def flow_residual(result):
     """The ground state's Burgers-equation residual d_alpha E - E d_R E - P^2/R (P = 0 here),
-    from exact derivatives, with its error estimate and the scale |E dE/dR|."""
+    from exact derivatives, with its error estimate and the scale |E dE/dR|.
+
+    Returns plain Python floats: ``residual`` (absolute, signed) and its ``error``, ``scale``
+    = |E dE/dR|, ``relative_residual`` and ``relative_error`` (both over the scale; NaN when
+    the scale is 0), and the derivatives of `energy_derivatives` (``dE_dR``, ``dE_dalpha1``
+    and their errors)."""
     d = energy_derivatives(result, spins=(1,))
-    E, P, R = result.energy, result.momentum, result.radius
+    E, P, R = float(result.energy), float(result.momentum), float(result.radius)
     residual = d["dE_dalpha1"] - E * d["dE_dR"] - P * P / R
-    error = d["dE_dalpha1_error"] + abs(E) * d["dE_dR_error"] + result.error * abs(d["dE_dR"])
-    return {"residual": residual, "error": error, "scale": abs(E * d["dE_dR"]), **d}
+    error = d["dE_dalpha1_error"] + abs(E) * d["dE_dR_error"] + float(result.error) * abs(d["dE_dR"])
+    scale = abs(E * d["dE_dR"])
+    relative = (lambda x: x / scale if scale > 0 else math.nan)  # noqa: E731
+    return {"residual": residual, "error": error, "scale": scale,
+            "relative_residual": relative(residual), "relative_error": relative(error), **d}

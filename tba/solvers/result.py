@@ -67,6 +67,12 @@ class SolveResult:
     def alpha(self):
         return self.couplings.get(1, 0.0)
 
+    @property
+    def cdd_couplings(self):
+        """{spin: alpha_s} of the deformation (the same dict as ``couplings``; the JSON key is
+        ``cdd_couplings``, apart from the model's own ``coupling``)."""
+        return self.couplings
+
     def _fields(self):
         """(name, value) pairs shown by the reprs: full precision for R, alpha and E."""
         label = _model_label(self.model, self.coupling)
@@ -109,15 +115,18 @@ class SolveResult:
             raise SolveError(f"{self.model} at R = {self.radius}: {self.status.value}: {self.message}")
         return self
 
-    def as_record(self):
-        """The JSON-ready record of the command-line contract."""
+    def as_record(self, deprecated=True):
+        """The JSON-ready record of the command-line contract (plain Python numbers).
+        ``cdd_couplings`` is {"spin": alpha_s}; ``deprecated``: also under its earlier key
+        ``couplings``, kept for one release (README, "Renamed outputs")."""
         ok = self.converged
-        return {
+        cdd = {str(k): float(v) for k, v in self.couplings.items()}
+        rec = {
             "model": self.model,
             "coupling": self.coupling,
             "radius": self.radius,
             "alpha": self.alpha,
-            "couplings": {str(k): v for k, v in self.couplings.items()},
+            "cdd_couplings": cdd,
             "energy": float(self.energy) if ok else None,
             "error": float(self.error) if ok else None,
             "status": self.status.value,
@@ -128,6 +137,9 @@ class SolveResult:
                 "rapidities": [float(t) for t in self.rapidities] if ok else None}
                if self.state else {}),
         }
+        if deprecated:
+            rec["couplings"] = dict(cdd)
+        return rec
 
 
 def _model_label(name, coupling):

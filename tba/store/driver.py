@@ -243,7 +243,7 @@ def _drive(run, path, prepared, backend, pending, branch_pending, summary, progr
                         summary.branch_points_computed += 1
                         if values["status"] == BP_FAILED:
                             print(f"tba run: branch point of {run.models[m].label} at alpha = "
-                                  f"{run.alphas[a]:g} failed (stored as failed): "
+                                  f"{run.alphas[a]:.10g} failed (stored as failed): "
                                   f"{values['message']}", file=log, flush=True)
                     else:
                         summary.failed.append(item)

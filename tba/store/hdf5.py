@@ -138,14 +138,15 @@ for Lee-Yang, "0" is its one-particle state).
 Deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t) (phi_ab += alpha m_a m_b cosh t),
 higher odd spins s: exp(i alpha_s sinh(s t)) (single-species models).
 Then d/dalpha E = E dE/dR + P^2/R. With TTbar alone the deformed level is the undeformed one
-at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~
-(for P = 0: E(R, alpha) = E_0(R + alpha E, 0)). flow_radius is R~, flow_prediction that
-expression with E_0 solved at R~ (the same level undeformed), flow_residual = |energy -
+at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_n(R~, 0) + alpha P^2 R / R~
+(for P = 0: E(R, alpha) = E_n(R + alpha E, 0)). flow_radius is R~, flow_prediction E_flow that
+expression with E_n(R~, 0) solved at R~ (the same level undeformed), flow_residual = |energy -
 flow_prediction|, flow_error the error estimate of the prediction: the undeformed solve's
 times (R + alpha E) / R~, plus for P != 0 |d prediction / dE| times the error of E.
 alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
-/branch_points: R_c(alpha) = R~ - alpha E_0(R~) where E_0'(R~) = 1/alpha (TTbar only);
-energy there E(R_c, alpha) = E_0(R~); Hagedorn temperature T_H = 1/R_c.
+/branch_points: R_c(alpha) = R~ - alpha E_0(R~, 0) where E_0'(R~, 0) = 1/alpha (TTbar only;
+E_0 the ground state); energy there E(R_c) = E_0(R_c, alpha) = E_0(R~, 0) (read as
+branch_energy); Hagedorn temperature T_H = 1/R_c. Names: docs/glossary.md.
 error estimates |energy - exact| and is meant to bound it; tol is relative."""
 
 UNITS = ("radius, flow_radius, branch_points/{branch_radius, branch_radius_error, "
@@ -562,7 +563,7 @@ def write_atomically(path, image, keep=None):
     if free is not None and free < len(image) + SPACE_MARGIN:
         raise StoreError(f"{path}: needs {_size(len(image) + SPACE_MARGIN)} of disk space and its "
                          f"file system has {_size(free)} free; free some space or write the file "
-                         f"elsewhere (--out)")
+                         f"elsewhere (--output)")
     tmp = partial_path(path)
     try:
         if tmp.exists():  # ours (this host and pid), left by a dead process of the same pid
@@ -1039,11 +1040,11 @@ def damage_message(snap):
     if snap.bad_branch:
         m, a = snap.bad_branch[0]
         more = f" (and {len(snap.bad_branch) - 1} more)" if len(snap.bad_branch) > 1 else ""
-        what.append(f"the branch point of {run.models[m].label} at alpha = {run.alphas[a]:g}{more}")
+        what.append(f"the branch point of {run.models[m].label} at alpha = {run.alphas[a]:.10g}{more}")
     run_file = snap.attrs.get("run_file") or "RUNFILE"
     shard = f" --shard {snap.shard.label}" if snap.shard is not None else ""
     return (f"{path}: {' and '.join(what)} fails its checksum (the file is damaged there); "
-            f"tba run {run_file}{shard} --out {path} recomputes it")
+            f"tba run {run_file}{shard} --output {path} recomputes it")
 
 
 def check_store(path, run, shard=None):
@@ -1058,27 +1059,27 @@ def check_store(path, run, shard=None):
     except StoreError as exc:
         if not exc.foreign or "--force" in str(exc):
             raise
-        raise StoreError(f"{exc}; refusing to overwrite it (use --force to replace it, or --out)",
+        raise StoreError(f"{exc}; refusing to overwrite it (use --force to replace it, or --output)",
                          foreign=True) from None
     found = snap.shard
     if found != shard:
         hint = ("merge the shards with tba merge, or resume it with --shard "
                 f"{found.label}" if found is not None and shard is None else
-                "use --out for another file, or --force to replace it")
+                "use --output for another file, or --force to replace it")
         raise StoreError(f"{path}: is {_shard_words(found)} of a run, not "
                          f"{_shard_words(shard)}; {hint}", foreign=True)
     if snap.version != SCHEMA_VERSION:
         raise StoreError(f"{path}: schema version {snap.version}, this tba writes "
                          f"{SCHEMA_VERSION} and cannot resume it; use --force to replace it, "
-                         f"or --out", foreign=True)
+                         f"or --output", foreign=True)
     if snap.attrs.get("run_id") != run.run_id:
         keys = differing_keys(snap.run.to_dict(), run.to_dict()) or ["run_id"]
         raise StoreError(f"{path}: written by a different run (differs in: {', '.join(keys)}); "
-                         f"refusing to overwrite it (use --force to replace it, or --out)", foreign=True)
+                         f"refusing to overwrite it (use --force to replace it, or --output)", foreign=True)
     stored = snap.attrs.get("package_version")
     if stored != package_version():
         raise StoreError(f"{path}: written by tba {stored}, this is tba {package_version()}; "
-                         f"resuming would mix versions (use --force to start again, or --out)",
+                         f"resuming would mix versions (use --force to start again, or --output)",
                          foreign=True)
     return snap
 
@@ -1131,13 +1132,14 @@ class StoreData:
         """Mask of the chunks this file is responsible for (all of them in a full store)."""
         return self.progress.get("owned", np.ones(self.n_chunks, dtype="u1")).astype(bool)
 
-    def records(self, include_not_computed=False):
-        """One dict per point with the keys of ``tba solve --json`` plus ``state``."""
+    def records(self, include_not_computed=False, deprecated=True):
+        """One dict per point with the keys of ``tba solve --json`` plus ``state``
+        (``deprecated``: with the earlier key ``couplings`` beside ``cdd_couplings``)."""
         st = self.data["status"]
         names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
         for m in range(len(self.model)):
             for a, alpha in enumerate(self.alpha):
-                couplings = dict(self.run.deformation(float(alpha)).couplings)
+                cdd = {str(k): float(v) for k, v in self.run.deformation(float(alpha)).couplings.items()}
                 for r, R in enumerate(self.radius):
                     for s, state in enumerate(self.state):
                         i = (m, a, r, s)
@@ -1145,12 +1147,12 @@ class StoreData:
                         if code in (NOT_COMPUTED, NOT_AVAILABLE) and not include_not_computed:
                             continue
                         ok = names.get(code) == "converged"
-                        yield {
+                        rec = {
                             "model": self.model_name[m],
-                            "coupling": self.model_coupling[m],
+                            "coupling": _model_coupling(self.model_coupling[m]),
                             "radius": float(R),
                             "alpha": float(alpha),
-                            "couplings": {str(k): v for k, v in couplings.items()},
+                            "cdd_couplings": dict(cdd),
                             "energy": float(self.data["energy"][i]) if ok else None,
                             "error": float(self.data["error"][i]) if ok else None,
                             "momentum": float(self.data["momentum"][i]) if ok else None,
@@ -1159,6 +1161,14 @@ class StoreData:
                             "message": self.data["message"][i],
                             "state": state,
                         }
+                        if deprecated:
+                            rec["couplings"] = dict(cdd)
+                        yield rec
+
+
+def _model_coupling(value):
+    """A model's coupling as a plain float, None for none (NaN in the file)."""
+    return None if value is None or math.isnan(float(value)) else float(value)
 
 
 def read_store(path):
@@ -1177,7 +1187,7 @@ def read_store(path):
             raise
         where = f" --shard {found.shard.label}" if found.shard is not None else ""
         run_file = found.run_file or "RUNFILE"
-        raise DamagedStore(f"{exc}; tba run {run_file}{where} --out {path} rebuilds it from the "
+        raise DamagedStore(f"{exc}; tba run {run_file}{where} --output {path} rebuilds it from the "
                            f"{len(found.chunks)} of {found.marked} stored chunks whose checksums "
                            f"verify", recoverable=len(found.chunks)) from None
     if snap.bad_chunks or snap.bad_branch:

@@ -147,7 +147,7 @@ class OutputLock:
             os.close(fd)  # taken, or released and removed meanwhile: look again
             if time.monotonic() > deadline:
                 raise StoreBusy(f"{self.path}: being written by {_describe(_read_info(lp))}; "
-                                f"wait until it has finished, or write to another file (--out)")
+                                f"wait until it has finished, or write to another file (--output)")
             time.sleep(0.05)
 
     def _write_info(self):

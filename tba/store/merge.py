@@ -18,11 +18,11 @@ Decisions:
   damaged file, or a chunk that fails its checksum, is refused with one line naming the file
   and the chunk, even where no other input overlaps it.
 * It is written complete under a temporary name and then renamed (holding the lock of
-  ``--out``, like ``tba run``): an interrupted merge leaves no half-merged file. An existing ``--out`` of the same run is merged in as one more
+  ``--output``, like ``tba run``): an interrupted merge leaves no half-merged file. An existing ``--output`` of the same run is merged in as one more
   input (so shards that finish late can be added); one of another run, or a shard, is never
   overwritten unless ``force``.
 * Chunks no input holds stay "not computed": the merge says which (per shard, when the inputs
-  are shards of one split), and plain ``tba run RUNFILE --out MERGED`` computes just those.
+  are shards of one split), and plain ``tba run RUNFILE --output MERGED`` computes just those.
 """
 
 import platform
@@ -132,7 +132,7 @@ class _Merged:
             if not same.all():
                 m, a = (int(x[~same][0]) for x in np.nonzero(both))
                 raise StoreError(f"{path}: the branch point of {self.run.models[m].label} at alpha = "
-                                 f"{self.run.alphas[a]:g} differs ({name}) from the one in "
+                                 f"{self.run.alphas[a]:.10g} differs ({name}) from the one in "
                                  f"{self.files[self.branch_source[m, a]]}; refusing to merge "
                                  f"inconsistent files")
         new = have & (self.branch_source < 0)
@@ -184,7 +184,7 @@ def merge_stores(paths, out, force=False):
                 existing = check_store(out, run)
             except StoreError as exc:
                 raise StoreError(f"{str(exc).split('; ')[0]}; refusing to overwrite it with the "
-                                 f"merge (use --force to replace it, or another --out)") from None
+                                 f"merge (use --force to replace it, or another --output)") from None
             merged.add(out, _verified(existing))
             sources.append(out)
         shard_counts = set()

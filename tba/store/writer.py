@@ -91,7 +91,7 @@ def _safe(snap):
     n = int(snap.done.sum())
     run_file = snap.attrs.get("run_file") or "RUNFILE"
     return (f"its {n} computed chunk{'s are' if n != 1 else ' is'} safe in it: copy it to a "
-            f"writable place and resume the copy there (tba run {run_file} --out COPY)")
+            f"writable place and resume the copy there (tba run {run_file} --output COPY)")
 
 
 def unwritable_message(path, snap, reason):
@@ -114,7 +114,7 @@ def recover_store(path, run, shard, run_file, damage, notes):
         why = None
     if why is not None:
         raise DamagedStore(f"{damage}; {why}, so nothing in it can be recovered; use --force "
-                           f"to replace it, or --out")
+                           f"to replace it, or --output")
     contents = empty_contents(run, shard)
     offsets = shard_points(run, shard)[0] if shard is not None else None
     chunks = run.chunks()
@@ -248,7 +248,7 @@ class Store:
                 self._write("branch_points/checksum", k, checksum)
                 self._write("branch_points/status", k, stored["status"])
         except OSError as exc:
-            label = f"the branch point of {self.run.models[model].label} at alpha = {self.run.alphas[alpha]:g}"
+            label = f"the branch point of {self.run.models[model].label} at alpha = {self.run.alphas[alpha]:.10g}"
             raise self._failed(label, exc) from None
         if self._invocation is not None:
             self._invocation["branch_points_computed"] += 1
