@@ -3,9 +3,10 @@
 Near R_c the energy is a square-root function of R - R_c (docs/physics.md section 4, "Branch
 points of the ground state"), so dE/dR ~ (R - R_c)^(-1/2) amplifies every error of the
 discretised equations, rounding included. At R = R_c (1 + d), d = 1e-4, 1e-6, 1e-8, with R_c
-from `tba.branch_point` (the undeformed curve, not the deformed solver), each model must either
+from `tba.branch_point` (the undeformed curve, not the deformed solver), each model must
 converge at tol 1e-10 with an error estimate that bounds the difference from an independent
-reference, or say honestly that it cannot; below R_c it must never return a number.
+reference; closer (d = 1e-12) it may refuse the tolerance, with the reason, but never report
+no real solution; below R_c it must never return a number.
 
 Reference (common practice, no source): the same equations solved on grids forced finer and
 wider: every grid level asked for REFERENCE_MARGIN more e-folds, which shrinks the spacing
