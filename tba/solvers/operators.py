@@ -13,8 +13,13 @@ becomes sum_j w_ab(t_i - t_j) L_b(t_j), a block-Toeplitz product. Two rules give
   kernel's poles drop out of the error, which is set by the analyticity strip of L alone (pi/2
   for the driving term m R cosh t). This is product integration with the sinc basis (Nystrom's
   method with the kernel integrated exactly against the interpolant). E8, whose nearest kernel
-  pole lies at pi/30, needs h ~ 0.3 (33 points per species at R = 1) for 1e-13 instead of the
-  trapezoid rule's h ~ 0.025 (tests/test_quadrature.py measures both).
+  pole lies at pi/30, runs at R = 1 and tol 1e-13 on h = 0.27 (level 0: 33 points per species)
+  and h = 0.19 (level 1). Measured (tests/test_quadrature.py), against e^{-2 cosh t}: pointwise,
+  the convolution is good to 4e-11 at h = 0.27 (2.5e-10 at h = 0.3) and 7e-15 at h = 0.19, since
+  sinc interpolation converges at about half the trapezoid rule's rate; the energy, an
+  integral against cosh t, recovers the full rate: on the level-0 grid alone it is within 1e-13
+  of a fine-grid solve. The trapezoid rule with the same kernels is off by 2e-3 at h = 0.27 and
+  needs h ~ 0.03 for 1e-13 (6e-17 at h = 0.025, 1e-12 at h = 0.05).
 * trapezoid (kernel callables, whose transform is unknown): w(kh) = (h / 2pi) phi(kh); the
   kernels' pole distance then sets the spacing (``model.pole_distance``).
 
