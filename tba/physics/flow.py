@@ -216,7 +216,7 @@ def predict_ground_state(model, radius, alpha, tol=1e-13, curve=None):
 class ExcitedCurve:
     """An undeformed excited level E_n(R, 0), named by its Bethe quantum numbers, by TBA on
     demand (warm starts, cache, exact dE/dR); any excited level with real rapidities, massless
-    ones included (`tba.solvers.levels`)."""
+    ones included, and the Lee-Yang one-particle level (`tba.solvers.levels`)."""
 
     def __init__(self, model, state, tol=1e-13):
         from tba.solvers.levels import parse_level, unavailable
@@ -228,6 +228,7 @@ class ExcitedCurve:
             raise ValueError(f"state: {why}")
         self.momentum_number = sum(self.state)
         self._cache = {}
+        self._slopes = {}
         self._last = None
 
     def __call__(self, radius):
@@ -238,10 +239,18 @@ class ExcitedCurve:
         if res is None:
             res = solve_level(self.model, R, self.state, tol=self.tol, start=self._last)
             res.raise_for_status()
+            if isinstance(res._state, dict):  # the Lee-Yang one-particle level
+                from tba.solvers.lee_yang import radius_derivative
+
+                self._cache[R] = self._last = res
+                self._slopes[R] = radius_derivative(res)
+                return res.energy, self._slopes[R], res.error
             if getattr(res._state, "dE_dR", None) is None:
                 raise ValueError(f"state: the solver of {self.model.name}'s level "
                                  f"{','.join(map(str, self.state))} gives no exact dE/dR")
             self._cache[R] = self._last = res
+        if R in self._slopes:
+            return res.energy, self._slopes[R], res.error
         return res.energy, res._state.dE_dR, res.error
 
 
@@ -282,7 +291,10 @@ def level_branch_point(level, alpha, radius_range=(1e-2, 20.0)):
 
 @dataclass
 class BranchPoint:
-    """Where the deformed ground state stops being real (alpha > 0)."""
+    """Where a deformed level stops being real: the ground state (alpha > 0, `branch_point`)
+    or an excited level (`excited_branch_point`). Status "found", "none" (no branch point on
+    this side, or none on the level's curve from large R down to the radius the message
+    names) or "failed" (the undeformed level could not be solved on the way)."""
 
     model: str
     alpha: float
@@ -294,9 +306,13 @@ class BranchPoint:
     energy_error: float = math.nan
     message: str = ""
 
+    #: the level: "ground" or its quantum numbers in canonical form ("-1/2,1/2")
+    state: str = "ground"
+
     def as_record(self):
         ok = self.status == "found"
-        return {"model": self.model, "alpha": self.alpha, "status": self.status,
+        return {"model": self.model, "alpha": self.alpha, "state": self.state,
+                "status": self.status,
                 "radius": self.radius if ok else None, "energy": self.energy if ok else None,
                 "effective_radius": self.effective_radius if ok else None,
                 "radius_error": self.radius_error if ok else None,
@@ -332,3 +348,128 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     return BranchPoint(model.name, alpha, "found", radius=Rc, energy=E, effective_radius=Rt,
                        radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
                        message=f"E_0'(R~) = 1/alpha at R~ = {Rt:.15g}")
+
+
+# -- branch points of excited levels ------------------------------------------------------------
+
+#: where the walk along an excited level's undeformed curve starts and how far down it goes
+LEVEL_WALK_START = 20.0
+LEVEL_WALK_END = 1e-3
+#: free massless levels are E~ = C / R~: their fold lies at R~ = sqrt(-alpha C) (P = 0), so the
+#: walk ends at this multiple of sqrt|alpha| (C >= 2.5e-3)
+LEVEL_WALK_END_MASSLESS = 0.05
+#: steps of the walk in log R~ (a fold is a sign change of `_fold_function` between two steps)
+LEVEL_WALK_STEP = 0.2
+#: the second curve, for the error estimate, is solved to this many times the tolerance
+COARSE_FACTOR = 100.0
+
+
+def _fold_function(level, k, alpha, Rt):
+    """(g, R, E) along the characteristic through R~ of a level with P R = 2 pi k.
+
+    R(R~)^2 = u^2 - v^2 with u = R~ - alpha E~(R~), v = 2 pi k alpha / R~ (the boosted frame of
+    the module doc), so dR^2/dR~ = 2 g with g = u (1 - alpha E~'(R~)) + v^2 / R~: the fold in R
+    at fixed alpha is a zero of g (for P = 0, alpha E~'(R~) = 1). E = (E~ u + P~ v) / R.
+    Raises ValueError outside the boost's domain (u <= |v|) or where the level has no value."""
+    try:
+        E_u, dE_u, err = level(Rt)
+    except SolveError as exc:
+        raise ValueError(str(exc)) from None
+    u = Rt - alpha * E_u
+    v = 2 * math.pi * k * alpha / Rt
+    if not u > abs(v):
+        raise ValueError(f"R~ - alpha E~ = {u:.6g} <= |alpha P~| = {abs(v):.6g} at R~ = {Rt:.6g}")
+    R = math.sqrt((u - v) * (u + v))
+    P_u = 2 * math.pi * k / Rt
+    E = (E_u * u + P_u * v) / R
+    return u * (1 - alpha * dE_u) + v * v / Rt, R, E, err, u
+
+
+def _fold_on(level, k, alpha, lo, hi):
+    """The zero of g in log R~ between lo and hi (g(lo), g(hi) of opposite signs), by Brent's
+    method on the exact dE~/dR~; returns (R~_*, R_c, E, error of E~, u)."""
+    g = lambda x: _fold_function(level, k, alpha, math.exp(x))[0]  # noqa: E731
+    x = brentq(g, lo, hi, xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=200)
+    Rt = math.exp(x)
+    _, R, E, err, u = _fold_function(level, k, alpha, Rt)
+    return Rt, R, E, err, u
+
+
+def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
+    """R_c(alpha) of an excited level: the fold in R at fixed alpha, where the level's branch
+    that comes from large R meets the other real branch and both turn into a complex pair.
+
+    Located on the level's undeformed curve E~(R~) (exact dE~/dR~ from the linearised
+    equations) through the characteristic: R(R~)^2 = (R~ - alpha E~)^2 - (2 pi k alpha / R~)^2
+    (P R = 2 pi k), and the fold is the first zero of dR/dR~ met walking down from R~ = 20 in
+    steps of 0.2 in log R~ (to 1e-3, or where the boost's domain ends), polished by Brent's
+    method. For P = 0: alpha E~'(R~_*) = 1, R_c = R~_* - alpha E~(R~_*), E(R_c) = E~(R~_*).
+    (Two zeros closer together than one step of the walk are missed: the level is then
+    reported to have no branch point there.)
+
+    The fold is located again on a second curve solved to ``COARSE_FACTOR`` times the
+    tolerance; the differences of R_c and E(R_c) between the two, plus the propagated error
+    of E~ and rounding, are the error estimates (values of the finer curve). ``state``: the
+    level's name or quantum numbers (``"ground"``: `branch_point`). Returns a BranchPoint.
+    ``curves``: optional (fine, coarse) ExcitedCurve objects to reuse.
+    """
+    from tba.solvers.levels import GROUND, level_name, parse_level
+
+    alpha = float(alpha)
+    if not math.isfinite(alpha):
+        raise ValueError(f"alpha must be finite, got {alpha!r}")
+    level = parse_level(state)
+    if level == GROUND:
+        return branch_point(model, alpha, tol)
+    name = level_name(level)
+    fine, coarse = curves or (ExcitedCurve(model, level, tol),
+                              ExcitedCurve(model, level, min(COARSE_FACTOR * tol, 1e-8)))
+    k = fine.momentum_number
+    base = dict(model=model.name, alpha=alpha, state=name)
+    if alpha == 0:
+        return BranchPoint(**base, status="none", message="alpha = 0: the undeformed level has "
+                           "no branch point")
+    scale = math.sqrt(abs(alpha)) if model.is_massless else 1.0
+    x = math.log(LEVEL_WALK_START * max(1.0, scale))
+    x_end = math.log(LEVEL_WALK_END_MASSLESS * scale if model.is_massless else LEVEL_WALK_END)
+    try:
+        previous = _fold_function(fine, k, alpha, math.exp(x))[0]
+    except ValueError as exc:
+        return BranchPoint(**base, status="failed", message=f"at R~ = {math.exp(x):.6g}: {exc}")
+    bracket = None
+    while x > x_end:
+        x_new = x - LEVEL_WALK_STEP
+        try:
+            value = _fold_function(fine, k, alpha, math.exp(x_new))[0]
+        except ValueError as exc:
+            if "<= |alpha P~|" in str(exc):  # R -> 0 along the characteristic: no fold above
+                return BranchPoint(**base, status="none", message=(
+                    f"no fold: R(R~) decreases to 0 without turning (R~ = {math.exp(x_new):.6g}, "
+                    f"the end of the boost's domain)"))
+            return BranchPoint(**base, status="failed",
+                               message=f"walk down the undeformed level: {exc}")
+        if (value > 0) != (previous > 0):
+            bracket = (x_new, x)
+            break
+        x, previous = x_new, value
+    if bracket is None:
+        return BranchPoint(**base, status="none", message=(
+            f"no fold: R(R~) is monotonic for R~ from {LEVEL_WALK_START * max(1.0, scale):.6g} "
+            f"down to {math.exp(x):.6g}"))
+    try:
+        Rt, Rc, E, err, u = _fold_on(fine, k, alpha, *bracket)
+        x_f = math.log(Rt)
+        try:  # the coarse curve's zero lies within ~tol of the fine one's
+            Rt_c, Rc_c, E_c, _, _ = _fold_on(coarse, k, alpha, x_f - 1e-3, x_f + 1e-3)
+        except ValueError:
+            Rt_c, Rc_c, E_c, _, _ = _fold_on(coarse, k, alpha, *bracket)
+    except ValueError as exc:
+        return BranchPoint(**base, status="failed", message=f"locating the fold: {exc}")
+    eps = np.finfo(float).eps
+    # R_c is stationary in R~_*: an error err of E~ moves it by |alpha| err u / R_c
+    radius_error = abs(Rc - Rc_c) + abs(alpha) * err * u / Rc + 64 * eps * Rt
+    energy_error = abs(E - E_c) + err * (u / Rc + abs(alpha * E / Rc)) + 64 * eps * max(abs(E), 1.0)
+    return BranchPoint(**base, status="found", radius=Rc, energy=E, effective_radius=Rt,
+                       radius_error=radius_error, energy_error=energy_error,
+                       message=(f"dR/dR~ = 0 on the undeformed level at R~ = {Rt:.15g} "
+                                f"(second curve: R~ = {Rt_c:.15g})"))
