@@ -42,6 +42,10 @@ def cmd_solve(args, out):
     check_deformation(deformation, radii)
     tol = tolerance(args.tol)
     state = parse_state_argument(args.state, model, deformation) if args.state is not None else "ground"
+    if args.branch != "physical":  # beyond the branch point: tba.cli.branches
+        from tba.cli.branches import solve_branch
+
+        return solve_branch(args, out, model, radii, deformation, state, tol)
     from tba.solvers.levels import solve_level
 
     solve = lambda R, start: solve_level(model, R, state, deformation, tol=tol,  # noqa: E731
@@ -330,6 +334,10 @@ def build_parser():
                        "single-species models without bound states, lee-yang's "
                        "one-particle state 0, and the free massless models (the sign is the "
                        "chirality; bosons take repeated integers, e.g. 1,1)")
+    solve.add_argument("--branch", choices=("physical", "second", "complex"), default="physical",
+                       action=Once, help="ground state with alpha > 0: the physical branch "
+                       "(default), the second real branch above R_c, or the complex pair below R_c "
+                       "(Re E, Im E; JSON energy_real, energy_imag)")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(solve, MAX_SOLVE_POINTS, "radii")
     solve.set_defaults(func=cmd_solve)

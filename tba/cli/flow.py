@@ -8,16 +8,45 @@ import argparse
 
 from tba.cli.common import (Once, UsageError, add_max_points_argument, add_model_arguments,
                             add_tol_argument, build_model, check_deformation, coupling, fmt,
-                            json_text, max_points, parse_radii, too_many, tolerance)
+                            json_text, max_points, parse_radii, parse_state_argument, too_many,
+                            tolerance)
 from tba.models.cdd import ttbar
 from tba.physics.flow import BranchPoint, branch_point
 from tba.scans.limits import MAX_SOLVE_POINTS
 from tba.solvers.ground import flow_residual, solve_ground_state
 
 
+def _excited_branch_point(args, out, model, alpha, level):
+    """tba branch-point --state: the fold of an excited level (`excited_branch_point`)."""
+    from tba.output.labels import level_title, model_title
+    from tba.physics.flow import excited_branch_point
+    from tba.solvers.levels import level_name
+
+    if args.method != "curve":
+        raise UsageError("argument --method: continuation locates the ground state's fold only; "
+                         "excited levels use the undeformed curve (--method curve)")
+    tol = tolerance(args.tol)
+    bp = excited_branch_point(model, level, alpha, tol=max(tol, 1e-12))
+    rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": "curve"}
+    if args.json:
+        print(json_text(rec), file=out)
+        return 0
+    where = f"{model_title(model.name, model.coupling)}, state {level_name(level)} ({level_title(level)}), alpha = {alpha:g}"
+    if bp.status == "found":
+        print(f"{where}: branch point at R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, "
+              f"E(R_c) = {bp.energy:.15g} +- {bp.energy_error:.1e}; status {bp.status}", file=out)
+    else:
+        print(f"{where}: status {bp.status}: {bp.message}", file=out)
+    return 0
+
+
 def cmd_branch_point(args, out):
     model = build_model(args)
     alpha = coupling("--alpha", args.alpha)
+    if args.state is not None:
+        level = parse_state_argument(args.state, model, ttbar(alpha) if alpha else None)
+        if level != "ground":
+            return _excited_branch_point(args, out, model, alpha, level)
     tol = tolerance(args.tol)
     if args.method == "continuation":
         from tba.physics.continuation import locate_fold
@@ -90,15 +119,19 @@ def cmd_flow_check(args, out):
 def add_flow_commands(sub, conventions):
     """Register the subcommands on the ``tba`` subparsers object."""
     fmt = argparse.RawDescriptionHelpFormatter
-    bp = sub.add_parser("branch-point", help="the ground state's branch point R_c(alpha)",
+    bp = sub.add_parser("branch-point", help="a level's branch point R_c(alpha)",
                         description="Radius where the deformed ground state stops being real "
                         "(alpha > 0): E_0'(R~) = 1/alpha on the undeformed curve, or the fold "
-                        "of the deformed equations by continuation.",
+                        "of the deformed equations by continuation. With --state, the fold in R "
+                        "of an excited level (dR/dR~ = 0 on its undeformed curve).",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(bp)
     bp.add_argument("--alpha", required=True, action=Once, metavar="A", help="TTbar coupling")
     bp.add_argument("--method", choices=("curve", "continuation"), default="curve", action=Once,
                     help="undeformed curve (default) or pseudo-arclength continuation")
+    bp.add_argument("--state", action=Once, metavar="STATE",
+                    help="the level (as tba solve --state; default ground): an excited level's "
+                    "fold in R at fixed alpha, on its undeformed curve")
     add_tol_argument(bp)
     bp.add_argument("--json", action="store_true", help="one JSON object")
     bp.set_defaults(func=cmd_branch_point)

@@ -444,7 +444,7 @@ def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
         except ValueError as exc:
             if "<= |alpha P~|" in str(exc):  # R -> 0 along the characteristic: no fold above
                 return BranchPoint(**base, status="none", message=(
-                    f"no fold: R(R~) decreases to 0 without turning (R~ = {math.exp(x_new):.6g}, "
+                    f"no fold: R(R~) falls to 0 without turning (R~ = {math.exp(x_new):.6g}, "
                     f"the end of the boost's domain)"))
             return BranchPoint(**base, status="failed",
                                message=f"walk down the undeformed level: {exc}")
