@@ -91,6 +91,10 @@ def cmd_flow_check(args, out):
     for alpha in alphas:
         check_deformation(ttbar(alpha), radii)
     tol = tolerance(args.tol)
+    if args.state is not None or args.cdd:  # excited levels, higher spins: tba.cli.flowlevels
+        from tba.cli.flowlevels import flow_check_levels
+
+        return flow_check_levels(args, out, model, radii, alphas, tol)
     if not args.json:
         print(FLOW_HEADER, file=out, flush=True)
     for alpha in alphas:
@@ -146,6 +150,12 @@ def add_flow_commands(sub, conventions):
                     help="radii: numbers and/or START:STOP:COUNT (repeated options add up)")
     fc.add_argument("--alpha", required=True, nargs="+", action="extend", metavar="A",
                     help="TTbar couplings (repeated options add up)")
+    fc.add_argument("--state", action=Once, metavar="STATE",
+                    help="an excited level with real rapidities (as tba solve --state): "
+                    "dE/dalpha - E dE/dR - P^2/R")
+    fc.add_argument("--cdd", action="append", metavar="S:A",
+                    help="higher-spin CDD factor (as tba solve --cdd; repeatable): the "
+                    "generalised flow dE/dalpha_s - s E_s dE_s/dR for spin 1 and each S")
     add_tol_argument(fc)
     fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(fc, MAX_SOLVE_POINTS, "points (radii x alphas)")

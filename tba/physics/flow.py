@@ -473,3 +473,62 @@ def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
                        radius_error=radius_error, energy_error=energy_error,
                        message=(f"dR/dR~ = 0 on the undeformed level at R~ = {Rt:.15g} "
                                 f"(second curve: R~ = {Rt_c:.15g})"))
+
+
+# -- the flow relation of excited levels and of higher spins ---------------------------------------
+
+def _spin_charge(state, spin):
+    """(E_s, dE_s/dR) of a ground-state solution on its grid: E_s = -(1/2 pi) sum_b q_s^b
+    int cosh(s t) L_b (E_1 = E), dE_s/dR from the linearised equations (exact)."""
+    disc = state.disc
+    U, V = disc.ops.charge_rows(disc.deformation, spin)
+    de = state.jacobian().solve(disc.nu / disc.radius, rtol=1e-13)
+    weight = -V[0] / (2 * math.pi)
+    return float(np.sum(weight * state.L)), float(np.sum(weight * state.dL * de))
+
+
+def spin_flow_residual(result, spin):
+    """The generalised flow of the ground state for a spin-s CDD coupling alpha_s,
+
+        d E / d alpha_s = s E_s dE_s / dR,
+
+    (derived in `tba.models.cdd`; s = 1 is the Burgers equation with P = 0) from exact
+    derivatives on the final grid, with the error estimate from the next-coarser grid.
+    Returns {"residual", "error", "scale" (= |s E_s dE_s/dR|), "dE_dalpha", "E_s", "dE_s_dR"}."""
+    from tba.solvers.ground import State, energy_derivatives
+
+    if not (result.converged and isinstance(result._state, State)):
+        raise ValueError("result: the generalised flow needs a converged ground state")
+    d = energy_derivatives(result, spins=(spin,))
+    fine = result._state
+    Es, dEs = _spin_charge(fine, spin)
+    if fine.coarse is not None:
+        Es_c, dEs_c = _spin_charge(fine.coarse, spin)
+    else:
+        Es_c, dEs_c = 0.0, 0.0
+    eps = np.finfo(float).eps
+    err_Es = abs(Es - Es_c) + 64 * eps * abs(Es)
+    err_dEs = abs(dEs - dEs_c) + 64 * eps * abs(dEs) * math.sqrt(fine.eps.size)
+    residual = d[f"dE_dalpha{spin}"] - spin * Es * dEs
+    error = d[f"dE_dalpha{spin}_error"] + spin * (abs(Es) * err_dEs + abs(dEs) * err_Es)
+    return {"residual": residual, "error": error, "scale": abs(spin * Es * dEs),
+            "dE_dalpha": d[f"dE_dalpha{spin}"], "dE_dalpha_error": d[f"dE_dalpha{spin}_error"],
+            "E_s": Es, "dE_s_dR": dEs, "dE_dR": d["dE_dR"], "dE_dR_error": d["dE_dR_error"]}
+
+
+def level_flow_residual(result):
+    """The Burgers equation of an excited level with real rapidities (`solve_excited`),
+
+        d E / d alpha - E dE/dR - P^2 / R,      P = 2 pi sum I_k / R (exact),
+
+    from exact derivatives (`tba.solvers.excited.excited_derivatives`) with its error estimate
+    and the scale |E dE/dR| + P^2 / R. Returns the keys of `tba.flow_residual`."""
+    from tba.solvers.excited import excited_derivatives
+
+    d = excited_derivatives(result, spins=(1,))
+    E, R = result.energy, result.radius
+    P = 2 * math.pi * float(sum(result.state)) / R
+    residual = d["dE_dalpha1"] - E * d["dE_dR"] - P * P / R
+    error = (d["dE_dalpha1_error"] + abs(E) * d["dE_dR_error"] + result.error * abs(d["dE_dR"])
+             + 8 * np.finfo(float).eps * P * P / R)
+    return {"residual": residual, "error": error, "scale": abs(E * d["dE_dR"]) + P * P / R, **d}
