@@ -26,7 +26,7 @@ def _excited_branch_point(args, out, model, alpha, level):
         raise UsageError("argument --method: continuation locates the ground state's fold only; "
                          "excited levels use the undeformed curve (--method curve)")
     tol = tolerance(args.tol)
-    bp = excited_branch_point(model, level, alpha, tol=max(tol, 1e-12))
+    bp = excited_branch_point(model, level, alpha, tol=tol)
     rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": "curve"}
     if args.json:
         print(json_text(rec), file=out)
