@@ -36,7 +36,8 @@ def _check(model, deformation, state):
 
 def _record(model, R, deformation, branch, fold):
     return {"model": model.name, "coupling": model.coupling, "radius": R,
-            "alpha": deformation.alpha, "couplings": {str(s): a for s, a in deformation.couplings.items()},
+            "alpha": deformation.alpha,
+            "couplings": {str(s): a for s, a in deformation.couplings.items()},
             "branch": branch, "status": None, "energy": None, "energy_real": None,
             "energy_imag": None, "error": None, "effective_radius_real": None,
             "effective_radius_imag": None, "branch_radius": fold.value,

@@ -31,7 +31,8 @@ def _excited_branch_point(args, out, model, alpha, level):
     if args.json:
         print(json_text(rec), file=out)
         return 0
-    where = f"{model_title(model.name, model.coupling)}, state {level_name(level)} ({level_title(level)}), alpha = {alpha:g}"
+    where = (f"{model_title(model.name, model.coupling)}, state {level_name(level)} "
+             f"({level_title(level)}), alpha = {alpha:g}")
     if bp.status == "found":
         print(f"{where}: branch point at R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, "
               f"E(R_c) = {bp.energy:.15g} +- {bp.energy_error:.1e}; status {bp.status}", file=out)

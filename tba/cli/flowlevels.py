@@ -11,6 +11,8 @@ One JSON line (or table row) per point and spin; residual and its error estimate
 scale (|E dE/dR| + P^2/R, or |s E_s dE_s/dR|) in the table, absolute in JSON (with "scale").
 """
 
+import numpy as np
+
 from tba.cli.common import (UsageError, check_deformation, fmt, json_text, parse_cdd,
                             parse_state_argument)
 from tba.models.cdd import CDD
@@ -64,15 +66,21 @@ def flow_check_levels(args, out, model, radii, alphas, tol):
                 rec = {**base, "spin": spin, "dE_dR": None, "dE_dalpha": None, "E_s": None,
                        "dE_s_dR": None, "residual": None, "residual_error": None, "scale": None}
                 if res.converged:
-                    if level == "ground":
-                        f = spin_flow_residual(res, spin)
+                    try:
+                        f = (spin_flow_residual(res, spin) if level == "ground"
+                             else level_flow_residual(res))
+                    except (ValueError, np.linalg.LinAlgError) as exc:  # the point keeps E
+                        rec["message"] = f"{res.message}; derivatives failed: {exc}"
+                        f = None
+                    if f is not None and level == "ground":
                         rec.update(dE_dR=f["dE_dR"], dE_dalpha=f["dE_dalpha"], E_s=f["E_s"],
                                    dE_s_dR=f["dE_s_dR"])
-                    else:
-                        f = level_flow_residual(res)
+                    elif f is not None:
                         rec.update(dE_dR=f["dE_dR"], dE_dalpha=f["dE_dalpha1"], E_s=res.energy,
                                    dE_s_dR=f["dE_dR"])
-                    rec.update(residual=f["residual"], residual_error=f["error"], scale=f["scale"])
+                    if f is not None:
+                        rec.update(residual=f["residual"], residual_error=f["error"],
+                                   scale=f["scale"])
                 if args.json:
                     print(json_text(rec), file=out, flush=True)
                     continue
