@@ -38,6 +38,26 @@ def test_free_massless_levels_fold_where_the_square_root_vanishes(model, state, 
     assert bp.energy_error <= 1e-10 * abs(bp.energy)
 
 
+def test_massive_free_fermion_level_closed_form():
+    # the free fermion's two-particle level (-1/2, 1/2) in the NS sector (docs/physics.md
+    # section 5; textbook, e.g. Mussardo, Statistical Field Theory, 2010): E(R, 0) = E_NS(R) +
+    # 2 sqrt(1 + (pi / R)^2), E_NS(R) = -(1/pi) sum_k (-1)^(k+1) K_1(k R) / k (scipy.special);
+    # the fold of the flow is alpha E'(R~) = 1, R_c = R~ - alpha E(R~) (docs/physics.md section 4)
+    from scipy.optimize import brentq
+    from scipy.special import k1, kvp
+
+    ks = range(1, 200)
+    E = lambda R: (-sum((-1) ** (k + 1) * k1(k * R) / k for k in ks) / math.pi  # noqa: E731
+                   + 2 * math.sqrt(1 + (math.pi / R) ** 2))
+    dE = lambda R: (-sum((-1) ** (k + 1) * kvp(1, k * R) for k in ks) / math.pi  # noqa: E731
+                    - 2 * math.pi ** 2 / (R ** 3 * math.sqrt(1 + (math.pi / R) ** 2)))
+    alpha = -0.5
+    Rt = brentq(lambda R: alpha * dE(R) - 1, 0.3, 20, xtol=1e-15)
+    bp = excited_branch_point(tba.free_fermion(), "-1/2,1/2", alpha)
+    assert abs(bp.radius - (Rt - alpha * E(Rt))) <= bp.radius_error < 1e-11
+    assert abs(bp.energy - E(Rt)) <= bp.energy_error < 1e-11
+
+
 @pytest.mark.parametrize("model, state, alpha", [
     # (D, Dbar) = (3, 2) of 24 bosons at alpha > 0: a x + b x^2 > 0 for x > 0
     (tba.massless_bosons(24), "-1,-1,3", 0.05),
