@@ -395,6 +395,24 @@ def _fold_on(level, k, alpha, lo, hi):
     return Rt, R, E, err, u
 
 
+def _dip(level, k, alpha, lo, hi, positive):
+    """Where |g| dips between lo and hi (log R~) without a sign change on the walk's points:
+    the minimum of +-g by Brent's bounded method; if g changes sign there, the bracket
+    (x_min, hi) of the zero met first from large R~, else None."""
+    from scipy.optimize import minimize_scalar
+
+    sign = 1.0 if positive else -1.0
+
+    def h(x):
+        try:
+            return sign * _fold_function(level, k, alpha, math.exp(x))[0]
+        except ValueError:
+            return math.inf
+
+    best = minimize_scalar(h, bounds=(lo, hi), method="bounded", options={"xatol": 1e-6})
+    return (best.x, hi) if best.fun < 0 else None
+
+
 def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
     """R_c(alpha) of an excited level: the fold in R at fixed alpha, where the level's branch
     that comes from large R meets the other real branch and both turn into a complex pair.
@@ -404,8 +422,9 @@ def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
     (P R = 2 pi k), and the fold is the first zero of dR/dR~ met walking down from R~ = 20 in
     steps of 0.2 in log R~ (to 1e-3, or where the boost's domain ends), polished by Brent's
     method. For P = 0: alpha E~'(R~_*) = 1, R_c = R~_* - alpha E~(R~_*), E(R_c) = E~(R~_*).
-    (Two zeros closer together than one step of the walk are missed: the level is then
-    reported to have no branch point there.)
+    Where |dR/dR~| has a local minimum between the walk's points without a sign change, its
+    minimum is located (Brent) in case two zeros lie within one step (a level at the edge of
+    having a fold).
 
     The fold is located again on a second curve solved to ``COARSE_FACTOR`` times the
     tolerance; the differences of R_c and E(R_c) between the two, plus the propagated error
@@ -437,6 +456,7 @@ def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
     except ValueError as exc:
         return BranchPoint(**base, status="failed", message=f"at R~ = {math.exp(x):.6g}: {exc}")
     bracket = None
+    older = None  # the value one step before ``previous``
     while x > x_end:
         x_new = x - LEVEL_WALK_STEP
         try:
@@ -451,7 +471,12 @@ def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
         if (value > 0) != (previous > 0):
             bracket = (x_new, x)
             break
-        x, previous = x_new, value
+        if older is not None and abs(previous) < min(abs(older), abs(value)):
+            # |g| has a local minimum near x: two zeros may lie within one step; look closer
+            bracket = _dip(fine, k, alpha, x_new, x + LEVEL_WALK_STEP, previous > 0)
+            if bracket is not None:
+                break
+        x, previous, older = x_new, value, previous
     if bracket is None:
         return BranchPoint(**base, status="none", message=(
             f"no fold: R(R~) is monotonic for R~ from {LEVEL_WALK_START * max(1.0, scale):.6g} "
