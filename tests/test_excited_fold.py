@@ -118,18 +118,6 @@ def test_sinh_gordon_fold_on_two_tolerances_agrees(sg_fold):
     assert abs(loose.energy - bp.energy) <= loose.energy_error + bp.energy_error
 
 
-def test_sinh_gordon_fold_at_the_edge():
-    # at alpha = -0.8 (B = 0.6) both zeros of dR/dR~ lie within one step of the walk (the
-    # level is close to having no fold): still found, and bracketed by the deformed solver
-    # (common practice, no source)
-    sg = tba.sinh_gordon(0.6)
-    bp = excited_branch_point(sg, SG_STATE, -0.8)
-    assert bp.status == "found" and bp.radius_error < 1e-12
-    assert tba.solve(sg, bp.radius * (1 + 1e-4), tba.ttbar(-0.8), state=SG_STATE).converged
-    assert tba.solve(sg, bp.radius * (1 - 1e-4), tba.ttbar(-0.8), state=SG_STATE).status \
-        is tba.Status.NO_REAL_SOLUTION
-
-
 def test_sinh_gordon_small_alpha_has_no_fold():
     # at alpha = -0.1 the level exists at every R: 1 - alpha E'(R~) > 0 along the whole curve
     # (common practice: the deformed solver finds it at R = 0.3, far below the alpha = -1 fold)
