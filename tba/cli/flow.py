@@ -144,7 +144,9 @@ def add_flow_commands(sub, conventions):
     fc = sub.add_parser("flow-check", help="Burgers-flow residuals over radii and alphas",
                         description="For each radius and alpha: E, the exact derivatives dE/dR and "
                         "dE/dalpha from the linearised TBA, and the flow residual "
-                        "dE/dalpha - E dE/dR (P = 0) relative to |E dE/dR|.",
+                        "dE/dalpha - E dE/dR (P = 0) relative to |E dE/dR|. With --state, an "
+                        "excited level's dE/dalpha - E dE/dR - P^2/R; with --cdd, the generalised "
+                        "flow dE/dalpha_s - s E_s dE_s/dR per spin.",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(fc)
     fc.add_argument("--radius", required=True, nargs="+", action="extend", metavar="R",
