@@ -15,9 +15,10 @@ Deformations    ttbar, higher_spin, cdd_factor, resonance, CDD, NO_DEFORMATION
 Levels          solve (any level by name), solve_ground_state, solve_radii, solve_excited,
                 solve_lee_yang_one_particle, bethe_yang_energy, level_name,
                 solve_massless_level, free_levels (the levels of free massless models)
-Derivatives     energy_derivatives, flow_residual
+Derivatives     energy_derivatives, flow_residual, excited_derivatives (real-rapidity levels)
 Flow            predict, predict_ground_state, cft_energy, cft_branch_radius, branch_point,
-                level_branch_point
+                level_branch_point, excited_branch_point (an excited level's fold in R),
+                level_flow_residual (Burgers with momentum), spin_flow_residual (higher spins)
 Continuation    locate_fold, second_branch, complex_pair
 Thermodynamics  thermodynamics
 Scans           scan, scan_run (in memory), open_scan (a file): xarray Datasets;
@@ -64,6 +65,10 @@ _LAZY = {
     "level_branch_point": "tba.physics.flow",
     "BranchPoint": "tba.physics.flow",
     "BranchStatus": "tba.physics.flow",
+    "excited_branch_point": "tba.physics.flow",
+    "level_flow_residual": "tba.physics.flow",
+    "spin_flow_residual": "tba.physics.flow",
+    "excited_derivatives": "tba.solvers.excited",
     "locate_fold": "tba.physics.continuation",
     "second_branch": "tba.physics.continuation",
     "complex_pair": "tba.physics.continuation",

@@ -52,6 +52,10 @@ def cmd_solve(args, out):
     for deformation in deformations[1:]:  # the level must exist at every alpha
         if state != "ground":
             parse_state_argument(args.state, model, deformation)
+    if args.branch != "physical":  # beyond the branch point: tba.cli.branches
+        from tba.cli.branches import solve_branch
+
+        return solve_branch(args, out, model, radii, deformations, state, tol)
     from tba.solvers.levels import solve_level
 
     header, row = (TABLE_HEADER, table_row) if state == "ground" else (STATE_HEADER, state_row)
@@ -348,6 +352,10 @@ def build_parser():
                        "single-species models without bound states, lee-yang's "
                        "one-particle state 0, and the free massless models (the sign is the "
                        "chirality; bosons take repeated integers, e.g. 1,1)")
+    solve.add_argument("--branch", choices=("physical", "second", "complex"), default="physical",
+                       action=Once, help="ground state with alpha > 0: the physical branch "
+                       "(default), the second real branch above R_c, or the complex pair below R_c "
+                       "(Re E, Im E; JSON energy_real, energy_imag)")
     solve.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(solve, MAX_SOLVE_POINTS, "points (radii x alphas)")
     solve.set_defaults(func=cmd_solve)

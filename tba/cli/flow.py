@@ -9,7 +9,7 @@ import argparse
 from tba.cli.common import (ENERGY_SPEC, R_SPEC, Once, UsageError, add_max_points_argument,
                             add_model_arguments, add_tol_argument, build_model, check_deformation,
                             coupling, fmt, json_text, max_points, parse_alphas, parse_radii,
-                            too_many, tolerance)
+                            parse_state_argument, too_many, tolerance)
 from tba.models.cdd import ttbar
 from tba.output.labels import number
 from tba.physics.flow import BranchPoint, BranchStatus, branch_point
@@ -17,9 +17,38 @@ from tba.scans.limits import MAX_SOLVE_POINTS
 from tba.solvers.ground import flow_residual, solve_ground_state
 
 
+def _excited_branch_point(args, out, model, alpha, level):
+    """tba branch-point --state: the fold of an excited level (`excited_branch_point`)."""
+    from tba.output.labels import level_title, model_title
+    from tba.physics.flow import excited_branch_point
+    from tba.solvers.levels import level_name
+
+    if args.method != "curve":
+        raise UsageError("argument --method: continuation locates the ground state's fold only; "
+                         "excited levels use the undeformed curve (--method curve)")
+    tol = tolerance(args.tol)
+    bp = excited_branch_point(model, level, alpha, tol=tol)
+    rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": "curve"}
+    if args.json:
+        print(json_text(rec), file=out)
+        return 0
+    where = (f"{model_title(model.name, model.coupling)}, state {level_name(level)} "
+             f"({level_title(level)}), alpha = {alpha:g}")
+    if bp.status == "found":
+        print(f"{where}: branch point at R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, "
+              f"E(R_c) = {bp.energy:.15g} +- {bp.energy_error:.1e}; status {bp.status}", file=out)
+    else:
+        print(f"{where}: status {bp.status}: {bp.message}", file=out)
+    return 0
+
+
 def cmd_branch_point(args, out):
     model = build_model(args)
     alpha = coupling("--alpha", args.alpha)
+    if args.state is not None:
+        level = parse_state_argument(args.state, model, ttbar(alpha) if alpha else None)
+        if level != "ground":
+            return _excited_branch_point(args, out, model, alpha, level)
     tol = tolerance(args.tol)
     if args.method == "continuation":
         from tba.physics.continuation import locate_fold
@@ -72,6 +101,10 @@ def cmd_flow_check(args, out):
     for alpha in alphas:
         check_deformation(ttbar(alpha), radii)
     tol = tolerance(args.tol)
+    if args.state is not None or args.cdd:  # excited levels, higher spins: tba.cli.flowlevels
+        from tba.cli.flowlevels import flow_check_levels
+
+        return flow_check_levels(args, out, model, radii, alphas, tol)
     if not args.json:
         print(FLOW_HEADER, file=out, flush=True)
     for alpha in alphas:
@@ -104,15 +137,19 @@ def cmd_flow_check(args, out):
 def add_flow_commands(sub, conventions):
     """Register the subcommands on the ``tba`` subparsers object."""
     fmt = argparse.RawDescriptionHelpFormatter
-    bp = sub.add_parser("branch-point", help="the ground state's branch point R_c(alpha)",
+    bp = sub.add_parser("branch-point", help="a level's branch point R_c(alpha)",
                         description="Radius where the deformed ground state stops being real "
                         "(alpha > 0): E_0'(R~) = 1/alpha on the undeformed curve, or the fold "
-                        "of the deformed equations by continuation.",
+                        "of the deformed equations by continuation. With --state, the fold in R "
+                        "of an excited level (dR/dR~ = 0 on its undeformed curve).",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(bp)
     bp.add_argument("--alpha", required=True, action=Once, metavar="A", help="TTbar coupling")
     bp.add_argument("--method", choices=("curve", "continuation"), default="curve", action=Once,
                     help="undeformed curve (default) or pseudo-arclength continuation")
+    bp.add_argument("--state", action=Once, metavar="STATE",
+                    help="the level (as tba solve --state; default ground): an excited level's "
+                    "fold in R at fixed alpha, on its undeformed curve")
     add_tol_argument(bp)
     bp.add_argument("--json", action="store_true", help="one JSON object")
     bp.set_defaults(func=cmd_branch_point)
@@ -121,7 +158,9 @@ def add_flow_commands(sub, conventions):
                         description="For each radius and alpha: E, the exact derivatives dE/dR and "
                         "dE/dalpha1 from the linearised TBA, and the Burgers residual "
                         "dE/dalpha1 - E dE/dR (P = 0) with its error estimate, absolute and "
-                        "relative to |E dE/dR|.",
+                        "relative to |E dE/dR|. With --state, an excited level's "
+                        "dE/dalpha1 - E dE/dR - P^2/R; with --cdd, the generalised flow "
+                        "dE/dalpha_s - s E_s dE_s/dR per spin.",
                         epilog=conventions, formatter_class=fmt)
     add_model_arguments(fc)
     fc.add_argument("--radius", required=True, nargs="+", action="extend", metavar="R",
@@ -129,6 +168,12 @@ def add_flow_commands(sub, conventions):
                     "for geometric spacing; repeated options add up)")
     fc.add_argument("--alpha", required=True, nargs="+", action="extend", metavar="A",
                     help="TTbar couplings: numbers and/or ranges (repeated options add up)")
+    fc.add_argument("--state", action=Once, metavar="STATE",
+                    help="an excited level with real rapidities (as tba solve --state): "
+                    "dE/dalpha - E dE/dR - P^2/R")
+    fc.add_argument("--cdd", action="append", metavar="S:A",
+                    help="higher-spin CDD factor (as tba solve --cdd; repeatable): the "
+                    "generalised flow dE/dalpha_s - s E_s dE_s/dR for spin 1 and each S")
     add_tol_argument(fc)
     fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(fc, MAX_SOLVE_POINTS, "points (radii x alphas)")

@@ -279,7 +279,9 @@ def _excited_section(data):
     if not rows:
         return []
     return ["", "excited levels meeting their branch point between two radii (no real solution "
-                "below):", _table(["model", "alpha", "state", "last real R", "next R down"], rows)]
+                "below):", _table(["model", "alpha", "state", "last real R", "next R down"], rows),
+            "  (the exact R_c of such a level, with its error: tba branch-point --model M "
+            "--alpha A --state=S)"]
 
 
 def _branch_section(data):

@@ -217,7 +217,7 @@ def predict_ground_state(model, radius, alpha, tol=1e-13, curve=None):
 class ExcitedCurve:
     """An undeformed excited level E_n(R, 0), named by its Bethe quantum numbers, by TBA on
     demand (warm starts, cache, exact dE/dR); any excited level with real rapidities, massless
-    ones included (`tba.solvers.levels`)."""
+    ones included, and the Lee-Yang one-particle level (`tba.solvers.levels`)."""
 
     def __init__(self, model, state, tol=1e-13):
         from tba.solvers.levels import parse_level, unavailable
@@ -229,6 +229,7 @@ class ExcitedCurve:
             raise ValueError(f"state: {why}")
         self.momentum_number = sum(self.state)
         self._cache = {}
+        self._slopes = {}
         self._last = None
 
     def __call__(self, radius):
@@ -239,10 +240,18 @@ class ExcitedCurve:
         if res is None:
             res = solve_level(self.model, R, self.state, tol=self.tol, start=self._last)
             res.raise_for_status()
+            if isinstance(res._state, dict):  # the Lee-Yang one-particle level
+                from tba.solvers.lee_yang import radius_derivative
+
+                self._cache[R] = self._last = res
+                self._slopes[R] = radius_derivative(res)
+                return res.energy, self._slopes[R], res.error
             if getattr(res._state, "dE_dR", None) is None:
                 raise ValueError(f"state: the solver of {self.model.name}'s level "
                                  f"{','.join(map(str, self.state))} gives no exact dE/dR")
             self._cache[R] = self._last = res
+        if R in self._slopes:
+            return res.energy, self._slopes[R], res.error
         return res.energy, res._state.dE_dR, res.error
 
 
@@ -306,10 +315,13 @@ DEPRECATED_BRANCH_KEYS = {"radius": "branch_radius", "radius_error": "branch_rad
 
 @dataclass
 class BranchPoint:
-    """Where the deformed ground state stops being real (alpha > 0): the branch radius R_c
-    (``radius``), the energy there E(R_c) = E_0(R_c, alpha) = E_0(R~_*, 0) (``energy``), the
+    """Where a deformed level stops being real: the ground state (alpha > 0, `branch_point`)
+    or an excited level (`excited_branch_point`): the branch radius R_c (``radius``), the
+    energy there E(R_c) (``energy``; for the ground state E_0(R_c, alpha) = E_0(R~_*, 0)), the
     effective radius R~_* and their error estimates. ``status`` is a `BranchStatus` (a string
-    given to the constructor is converted)."""
+    given to the constructor is converted): "found", "none" (no branch point on this side, or
+    none on the level's curve from large R down to the radius the message names) or "failed"
+    (the undeformed level could not be solved on the way)."""
 
     model: str
     alpha: float
@@ -320,6 +332,8 @@ class BranchPoint:
     radius_error: float = math.nan
     energy_error: float = math.nan
     message: str = ""
+    #: the level: "ground" or its quantum numbers in canonical form ("-1/2,1/2")
+    state: str = "ground"
 
     def __post_init__(self):
         self.status = BranchStatus(self.status)
@@ -343,7 +357,8 @@ class BranchPoint:
         `energy`, ...; `DEPRECATED_BRANCH_KEYS`), kept for one release."""
         ok = self.found
         value = lambda x: float(x) if ok else None  # noqa: E731
-        rec = {"model": self.model, "alpha": float(self.alpha), "status": self.status.value,
+        rec = {"model": self.model, "alpha": float(self.alpha), "state": self.state,
+               "status": self.status.value,
                "branch_radius": value(self.radius), "branch_radius_error": value(self.radius_error),
                "branch_energy": value(self.energy), "branch_energy_error": value(self.energy_error),
                "branch_effective_radius": value(self.effective_radius),
@@ -355,7 +370,8 @@ class BranchPoint:
     def __repr__(self):
         """One line with every digit: ``BranchPoint(lee-yang, alpha = 0.1: found, R_c =
         0.39354557319965 +- 1.1e-14, E(R_c) = ... +- ..., T_H = ...)``."""
-        head = f"{self.model}, alpha = {self.alpha!r}: {self.status.value}"
+        level = "" if self.state == "ground" else f", state {self.state}"
+        head = f"{self.model}{level}, alpha = {self.alpha!r}: {self.status.value}"
         if not self.found:
             return f"BranchPoint({head}, {self.message!r})"
         return (f"BranchPoint({head}, R_c = {self.radius!r} +- {self.radius_error:.2g}, "
@@ -366,7 +382,8 @@ class BranchPoint:
         """A two-column table for notebooks, like `SolveResult`'s."""
         import html
 
-        rows = [("model", self.model), ("alpha", repr(self.alpha)), ("status", self.status.value)]
+        rows = [("model", self.model), ("state", self.state), ("alpha", repr(self.alpha)),
+                ("status", self.status.value)]
         if self.found:
             rows += [("R_c", f"{self.radius!r} +- {self.radius_error:.2g}"),
                      ("E(R_c)", f"{self.energy!r} +- {self.energy_error:.2g}"),
@@ -407,3 +424,215 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     return BranchPoint(model.name, alpha, BranchStatus.FOUND, radius=Rc, energy=E,
                        effective_radius=Rt, radius_error=alpha * err + 1e-15 * Rt, energy_error=err,
                        message=f"E_0'(R~) = 1/alpha at R~ = {Rt:.15g}")
+
+
+# -- branch points of excited levels ------------------------------------------------------------
+
+#: where the walk along an excited level's undeformed curve starts and how far down it goes
+LEVEL_WALK_START = 20.0
+LEVEL_WALK_END = 1e-3
+#: free massless levels are E~ = C / R~: their fold lies at R~ = sqrt(-alpha C) (P = 0), so the
+#: walk ends at this multiple of sqrt|alpha| (C >= 2.5e-3)
+LEVEL_WALK_END_MASSLESS = 0.05
+#: steps of the walk in log R~ (a fold is a sign change of `_fold_function` between two steps)
+LEVEL_WALK_STEP = 0.2
+#: the second curve, for the error estimate, is solved to this many times the tolerance
+COARSE_FACTOR = 100.0
+
+
+def _fold_function(level, k, alpha, Rt):
+    """(g, R, E) along the characteristic through R~ of a level with P R = 2 pi k.
+
+    R(R~)^2 = u^2 - v^2 with u = R~ - alpha E~(R~), v = 2 pi k alpha / R~ (the boosted frame of
+    the module doc), so dR^2/dR~ = 2 g with g = u (1 - alpha E~'(R~)) + v^2 / R~: the fold in R
+    at fixed alpha is a zero of g (for P = 0, alpha E~'(R~) = 1). E = (E~ u + P~ v) / R.
+    Raises ValueError outside the boost's domain (u <= |v|) or where the level has no value."""
+    try:
+        E_u, dE_u, err = level(Rt)
+    except SolveError as exc:
+        raise ValueError(str(exc)) from None
+    u = Rt - alpha * E_u
+    v = 2 * math.pi * k * alpha / Rt
+    if not u > abs(v):
+        raise ValueError(f"R~ - alpha E~ = {u:.6g} <= |alpha P~| = {abs(v):.6g} at R~ = {Rt:.6g}")
+    R = math.sqrt((u - v) * (u + v))
+    P_u = 2 * math.pi * k / Rt
+    E = (E_u * u + P_u * v) / R
+    return u * (1 - alpha * dE_u) + v * v / Rt, R, E, err, u
+
+
+def _fold_on(level, k, alpha, lo, hi):
+    """The zero of g in log R~ between lo and hi (g(lo), g(hi) of opposite signs), by Brent's
+    method on the exact dE~/dR~; returns (R~_*, R_c, E, error of E~, u)."""
+    g = lambda x: _fold_function(level, k, alpha, math.exp(x))[0]  # noqa: E731
+    x = brentq(g, lo, hi, xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=200)
+    Rt = math.exp(x)
+    _, R, E, err, u = _fold_function(level, k, alpha, Rt)
+    return Rt, R, E, err, u
+
+
+def _dip(level, k, alpha, lo, hi, positive):
+    """Where |g| dips between lo and hi (log R~) without a sign change on the walk's points:
+    the minimum of +-g by Brent's bounded method; if g changes sign there, the bracket
+    (x_min, hi) of the zero met first from large R~, else None."""
+    from scipy.optimize import minimize_scalar
+
+    sign = 1.0 if positive else -1.0
+
+    def h(x):
+        try:
+            return sign * _fold_function(level, k, alpha, math.exp(x))[0]
+        except ValueError:
+            return math.inf
+
+    best = minimize_scalar(h, bounds=(lo, hi), method="bounded", options={"xatol": 1e-6})
+    return (best.x, hi) if best.fun < 0 else None
+
+
+def excited_branch_point(model, state, alpha, tol=1e-12, curves=None):
+    """R_c(alpha) of an excited level: the fold in R at fixed alpha, where the level's branch
+    that comes from large R meets the other real branch and both turn into a complex pair.
+
+    Located on the level's undeformed curve E~(R~) (exact dE~/dR~ from the linearised
+    equations) through the characteristic: R(R~)^2 = (R~ - alpha E~)^2 - (2 pi k alpha / R~)^2
+    (P R = 2 pi k), and the fold is the first zero of dR/dR~ met walking down from R~ = 20 in
+    steps of 0.2 in log R~ (to 1e-3, or where the boost's domain ends), polished by Brent's
+    method. For P = 0: alpha E~'(R~_*) = 1, R_c = R~_* - alpha E~(R~_*), E(R_c) = E~(R~_*).
+    Where |dR/dR~| has a local minimum between the walk's points without a sign change, its
+    minimum is located (Brent) in case two zeros lie within one step (a level at the edge of
+    having a fold).
+
+    The fold is located again on a second curve solved to ``COARSE_FACTOR`` times the
+    tolerance; the differences of R_c and E(R_c) between the two, plus the propagated error
+    of E~ and rounding, are the error estimates (values of the finer curve). ``state``: the
+    level's name or quantum numbers (``"ground"``: `branch_point`). Returns a BranchPoint.
+    ``curves``: optional (fine, coarse) ExcitedCurve objects to reuse.
+    """
+    from tba.solvers.levels import GROUND, level_name, parse_level
+
+    alpha = float(alpha)
+    if not math.isfinite(alpha):
+        raise ValueError(f"alpha must be finite, got {alpha!r}")
+    level = parse_level(state)
+    if level == GROUND:
+        return branch_point(model, alpha, tol)
+    name = level_name(level)
+    fine, coarse = curves or (ExcitedCurve(model, level, tol),
+                              ExcitedCurve(model, level, min(COARSE_FACTOR * tol, 1e-8)))
+    k = fine.momentum_number
+    base = dict(model=model.name, alpha=alpha, state=name)
+    if alpha == 0:
+        return BranchPoint(**base, status="none", message="alpha = 0: the undeformed level has "
+                           "no branch point")
+    scale = math.sqrt(abs(alpha)) if model.is_massless else 1.0
+    x = math.log(LEVEL_WALK_START * max(1.0, scale))
+    x_end = math.log(LEVEL_WALK_END_MASSLESS * scale if model.is_massless else LEVEL_WALK_END)
+    try:
+        previous = _fold_function(fine, k, alpha, math.exp(x))[0]
+    except ValueError as exc:
+        return BranchPoint(**base, status="failed", message=f"at R~ = {math.exp(x):.6g}: {exc}")
+    bracket = None
+    older = None  # the value one step before ``previous``
+    while x > x_end:
+        x_new = x - LEVEL_WALK_STEP
+        try:
+            value = _fold_function(fine, k, alpha, math.exp(x_new))[0]
+        except ValueError as exc:
+            if "<= |alpha P~|" in str(exc):  # R -> 0 along the characteristic: no fold above
+                return BranchPoint(**base, status="none", message=(
+                    f"no fold: R(R~) falls to 0 without turning (R~ = {math.exp(x_new):.6g}, "
+                    f"the end of the boost's domain)"))
+            return BranchPoint(**base, status="failed",
+                               message=f"walk down the undeformed level: {exc}")
+        if (value > 0) != (previous > 0):
+            bracket = (x_new, x)
+            break
+        if older is not None and abs(previous) < min(abs(older), abs(value)):
+            # |g| has a local minimum near x: two zeros may lie within one step; look closer
+            bracket = _dip(fine, k, alpha, x_new, x + LEVEL_WALK_STEP, previous > 0)
+            if bracket is not None:
+                break
+        x, previous, older = x_new, value, previous
+    if bracket is None:
+        return BranchPoint(**base, status="none", message=(
+            f"no fold: R(R~) is monotonic for R~ from {LEVEL_WALK_START * max(1.0, scale):.6g} "
+            f"down to {math.exp(x):.6g}"))
+    try:
+        Rt, Rc, E, err, u = _fold_on(fine, k, alpha, *bracket)
+        x_f = math.log(Rt)
+        try:  # the coarse curve's zero lies within ~tol of the fine one's
+            Rt_c, Rc_c, E_c, _, _ = _fold_on(coarse, k, alpha, x_f - 1e-3, x_f + 1e-3)
+        except ValueError:
+            Rt_c, Rc_c, E_c, _, _ = _fold_on(coarse, k, alpha, *bracket)
+    except ValueError as exc:
+        return BranchPoint(**base, status="failed", message=f"locating the fold: {exc}")
+    eps = np.finfo(float).eps
+    # R_c is stationary in R~_*: an error err of E~ moves it by |alpha| err u / R_c
+    radius_error = abs(Rc - Rc_c) + abs(alpha) * err * u / Rc + 64 * eps * Rt
+    energy_error = abs(E - E_c) + err * (u / Rc + abs(alpha * E / Rc)) + 64 * eps * max(abs(E), 1.0)
+    return BranchPoint(**base, status="found", radius=Rc, energy=E, effective_radius=Rt,
+                       radius_error=radius_error, energy_error=energy_error,
+                       message=(f"dR/dR~ = 0 on the undeformed level at R~ = {Rt:.15g} "
+                                f"(second curve: R~ = {Rt_c:.15g})"))
+
+
+# -- the flow relation of excited levels and of higher spins ---------------------------------------
+
+def _spin_charge(state, spin):
+    """(E_s, dE_s/dR) of a ground-state solution on its grid: E_s = -(1/2 pi) sum_b q_s^b
+    int cosh(s t) L_b (E_1 = E), dE_s/dR from the linearised equations (exact)."""
+    disc = state.disc
+    U, V = disc.ops.charge_rows(disc.deformation, spin)
+    de = state.jacobian().solve(disc.nu / disc.radius, rtol=1e-13)
+    weight = -V[0] / (2 * math.pi)
+    return float(np.sum(weight * state.L)), float(np.sum(weight * state.dL * de))
+
+
+def spin_flow_residual(result, spin):
+    """The generalised flow of the ground state for a spin-s CDD coupling alpha_s,
+
+        d E / d alpha_s = s E_s dE_s / dR,
+
+    (derived in `tba.models.cdd`; s = 1 is the Burgers equation with P = 0) from exact
+    derivatives on the final grid, with the error estimate from the next-coarser grid.
+    Returns {"residual", "error", "scale" (= |s E_s dE_s/dR|), "dE_dalpha_s" (the derivative with
+    respect to the spin-s coupling), "E_s", "dE_s_dR"}."""
+    from tba.solvers.ground import State, energy_derivatives
+
+    if not (result.converged and isinstance(result._state, State)):
+        raise ValueError("result: the generalised flow needs a converged ground state")
+    d = energy_derivatives(result, spins=(spin,))
+    fine = result._state
+    Es, dEs = _spin_charge(fine, spin)
+    if fine.coarse is not None:
+        Es_c, dEs_c = _spin_charge(fine.coarse, spin)
+    else:
+        Es_c, dEs_c = 0.0, 0.0
+    eps = np.finfo(float).eps
+    err_Es = abs(Es - Es_c) + 64 * eps * abs(Es)
+    err_dEs = abs(dEs - dEs_c) + 64 * eps * abs(dEs) * math.sqrt(fine.eps.size)
+    residual = d[f"dE_dalpha{spin}"] - spin * Es * dEs
+    error = d[f"dE_dalpha{spin}_error"] + spin * (abs(Es) * err_dEs + abs(dEs) * err_Es)
+    out = {"residual": residual, "error": error, "scale": abs(spin * Es * dEs),
+           "dE_dalpha_s": d[f"dE_dalpha{spin}"], "dE_dalpha_s_error": d[f"dE_dalpha{spin}_error"],
+           "E_s": Es, "dE_s_dR": dEs, "dE_dR": d["dE_dR"], "dE_dR_error": d["dE_dR_error"]}
+    return {key: float(value) for key, value in out.items()}  # plain floats, never numpy ones
+
+
+def level_flow_residual(result):
+    """The Burgers equation of an excited level with real rapidities (`solve_excited`),
+
+        d E / d alpha - E dE/dR - P^2 / R,      P = 2 pi sum I_k / R (exact),
+
+    from exact derivatives (`tba.solvers.excited.excited_derivatives`) with its error estimate
+    and the scale |E dE/dR| + P^2 / R. Returns the keys of `tba.flow_residual`."""
+    from tba.solvers.excited import excited_derivatives
+
+    d = excited_derivatives(result, spins=(1,))
+    E, R = result.energy, result.radius
+    P = 2 * math.pi * float(sum(result.state)) / R
+    residual = d["dE_dalpha1"] - E * d["dE_dR"] - P * P / R
+    error = (d["dE_dalpha1_error"] + abs(E) * d["dE_dR_error"] + result.error * abs(d["dE_dR"])
+             + 8 * np.finfo(float).eps * P * P / R)
+    out = {"residual": residual, "error": error, "scale": abs(E * d["dE_dR"]) + P * P / R, **d}
+    return {key: float(value) for key, value in out.items()}  # plain floats, never numpy ones

@@ -388,6 +388,38 @@ class ExcitedState:
     jac_scale: float = field(default=np.nan)
     #: the same level undeformed at this radius (warm starts for neighbours)
     undeformed: object = field(default=None, repr=False)
+    #: the model, the deformation and the next-coarser grid's solution of a final result (for
+    #: `excited_derivatives`; None on intermediate solutions)
+    model: object = field(default=None, repr=False)
+    deformation: object = field(default=None, repr=False)
+    coarse: object = field(default=None, repr=False)
+
+    def derivatives(self, spins=(1,)):
+        """Exact dE/dR and dE/dalpha_s on this grid: J dx/dp = -d(F, Q)/dp with the Jacobian of
+        (pseudo-energy, rapidities) at the solution. The equations are affine in each alpha_s
+        (`Scattering` and the separable terms), so d(F, Q)/dalpha_s is the difference of the
+        residuals at alpha_s + 1 and alpha_s, exact up to rounding; E has no explicit R or alpha."""
+        from tba.models.cdd import CDD
+
+        eqs = ExcitedEquations(self.model, self.deformation, self.radius, self.grid, self.state)
+        N, t = eqs.N, self.rapidities
+        L, dL, _ = eqs.occupation(self.eps)
+        lu = scipy.linalg.lu_factor(eqs.jacobian(self.eps, t, L, dL), check_finite=False)
+
+        def response(rhs):
+            dx = scipy.linalg.lu_solve(lu, rhs, check_finite=False)
+            return eqs.m * float(np.dot(np.sinh(t), dx[N:])) + float(np.sum(eqs.disc.wE[0] * dL * dx[:N]))
+
+        out = {"dE_dR": response(np.concatenate([eqs.disc.nu[0] / eqs.radius, -eqs.m * np.sinh(t)]))}
+        F0, Q0 = eqs.residual(self.eps, t, L)
+        for spin in spins:
+            couplings = dict(self.deformation.couplings)
+            couplings[spin] = couplings.get(spin, 0.0) + 1.0
+            shifted = ExcitedEquations(self.model, CDD(couplings, self.deformation.factors),
+                                       self.radius, self.grid, self.state)
+            F1, Q1 = shifted.residual(self.eps, t, L)
+            out[f"dE_dalpha{spin}"] = response(-np.concatenate([F1 - F0, Q1 - Q0]))
+        return out
 
 
 def _newton(eqs, eps, t, tol, maxiter=60):
@@ -606,6 +638,9 @@ def _refine(model, deformation, radius, state, tol, seed, undeformed, base, iter
                      + fine.rounding_error)
             if error <= tol * max(abs(fine.energy), float(model.masses[0])):
                 fine.undeformed = undeformed
+                fine.model = coarse.model = model
+                fine.deformation = coarse.deformation = deformation
+                fine.coarse = coarse
                 return SolveResult(**base, status=Status.CONVERGED, energy=fine.energy, error=error,
                                    momentum=fine.momentum, message="converged",
                                    iterations=iterations, residual=fine.residual,
@@ -700,3 +735,24 @@ def _stalled(parameter, history, target, now, msg):
                     f"times the requested couplings")
     name = "R" if parameter == "radius" else "the coupling scale"
     return f"continuation in {name} stalled at {now:.12g}: {msg}"
+
+
+def excited_derivatives(result, spins=(1,)):
+    """Exact derivatives of a converged excited level with real rapidities (`solve_excited`),
+    with error estimates: ``dE_dR`` and ``dE_dalpha{s}`` for each spin in ``spins`` (also at
+    alpha_s = 0), and for each key a ``<key>_error``: the difference from the same derivative
+    on the next-coarser grid plus a rounding allowance (the rule of the energy)."""
+    if not isinstance(result, SolveResult):
+        raise TypeError(f"result must be a SolveResult, got {type(result).__name__}")
+    if not result.converged:
+        raise ValueError(f"result: derivatives need a converged point, got status {result.status.value}")
+    fine = result._state
+    if not isinstance(fine, ExcitedState) or fine.model is None:
+        raise ValueError("result: excited_derivatives needs a level solved by solve_excited")
+    d_fine = fine.derivatives(spins)
+    d_coarse = fine.coarse.derivatives(spins) if fine.coarse is not None else None
+    out = dict(d_fine)
+    for key, value in d_fine.items():
+        floor = 64 * _EPS * abs(value) * np.sqrt(fine.eps.size)
+        out[key + "_error"] = (abs(value - d_coarse[key]) if d_coarse else abs(value)) + floor
+    return out

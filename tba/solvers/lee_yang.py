@@ -326,6 +326,41 @@ def _newton(eqs, eta, v, tol, maxiter=60):
     return None, f"no convergence in {maxiter} Newton steps (last change {last_change:.3g})", maxiter
 
 
+def radius_derivative(result):
+    """Exact dE/dR (at fixed alpha) of a converged result of `solve_lee_yang_one_particle`.
+
+    The linearised equations J dx/dR = -dF/dR at the final solution: dres/dR = -cosh t and
+    dG/dR = cosh(i pi/3 + zeta) (reduced as the quantisation itself), E has no explicit R. The
+    Jacobian's column in v is taken here by centred differences with Richardson extrapolation
+    (truncation ~ s^4, s = 1e-3), not the one-sided difference Newton's steps use."""
+    if not (isinstance(result, SolveResult) and result.converged and isinstance(result._state, dict)
+            and "final" in result._state):
+        raise ValueError("result: a converged Lee-Yang one-particle result is needed")
+    sol = result._state["final"]
+    g, N = sol["grid"], sol["grid"].N
+    eqs = Equations(g, sol["radius"], sol["alpha"])
+    eta, v = sol["eta"], sol["v"]
+    p = eqs.parts(eta, v)
+    J, _, dE = eqs.jacobian(eta, v, p)
+    step = 1e-3 * max(1.0, abs(v))
+
+    def centred(h):
+        a, b = eqs.parts(eta, v + h), eqs.parts(eta, v - h)
+        if a is None or b is None:
+            raise ValueError("result: the v-derivative leaves the equations' domain")
+        return ((a["res"] - b["res"]) / (2 * h), (a["g"] - b["g"]) / (2 * h),
+                (a["E"] - b["E"]) / (2 * h))
+
+    d1, d2 = centred(step), centred(2 * step)
+    col, dg, dE_dv = ((4 * x - y) / 3 for x, y in zip(d1, d2))
+    J[:N, N], J[N, N] = col, dg
+    c = cmath.cosh(_I3 + p["pair"].zeta)
+    pair = p["pair"]
+    rhs = np.concatenate([np.cosh(g.t), [-((c.real if pair.above else c.imag) / pair.norm)]])
+    dx = np.linalg.solve(J, rhs)
+    return float(np.dot(dE, dx[:N]) + dE_dv * dx[N])
+
+
 def _seed_values(seed, grid):
     """eta on ``grid`` from a solved seed: its smooth part eta - R_eff cosh t - B, interpolated."""
     old = seed["grid"]
