@@ -47,7 +47,7 @@ import time
 import numpy as np
 
 from tba.models.cdd import NO_DEFORMATION
-from tba.physics.flow import branch_point
+from tba.physics.flow import branch_point, excited_branch_point
 from tba.solvers.levels import GROUND, parse_level, solve_level
 from tba.solvers.result import STATUS_CODES, Status
 from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
@@ -182,11 +182,20 @@ def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, 
     return predicted, abs(a_eff) / r_eff * res0.error + abs(dpred) * res.error
 
 
-def solve_branch_point(run, model_index, alpha_index):
-    """The ground state's branch point of one (model, alpha) of the run, as the values of
-    `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left out). Never raises
-    an Exception: a failure comes back with status "failed" and the error as message."""
+def solve_branch_point(run, model_index, alpha_index, state_index=None):
+    """The ground state's branch point of one (model, alpha) of the run (with
+    ``state_index``: the fold of that excited level, `tba.physics.flow.excited_branch_point`),
+    as the values of `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left
+    out). Never raises an Exception: a failure comes back with status "failed" and the error
+    as message."""
     alpha = run.alphas[alpha_index]
+    level = None if state_index is None else run.states[state_index]
+    if level == "ground":
+        level = None
+    if level is not None:
+        why = run.why_unavailable(model_index, state_index)
+        if why is not None:
+            return {"status": BP_NOT_APPLICABLE, "message": f"the model lacks this level: {why}"}
     if not run.ttbar_only:
         spins = ", ".join(f"{s}" for s, _ in run.higher_spin)
         return {"status": BP_NOT_APPLICABLE,
@@ -196,12 +205,14 @@ def solve_branch_point(run, model_index, alpha_index):
 
     try:
         with threadpool_limits(limits=1, user_api="blas"):  # the same bits on every executor
-            bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
+            model = _model(run.models[model_index])
+            bp = (branch_point(model, alpha, tol=run.tol) if level is None else
+                  excited_branch_point(model, level, alpha, tol=run.tol))
     except Exception as exc:  # noqa: BLE001 (stored, never lost: the scan's points are kept)
         if caused_by_interrupt(exc):
             raise KeyboardInterrupt from None
         return {"status": BP_FAILED, "message": one_line(exc)}
-    code = BP_CODES.get(bp.status)
+    code = {**BP_CODES, "failed": BP_FAILED}.get(str(bp.status))
     if code is None:
         return {"status": BP_FAILED, "message": f"unexpected status {bp.status!r}: {bp.message}"}
     values = {"status": code, "message": bp.message}

@@ -17,7 +17,7 @@ from tba.scans.codes import BP_FAILED, NOT_COMPUTED
 from tba.scans.interrupts import installed, signal_name, signal_number
 from tba.scans.runfile import Shard
 from tba.store.errors import StoreError, StoreWriteError
-from tba.store.hdf5 import check_store
+from tba.store.hdf5 import check_store, describe_branch
 from tba.store.lock import OutputLock
 from tba.store.writer import open_store, prepare_store, unwritable_message
 
@@ -144,10 +144,9 @@ def _pending(run, shard, snap):
     mine = run.chunks() if shard is None else shard.chunks(run)
     pending = [c for c in mine if not snap.done[c.index]]
     branch_pending = []
-    if run.branch_points:
-        pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
-                 if shard is None else shard.branch_pairs(run))
-        branch_pending = [(m, a) for m, a in pairs if snap.branch["status"][m, a] == NOT_COMPUTED]
+    if run.branch_points:  # (m, a) of the ground state, (m, a, s) of the excited levels
+        keys = run.branch_keys() if shard is None else shard.branch_keys(run)
+        branch_pending = [k for k in keys if snap.branch_arrays(k)["status"][k] == NOT_COMPUTED]
     return mine, pending, branch_pending
 
 
@@ -238,13 +237,12 @@ def _drive(run, path, prepared, backend, pending, branch_pending, summary, progr
                         if bar is not None:
                             bar.update(item.chunk.size)
                     elif isinstance(item, BranchDone):
-                        m, a, values = item.model, item.alpha, item.values
-                        store.write_branch_point(m, a, values)
+                        values = item.values
+                        store.write_branch_point(item.model, item.alpha, values, state=item.state)
                         summary.branch_points_computed += 1
                         if values["status"] == BP_FAILED:
-                            print(f"tba run: branch point of {run.models[m].label} at alpha = "
-                                  f"{run.alphas[a]:.10g} failed (stored as failed): "
-                                  f"{values['message']}", file=log, flush=True)
+                            print(f"tba run: {describe_branch(run, item.key)[4:]} failed (stored "
+                                  f"as failed): {values['message']}", file=log, flush=True)
                     else:
                         summary.failed.append(item)
                         if len(summary.failed) <= _FAILURES_SHOWN:
