@@ -53,7 +53,8 @@ BRANCH_NUMBERS = [name for name, (kind, _, _) in BRANCH_VARIABLES.items() if kin
 #: data sets that record how and when, not what: the rest must equal the serial file's
 # provenance (and the checksums and maps that cover it): may differ between equal files
 METADATA = {"progress/invocation", "progress/seconds", "message", "branch_points/message",
-            "progress/checksum", "branch_points/checksum", "progress/history", "recovery/map"}
+            "progress/checksum", "branch_points/checksum", "progress/history", "recovery/map",
+            "level_branch_points/message", "level_branch_points/checksum"}
 
 
 @pytest.fixture(scope="module")

@@ -62,8 +62,8 @@ def last_real_points(data):
 
 @dataclass
 class BranchCheck:
-    """The stored branch point of one (model, alpha > 0) curve of the ground state, and
-    whether the scan agrees with it.
+    """The stored branch point of one (model, alpha > 0) curve of the ground state (or of
+    one (model, alpha, excited level): ``state``), and whether the scan agrees with it.
 
     ``consistent`` is True when every check that applies holds (the last real radius is
     >= R_c; the next radius down, if computed and without a real solution, is < R_c; both
@@ -80,6 +80,9 @@ class BranchCheck:
     #: the state index of an excited level's branch point (None: the ground state's)
     state: int | None = None
     energy_error: float = math.nan
+    #: converged points of the level below its fold on another branch (R~ < R~_*), left out
+    #: of the last real radius
+    other_branch: int = 0
     last_real: float = math.nan
     below: float = math.nan
     below_status: str = ""
@@ -149,7 +152,18 @@ def _against_scan(c, data, m, a, s):
     point_names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
     code = BP_FOUND if c.status == "found" else None
     st = data["status"][m, a, :, s]
-    ok = np.flatnonzero(st == CONVERGED)
+    real = st == CONVERGED
+    if c.state is not None and code == BP_FOUND:
+        # an excited level's curve R(R~) may turn again below its fold (sinh-Gordon's levels
+        # at small R~, where E~ -> -pi c / (6 R~)): the scan can find real points there, on
+        # another branch; those with R~ < R~_* are not the branch that comes from large R
+        other = real & (_undeformed_radius(data, m, a, s) < float(data.levels["effective_radius"][m, a, s])
+                        * (1 - 1e-9))
+        c.other_branch = int(other.sum())
+        real = real & ~other
+        st = np.where(other, OTHER_BRANCH, st)
+        point_names = {**point_names, OTHER_BRANCH: "converged, another branch"}
+    ok = np.flatnonzero(real)
     computed = np.flatnonzero(st != NOT_COMPUTED)
     # the radius just below the smallest real one (the largest radius if none is real)
     if ok.size:
@@ -169,7 +183,7 @@ def _against_scan(c, data, m, a, s):
         checks.append("last real R >= R_c")
         if c.last_real < c.radius - tol:
             failures.append(f"last real R = {c.last_real:{RADIUS_FORMAT}} < R_c")
-    if j >= 0 and st[j] == NO_REAL:
+    if j >= 0 and st[j] in (NO_REAL, OTHER_BRANCH):
         checks.append("next R down < R_c")
         if c.below >= c.radius + tol:
             failures.append(f"R = {c.below:{RADIUS_FORMAT}} has no real solution but is >= R_c")
@@ -183,6 +197,21 @@ def _against_scan(c, data, m, a, s):
         c.why = "no point of the curve computed yet"
     else:
         c.why = f"next R down is {c.below_status}"
+
+
+#: a converged point of an excited level on another branch than the one from large R (reports only)
+OTHER_BRANCH = -100
+
+
+def _undeformed_radius(data, m, a, s):
+    """R~ = sqrt((R + alpha E)^2 - (alpha P)^2) of the points of curve (m, a, s) (NaN where no
+    energy): where on the level's undeformed curve each deformed point lies."""
+    alpha = float(data.alpha[a])
+    R = np.asarray(data.radius, dtype=float)
+    E = np.asarray(data["energy"][m, a, :, s], dtype=float)
+    P = np.nan_to_num(np.asarray(data["momentum"][m, a, :, s], dtype=float))
+    with np.errstate(invalid="ignore"):
+        return np.sqrt((R + alpha * E) ** 2 - (alpha * P) ** 2)
 
 
 def status_counts(codes, meanings):
@@ -334,6 +363,12 @@ def _excited_section(data):
                              "last real R", "next R down", "consistent"], rows))
     else:
         lines.append("  (no excited level has a branch point in the run)")
+    other = [c for c in found if c.other_branch]
+    if other:
+        lines.append(f"  (last real R: on the level's branch from large R, R~ >= R~_*; "
+                     f"{sum(c.other_branch for c in other)} converged point(s) of "
+                     f"{len(other)} curve(s) lie on another real branch, R~ < R~_*, where the "
+                     f"level's undeformed curve R(R~) turns again)")
     none = [c for c in checks if c.status == "none"]
     if none:
         lines.append(f"  status none (no fold on this side of alpha) for {len(none)} "
@@ -364,15 +399,16 @@ def _bracket_section(data):
     rows = [[data.model[p.model], number(data.alpha[p.alpha]), data.state[p.state],
              f"{p.radius:{RADIUS_FORMAT}}", f"{p.below:{RADIUS_FORMAT}}"]
             for p in last_real_points(data) if p.bracketed and data.state[p.state] != "ground"]
-    if not rows:
-        return []
     why = ("this file was written before the excited levels' branch points were stored (schema "
            f"version {data.schema_version})" if not data.has_level_branch_points else
            "not computed: scan.branch_points = false, another shard, or tba run has not finished")
+    note = (f"  (the exact R_c of the excited levels is not in the file: {why}; with its error: "
+            f"tba branch-point --model M --alpha A --state=S)")
+    if not rows:
+        return [] if data.has_level_branch_points else ["", note]
     return ["", "excited levels meeting their branch point between two radii (no real solution "
                 "below):", _table(["model", "alpha", "state", "last real R", "next R down"], rows),
-            f"  (their exact R_c is not in the file: {why}; with its error: tba branch-point "
-            f"--model M --alpha A --state=S)"]
+            note]
 
 
 def _branch_section(data):
