@@ -173,3 +173,18 @@ def test_files_written_before_are_read_and_the_report_shows_the_bracket(serial, 
     assert (ds["level_branch_status"].values == NOT_COMPUTED).all()
     from tba.output.dataset import store_data
     assert level_branch_checks(store_data(ds)) == []
+
+
+def test_plot_marks_the_level_fold_like_the_ground_state_branch_point(serial):
+    # the level's panel: a diamond at (R_c, E(R_c)) on a dotted vertical line, as for the
+    # ground state (tests/test_plotting.py), and no "last real point" star in its place
+    from tba.output.plotting import plot_store
+
+    data = read_store(serial)
+    fig = plot_store(data)
+    (ax,) = [ax for ax in fig.axes if ax.get_label() == "energy" and "two-particle" in ax.get_title()]
+    Rc, Ec = data.levels["branch_radius"][0, 0, 1], data.levels["energy"][0, 0, 1]
+    (diamond,) = [ln for ln in ax.get_lines() if ln.get_marker() == "D"]
+    assert list(diamond.get_xdata()) == [Rc] and list(diamond.get_ydata()) == [Ec]
+    assert [list(ln.get_xdata()) for ln in ax.get_lines() if ln.get_linestyle() == ":"] == [[Rc, Rc]]
+    assert not [ln for ln in ax.get_lines() if ln.get_marker() == "*"]
