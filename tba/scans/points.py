@@ -31,7 +31,11 @@ backends compute them in the driver after the chunks; a dask cluster gets them a
 at a lower priority than the chunks. alpha <= 0 has none; with higher-spin factors they are not
 applicable; an exception is stored as "failed" with its message and never loses the scan.
 Each is a function of (model, alpha, tol) alone, computed from scratch, so resumed runs
-agree bit for bit; stored ones are never computed again.
+agree bit for bit; stored ones are never computed again. The same for every excited level
+on the state axis (``solve_branch_point(run, m, a, s)``: its fold in R,
+`tba.physics.flow.excited_branch_point`, up to seconds each): one task per (model, alpha,
+state), in the local pool or on the cluster after the chunks; "none" where the level has no
+fold on that side of alpha, "not-applicable" for a level the model lacks.
 
 `tba.store.driver.run_scan` is the driver: the only writer of the store. Where the chunks are computed is a
 `Backend`: `InProcess` (one worker), `ProcessPool` (local processes, one task per chunk) or

@@ -31,7 +31,8 @@ solver tolerance, the output file and how the scan is cut into chunks::
     chunk_size = 8                      # consecutive radii solved as one warm-started chain
     flow_check = true                   # undeformed solve at R + alpha E for every point
     sweep = "descending"                # order of the radii inside a chunk
-    branch_points = true                # R_c(alpha) of the ground state, once per model and alpha
+    branch_points = true                # R_c(alpha) of the ground state, once per model and
+                                        # alpha, and each excited level's fold in R
 
 A state that a model does not have (excited states of E8, or a two-particle level of
 Lee-Yang, whose only excited level here is its one-particle state "0") is not computed for

@@ -175,8 +175,8 @@ def _scan(run, path, workers, backend, shard, force, progress, log, run_file):
         for note in prepared.notes:
             print(f"tba run: note: {note}", file=log)
         mine, pending, branch_pending = _pending(run, shard, prepared.snapshot)
-        if backend is None:
-            backend = local_backend(workers, len(pending))
+        if backend is None:  # excited levels' folds are pool tasks too (tba.scans.backends)
+            backend = local_backend(workers, len(pending) + sum(len(k) == 3 for k in branch_pending))
         points = sum(c.size for c in mine)
         summary = ScanSummary(str(path), len(mine), len(mine) - len(pending), 0, points, 0.0,
                               backend.workers, len(branch_pending), shard=shard)
