@@ -105,16 +105,27 @@ class Pair:
 
     def __init__(self, v):
         self.v = float(v)
-        self.sigma = 0.25 - math.exp(-self.v)
+        w = math.exp(-self.v)  # 1/4 - sigma, exact however close sigma is to 1/4
+        self.sigma = 0.25 - w
         if self.sigma == 0.0:  # exactly at R*: nudge (G / sqrt|sigma| is continuous there)
             self.sigma = 1e-300
-        self.zeta = -1j * cmath.asin(cmath.sqrt(self.sigma))
         self.above = self.sigma > 0  # R > R*: points at +-i y on the imaginary axis
+        self.tau = math.nan
+        if self.above:
+            # y = pi/6 + tau with sin(tau) sin(pi/3 - tau) = w: tan(tau) is the small root of
+            # (1 + 2w) u^2 - sqrt(3) u + 2w = 0, in the form without cancellation. tau -> 0
+            # like e^(-sqrt(3) R / 2) at large R, and pi/6 - arcsin(sqrt(sigma)) would leave it
+            # no significant digit
+            disc = max(3.0 - 8.0 * w * (1.0 + 2.0 * w), 0.0)
+            self.tau = math.atan(4.0 * w / (math.sqrt(3.0) + math.sqrt(disc)))
+            self.zeta = complex(0.0, -(math.pi / 6 - self.tau))
+        else:
+            self.zeta = -1j * cmath.asin(cmath.sqrt(self.sigma))
         self.norm = math.sqrt(abs(self.sigma))
 
     @property
     def y(self):
-        return math.pi / 3 + self.zeta.imag  # above R*
+        return math.pi / 6 + self.tau  # above R*
 
     @property
     def x(self):
@@ -136,13 +147,43 @@ class Pair:
                 - np.log(np.abs(_q(t + _I3, self.sigma)))
                 - np.log1p(-2 * _S / (np.cosh(t) + _S)))
 
+    def singular_logs(self):
+        """Above R*: log|S(2c)|, log|S(zeta - i pi/6)| and log|Q(c + i pi/3)| at c = i y,
+        y = pi/6 + tau; the three numbers are real, S(2c) > 0 and the other two < 0. They have a
+        pole, a zero and a double pole as tau -> 0, where the plain expressions subtract nearly
+        equal numbers; here each difference is a product of sines (s = sin(pi/3)):
+
+            sin 2y - s = 2 cos(pi/3 + tau) sin tau,   s - sin(pi/3 - tau) = 2 cos(pi/3 - tau/2) sin(tau/2),
+            sigma - cos^2 tau = -s cos(pi/6 - 2 tau),  cosh^2(c + i pi/3) = sin^2 tau,
+
+        and the logarithms are taken factor by factor (sin tau underflows beyond R ~ 800)."""
+        tau = self.tau
+        log_sin = math.log(math.sin(tau))
+        log_s_2c = (math.log(math.sin(math.pi / 3 + 2 * tau) + _S)
+                    - math.log(2 * math.cos(math.pi / 3 + tau)) - log_sin)
+        log_s_zero = (math.log(2 * math.cos(math.pi / 3 - tau / 2)) + math.log(math.sin(tau / 2))
+                      - math.log(math.sin(math.pi / 3 - tau) + _S))
+        log_q_pole = math.log(_S * math.cos(math.pi / 6 - 2 * tau)) - 2 * log_sin
+        return log_s_2c, log_s_zero, log_q_pole
+
     def G_constant(self, r_eff):
         """The terms of G that do not involve the integral."""
         z, s = self.zeta, self.sigma
-        c = _I3 + z
-        return (r_eff * cmath.cosh(c) - cmath.log(_S_of(2 * c)) - 0.5 * cmath.log(_q(c + _I3, s))
-                + 0.5 * cmath.log(_S_of(_I3 + 2 * z)) - 0.5 * cmath.log(8j * _S * cmath.tanh(z))
-                - cmath.log(_S_of(z - 1j * math.pi / 6)))
+        if not self.above:
+            c = _I3 + z
+            return (r_eff * cmath.cosh(c) - cmath.log(_S_of(2 * c)) - 0.5 * cmath.log(_q(c + _I3, s))
+                    + 0.5 * cmath.log(_S_of(_I3 + 2 * z)) - 0.5 * cmath.log(8j * _S * cmath.tanh(z))
+                    - cmath.log(_S_of(z - 1j * math.pi / 6)))
+        # above R* every factor is real (c = i y): the same sum from the factored forms, with
+        # the principal logarithm (log x = log|x| + i pi for x < 0); S(2 i tau) < 0 and
+        # 8 i s tanh(zeta) = 8 s tan(pi/6 - tau) > 0 have no cancellation
+        tau = self.tau
+        log_s_2c, log_s_zero, log_q_pole = self.singular_logs()
+        log_s_small = math.log((_S + math.sin(2 * tau)) / (_S - math.sin(2 * tau)))
+        real = (r_eff * math.cos(math.pi / 6 + tau) - log_s_2c - 0.5 * log_q_pole + 0.5 * log_s_small
+                - 0.5 * math.log(8 * _S * math.tan(math.pi / 6 - tau)) - log_s_zero)
+        # imaginary parts: -(0) - pi/2 + pi/2 - 0 - pi
+        return complex(real, -math.pi)
 
     def G_weights(self, t, h):
         """w_j with (1/2pi) int phi(c - t') F(t') dt' = sum_j w_j F(t_j) (see the module doc)."""
