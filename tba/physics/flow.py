@@ -18,6 +18,7 @@ R_c = R~_* - alpha E(R~_*); below R_c the two real solutions become a complex pa
 """
 
 import math
+import numbers
 from dataclasses import dataclass
 
 import numpy as np
@@ -25,7 +26,7 @@ from scipy.optimize import brentq
 
 from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.result import SolveError
-from tba.solvers.ground import energy_derivatives, solve_ground_state
+from tba.solvers.ground import energy_derivatives, require_model, solve_ground_state
 
 
 # -- CFT closed form ---------------------------------------------------------------------------
@@ -140,6 +141,13 @@ def _bracket_characteristic(radius_of, R, Rt, alpha):
     return best
 
 
+def _require_curve(level):
+    if not callable(level):
+        raise TypeError(f"level must be a callable R -> (E, dE/dR, error of E), e.g. "
+                        f"tba.physics.flow.ExcitedCurve(model, state) or UndeformedCurve(model), "
+                        f"got {type(level).__name__} {level!r}")
+
+
 def predict(level, radius, alpha, k=0, guess=None, steps=4):
     """Deformed level at (R, alpha) from an undeformed one by characteristics.
 
@@ -149,6 +157,7 @@ def predict(level, radius, alpha, k=0, guess=None, steps=4):
     fails), each solved by Newton's method on R(R~) = radius from the previous R~.
     Raises ValueError where no real prediction exists.
     """
+    _require_curve(level)
     R = float(radius)
     Rt = R if guess is None else float(guess)
     if guess is not None:
@@ -253,6 +262,7 @@ def level_branch_point(level, alpha, radius_range=(1e-2, 20.0)):
     Returns (R_c, E(R_c), R~_*)."""
     from scipy.optimize import minimize_scalar
 
+    _require_curve(level)
     radius_of = _characteristic(level, 0, alpha)
 
     def R_of(x):
@@ -311,6 +321,9 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     the exact derivative. R_c = R~_* - alpha E_0(R~_*) is stationary in R~_*, so its error is
     dominated by alpha times the error of E_0.
     """
+    require_model(model)
+    if isinstance(alpha, bool) or not isinstance(alpha, numbers.Real):
+        raise TypeError(f"alpha must be a real number, got {alpha!r}")
     alpha = float(alpha)
     if not math.isfinite(alpha):
         raise ValueError(f"alpha must be finite, got {alpha!r}")

@@ -761,6 +761,23 @@ def _outcome(fam, pt, target, tol, parameter):
 
 # -- the point solve ------------------------------------------------------------------------------
 
+def require_model(model):
+    """TypeError naming the argument unless ``model`` is a DiagonalModel (e.g. a name)."""
+    if not isinstance(model, DiagonalModel):
+        raise TypeError(f"model must be a DiagonalModel (e.g. tba.sinh_gordon(0.6) or "
+                        f"tba.get_model(name)), got {type(model).__name__} {model!r}")
+    return model
+
+
+def require_deformation(deformation):
+    """The deformation (NO_DEFORMATION for None); TypeError naming the argument unless a CDD."""
+    deformation = NO_DEFORMATION if deformation is None else deformation
+    if not isinstance(deformation, CDD):
+        raise TypeError(f"deformation must be a CDD (e.g. tba.ttbar(0.1)), got "
+                        f"{type(deformation).__name__} {deformation!r}")
+    return deformation
+
+
 def _validate(radius, tol):
     if isinstance(radius, bool) or not isinstance(radius, numbers.Real):
         raise TypeError(f"radius must be a real number, got {radius!r}")
@@ -841,12 +858,8 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         unless converged.
     """
     radius, tol = _validate(radius, tol)
-    if not isinstance(model, DiagonalModel):
-        raise TypeError(f"model must be a DiagonalModel (e.g. tba.sinh_gordon(0.6)), got "
-                        f"{type(model).__name__} {model!r}")
-    deformation = NO_DEFORMATION if deformation is None else deformation
-    if not isinstance(deformation, CDD):
-        raise TypeError(f"deformation must be a CDD, got {type(deformation).__name__}")
+    require_model(model)
+    deformation = require_deformation(deformation)
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)

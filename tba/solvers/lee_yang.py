@@ -62,7 +62,6 @@ import numpy as np
 import scipy.linalg
 from scipy.interpolate import CubicSpline
 
-from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.result import SolveResult, Status
 
 _EPS = np.finfo(float).eps
@@ -451,10 +450,10 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
     switched on at fixed R, and the point is solved on two grids for the error estimate.
     Status NO_REAL_SOLUTION when the level meets its branch point before the requested
     coupling (alpha < 0). Returns a SolveResult with state (0,) and no particle rapidities."""
-    from tba.solvers.ground import _validate
+    from tba.solvers.ground import _validate, require_deformation
 
     radius, tol = _validate(radius, tol)
-    deformation = NO_DEFORMATION if deformation is None else deformation
+    deformation = require_deformation(deformation)
     base = dict(model="lee-yang", radius=radius, couplings=dict(deformation.couplings),
                 coupling=None, state=(Fraction(0),))
     if not deformation.is_zero and not deformation.is_ttbar:
