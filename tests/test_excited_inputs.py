@@ -150,3 +150,52 @@ def test_model_given_by_name_is_refused_clearly():
         solve_ground_state("sinh-gordon", 1)
     with pytest.raises(TypeError, match="model"):
         solve_excited("sinh-gordon", 1.0, STATE)
+
+
+@pytest.mark.parametrize("call, error, match", [
+    (lambda: solve_level("sinh-gordon", 1.0, STATE), TypeError, "model must be a DiagonalModel"),
+    (lambda: solve_level(SG, 1.0, STATE, "x"), TypeError, "deformation must be a CDD"),
+    (lambda: solve_level(lee_yang(), 1.0, "0", "x"), TypeError, "deformation must be a CDD"),
+    (lambda: solve_excited(SG, 1.0, STATE, 0.1), TypeError, "deformation must be a CDD"),
+])
+def test_solver_arguments_are_named(call, error, match):
+    with pytest.raises(error, match=match):
+        call()
+
+
+def test_physics_arguments_are_named():
+    import tba
+
+    cases = [
+        (lambda: tba.thermodynamics("sinh-gordon", 1.0), TypeError, "model must be a DiagonalModel"),
+        (lambda: tba.thermodynamics(SG, 1.0, "x"), TypeError, "deformation must be a CDD"),
+        (lambda: tba.solve_massless_level("massless-fermion", 1.0, STATE), TypeError, "model must be"),
+        (lambda: tba.free_levels("massless-fermion", 2), TypeError, "model must be"),
+        (lambda: tba.predict("sinh-gordon", 1.0, 0.1), TypeError, "level must be a callable"),
+        (lambda: tba.level_branch_point("sinh-gordon", 0.1), TypeError, "level must be a callable"),
+        (lambda: tba.branch_point(SG, "a"), TypeError, "alpha must be a real number"),
+        (lambda: tba.branch_point("sinh-gordon", 0.1), TypeError, "model must be"),
+        (lambda: tba.locate_fold(SG, 0.1), TypeError, "deformation must be a CDD"),
+        (lambda: tba.complex_pair("x", 1.0), TypeError, "fold must be a Fold"),
+        (lambda: tba.second_branch("x", 1.0), TypeError, "fold must be a Fold"),
+        (lambda: tba.cft_branch_radius(0.5, -0.1), ValueError, "alpha must be finite and positive"),
+        (lambda: tba.cft_branch_radius("c", 0.1), TypeError, "c must be a real number"),
+        (lambda: tba.open_scan(3), TypeError, "path must be a file name"),
+        (lambda: tba.solve(SG, 1.0, start="a"), TypeError, "start must be a SolveResult"),
+        (lambda: tba.solve(SG, 1.0, state=STATE, start="a"), TypeError, "start must be a SolveResult"),
+        (lambda: tba.solve(lee_yang(), 1.0, state="0", start=1), TypeError, "start must be"),
+        (lambda: tba.user_model(masses=[1.0], kernel=lambda t: 1 / 0, pole_distance=1.0),
+         ValueError, "kernel: the callable raised ZeroDivisionError"),
+    ]
+    for call, error, match in cases:
+        with pytest.raises(error, match=match):
+            call()
+
+
+def test_derivative_options_are_checked():
+    res = solve_ground_state(SG, 1.0)
+    with pytest.raises(TypeError, match="spins must be a sequence"):
+        energy_derivatives(res, spins=3)
+    with pytest.raises(TypeError, match="second must be True or False"):
+        energy_derivatives(res, second="x")
+    assert set(energy_derivatives(res, spins=[1, 3])) >= {"dE_dR", "dE_dalpha1", "dE_dalpha3"}

@@ -48,6 +48,14 @@ def cft_energy(radius, alpha, c, delta=0.0, delta_bar=0.0):
 
 def cft_branch_radius(c, alpha):
     """Ground-state branch radius of a deformed CFT: sqrt(2 pi c alpha / 3) (alpha > 0)."""
+    for name, value in (("c", c), ("alpha", alpha)):
+        if isinstance(value, bool) or not isinstance(value, numbers.Real):
+            raise TypeError(f"{name} must be a real number, got {value!r}")
+    if not (math.isfinite(c) and c > 0):
+        raise ValueError(f"c must be finite and positive, got {c!r}")
+    if not (math.isfinite(alpha) and alpha > 0):
+        raise ValueError(f"alpha must be finite and positive (the ground state has no branch "
+                         f"point for alpha <= 0), got {alpha!r}")
     return math.sqrt(2 * math.pi * c * alpha / 3)
 
 

@@ -613,12 +613,13 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
     requested coupling (positive levels for alpha < 0). A moving level (P != 0) that cannot
     be reached that way is taken from large R at fixed alpha (`_or_from_large_radius`).
     """
-    from tba.solvers.ground import _validate, require_deformation
+    from tba.solvers.ground import _validate, require_deformation, require_start
 
     check_model(model)
     state = parse_state(state)
     radius, tol = _validate(radius, tol)
     deformation = require_deformation(deformation)
+    require_start(start)
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling, state=state)
     prev = start._state if (isinstance(start, SolveResult) and start.converged

@@ -778,6 +778,15 @@ def require_deformation(deformation):
     return deformation
 
 
+def require_start(start):
+    """TypeError naming the argument unless ``start`` is None or a SolveResult (a solved
+    neighbour; one that does not fit the point is ignored, as documented)."""
+    if start is not None and not isinstance(start, SolveResult):
+        raise TypeError(f"start must be a SolveResult (a solved neighbour) or None, got "
+                        f"{type(start).__name__} {start!r}")
+    return start
+
+
 def _validate(radius, tol):
     if isinstance(radius, bool) or not isinstance(radius, numbers.Real):
         raise TypeError(f"radius must be a real number, got {radius!r}")
@@ -860,6 +869,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
     radius, tol = _validate(radius, tol)
     require_model(model)
     deformation = require_deformation(deformation)
+    require_start(start)
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)
@@ -1020,6 +1030,10 @@ def energy_derivatives(result, spins=(1,), second=False):
     if not isinstance(result._state, State):
         raise ValueError("result: derivatives are available for ground states only (this "
                          "result is an excited level)")
+    if isinstance(spins, (str, bytes)) or not hasattr(spins, "__iter__"):
+        raise TypeError(f"spins must be a sequence of spins, e.g. (1, 3), got {spins!r}")
+    if not isinstance(second, (bool, np.bool_)):
+        raise TypeError(f"second must be True or False, got {second!r}")
     fine = result._state
     d_fine = fine.derivatives(spins, second)
     d_coarse = fine.coarse.derivatives(spins, second) if fine.coarse is not None else None

@@ -36,7 +36,11 @@ quantisation condition is 1 + Y = 0 at c = i pi/3 + zeta (c = i y above R*, x + 
     G = R cosh c - log S(2c) - (1/2) log Q(c + i pi/3) + (1/2) log S(i pi/3 + 2 zeta)
         - (1/2) log(8 i s tanh zeta) - log S(zeta - i pi/6) - (1/2pi) int phi(c - t') F(t') dt'
 
-(the singular factors of log Q(c + 2i pi/3) and log S(c - zeta) are combined analytically). G is
+(the singular factors of log Q(c + 2i pi/3) and log S(c - zeta) are combined analytically). Above
+R*, c = i y with y = pi/6 + tau and tau ~ e^(-sqrt(3) R / 2): S(2c) has a pole, S(zeta - i pi/6) a
+zero and Q(c + i pi/3) a double pole at tau = 0, so tau is computed from v without cancellation
+and those three factors in factored form (`Pair.singular_logs`); from pi/6 - arcsin(sqrt sigma)
+they lost all digits beyond R ~ 25. G is
 odd in arcsin sqrt(sigma): real above R* (Im G = -pi) and imaginary below (Re G = 0), so the
 equation solved is G / sqrt|sigma| = 0 (Re above, Im below), analytic through R*, without the
 trivial root sigma = 0. Where c approaches the axis (c - i pi/3 real below R*) the integral is
@@ -450,10 +454,11 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
     switched on at fixed R, and the point is solved on two grids for the error estimate.
     Status NO_REAL_SOLUTION when the level meets its branch point before the requested
     coupling (alpha < 0). Returns a SolveResult with state (0,) and no particle rapidities."""
-    from tba.solvers.ground import _validate, require_deformation
+    from tba.solvers.ground import _validate, require_deformation, require_start
 
     radius, tol = _validate(radius, tol)
     deformation = require_deformation(deformation)
+    require_start(start)
     base = dict(model="lee-yang", radius=radius, couplings=dict(deformation.couplings),
                 coupling=None, state=(Fraction(0),))
     if not deformation.is_zero and not deformation.is_ttbar:

@@ -490,12 +490,13 @@ def solve_massless_level(model, radius, state, deformation=None, *, tol=1e-12, s
     NO_REAL_SOLUTION when the level meets its branch point on the way, with the coupling scale
     of the fold in the message. ``start``: a converged result of the same level and coupling
     (a neighbouring radius), whose A / R, B / R and rapidities start Newton directly."""
-    from tba.solvers.ground import _validate, require_deformation, require_model
+    from tba.solvers.ground import _validate, require_deformation, require_model, require_start
     from tba.solvers.levels import parse_level
 
     require_model(model)
     radius, tol = _validate(radius, tol)
     deformation = require_deformation(deformation)
+    require_start(start)
     level = parse_level(state)
     if level == "ground":
         raise ValueError("state: the ground state is solved by tba.solve_ground_state")
