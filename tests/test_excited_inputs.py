@@ -199,3 +199,30 @@ def test_derivative_options_are_checked():
     with pytest.raises(TypeError, match="second must be True or False"):
         energy_derivatives(res, second="x")
     assert set(energy_derivatives(res, spins=[1, 3])) >= {"dE_dR", "dE_dalpha1", "dE_dalpha3"}
+
+
+@pytest.mark.parametrize("R", [1.0, 2.0])
+def test_ground_state_with_positive_spin_3_has_no_real_solution(R):
+    # the ground state's spin-3 term 3 alpha_3 E_3 cosh(3t) with E_3 = -(1/2pi) int cosh(3t) L < 0
+    # (L > 0, tba/models/cdd.py): unbounded below for alpha_3 > 0 however small; the verdict
+    # used to be a "fold" at a fraction of the coupling set by the grid's cutoff
+    undeformed = solve_ground_state(SG, R)
+    t = undeformed.rapidity_grid
+    L = np.log1p(np.exp(-undeformed.pseudo_energies[0]))
+    E3 = -(t[1] - t[0]) / (2 * np.pi) * float(np.sum(np.cosh(3 * t) * L))
+    assert E3 < 0
+    for alpha in (1e-3, 1e-12):
+        res = solve_ground_state(SG, R, higher_spin(3, alpha))
+        assert res.status is Status.NO_REAL_SOLUTION and math.isnan(res.energy)
+        assert "spin-3" in res.message and "unbounded below" in res.message
+    assert solve_ground_state(SG, R, higher_spin(3, -1e-3)).converged
+
+
+def test_ground_state_one_sign_charges_of_several_species():
+    # potts-3 at s = 5: q_5 = (1, 1) (tba/models/charges.py), so the same sign rule
+    from tba import get_model
+
+    model = get_model("potts-3")
+    assert np.all(np.asarray(model.charges(5)) > 0)
+    assert solve_ground_state(model, 1.0, higher_spin(5, 1e-9)).status is Status.NO_REAL_SOLUTION
+    assert solve_ground_state(model, 1.0, higher_spin(5, -1e-9)).converged

@@ -778,6 +778,27 @@ def require_deformation(deformation):
     return deformation
 
 
+def _unbounded_spin_tails(model, deformation):
+    """Why the ground state has no real solution because of the highest CDD spin s > 1, or
+    None. Its term s alpha_s E_s q_s^a cosh(s t) in eps_a outgrows m_a R cosh t, and E_s =
+    -(1/2pi) sum_b q_s^b int cosh(s t) L_b (L_b > 0); when q_s has one sign (one species: q_s = 1)
+    E_s has the opposite sign, so alpha_s > 0 makes every eps_a unbounded below: L and E_s
+    diverge, at every radius (tba/models/cdd.py). A finite grid would hide the tail and give a
+    number that depends on its cutoff. Charges of both signs are not decided here (README,
+    Known limitations)."""
+    spins = [s for s, a in deformation.couplings.items() if s > 1 and a]
+    if not spins or model.is_massless:
+        return None
+    s = max(spins)
+    alpha = float(deformation.couplings[s])
+    q = np.asarray(model.charges(s), dtype=float)
+    if alpha <= 0 or not (np.all(q > 0) or np.all(q < 0)):
+        return None
+    return (f"no real solution: the spin-{s} CDD term {s} alpha_{s} E_{s} q cosh({s} t) with "
+            f"alpha_{s} = {alpha:g} > 0 and E_{s} q < 0 makes eps unbounded below as |t| -> oo, "
+            f"at every radius (alpha_{s} < 0 is the side with a real ground state)")
+
+
 def require_start(start):
     """TypeError naming the argument unless ``start`` is None or a SolveResult (a solved
     neighbour; one that does not fit the point is ignored, as documented)."""
@@ -873,6 +894,9 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)
+    tails = _unbounded_spin_tails(model, deformation)
+    if tails is not None:
+        return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=0, message=tails)
     prev = None
     if isinstance(start, SolveResult) and start.converged and isinstance(start._state, State) \
             and start._state.model is model:
