@@ -552,7 +552,7 @@ def _unbounded(deformation, radius, state, energy):
             f"below, no solution of this form")
 
 
-def _spin_tails(model, deformation, level):
+def _spin_tails(model, deformation, level, undeformed=False):
     """Why the highest CDD spin s > 1 leaves no real solution near ``level`` (a solved state,
     usually the undeformed one at the same R), or None.
 
@@ -586,9 +586,11 @@ def _spin_tails(model, deformation, level):
     if not bad:
         return None
     name, c = bad[0]
+    where = (f"already for any small alpha_{s} of this sign" if undeformed
+             else "reached on the way from alpha_s = 0")
     return (f"no real solution: the spin-{s} CDD term makes eps ~ {c:.3g} e^({s}|t|)/2 as "
             f"t -> {name}oo, unbounded below, so L and the integrals diverge (alpha_{s} = {a:g}: "
-            f"already for any small alpha_{s} of this sign)")
+            f"{where})")
 
 
 def _effective_radius(deformation, radius, E, P=0.0):
@@ -640,7 +642,7 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
         return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations, message=msg)
     undeformed = seed
     # -- switch the deformation on at fixed R ------------------------------------------------------
-    tails = _spin_tails(model, deformation, undeformed)
+    tails = _spin_tails(model, deformation, undeformed, undeformed=True)
     if tails is not None:
         return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=iterations,
                            message=tails)
