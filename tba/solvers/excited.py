@@ -766,6 +766,12 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
         if abs(step) < 1e-9 * max(abs(now), 1e-3):
             if spurious:  # the path meets R~ -> 0, not a fold: no verdict on real solutions
                 return None, f"continuation stalled at {now:.12g}: {msg}", its_total
+            if parameter == "coupling" and msg.startswith("the solution left the branch"):
+                # det J changes sign within a step of ~1e-9 of the coupling scale: J is
+                # singular there, the level's fold, whether or not the pivots' trend showed it
+                return None, (f"no real solution: the level meets its branch point at about "
+                              f"{now:.6g} times the requested couplings (det J changes sign "
+                              f"there)"), its_total
             return None, _stalled(parameter, history, target, now, msg), its_total
     return seed, "converged", its_total
 
