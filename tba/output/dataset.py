@@ -26,6 +26,7 @@ it is the file's by construction.
 """
 
 import json
+import os
 import tempfile
 from pathlib import Path
 
@@ -52,6 +53,8 @@ _ARGUMENTS = {"models": "models", "deformation.alphas": "alphas",
 def open_scan(path):
     """The scan stored at ``path`` (a file written by ``tba run`` or ``tba merge``, or a shard)
     as an xarray Dataset, read into memory (the file is closed on return)."""
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a file name (str or os.PathLike), got {type(path).__name__} {path!r}")
     try:
         data = read_store(path)
     except StoreError as exc:

@@ -30,6 +30,7 @@ from tba.models.cdd import CDD
 from tba.solvers import arclength
 from tba.solvers.grid import choose_grid
 from tba.solvers.result import Status
+from tba.solvers.ground import require_deformation, require_model
 from tba.solvers.ground import (Discretization, _interpolate, grid_masses, grid_pole_distance, newton,
                                 solve_ground_state)
 
@@ -74,6 +75,8 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
     """
     if parameter not in PARAMETERS:
         raise ValueError(f"parameter must be one of {PARAMETERS}, got {parameter!r}")
+    require_model(model)
+    deformation = require_deformation(deformation)
     if parameter == "radius":
         if deformation.alpha <= 0 and deformation.is_ttbar:
             raise ValueError("deformation: the ground state has no fold in R for alpha <= 0")
@@ -146,12 +149,18 @@ class BranchSolution:
         return np.conj(self.energy)
 
 
+def _require_fold(fold):
+    if not isinstance(fold, Fold):
+        raise TypeError(f"fold must be a Fold (from locate_fold), got {type(fold).__name__} {fold!r}")
+
+
 def second_branch(fold, radius):
     """The real solution at ``radius`` (> R_c) on the far side of the fold (radius folds only).
 
     The curve is followed past the fold until it passes ``radius`` again, and the point is
     then corrected at fixed radius by Newton's method.
     """
+    _require_fold(fold)
     if fold.parameter != "radius":
         raise ValueError("fold: second_branch needs a fold in the radius")
     if not radius > fold.value:
@@ -356,6 +365,7 @@ def complex_pair(fold, radius):
     values gives the start eps_c + s t_eps with s = i sqrt(2 (R_c - R) / R''), which complex
     Newton polishes. Returns the member with Im E > 0; its partner is the conjugate.
     """
+    _require_fold(fold)
     if fold.parameter != "radius":
         raise ValueError("fold: complex_pair needs a fold in the radius")
     if not 0 < radius < fold.value:

@@ -20,7 +20,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.result import Status
 from tba.solvers.ground import energy_derivatives, solve_ground_state
 
@@ -44,7 +43,10 @@ class ThermoPoint:
 def thermodynamics(model, temperatures, deformation=None, tol=1e-12):
     """Free energy, entropy, energy density and specific heat at each temperature (in order of
     decreasing temperature internally, so that warm starts go from large to small radius)."""
-    deformation = NO_DEFORMATION if deformation is None else deformation
+    from tba.solvers.ground import require_deformation, require_model
+
+    require_model(model)
+    deformation = require_deformation(deformation)
     temps = [float(T) for T in np.atleast_1d(temperatures)]
     for T in temps:
         if not (math.isfinite(T) and T > 0):
