@@ -177,6 +177,14 @@ def _table(header, rows):
                       for line in [header, *rows])
 
 
+def factors_text(run):
+    """One line naming the run's pole and resonance factors."""
+    parts = [f"F_(pi x)^{p} with x = {x:.12g}" for x, p in run.poles]
+    parts += [f"F^{p} with sin u = cosh({t:.12g})" for t, p in run.resonances]
+    return ("CDD pole/resonance factors at every alpha (alpha = 0 is the model with them): "
+            + ", ".join(parts))
+
+
 def format_report(data):
     """The report as text (``data``: a `tba.store.hdf5.StoreData`)."""
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -194,6 +202,11 @@ def _format_report(data):
     lines.append(f"  {len(data.model)} model(s) x {len(data.alpha)} alpha(s) x {len(R)} radii "
                  f"({R.min():{RADIUS_FORMAT}} .. {R.max():{RADIUS_FORMAT}}) x {len(data.state)} state(s) = "
                  f"{run.n_points} points; tol {run.tol:g}")
+    if run.higher_spin:
+        lines.append("  higher-spin CDD factors at every alpha: "
+                     + ", ".join(f"spin {s}: alpha_s = {a:.12g}" for s, a in run.higher_spin))
+    if getattr(run, "has_poles", False):
+        lines.append("  " + factors_text(run))
     done = data.progress["done"].astype(bool)
     if data.shard is not None:
         owned = data.owned

@@ -130,7 +130,8 @@ def _solve_chunk(run, chunk):
                 values["flow_status"][i] = FLOW_NOT_APPLICABLE
                 continue
             try:
-                res0 = solve_level(model, r_eff, level, NO_DEFORMATION, tol=run.tol, start=start0)
+                res0 = solve_level(model, r_eff, level, run.base_deformation(), tol=run.tol,
+                                   start=start0)
                 if res0.converged and turns != 0:
                     predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
                                                                 boost, r_eff, res, res0, run.tol)
@@ -186,6 +187,10 @@ def solve_branch_point(run, model_index, alpha_index):
     `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left out). Never raises
     an Exception: a failure comes back with status "failed" and the error as message."""
     alpha = run.alphas[alpha_index]
+    if run.has_poles:
+        return {"status": BP_NOT_APPLICABLE,
+                "message": "CDD pole or resonance factors: branch points are not computed in "
+                           "scans with them (tba.locate_fold finds the fold)"}
     if not run.ttbar_only:
         spins = ", ".join(f"{s}" for s, _ in run.higher_spin)
         return {"status": BP_NOT_APPLICABLE,

@@ -137,6 +137,9 @@ its Bethe quantum numbers I_k (m R sinh t_k + sum_j delta(t_k - t_j) = 2 pi I_k 
 for Lee-Yang, "0" is its one-particle state).
 Deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t) (phi_ab += alpha m_a m_b cosh t),
 higher odd spins s: exp(i alpha_s sinh(s t)) (single-species models).
+Pole and resonance factors of the run (deformation.poles [x, p]: F_(pi x)^p; deformation.resonances
+[theta0, p]: F^p with sin u = cosh theta0; F_u = (sinh t + i sin u) / (sinh t - i sin u)) multiply
+every S_ab at every alpha (root attribute cdd_factors); alpha = 0 then means these factors alone.
 Then d/dalpha E = E dE/dR + P^2/R. With TTbar alone the deformed level is the undeformed one
 at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_0(R~) + alpha P^2 R / R~
 (for P = 0: E(R, alpha) = E_0(R + alpha E, 0)). flow_radius is R~, flow_prediction that
@@ -286,6 +289,18 @@ def _recovery_bytes(run):
     return len(json.dumps(run.to_dict(), separators=(",", ":"))) + 16384
 
 
+def cdd_factors_attribute(run):
+    """The run's pole and resonance factors, self-describing: what each entry means and the
+    factors F_sigma^power the solver uses (sigma = sin u)."""
+    return {"convention": "S_ab -> S_ab * sign * prod F_sigma^power, F_sigma = (sinh t + i sigma) / "
+                          "(sinh t - i sigma); poles [x, p]: sigma = sin(pi x); resonances "
+                          "[theta0, p]: sigma = cosh(theta0); sign keeps S_ab(0)",
+            "poles": [{"x": x, "power": p} for x, p in run.poles],
+            "resonances": [{"theta0": t, "power": p} for t, p in run.resonances],
+            "factors": run.base_deformation().describe()["factors"],
+            "sign": run.base_deformation().sign}
+
+
 def _write_layout(f, run, run_file, models_info, shard=None):
     s = h5py.string_dtype()  # variable-length: coordinates and fixed metadata only
     f.attrs.update({
@@ -297,6 +312,8 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         "status_legend": _legend(STATUS_MEANINGS), "flow_status_legend": _legend(FLOW_MEANINGS),
         "branch_point_status_legend": _legend(BRANCH_MEANINGS), "layout": LAYOUT,
     })
+    if run.has_poles:
+        f.attrs["cdd_factors"] = json.dumps(cdd_factors_attribute(run))
     if shard is not None:
         f.attrs.update({"shard": shard.label, "shard_index": shard.index, "shard_count": shard.count,
                         "layout": SHARD_LAYOUT})
