@@ -24,7 +24,7 @@ from tba import __version__
 from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
                             add_max_points_argument, add_model_arguments, add_tol_argument,
                             build_model, check_deformation, coupling, json_text, max_points,
-                            parse_cdd, parse_radii, parse_state_argument, plain, state_row,
+                            parse_cdd, parse_factors, parse_radii, parse_state_argument, plain, state_row,
                             table_row, tolerance, whole_number, writable_dir, writable_file)
 from tba.output.report import format_report
 from tba.scans.limits import MAX_POINTS, MAX_SOLVE_POINTS
@@ -40,6 +40,7 @@ def cmd_solve(args, out):
     alpha = coupling("--alpha", args.alpha)
     deformation = parse_cdd(args.cdd, alpha, model)
     check_deformation(deformation, radii)
+    deformation = deformation + parse_factors(args.pole, args.resonance)
     tol = tolerance(args.tol)
     state = parse_state_argument(args.state, model, deformation) if args.state is not None else "ground"
     from tba.solvers.levels import solve_level
@@ -55,6 +56,8 @@ def cmd_solve(args, out):
         if res.converged:
             start = res
         rec = res.as_record()
+        if deformation.has_poles:  # F_sigma^power of every factor, sigma = sin u, and the sign
+            rec["cdd_factors"] = {k: deformation.describe()[k] for k in ("factors", "sign")}
         print(json_text(rec) if args.json else row(rec), file=out, flush=True)
     return 0
 
@@ -323,6 +326,14 @@ def build_parser():
                        help="TTbar coupling (default 0)")
     solve.add_argument("--cdd", action="append", metavar="S:A",
                        help="extra CDD factor of odd spin S >= 3 with coupling A (repeatable)")
+    solve.add_argument("--pole", action="append", metavar="X:P",
+                       help="CDD pole factor F_(pi x)^P, F_u = (sinh t + i sin u) / (sinh t - i sin "
+                       "u), 0 < x < 1, P a nonzero integer (repeatable; e.g. --pole 0.3:-1 --pole "
+                       "0.2:-1 for 1 / (f_0.3 f_0.2)); ground state only")
+    solve.add_argument("--resonance", action="append", metavar="THETA0:P",
+                       help="CDD resonance factor F^P with sin u = cosh THETA0 (poles at +-THETA0 + "
+                       "i pi/2; 16:-1 with free-fermion is the staircase model); repeatable; "
+                       "ground state only")
     add_tol_argument(solve)
     solve.add_argument("--state", action=Once, metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "
