@@ -287,3 +287,102 @@ def test_thermodynamics_leaves_out_the_bulk_term_with_pole_factors():
     assert "with pole factors" in p.message
     (q,) = tba.thermodynamics(sg, [0.5])
     assert q.bulk_included
+
+
+# -- run files, the store and the command line ---------------------------------------------------
+
+RUN = """
+output = "poles.h5"
+[[models]]
+name = "free-fermion"
+[deformation]
+alphas = [0, 0.05]
+poles = [[0.3, -1], [0.2, -1]]
+{extra}
+[radii]
+start = 0.7
+stop = 1.0
+count = 4
+"""
+
+
+def _tba(*args):
+    import contextlib
+    import io
+
+    from tba.cli import main
+
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        code = main([str(a) for a in args])
+    return code, out.getvalue(), err.getvalue()
+
+
+def test_run_file_factors_resolve_store_and_report(tmp_path):
+    import json
+
+    import h5py
+
+    from tba.scans.runfile import loads_run, resolve_run
+
+    run = loads_run(RUN.format(extra="resonances = [[16.0, -1]]"), base_dir=tmp_path)
+    assert run.poles == ((0.3, -1), (0.2, -1)) and run.resonances == ((16.0, -1),)
+    assert resolve_run(run.to_dict()) == run                      # the resolved run round-trips
+    d = run.deformation(0.05)
+    assert d.couplings == {1: 0.05} and d.factors == (TWO_POLES + resonance(16.0, -1)).factors
+    # a run without factors keeps its identity (no new keys in its resolved form)
+    plain = loads_run(RUN.replace("poles = [[0.3, -1], [0.2, -1]]", "").format(extra=""))
+    assert "poles" not in plain.to_dict()["deformation"] and not plain.has_poles
+    # a small scan: the energies are the solver's (warm-started differently: within both error
+    # estimates), the flow check solves at alpha = 0 with the factors
+    path = tmp_path / "poles.toml"
+    path.write_text(RUN.format(extra=""))
+    code, out, err = _tba("run", path, "--workers", 1)
+    assert code == 0, err
+    with h5py.File(tmp_path / "poles.h5") as f:
+        attrs = json.loads(f.attrs["cdd_factors"])
+        assert attrs["poles"] == [{"x": 0.3, "power": -1}, {"x": 0.2, "power": -1}]
+        assert json.loads(f.attrs["run"])["deformation"]["poles"] == [[0.3, -1], [0.2, -1]]
+        energy, error = f["energy"][0, :, :, 0], f["error"][0, :, :, 0]
+        flow = f["flow_residual"][0, 1, :, 0]
+    for a, alpha in enumerate((0.0, 0.05)):
+        for r, R in enumerate(np.linspace(0.7, 1.0, 4)):
+            res = tba.solve(FF, R, tba.ttbar(alpha) + TWO_POLES)
+            assert (np.isnan(energy[a, r]) if not res.converged
+                    else abs(energy[a, r] - res.energy) <= error[a, r] + res.error)
+    assert np.nanmax(flow) < 1e-13                                # E(R, a) = E(R + a E, 0), factors kept
+    code, out, err = _tba("report", tmp_path / "poles.h5")
+    assert code == 0 and "F_(pi x)^-1 with x = 0.3, F_(pi x)^-1 with x = 0.2" in out
+
+
+@pytest.mark.parametrize("extra, key", [
+    ("resonances = [[-1.0, -1]]", "deformation.resonances[0]: theta0"),
+    ("resonances = [[16.0, 0]]", "deformation.resonances[0]: the power"),
+    ("resonances = [16.0]", "deformation.resonances[0]: expected a pair"),
+    ("resonances = [[16.0, -1.0]]", "deformation.resonances[0][1]"),
+    ("resonances = 3", "deformation.resonances: expected an array"),
+])
+def test_run_file_factors_are_checked(tmp_path, extra, key):
+    path = tmp_path / "bad.toml"
+    path.write_text(RUN.format(extra=extra))
+    code, out, err = _tba("run", path)
+    lines = err.strip().splitlines()
+    assert code == 2 and len(lines) == 1 and key in lines[0] and "Traceback" not in err
+
+
+def test_solve_command_line_factors():
+    import json
+
+    code, out, err = _tba("solve", "--model", "free-fermion", "--radius", 0.7, 1.0, "--pole", "0.3:-1",
+                          "--pole", "0.2:-1", "--json")
+    assert code == 0, err
+    below, above = (json.loads(line) for line in out.splitlines())
+    assert below["status"] == "no-real-solution" and below["energy"] is None
+    assert above["energy"] == pytest.approx(tba.solve(FF, 1.0, TWO_POLES).energy, abs=1e-13)
+    assert [f["power"] for f in above["cdd_factors"]["factors"]] == [-1, -1]
+    for args, name in ((("--pole", "1.5:-1"), "--pole"), (("--pole", "0.3"), "--pole"),
+                       (("--resonance", "16:x"), "--resonance"),
+                       (("--pole", "0.3:-1", "--state", "1/2,-1/2"), "--state")):
+        code, out, err = _tba("solve", "--model", "sinh-gordon", "--coupling", 0.6, "--radius", 1, *args)
+        lines = err.strip().splitlines()
+        assert code == 2 and len(lines) == 1 and name in lines[0], err
