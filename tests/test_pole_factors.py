@@ -386,3 +386,43 @@ def test_solve_command_line_factors():
         code, out, err = _tba("solve", "--model", "sinh-gordon", "--coupling", 0.6, "--radius", 1, *args)
         lines = err.strip().splitlines()
         assert code == 2 and len(lines) == 1 and name in lines[0], err
+
+
+def test_a_scan_over_factor_parameters_is_a_list_of_model_entries(tmp_path):
+    # like a scan over a model's coupling: one [[models]] entry per value, on the model axis
+    from tba.scans.runfile import loads_run, resolve_run
+
+    text = """
+output = "scan.h5"
+[[models]]
+name = "free-fermion"
+poles = [[0.3, -1], [0.2, -1]]
+[[models]]
+name = "free-fermion"
+poles = [[0.3, -1], [0.1, -1]]
+[deformation]
+alphas = [0]
+[radii]
+start = 0.8
+stop = 1.0
+count = 2
+"""
+    run = loads_run(text)
+    assert [m.label for m in run.models] == ["free-fermion poles=0.3:-1,0.2:-1",
+                                             "free-fermion poles=0.3:-1,0.1:-1"]
+    assert resolve_run(run.to_dict()) == run
+    assert run.deformation(0.0, 1) == cdd_factor(0.3 * math.pi, -1) + cdd_factor(0.1 * math.pi, -1)
+    ds = tba.scan_run(run)
+    for m, x in enumerate((0.2, 0.1)):
+        d = cdd_factor(0.3 * math.pi, -1) + cdd_factor(x * math.pi, -1)
+        for r, R in enumerate((0.8, 1.0)):
+            res = tba.solve(FF, R, d)
+            point = ds.isel(model=m, alpha=0, radius=r, state=0)
+            if not res.converged:  # x = 0.1 turns back at R_* = 0.818 > 0.8
+                assert (m, r) == (1, 0) and int(point.status) == 1 and np.isnan(float(point.energy))
+                continue
+            assert abs(float(point.energy) - res.energy) <= float(point.error) + res.error
+    with pytest.raises(ValueError, match=r"models\[1\].poles\[0\]: x must be a number in \(0, 1\)"):
+        loads_run(text.replace("[[0.3, -1], [0.1, -1]]", "[[1.3, -1]]"))
+    with pytest.raises(ValueError, match=r"models\[1\]: repeats models\[0\]"):
+        loads_run(text.replace("[[0.3, -1], [0.1, -1]]", "[[0.3, -1], [0.2, -1]]"))

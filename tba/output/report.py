@@ -205,8 +205,10 @@ def _format_report(data):
     if run.higher_spin:
         lines.append("  higher-spin CDD factors at every alpha: "
                      + ", ".join(f"spin {s}: alpha_s = {a:.12g}" for s, a in run.higher_spin))
-    if getattr(run, "has_poles", False):
+    if run.poles or run.resonances:
         lines.append("  " + factors_text(run))
+    if any(m.poles or m.resonances for m in run.models):
+        lines.append("  model entries with their own CDD pole/resonance factors (in their labels)")
     done = data.progress["done"].astype(bool)
     if data.shard is not None:
         owned = data.owned

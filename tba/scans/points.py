@@ -92,7 +92,7 @@ def _solve_chunk(run, chunk):
     level = parse_level(run.states[chunk.state])
     model = _model(run.models[chunk.model])
     alpha = run.alphas[chunk.alpha]
-    deformation = run.deformation(alpha)
+    deformation = run.deformation(alpha, chunk.model)
     radii = run.radii[chunk.radius_start:chunk.radius_stop]
     order = range(len(radii) - 1, -1, -1) if run.sweep == "descending" else range(len(radii))
     values = _empty(len(radii))
@@ -130,7 +130,7 @@ def _solve_chunk(run, chunk):
                 values["flow_status"][i] = FLOW_NOT_APPLICABLE
                 continue
             try:
-                res0 = solve_level(model, r_eff, level, run.base_deformation(), tol=run.tol,
+                res0 = solve_level(model, r_eff, level, run.base_deformation(chunk.model), tol=run.tol,
                                    start=start0)
                 if res0.converged and turns != 0:
                     predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
@@ -187,7 +187,7 @@ def solve_branch_point(run, model_index, alpha_index):
     `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left out). Never raises
     an Exception: a failure comes back with status "failed" and the error as message."""
     alpha = run.alphas[alpha_index]
-    if run.has_poles:
+    if run.model_has_poles(model_index):
         return {"status": BP_NOT_APPLICABLE,
                 "message": "CDD pole or resonance factors: branch points are not computed in "
                            "scans with them (tba.locate_fold finds the fold)"}

@@ -191,11 +191,32 @@ class ModelSpec:
 
     name: str
     coupling: float | None = None
+    #: this entry's own CDD pole and resonance factors ((x, p), ...), ((theta0, p), ...): a scan
+    #: over factor parameters is a list of entries of one model, like a scan over its coupling
+    poles: tuple = ()
+    resonances: tuple = ()
 
     @property
     def label(self):
-        """Coordinate label in output files, e.g. ``sinh-gordon B=0.6``."""
-        return model_label(self.name, self.coupling)
+        """Coordinate label in output files, e.g. ``sinh-gordon B=0.6``, with the entry's own
+        factors: ``free-fermion poles=0.3:-1,0.2:-1``."""
+        label = model_label(self.name, self.coupling)
+        if self.poles:
+            label += " poles=" + ",".join(f"{x:.12g}:{p}" for x, p in self.poles)
+        if self.resonances:
+            label += " resonances=" + ",".join(f"{t:.12g}:{p}" for t, p in self.resonances)
+        return label
+
+    def to_dict(self):
+        d = {"name": self.name, "coupling": self.coupling}
+        if self.poles:
+            d["poles"] = [list(p) for p in self.poles]
+        if self.resonances:
+            d["resonances"] = [list(r) for r in self.resonances]
+        return d
+
+    def factors(self):
+        return pole_factors(self.poles, self.resonances)
 
     def build(self):
         return get_model(self.name, self.coupling)
@@ -257,17 +278,21 @@ class RunSpec:
     def n_points(self):
         return math.prod(self.shape)
 
-    def deformation(self, alpha):
-        """The CDD factor at TTbar coupling ``alpha`` (with the run's higher-spin terms and its
-        pole and resonance factors)."""
+    def deformation(self, alpha, model=None):
+        """The CDD factor at TTbar coupling ``alpha`` (with the run's higher-spin terms, its
+        pole and resonance factors and those of model entry ``model``, an index)."""
         couplings = {1: alpha} if alpha else {}
         couplings.update(dict(self.higher_spin))
-        return CDD(couplings) + self.base_deformation()
+        return CDD(couplings) + self.base_deformation(model)
 
-    def base_deformation(self):
-        """The run's pole and resonance factors alone: the 'undeformed' theory of the flow
-        check, E(R, alpha) = E(R + alpha E, 0 with these factors)."""
-        return pole_factors(self.poles, self.resonances)
+    def base_deformation(self, model=None):
+        """The pole and resonance factors alone (the run's, and model entry ``model``'s): the
+        'undeformed' theory of the flow check, E(R, alpha) = E(R + alpha E, 0 with them)."""
+        own = self.models[model].factors() if model is not None else CDD({})
+        return pole_factors(self.poles, self.resonances) + own
+
+    def model_has_poles(self, model):
+        return self.base_deformation(model).has_poles
 
     @property
     def ttbar_only(self):
@@ -277,7 +302,8 @@ class RunSpec:
 
     @property
     def has_poles(self):
-        return bool(self.poles or self.resonances)
+        """Pole or resonance factors anywhere in the run (for all models or for one)."""
+        return bool(self.poles or self.resonances) or any(m.poles or m.resonances for m in self.models)
 
     def to_dict(self):
         """The resolved run as a JSON-ready dict (also a valid input of `resolve_run`)."""
@@ -285,7 +311,7 @@ class RunSpec:
             "name": self.name,
             "description": self.description,
             "output": self.output,
-            "models": [{"name": m.name, "coupling": m.coupling} for m in self.models],
+            "models": [m.to_dict() for m in self.models],
             "deformation": self._deformation_dict(),
             "radii": list(self.radii),
             "states": list(self.states),
@@ -478,7 +504,7 @@ def resolve_run(data, base_dir=None, name="run", *, limits=False, max_points=MAX
     branch_points = _boolean("scan.branch_points", scan.get("branch_points", d["branch_points"]))
     scan.finish()
     top.finish()
-    factors = pole_factors(poles, resonances)
+    factors = [pole_factors(poles, resonances) + m.factors() for m in models]
     return RunSpec(models=models, alphas=alphas, radii=radii, higher_spin=higher_spin,
                    poles=poles, resonances=resonances,
                    states=states, unavailable=_unavailable(models, states, higher_spin, factors), tol=tol, chunk_size=chunk_size, flow_check=flow_check,
@@ -504,8 +530,10 @@ def _models(value):
             raise RunFileError(t.key("name" if exc.argument == "model" else "coupling"),
                                exc.reason) from None
         name = canonical_name(name)
+        poles, resonances = _factor_list(t, "poles", key), _factor_list(t, "resonances", key)
+        _check_factors(poles, resonances, key)
         t.finish()
-        spec = ModelSpec(name, coupling)
+        spec = ModelSpec(name, coupling, poles, resonances)
         if spec in specs:
             raise RunFileError(key, f"repeats models[{specs.index(spec)}] ({spec.label})")
         specs.append(spec)
@@ -551,25 +579,30 @@ def _deformation(value, models, limits):
                 CDD({spin: 1.0}).check(m.build())
             except ValueError as exc:
                 raise RunFileError(key, str(exc).split(": ", 1)[-1]) from None
-    poles = _factor_list(t, "poles")
-    resonances = _factor_list(t, "resonances")
-    try:
-        pole_factors(poles, resonances)
-    except ValueError as exc:
-        raise RunFileError(f"deformation.{exc}".split(":", 1)[0], str(exc).split(": ", 1)[-1]) from None
+    poles = _factor_list(t, "poles", "deformation")
+    resonances = _factor_list(t, "resonances", "deformation")
+    _check_factors(poles, resonances, "deformation")
     t.finish()
     higher = tuple(sorted(higher.items()))
     keys = [first_key[a] for a in alphas] + [hs.key(str(s)) for s, _ in higher]
     return alphas, higher, keys, poles, resonances
 
 
-def _factor_list(table, name):
-    """``poles`` or ``resonances``: an array of [value, power] pairs, as a tuple of tuples
-    (values as floats, powers as ints; checked by `pole_factors`)."""
-    raw = _array(f"deformation.{name}", table.get(name, []))
+def _check_factors(poles, resonances, prefix):
+    try:
+        pole_factors(poles, resonances)
+    except ValueError as exc:
+        entry, problem = str(exc).split(": ", 1)
+        raise RunFileError(f"{prefix}.{entry}", problem) from None
+
+
+def _factor_list(table, name, prefix):
+    """``poles`` or ``resonances`` of the table at ``prefix``: an array of [value, power] pairs,
+    as a tuple of tuples (values as floats, powers as ints; checked by `pole_factors`)."""
+    raw = _array(f"{prefix}.{name}", table.get(name, []))
     out = []
     for i, item in enumerate(raw):
-        key = f"deformation.{name}[{i}]"
+        key = f"{prefix}.{name}[{i}]"
         if not isinstance(item, (list, tuple)) or len(item) != 2:
             raise RunFileError(key, f"expected a pair [value, power], got {_got(item)}")
         value = _number(f"{key}[0]", item[0])
@@ -676,18 +709,20 @@ def _states(value):
 
 def _unavailable(models, states, higher_spin, factors=None):
     """((model, state, why), ...) for the states a model does not have; a state that no
-    model has is an error of the run file."""
+    model has is an error of the run file. ``factors``: the pole and resonance factors of each
+    model entry (a list), or None."""
     from tba.solvers.levels import GROUND, unavailable
 
     out = []
-    deformation = CDD(dict(higher_spin)) if higher_spin else None
-    if factors is not None and factors.has_poles:
-        deformation = factors if deformation is None else deformation + factors
+    spins = CDD(dict(higher_spin)) if higher_spin else None
     for s, state in enumerate(states):
         if state == GROUND:
             continue
         reasons = []
         for m, spec in enumerate(models):
+            deformation = spins
+            if factors is not None and factors[m].has_poles:
+                deformation = factors[m] if spins is None else spins + factors[m]
             why = unavailable(spec.build(), state, deformation)
             if why is not None:
                 out.append((m, s, why))

@@ -292,13 +292,19 @@ def _recovery_bytes(run):
 def cdd_factors_attribute(run):
     """The run's pole and resonance factors, self-describing: what each entry means and the
     factors F_sigma^power the solver uses (sigma = sin u)."""
-    return {"convention": "S_ab -> S_ab * sign * prod F_sigma^power, F_sigma = (sinh t + i sigma) / "
-                          "(sinh t - i sigma); poles [x, p]: sigma = sin(pi x); resonances "
-                          "[theta0, p]: sigma = cosh(theta0); sign keeps S_ab(0)",
-            "poles": [{"x": x, "power": p} for x, p in run.poles],
-            "resonances": [{"theta0": t, "power": p} for t, p in run.resonances],
-            "factors": run.base_deformation().describe()["factors"],
-            "sign": run.base_deformation().sign}
+    def entry(poles, resonances, deformation):
+        return {"poles": [{"x": x, "power": p} for x, p in poles],
+                "resonances": [{"theta0": t, "power": p} for t, p in resonances],
+                "factors": deformation.describe()["factors"], "sign": deformation.sign}
+
+    out = {"convention": "S_ab -> S_ab * sign * prod F_sigma^power, F_sigma = (sinh t + i sigma) / "
+                         "(sinh t - i sigma); poles [x, p]: sigma = sin(pi x); resonances "
+                         "[theta0, p]: sigma = cosh(theta0); sign keeps S_ab(0). 'run': the factors "
+                         "of every model; 'models': per model entry, the run's and its own",
+           **entry(run.poles, run.resonances, run.base_deformation())}
+    out["models"] = [{"label": m.label, **entry(m.poles, m.resonances, run.base_deformation(i))}
+                     for i, m in enumerate(run.models)]
+    return out
 
 
 def _write_layout(f, run, run_file, models_info, shard=None):
@@ -1154,7 +1160,7 @@ class StoreData:
         names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
         for m in range(len(self.model)):
             for a, alpha in enumerate(self.alpha):
-                couplings = dict(self.run.deformation(float(alpha)).couplings)
+                couplings = dict(self.run.deformation(float(alpha), m).couplings)
                 for r, R in enumerate(self.radius):
                     for s, state in enumerate(self.state):
                         i = (m, a, r, s)
