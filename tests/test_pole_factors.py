@@ -353,6 +353,10 @@ def test_run_file_factors_resolve_store_and_report(tmp_path):
     assert np.nanmax(flow) < 1e-13                                # E(R, a) = E(R + a E, 0), factors kept
     code, out, err = _tba("report", tmp_path / "poles.h5")
     assert code == 0 and "F_(pi x)^-1 with x = 0.3, F_(pi x)^-1 with x = 0.2" in out
+    code, out, err = _tba("export", "--json", tmp_path / "poles.h5")
+    records = [json.loads(line) for line in out.splitlines()]
+    assert code == 0 and len(records) == 8
+    assert all([f["power"] for f in r["cdd_factors"]["factors"]] == [-1, -1] for r in records)
 
 
 @pytest.mark.parametrize("extra, key", [

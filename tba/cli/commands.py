@@ -256,7 +256,10 @@ def cmd_export(args, out):
             for rec in records:
                 print(json_text(rec), file=target)
         else:  # nulls (None, NaN) are empty cells
-            writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n")
+            # (cdd_factors, in the JSON lines of runs with pole factors, is no CSV column: the
+            # model's label in tba report and the file's cdd_factors attribute name them)
+            writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n",
+                                    extrasaction="ignore")
             writer.writeheader()
             for rec in map(plain, records):
                 writer.writerow({**rec, "couplings": json_text(rec["couplings"])})

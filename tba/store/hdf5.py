@@ -299,8 +299,9 @@ def cdd_factors_attribute(run):
 
     out = {"convention": "S_ab -> S_ab * sign * prod F_sigma^power, F_sigma = (sinh t + i sigma) / "
                          "(sinh t - i sigma); poles [x, p]: sigma = sin(pi x); resonances "
-                         "[theta0, p]: sigma = cosh(theta0); sign keeps S_ab(0). 'run': the factors "
-                         "of every model; 'models': per model entry, the run's and its own",
+                         "[theta0, p]: sigma = cosh(theta0); sign keeps S_ab(0). Top level: the "
+                         "factors of every model entry ([deformation]); 'models': per entry, "
+                         "those and its own",
            **entry(run.poles, run.resonances, run.base_deformation())}
     out["models"] = [{"label": m.label, **entry(m.poles, m.resonances, run.base_deformation(i))}
                      for i, m in enumerate(run.models)]
@@ -1160,7 +1161,10 @@ class StoreData:
         names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
         for m in range(len(self.model)):
             for a, alpha in enumerate(self.alpha):
-                couplings = dict(self.run.deformation(float(alpha), m).couplings)
+                deformation = self.run.deformation(float(alpha), m)
+                couplings = dict(deformation.couplings)
+                factors = ({k: deformation.describe()[k] for k in ("factors", "sign")}
+                           if deformation.has_poles else None)
                 for r, R in enumerate(self.radius):
                     for s, state in enumerate(self.state):
                         i = (m, a, r, s)
@@ -1168,6 +1172,7 @@ class StoreData:
                         if code in (NOT_COMPUTED, NOT_AVAILABLE) and not include_not_computed:
                             continue
                         ok = names.get(code) == "converged"
+                        extra = {} if factors is None else {"cdd_factors": factors}  # as tba solve
                         yield {
                             "model": self.model_name[m],
                             "coupling": self.model_coupling[m],
@@ -1181,6 +1186,7 @@ class StoreData:
                             "iterations": int(self.data["iterations"][i]),
                             "message": self.data["message"][i],
                             "state": state,
+                            **extra,
                         }
 
 
