@@ -353,6 +353,12 @@ def test_run_file_factors_resolve_store_and_report(tmp_path):
     assert np.nanmax(flow) < 1e-13                                # E(R, a) = E(R + a E, 0), factors kept
     code, out, err = _tba("report", tmp_path / "poles.h5")
     assert code == 0 and "F_(pi x)^-1 with x = 0.3, F_(pi x)^-1 with x = 0.2" in out
+    # the turning points of the scan: locate_fold at every alpha, consistent with the points
+    assert "the fold of the full equations" in out and "holds for all 2 checked curve(s)" in out
+    with h5py.File(tmp_path / "poles.h5") as f:
+        radius = f["branch_points/branch_radius"][0]
+    assert radius[0] == pytest.approx(0.7362886514175, abs=1e-12)
+    assert radius[1] == pytest.approx(tba.locate_fold(FF, tba.ttbar(0.05) + TWO_POLES).value, abs=1e-13)
     code, out, err = _tba("export", "--json", tmp_path / "poles.h5")
     records = [json.loads(line) for line in out.splitlines()]
     assert code == 0 and len(records) == 8

@@ -96,9 +96,9 @@ def branch_checks(data, state="ground"):
     out = []
     for m in range(len(data.model)):
         for a, alpha in enumerate(data.alpha):
-            if alpha <= 0:
-                continue
             code = int(data.branch["status"][m, a])
+            if alpha <= 0 and code != BP_FOUND:  # found for alpha <= 0: a fold of pole factors
+                continue
             c = BranchCheck(m, a, names.get(code, str(code)), message=str(data.branch["message"][m, a]))
             out.append(c)
             if code == BP_FOUND:
@@ -298,6 +298,9 @@ def _branch_section(data):
     lines = ["branch points of the ground state (alpha > 0): R_c from E_0'(R~, 0) = 1/alpha, "
              "E(R_c) = E_0(R_c, alpha) = E_0(R~, 0), Hagedorn temperature T_H = 1/R_c; last real "
              "point per curve:"]
+    if data.run.has_poles:
+        lines[0] = lines[0][:-1] + (" (models with CDD pole factors: the fold of the full equations "
+                                    "by locate_fold, at every alpha):")
     checks = branch_checks(data)
     if not checks:
         lines.append("  (no alpha > 0 in the run)")

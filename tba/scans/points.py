@@ -50,7 +50,7 @@ from tba.models.cdd import NO_DEFORMATION
 from tba.physics.flow import branch_point
 from tba.solvers.levels import GROUND, parse_level, solve_level
 from tba.solvers.result import STATUS_CODES, Status
-from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
+from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
                              FLOW_NOT_APPLICABLE, FLOW_OFF, POINT_VARIABLES)
 from tba.scans.interrupts import caused_by_interrupt
 
@@ -187,10 +187,6 @@ def solve_branch_point(run, model_index, alpha_index):
     `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left out). Never raises
     an Exception: a failure comes back with status "failed" and the error as message."""
     alpha = run.alphas[alpha_index]
-    if run.model_has_poles(model_index):
-        return {"status": BP_NOT_APPLICABLE,
-                "message": "CDD pole or resonance factors: branch points are not computed in "
-                           "scans with them (tba.locate_fold finds the fold)"}
     if not run.ttbar_only:
         spins = ", ".join(f"{s}" for s, _ in run.higher_spin)
         return {"status": BP_NOT_APPLICABLE,
@@ -198,6 +194,8 @@ def solve_branch_point(run, model_index, alpha_index):
                            f"holds for TTbar alone"}
     from threadpoolctl import threadpool_limits
 
+    if run.model_has_poles(model_index):
+        return _kernel_fold(run, model_index, alpha)
     try:
         with threadpool_limits(limits=1, user_api="blas"):  # the same bits on every executor
             bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
@@ -213,6 +211,31 @@ def solve_branch_point(run, model_index, alpha_index):
         values.update(branch_radius=bp.radius, branch_radius_error=bp.radius_error, energy=bp.energy,
                       energy_error=bp.energy_error, effective_radius=bp.effective_radius)
     return values
+
+
+def _kernel_fold(run, model_index, alpha):
+    """With pole or resonance factors the turning point comes from the full equations (the
+    kernel's own fold, moved by alpha): `locate_fold` on two grids, for every alpha. Status
+    none when the ground state is real down to R = 1e-3 (`locate_fold`'s refusal)."""
+    from threadpoolctl import threadpool_limits
+
+    from tba.physics.continuation import locate_fold
+
+    deformation = run.deformation(alpha, model_index)
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            fold = locate_fold(_model(run.models[model_index]), deformation, tol=run.tol)
+    except ValueError as exc:
+        return {"status": BP_NONE, "message": one_line(exc).split(": ", 1)[-1]}
+    except Exception as exc:  # noqa: BLE001 (stored, never lost)
+        if caused_by_interrupt(exc):
+            raise KeyboardInterrupt from None
+        return {"status": BP_FAILED, "message": one_line(exc)}
+    return {"status": BP_FOUND, "message": "fold of the full equations with the pole factors "
+                                           "(locate_fold, two grids)",
+            "branch_radius": fold.value, "branch_radius_error": float(fold.value_error),
+            "energy": fold.energy, "energy_error": float(fold.energy_error),
+            "effective_radius": fold.value + alpha * fold.energy}
 
 
 def describe_chunk(run, chunk):
