@@ -436,3 +436,15 @@ count = 2
         loads_run(text.replace("[[0.3, -1], [0.1, -1]]", "[[1.3, -1]]"))
     with pytest.raises(ValueError, match=r"models\[1\]: repeats models\[0\]"):
         loads_run(text.replace("[[0.3, -1], [0.1, -1]]", "[[0.3, -1], [0.2, -1]]"))
+
+
+def test_example_run_files_load():
+    from pathlib import Path
+
+    from tba.scans.runfile import load_run
+
+    runs = Path(__file__).resolve().parent.parent / "runs"
+    poles = load_run(runs / "cdd-poles.toml")
+    assert [m.poles for m in poles.models] == [((0.3, -1), (0.2, -1)), ((0.3, -1), (0.1, -1))]
+    staircase = load_run(runs / "staircase.toml")
+    assert staircase.models[0].resonances == ((16.0, -1),)
