@@ -12,7 +12,9 @@ Lencses, Negro and Zamolodchikov (JHEP 2021); docs/physics.md section 8. Checks:
 * the staircase (Al.B. Zamolodchikov, "Resonance factorized scattering and roaming
   trajectories", 1991): the free fermion times the resonance pair u = pi/2 +- i theta0 has
   c_eff plateaux at the unitary minimal-model values 1 - 6/(p(p+1));
-* refusals: excited levels with pole factors, folds for alpha <= 0 with a real ground state.
+* refusals: excited levels with pole factors, folds for alpha <= 0 with a real ground state;
+* run files, the store, the report, `tba export` and `tba solve` with factors: the stored numbers
+  against direct solves, the flow relation with the factors at alpha = 0, one-line errors.
 """
 
 import math
