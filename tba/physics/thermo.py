@@ -51,7 +51,9 @@ def thermodynamics(model, temperatures, deformation=None, tol=1e-12):
     for T in temps:
         if not (math.isfinite(T) and T > 0):
             raise ValueError(f"temperatures must be finite and positive, got {T!r}")
-    bulk = model.bulk_energy_density
+    # pole and resonance factors change the bulk term (it comes from the kernel's tails); the
+    # model's own value would be wrong, so it is left out
+    bulk = None if deformation.has_poles else model.bulk_energy_density
     out = {}
     start = None
     for T in sorted(set(temps)):  # increasing T = decreasing R: towards the branch point
@@ -72,5 +74,7 @@ def thermodynamics(model, temperatures, deformation=None, tol=1e-12):
             energy_density=dE + b, energy_density_error=edE,
             specific_heat=-R * R * d2E, specific_heat_error=R * R * ed2E,
             bulk_included=bulk is not None,
-            message="" if bulk is not None else "bulk term not known for this model: left out")
+            message="" if bulk is not None else
+            "bulk term not known for this model" + (" with pole factors" if deformation.has_poles else "")
+            + ": left out")
     return [out[T] for T in temps]

@@ -46,8 +46,10 @@ FLOW_MEANINGS = {
 }
 BRANCH_MEANINGS = {
     NOT_COMPUTED: ("not-computed", "not computed yet (or scan.branch_points = false)"),
-    BP_FOUND: ("found", "R_c from E_0'(R~) = 1/alpha; branch_radius, energy, errors valid"),
-    BP_NONE: ("none", "alpha <= 0: no branch point on this side"),
+    BP_FOUND: ("found", "R_c from E_0'(R~) = 1/alpha (with pole factors: the fold of the full "
+                        "equations); branch_radius, energy, errors valid"),
+    BP_NONE: ("none", "alpha <= 0: no branch point on this side (with pole factors: a real "
+                      "ground state at R = 1e-3)"),
     BP_NOT_APPLICABLE: ("not-applicable", "higher-spin CDD factors in the run (R_c from the "
                                           "undeformed curve holds for TTbar alone)"),
     BP_FAILED: ("failed", "the computation raised an error (see message)"),

@@ -47,6 +47,12 @@ BETHE_YANG_RADIUS = 12.0
 #: grid half-widths are rounded up to multiples of this many points: the continuations of
 #: excited levels next to their branch points need the margin of a wider cutoff
 EXCITED_QUANTUM = 16
+#: excited levels with CDD pole or resonance factors are refused: their sources
+#: log S(t - t_j - i pi/2) and the quantisation phases would need the factors too (and the
+#: poles of a resonance factor sit at Im t = pi/2, on the line the sources are evaluated on)
+POLE_REFUSAL = ("excited levels take the spin CDD factors only (pole and resonance factors: "
+                "ground state only)")
+
 #: blocks whose psi has poles closer to the real axis than this are integrated with the
 #: poles taken out (see `NearPoles`)
 POLE_SUBTRACTION = 0.25
@@ -229,6 +235,8 @@ class Scattering:
     -i log(-S(u)) and delta' = phi."""
 
     def __init__(self, model, deformation):
+        if deformation.has_poles:
+            raise ValueError(f"deformation: {POLE_REFUSAL}")
         self.model = model
         m = float(model.masses[0])
         self.cdd = [(s, a * (m * m if s == 1 else 1.0)) for s, a in deformation.couplings.items()]
@@ -654,6 +662,8 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
     radius, tol = _validate(radius, tol)
     deformation = require_deformation(deformation)
     require_start(start)
+    if deformation.has_poles:
+        raise ValueError(f"deformation: {POLE_REFUSAL}")
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling, state=state)
     prev = start._state if (isinstance(start, SolveResult) and start.converged

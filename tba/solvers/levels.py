@@ -21,7 +21,7 @@ accept or refuse (`unavailable`).
 
 from fractions import Fraction
 
-from tba.solvers.excited import check_model, parse_state, solve_excited, state_items
+from tba.solvers.excited import POLE_REFUSAL, check_model, parse_state, solve_excited, state_items
 from tba.solvers.ground import require_deformation, require_model, solve_ground_state
 
 GROUND = "ground"
@@ -67,6 +67,8 @@ def unavailable(model, level, deformation=None):
     level = parse_level(level)
     if level == GROUND:
         return None
+    if deformation is not None and deformation.has_poles:
+        return POLE_REFUSAL
     if model.is_massless:
         from tba.solvers.massless import refusal
 
