@@ -5,8 +5,8 @@ Negro and Zamolodchikov, JHEP 2021). Checks: the kernels against mpmath's numeri
 of log F, the pole positions against mpmath root finding, unitarity, crossing and real
 analyticity of the factors, the staircase kernel 1/cosh(t - theta0) + 1/cosh(t + theta0) and its
 c_eff plateaux at the unitary minimal-model values 1 - 6/(p(p+1)) (Al.B. Zamolodchikov, "Resonance
-factorized scattering and roaming trajectories", 1991; the solver through a kernel callable, as
-the solver does not read deformation kernels yet), composition and validation.
+factorized scattering and roaming trajectories", 1991; the solver through a kernel callable here;
+tests/test_pole_factors.py hands the deformation itself to the solver), composition and validation.
 """
 
 import cmath
@@ -111,7 +111,8 @@ def test_staircase_plateaux():
     # c_eff(R) = -6 R E_0 / pi of the staircase model passes the unitary minimal-model values
     # c_p = 1 - 6 / (p (p+1)), p = 3, 4, 5, 6, on plateaux of width theta0/2 in log(1/R), centred
     # at log(1/R) = theta0/4 + (p - 3) theta0/2 (Zamolodchikov 1991). The model side: the
-    # kernel of resonance(theta0, -1) handed to the solver as a user kernel.
+    # kernel of resonance(theta0, -1) handed to the solver as a user kernel (the deformation
+    # itself: tests/test_pole_factors.py).
     theta0 = 16.0
     d = resonance(theta0, -1)
     model = user_model(masses=[1.0], kernel=lambda t: d.kernel(FF, t)[0, 0],

@@ -111,3 +111,78 @@ def test_error_estimate_bounds_the_error(R):
 def test_higher_spin_factors_are_refused():
     with pytest.raises(ValueError, match="deformation"):
         solve_lee_yang_one_particle(1.0, higher_spin(3, 0.01))
+
+
+def _mu_term_v(R):
+    """v = -log(1/4 - sigma) of the state's large-R form: y = pi/6 + tau, tau = sqrt(3) e^(-sqrt(3) R / 2)."""
+    tau = math.sqrt(3) * math.exp(-R * math.sqrt(3) / 2)
+    return -math.log(math.sin(tau) * math.sin(math.pi / 3 - tau))
+
+
+@pytest.mark.parametrize("R", [25.0, 30.0, 40.0, 60.0])
+def test_near_singular_factors_against_mpmath(R):
+    # S = f_(2/3), the scaling Lee-Yang S-matrix (J.L. Cardy and G. Mussardo, Phys. Lett. B225
+    # (1989) 275), has a pole at 2c = 2 i y and a zero at c - i pi/2 = -i(pi/3 - tau) that the
+    # level approaches as tau ~ e^(-sqrt(3) R / 2) -> 0, and Q(c + i pi/3) a double pole. The
+    # plain expressions lost 3e-7 (R = 25) to 9e-6 (R = 30) relatively; here each factor and the
+    # constant part of the quantisation function G against the unfactored expressions at 60
+    # digits (mpmath), from the same v
+    import mpmath
+    from tba.solvers.lee_yang import Pair
+
+    with mpmath.workdps(60):
+        v = mpmath.mpf(_mu_term_v(R))
+        pair = Pair(float(v))
+        s = mpmath.sin(2 * mpmath.pi / 3)
+        sigma = mpmath.mpf(1) / 4 - mpmath.exp(-v)
+        zeta = -1j * mpmath.asin(mpmath.sqrt(sigma))
+        c = 1j * mpmath.pi / 3 + zeta
+
+        def S(u):
+            return (mpmath.sinh(u) + 1j * s) / (mpmath.sinh(u) - 1j * s)
+
+        def Q(u):
+            return (mpmath.sinh(u) ** 2 + sigma) / mpmath.cosh(u) ** 2
+
+        exact = [mpmath.log(abs(S(2 * c))), mpmath.log(abs(S(zeta - 1j * mpmath.pi / 6))),
+                 mpmath.log(abs(Q(c + 1j * mpmath.pi / 3)))]
+        ours = pair.singular_logs()
+        for a, b in zip(ours, exact):
+            # a difference of logarithms is the relative error of the factor itself
+            assert abs(a - b) <= 1e-13, (R, a, b)
+        r_eff = mpmath.mpf(R)
+        G = (r_eff * mpmath.cosh(c) - mpmath.log(S(2 * c)) - mpmath.log(Q(c + 1j * mpmath.pi / 3)) / 2
+             + mpmath.log(S(1j * mpmath.pi / 3 + 2 * zeta)) / 2
+             - mpmath.log(8j * s * mpmath.tanh(zeta)) / 2 - mpmath.log(S(zeta - 1j * mpmath.pi / 6)))
+        ours_G = pair.G_constant(R)
+        assert abs(ours_G.real - G.real) <= 1e-13 * abs(G.real)
+        assert math.remainder(ours_G.imag - float(G.imag), 2 * math.pi) == pytest.approx(0, abs=1e-12)
+        tau = mpmath.pi / 6 - mpmath.asin(mpmath.sqrt(sigma))  # y - pi/6
+        assert abs(pair.tau - tau) <= 1e-13 * tau
+
+
+@pytest.mark.parametrize("R", [25.0, 30.0, 40.0, 60.0])
+def test_large_radius_level_converges(R):
+    # was not-converged from R ~ 25 on. E_1 - m is the mu-term of the bound-state pole of S at
+    # 2 pi i / 3 with residue i Gamma^2, Gamma^2 = -4 sin(2 pi/3): delta m = -(sqrt 3 / 2) Gamma^2
+    # e^(-sqrt(3) R / 2) = 3 e^(-sqrt(3) R / 2) (M. Luscher, Commun. Math. Phys. 104 (1986) 177,
+    # from memory), up to the F-term ~ e^(-R) and mu-term squared ~ e^(-sqrt(3) R). With
+    # e^(-R) <= 4e-18 at R >= 40 the closed form is a reference to rounding; at R = 25, 30
+    # the reference is the level at a looser tolerance (coarser grids, common practice)
+    res = solve_lee_yang_one_particle(R)
+    assert res.status is Status.CONVERGED, res.message
+    assert res.error <= 1e-12 * res.energy
+    mu = 1.0 + 3.0 * math.exp(-math.sqrt(3) * R / 2)
+    assert abs(res.energy - mu) <= 2 * math.exp(-R) + res.error
+    if R >= 40:
+        assert abs(res.energy - mu) <= res.error
+    loose = solve_lee_yang_one_particle(R, tol=1e-8)
+    assert loose.converged, loose.message
+    assert abs(loose.energy - res.energy) <= loose.error + res.error
+
+
+def test_level_converges_up_to_the_largest_radius():
+    for R in (200.0, 700.0):
+        res = solve_lee_yang_one_particle(R)
+        assert res.status is Status.CONVERGED, (R, res.message)
+        assert abs(res.energy - 1.0) <= res.error  # E_1 - m = 3 e^(-sqrt(3) R / 2) < 1e-70

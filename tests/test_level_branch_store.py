@@ -188,3 +188,28 @@ def test_plot_marks_the_level_fold_like_the_ground_state_branch_point(serial):
     assert list(diamond.get_xdata()) == [Rc] and list(diamond.get_ydata()) == [Ec]
     assert [list(ln.get_xdata()) for ln in ax.get_lines() if ln.get_linestyle() == ":"] == [[Rc, Rc]]
     assert not [ln for ln in ax.get_lines() if ln.get_marker() == "*"]
+
+
+def test_a_broken_superblock_is_rebuilt_with_the_level_branch_points(runfile, serial, tmp_path,
+                                                                     monkeypatch):
+    # the recovery map vouches for the levels' branch points too: the rebuilt file has them
+    # bit for bit, and tba run computes none of them again
+    import tba.scans.points
+
+    path = tmp_path / "broken.h5"
+    path.write_bytes(serial.read_bytes())
+    with open(path, "r+b") as fh:  # the HDF5 signature and superblock
+        fh.write(b"\0" * 64)
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("a branch point was computed again")
+
+    monkeypatch.setattr(tba.scans.points, "excited_branch_point", refuse)
+    log = io.StringIO()
+    summary = run_scan(load_run(runfile).with_output(path), workers=1, log=log)
+    assert "rebuilt it from the" in log.getvalue() and summary.branch_points_computed == 0
+    a, b = read_store(serial).levels, read_store(path).levels
+    for name in a:
+        same = (a[name] == b[name]).all() if a[name].dtype == object else \
+            a[name].tobytes() == b[name].tobytes()
+        assert same, name

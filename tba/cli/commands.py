@@ -24,7 +24,7 @@ from tba import __version__
 from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
                             add_max_points_argument, add_model_arguments, add_output_argument,
                             add_tol_argument, build_model, check_deformation, coupling, json_text,
-                            max_points, parse_alphas, parse_cdd, parse_radii,
+                            max_points, parse_alphas, parse_cdd, parse_factors, parse_radii,
                             parse_state_argument, plain, require_output, spelled, state_row,
                             table_row, too_many, tolerance, whole_number, writable_dir,
                             writable_file)
@@ -43,9 +43,12 @@ def cmd_solve(args, out):
     alphas = parse_alphas(args.alpha or ["0"], limit)
     if len(radii) * len(alphas) > limit:
         raise too_many("--alpha", len(radii) * len(alphas), limit, "points (radii x alphas)")
-    deformations = [parse_cdd(args.cdd, alpha, model) for alpha in alphas]
-    for deformation in deformations:
+    factors = parse_factors(args.pole, args.resonance)
+    deformations = []
+    for alpha in alphas:
+        deformation = parse_cdd(args.cdd, alpha, model)
         check_deformation(deformation, radii)
+        deformations.append(deformation + factors)
     tol = tolerance(args.tol)
     state = (parse_state_argument(args.state, model, deformations[0]) if args.state is not None
              else "ground")
@@ -68,6 +71,8 @@ def cmd_solve(args, out):
             if res.converged:
                 start = res
             rec = res.as_record()
+            if deformation.has_poles:  # F_sigma^power of every factor, sigma = sin u, and the sign
+                rec["cdd_factors"] = {k: deformation.describe()[k] for k in ("factors", "sign")}
             print(json_text(rec) if args.json else row(rec), file=out, flush=True)
     return 0
 
@@ -271,7 +276,10 @@ def cmd_export(args, out):
             for rec in records:
                 print(json_text(rec), file=target)
         else:  # nulls (None, NaN) are empty cells
-            writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n")
+            # (cdd_factors, in the JSON lines of runs with pole factors, is no CSV column: the
+            # model's label in tba report and the file's cdd_factors attribute name them)
+            writer = csv.DictWriter(target, fieldnames=EXPORT_KEYS, lineterminator="\n",
+                                    extrasaction="ignore")
             writer.writeheader()
             for rec in map(plain, records):
                 writer.writerow({**rec, "cdd_couplings": json_text(rec["cdd_couplings"]),
@@ -345,6 +353,14 @@ def build_parser():
                        "alpha; repeated --alpha options add up")
     solve.add_argument("--cdd", action="append", metavar="S:A",
                        help="extra CDD factor of odd spin S >= 3 with coupling A (repeatable)")
+    solve.add_argument("--pole", action="append", metavar="X:P",
+                       help="CDD pole factor F_(pi x)^P, F_u = (sinh t + i sin u) / (sinh t - i sin "
+                       "u), 0 < x < 1, P a nonzero integer (repeatable; e.g. --pole 0.3:-1 --pole "
+                       "0.2:-1 for 1 / (f_0.3 f_0.2)); ground state only")
+    solve.add_argument("--resonance", action="append", metavar="THETA0:P",
+                       help="CDD resonance factor F^P with sin u = cosh THETA0 (poles at +-THETA0 + "
+                       "i pi/2; 16:-1 with free-fermion is the staircase model); repeatable; "
+                       "ground state only")
     add_tol_argument(solve)
     solve.add_argument("--state", action=Once, metavar="N1,N2,...",
                        help="an excited level by its Bethe quantum numbers (half-odd for an even "

@@ -247,6 +247,30 @@ def parse_cdd(tokens, alpha, model=None):
     return deformation
 
 
+def parse_factors(poles, resonances):
+    """The pole and resonance factors of --pole X:P and --resonance THETA0:P (repeatable):
+    F_(pi x)^P and F^P with sin u = cosh theta0 (`tba.models.cdd.pole_factors`)."""
+    from tba.models.cdd import pole_factors
+
+    out = CDD({})
+    for option, tokens, builder in (("--pole", poles, "poles"), ("--resonance", resonances, "resonances")):
+        for tok in tokens or []:
+            value, sep, power = tok.partition(":")
+            if not sep:
+                what = "X:POWER" if option == "--pole" else "THETA0:POWER"
+                raise UsageError(f"argument {option}: expected {what}, got {tok!r}")
+            v = finite(option, value)
+            try:
+                p = int(power)
+            except ValueError:
+                raise UsageError(f"argument {option}: the power must be a nonzero integer, got {power!r}") from None
+            try:
+                out = out + pole_factors(**{builder: [(v, p)]})
+            except ValueError as exc:
+                raise UsageError(f"argument {option}: {str(exc).split(': ', 1)[-1]}") from None
+    return out
+
+
 def check_deformation(deformation, radii):
     """Refuse couplings whose kernel terms overflow at the smallest radius
     (`tba.scans.limits.deformation_problem`), naming --alpha or --cdd."""

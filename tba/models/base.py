@@ -385,6 +385,9 @@ class DiagonalModel:
                 out = np.asarray(self.kernel_function(t), dtype=float)
             except (TypeError, ValueError) as exc:
                 raise ValueError(f"kernel: the callable failed on a float array: {exc}") from None
+            except ArithmeticError as exc:  # ZeroDivisionError, OverflowError, ...
+                raise ValueError(f"kernel: the callable raised {type(exc).__name__} on a float "
+                                 f"array: {exc}") from None
             if out.shape != (n, n) + t.shape:
                 raise ValueError(f"kernel: the callable returned shape {out.shape}, expected "
                                  f"{(n, n) + t.shape}")

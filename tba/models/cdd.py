@@ -381,4 +381,48 @@ def resonance(theta0, power=1):
     return CDD(factors=(PoleFactor(math.cosh(theta0), power),))
 
 
+#: the largest |power| and theta0 that `pole_factors` accepts (cosh theta0 stays finite)
+MAX_POWER, MAX_THETA0 = 64, 700.0
+
+
+def pole_factors(poles=(), resonances=()):
+    """The CDD deformation prod_j F_(pi x_j)^(p_j) prod_k F_(sigma_k)^(q_k), sigma_k = cosh theta_k,
+    from pairs ``poles = [(x, p), ...]`` (x = u/pi in (0, 1): F_(pi x) = f_x, the block notation)
+    and ``resonances = [(theta0, q), ...]`` (`resonance`): the form run files and the command line
+    use. Powers are nonzero integers, |p| <= 64; 0 < theta0 <= 700. ValueError naming the entry
+    (``poles[1]: ...``) for anything else."""
+    out = NO_DEFORMATION
+    for name, items, build in (("poles", poles, _pole_entry), ("resonances", resonances, _resonance_entry)):
+        for i, item in enumerate(items):
+            try:
+                value, power = item
+            except (TypeError, ValueError):
+                raise ValueError(f"{name}[{i}]: expected a pair [value, power], got {item!r}") from None
+            try:
+                out = out + build(value, _power(power))
+            except (TypeError, ValueError) as exc:
+                raise ValueError(f"{name}[{i}]: {exc}") from None
+    return out
+
+
+def _power(p):
+    if isinstance(p, bool) or not isinstance(p, (int, float)) or p != int(p) or p == 0 \
+            or abs(p) > MAX_POWER:
+        raise ValueError(f"the power must be a nonzero integer of size <= {MAX_POWER}, got {p!r}")
+    return int(p)
+
+
+def _pole_entry(x, power):
+    if isinstance(x, bool) or not isinstance(x, (int, float)) or not 0 < x < 1:
+        raise ValueError(f"x must be a number in (0, 1) (u = pi x), got {x!r}")
+    return cdd_factor(math.pi * float(x), power)
+
+
+def _resonance_entry(theta0, power):
+    if isinstance(theta0, bool) or not isinstance(theta0, (int, float)) \
+            or not (math.isfinite(theta0) and 0 < theta0 <= MAX_THETA0):
+        raise ValueError(f"theta0 must be a number in (0, {MAX_THETA0:g}], got {theta0!r}")
+    return resonance(theta0, power)
+
+
 NO_DEFORMATION = CDD({})

@@ -32,6 +32,7 @@ it is the file's by construction.
 """
 
 import json
+import os
 import tempfile
 from pathlib import Path
 
@@ -54,13 +55,16 @@ _H5_ATTRS = {"DIMENSION_LIST", "REFERENCE_LIST", "CLASS", "NAME", "_Netcdf4Dimid
              "_Netcdf4Coordinates"}
 #: keyword arguments of `scan` -> the run-file key they fill (for error messages)
 _ARGUMENTS = {"models": "models", "deformation.alphas": "alphas",
-              "deformation.higher_spin": "higher_spin", "radii": "radii", "states": "states",
+              "deformation.higher_spin": "higher_spin", "deformation.poles": "poles",
+              "deformation.resonances": "resonances", "radii": "radii", "states": "states",
               "solver.tol": "tol", "description": "description"}
 
 
 def open_scan(path):
     """The scan stored at ``path`` (a file written by ``tba run`` or ``tba merge``, or a shard)
     as an xarray Dataset, read into memory (the file is closed on return)."""
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a file name (str or os.PathLike), got {type(path).__name__} {path!r}")
     try:
         data = read_store(path)
     except StoreError as exc:
@@ -70,7 +74,8 @@ def open_scan(path):
     return to_dataset(data, _variable_attributes(path))
 
 
-def scan(models, radii, alphas=(0.0,), states=("ground",), *, higher_spin=None, tol=1e-12,
+def scan(models, radii, alphas=(0.0,), states=("ground",), *, higher_spin=None, poles=(),
+         resonances=(), tol=1e-12,
          flow_check=True, branch_points=True, chunk_size=8, sweep="descending", description="",
          workers=1, backend=None):
     """Solve a scan in memory and return it as an xarray Dataset (the layout of `open_scan`).
@@ -78,7 +83,8 @@ def scan(models, radii, alphas=(0.0,), states=("ground",), *, higher_spin=None, 
     ``models``: a built-in model (``tba.sinh_gordon(0.6)``), its name (``"lee-yang"``) or a
     list of them; ``radii`` and ``alphas``: numbers (sorted, duplicates merged); ``states``:
     "ground" and excited levels by their quantum numbers ("-1/2,1/2"); ``higher_spin``:
-    {odd spin >= 3: alpha_s}, added at every alpha. ``tol``, ``flow_check``,
+    {odd spin >= 3: alpha_s}, added at every alpha; ``poles`` [(x, p), ...] and ``resonances``
+    [(theta0, p), ...]: CDD pole and resonance factors F_(pi x)^p, at every alpha. ``tol``, ``flow_check``,
     ``branch_points``, ``chunk_size`` and ``sweep`` are the run-file settings of the same
     names (README, "Scans"). ``workers`` > 1 solves the chunks in that many local processes
     (scripts then need the ``if __name__ == "__main__":`` guard); ``backend`` takes a
@@ -92,7 +98,9 @@ def scan(models, radii, alphas=(0.0,), states=("ground",), *, higher_spin=None, 
         "output": None,
         "models": [_model_entry(m) for m in (models if isinstance(models, (list, tuple)) else [models])],
         "deformation": {"alphas": _numbers(alphas),
-                        "higher_spin": {str(s): a for s, a in dict(higher_spin or {}).items()}},
+                        "higher_spin": {str(s): a for s, a in dict(higher_spin or {}).items()},
+                        **({"poles": [list(p) for p in poles]} if poles else {}),
+                        **({"resonances": [list(r) for r in resonances]} if resonances else {})},
         "radii": _numbers(radii),
         "states": list(states) if isinstance(states, (list, tuple)) else [states],
         "solver": {"tol": tol},

@@ -103,7 +103,8 @@ def branch_checks(data, state="ground"):
     out = []
     for m in range(len(data.model)):
         for a, alpha in enumerate(data.alpha):
-            if alpha <= 0:
+            code = int(data.branch["status"][m, a])
+            if alpha <= 0 and code != BP_FOUND:  # found for alpha <= 0: a fold of pole factors
                 continue
             c = _stored(data.branch, (m, a), names)
             out.append(c)
@@ -245,6 +246,14 @@ def _table(header, rows):
                       for line in [header, *rows])
 
 
+def factors_text(run):
+    """One line naming the run's pole and resonance factors."""
+    parts = [f"F_(pi x)^{p} with x = {x:.12g}" for x, p in run.poles]
+    parts += [f"F^{p} with sin u = cosh({t:.12g})" for t, p in run.resonances]
+    return ("CDD pole/resonance factors at every alpha (alpha = 0 is the model with them): "
+            + ", ".join(parts))
+
+
 def format_report(data):
     """The report as text (``data``: a `tba.store.hdf5.StoreData`)."""
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -265,6 +274,10 @@ def _format_report(data):
     if run.higher_spin:  # the CDD couplings besides alpha, the same at every alpha
         lines.append("  CDD couplings at every alpha: " + ", ".join(
             f"alpha_{s} = {number(a)}" for s, a in run.higher_spin))
+    if run.poles or run.resonances:
+        lines.append("  " + factors_text(run))
+    if any(m.poles or m.resonances for m in run.models):
+        lines.append("  model entries with their own CDD pole/resonance factors (in their labels)")
     done = data.progress["done"].astype(bool)
     if data.shard is not None:
         owned = data.owned
@@ -415,6 +428,9 @@ def _branch_section(data):
     lines = ["branch points of the ground state (alpha > 0): R_c from E_0'(R~, 0) = 1/alpha, "
              "E(R_c) = E_0(R_c, alpha) = E_0(R~, 0), Hagedorn temperature T_H = 1/R_c; last real "
              "point per curve:"]
+    if data.run.has_poles:
+        lines[0] = lines[0][:-1] + (" (models with CDD pole factors: the fold of the full equations "
+                                    "by locate_fold, at every alpha):")
     checks = branch_checks(data)
     if not checks:
         lines.append("  (no alpha > 0 in the run)")

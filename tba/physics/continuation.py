@@ -30,6 +30,7 @@ from tba.models.cdd import CDD
 from tba.solvers import arclength
 from tba.solvers.grid import choose_grid
 from tba.solvers.result import Status
+from tba.solvers.ground import require_deformation, require_model
 from tba.solvers.ground import (Discretization, _interpolate, grid_masses, grid_pole_distance, newton,
                                 solve_ground_state)
 
@@ -52,8 +53,34 @@ class Fold:
     family: Optional[arclength.Family] = field(default=None, repr=False)
 
 
+#: without a TTbar coupling (alpha <= 0: a fold of the kernel's own equations, e.g. of pole
+#: factors) the fold is sought from R = 1 outwards, and it is refused when the ground state is
+#: real already at this radius
+FOLD_PROBE_RADIUS = 1e-3
+
+
+def _default_start(deformation):
+    """Where the continuation in R starts (then doubled until the solution is real): twice the
+    CFT estimate of R_c with c = 1 for alpha > 0, else R = 1 (no coupling scale)."""
+    if deformation.alpha > 0:
+        return 2.0 * math.sqrt(2 * math.pi * deformation.alpha / 3)
+    return 1.0
+
+
+def _refuse_without_fold(model, deformation, tol):
+    """alpha <= 0 has no TTbar branch point; a fold of the kernel's own equations (pole factors,
+    or a user kernel) can still exist. Refused only when the ground state is real at the small
+    radius `FOLD_PROBE_RADIUS` (then no fold lies above it)."""
+    res = solve_ground_state(model, FOLD_PROBE_RADIUS, deformation, tol=max(tol, 1e-10))
+    if res.converged:
+        raise ValueError(f"deformation: the ground state has no fold in R for alpha <= 0 (it is "
+                         f"real at R = {FOLD_PROBE_RADIUS:g})")
+
+
 def _design_radius(model, deformation, radius, parameter):
     """A safe (small) effective radius to design the grid of a continuation."""
+    if parameter == "radius" and deformation.alpha <= 0:
+        return FOLD_PROBE_RADIUS * radius
     alpha = max(abs(deformation.alpha), 1e-12)
     guess = 0.3 * math.sqrt(alpha)
     if parameter == "alpha":
@@ -64,9 +91,11 @@ def _design_radius(model, deformation, radius, parameter):
 def locate_fold(model, deformation, *, parameter="radius", radius=None, start=None, tol=1e-12):
     """The fold of the deformed ground state, by pseudo-arclength continuation.
 
-    parameter="radius": at fixed couplings, the branch radius R_c (alpha > 0); the curve
-    is followed from ``start`` (a radius above R_c, default twice the CFT estimate with c = 1,
-    doubled until it has a real solution: c = 24 has R_c = sqrt(16 pi alpha)).
+    parameter="radius": at fixed couplings, the branch radius R_c; the curve is followed from
+    ``start`` (a radius above R_c; default twice the CFT estimate with c = 1 for alpha > 0,
+    R = 1 otherwise, doubled until it has a real solution: c = 24 has R_c = sqrt(16 pi alpha)).
+    For alpha <= 0 a fold can only come from the kernel's own equations (pole factors, user
+    kernels): refused with ValueError when the ground state is real at R = 1e-3.
     parameter="alpha": at fixed ``radius``, the TTbar coupling alpha_c where the fold lies.
 
     The fold is located on two grids of increasing resolution; their difference is the error
@@ -74,10 +103,12 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
     """
     if parameter not in PARAMETERS:
         raise ValueError(f"parameter must be one of {PARAMETERS}, got {parameter!r}")
+    require_model(model)
+    deformation = require_deformation(deformation)
     if parameter == "radius":
-        if deformation.alpha <= 0 and deformation.is_ttbar:
-            raise ValueError("deformation: the ground state has no fold in R for alpha <= 0")
-        p0 = float(start) if start is not None else 2.0 * math.sqrt(2 * math.pi * deformation.alpha / 3)
+        if deformation.alpha <= 0:
+            _refuse_without_fold(model, deformation, tol)
+        p0 = float(start) if start is not None else _default_start(deformation)
         r_ref, toward = p0, 0.0  # R decreases towards R_c
     else:
         if radius is None:
@@ -93,7 +124,7 @@ def locate_fold(model, deformation, *, parameter="radius", radius=None, start=No
     folds = []
     for level in (0, 1):
         min_mass, massless, kernel_decay = grid_masses(model)
-        grid = choose_grid(grid_pole_distance(model), min_mass, r_design, tol, level,
+        grid = choose_grid(grid_pole_distance(model, deformation), min_mass, r_design, tol, level,
                            cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
                            massless=massless, kernel_decay=kernel_decay)
         fam = arclength.Family(model, deformation, radius, grid, parameter)
@@ -146,12 +177,18 @@ class BranchSolution:
         return np.conj(self.energy)
 
 
+def _require_fold(fold):
+    if not isinstance(fold, Fold):
+        raise TypeError(f"fold must be a Fold (from locate_fold), got {type(fold).__name__} {fold!r}")
+
+
 def second_branch(fold, radius):
     """The real solution at ``radius`` (> R_c) on the far side of the fold (radius folds only).
 
     The curve is followed past the fold until it passes ``radius`` again, and the point is
     then corrected at fixed radius by Newton's method.
     """
+    _require_fold(fold)
     if fold.parameter != "radius":
         raise ValueError("fold: second_branch needs a fold in the radius")
     if not radius > fold.value:
@@ -213,7 +250,7 @@ def _polish(label, fam, radius, disc, eps):
     energies, out = [], None
     for level in (0, 1):
         min_mass, massless, kernel_decay = grid_masses(model)
-        grid = choose_grid(grid_pole_distance(model), min_mass, abs(r_eff),
+        grid = choose_grid(grid_pole_distance(model, deformation), min_mass, abs(r_eff),
                            1e-12, level, cutoff_extra=4.0, max_spin=max(deformation.couplings, default=1),
                            strip=strip, decay_radius=min(abs(r_eff), r_eff.real) if r_eff.real > 0
                            else abs(r_eff), massless=massless, kernel_decay=kernel_decay)
@@ -356,6 +393,7 @@ def complex_pair(fold, radius):
     values gives the start eps_c + s t_eps with s = i sqrt(2 (R_c - R) / R''), which complex
     Newton polishes. Returns the member with Im E > 0; its partner is the conjugate.
     """
+    _require_fold(fold)
     if fold.parameter != "radius":
         raise ValueError("fold: complex_pair needs a fold in the radius")
     if not 0 < radius < fold.value:

@@ -19,6 +19,7 @@ R_c = R~_* - alpha E(R~_*); below R_c the two real solutions become a complex pa
 
 import enum
 import math
+import numbers
 from dataclasses import dataclass
 
 import numpy as np
@@ -26,7 +27,7 @@ from scipy.optimize import brentq
 
 from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.result import SolveError
-from tba.solvers.ground import energy_derivatives, solve_ground_state
+from tba.solvers.ground import energy_derivatives, require_model, solve_ground_state
 
 
 # -- CFT closed form ---------------------------------------------------------------------------
@@ -48,6 +49,14 @@ def cft_energy(radius, alpha, c, delta=0.0, delta_bar=0.0):
 
 def cft_branch_radius(c, alpha):
     """Ground-state branch radius of a deformed CFT: sqrt(2 pi c alpha / 3) (alpha > 0)."""
+    for name, value in (("c", c), ("alpha", alpha)):
+        if isinstance(value, bool) or not isinstance(value, numbers.Real):
+            raise TypeError(f"{name} must be a real number, got {value!r}")
+    if not (math.isfinite(c) and c > 0):
+        raise ValueError(f"c must be finite and positive, got {c!r}")
+    if not (math.isfinite(alpha) and alpha > 0):
+        raise ValueError(f"alpha must be finite and positive (the ground state has no branch "
+                         f"point for alpha <= 0), got {alpha!r}")
     return math.sqrt(2 * math.pi * c * alpha / 3)
 
 
@@ -141,6 +150,13 @@ def _bracket_characteristic(radius_of, R, Rt, alpha):
     return best
 
 
+def _require_curve(level):
+    if not callable(level):
+        raise TypeError(f"level must be a callable R -> (E, dE/dR, error of E), e.g. "
+                        f"tba.physics.flow.ExcitedCurve(model, state) or UndeformedCurve(model), "
+                        f"got {type(level).__name__} {level!r}")
+
+
 def predict(level, radius, alpha, k=0, guess=None, steps=4):
     """Deformed level at (R, alpha) from an undeformed one by characteristics.
 
@@ -150,6 +166,7 @@ def predict(level, radius, alpha, k=0, guess=None, steps=4):
     fails), each solved by Newton's method on R(R~) = radius from the previous R~.
     Raises ValueError where no real prediction exists.
     """
+    _require_curve(level)
     R = float(radius)
     Rt = R if guess is None else float(guess)
     if guess is not None:
@@ -263,6 +280,7 @@ def level_branch_point(level, alpha, radius_range=(1e-2, 20.0)):
     Returns (R_c, E(R_c), R~_*)."""
     from scipy.optimize import minimize_scalar
 
+    _require_curve(level)
     radius_of = _characteristic(level, 0, alpha)
 
     def R_of(x):
@@ -403,6 +421,9 @@ def branch_point(model, alpha, tol=1e-13, curve=None):
     the exact derivative. R_c = R~_* - alpha E_0(R~_*) is stationary in R~_*, so its error is
     dominated by alpha times the error of E_0.
     """
+    require_model(model)
+    if isinstance(alpha, bool) or not isinstance(alpha, numbers.Real):
+        raise TypeError(f"alpha must be a real number, got {alpha!r}")
     alpha = float(alpha)
     if not math.isfinite(alpha):
         raise ValueError(f"alpha must be finite, got {alpha!r}")

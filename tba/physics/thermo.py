@@ -20,7 +20,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.result import Status
 from tba.solvers.ground import energy_derivatives, solve_ground_state
 
@@ -44,12 +43,17 @@ class ThermoPoint:
 def thermodynamics(model, temperatures, deformation=None, tol=1e-12):
     """Free energy, entropy, energy density and specific heat at each temperature (in order of
     decreasing temperature internally, so that warm starts go from large to small radius)."""
-    deformation = NO_DEFORMATION if deformation is None else deformation
+    from tba.solvers.ground import require_deformation, require_model
+
+    require_model(model)
+    deformation = require_deformation(deformation)
     temps = [float(T) for T in np.atleast_1d(temperatures)]
     for T in temps:
         if not (math.isfinite(T) and T > 0):
             raise ValueError(f"temperatures must be finite and positive, got {T!r}")
-    bulk = model.bulk_energy_density
+    # pole and resonance factors change the bulk term (it comes from the kernel's tails); the
+    # model's own value would be wrong, so it is left out
+    bulk = None if deformation.has_poles else model.bulk_energy_density
     out = {}
     start = None
     for T in sorted(set(temps)):  # increasing T = decreasing R: towards the branch point
@@ -70,5 +74,7 @@ def thermodynamics(model, temperatures, deformation=None, tol=1e-12):
             energy_density=dE + b, energy_density_error=edE,
             specific_heat=-R * R * d2E, specific_heat_error=R * R * ed2E,
             bulk_included=bulk is not None,
-            message="" if bulk is not None else "bulk term not known for this model: left out")
+            message="" if bulk is not None else
+            "bulk term not known for this model" + (" with pole factors" if deformation.has_poles else "")
+            + ": left out")
     return [out[T] for T in temps]

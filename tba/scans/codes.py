@@ -46,13 +46,16 @@ FLOW_MEANINGS = {
 }
 BRANCH_MEANINGS = {
     NOT_COMPUTED: ("not-computed", "not computed yet (or scan.branch_points = false)"),
-    BP_FOUND: ("found", "R_c located (ground state: E_0'(R~) = 1/alpha; an excited level: "
-                        "dR/dR~ = 0); branch_radius, energy, errors valid"),
-    BP_NONE: ("none", "no branch point on this side of alpha (ground state: alpha <= 0; an "
-                      "excited level: no fold in R, the message says why)"),
+    BP_FOUND: ("found", "R_c located (ground state: E_0'(R~) = 1/alpha, with pole factors the "
+                        "fold of the full equations; an excited level: dR/dR~ = 0); "
+                        "branch_radius, energy, errors valid"),
+    BP_NONE: ("none", "no branch point on this side of alpha (ground state: alpha <= 0, with "
+                      "pole factors a real ground state at R = 1e-3; an excited level: no fold "
+                      "in R, the message says why)"),
     BP_NOT_APPLICABLE: ("not-applicable", "higher-spin CDD factors in the run (R_c from the "
-                                          "undeformed curve holds for TTbar alone), or a "
-                                          "level the model lacks"),
+                                          "undeformed curve holds for TTbar alone), an "
+                                          "excited level with pole factors, or a level the "
+                                          "model lacks"),
     BP_FAILED: ("failed", "the computation raised an error (see message)"),
 }
 

@@ -54,7 +54,7 @@ from tba.models.cdd import NO_DEFORMATION
 from tba.physics.flow import branch_point, excited_branch_point
 from tba.solvers.levels import GROUND, parse_level, solve_level
 from tba.solvers.result import STATUS_CODES, Status
-from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
+from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
                              FLOW_NOT_APPLICABLE, FLOW_OFF, POINT_VARIABLES)
 from tba.scans.interrupts import caused_by_interrupt
 
@@ -96,7 +96,7 @@ def _solve_chunk(run, chunk):
     level = parse_level(run.states[chunk.state])
     model = _model(run.models[chunk.model])
     alpha = run.alphas[chunk.alpha]
-    deformation = run.deformation(alpha)
+    deformation = run.deformation(alpha, chunk.model)
     radii = run.radii[chunk.radius_start:chunk.radius_stop]
     order = range(len(radii) - 1, -1, -1) if run.sweep == "descending" else range(len(radii))
     values = _empty(len(radii))
@@ -134,7 +134,8 @@ def _solve_chunk(run, chunk):
                 values["flow_status"][i] = FLOW_NOT_APPLICABLE
                 continue
             try:
-                res0 = solve_level(model, r_eff, level, NO_DEFORMATION, tol=run.tol, start=start0)
+                res0 = solve_level(model, r_eff, level, run.base_deformation(chunk.model), tol=run.tol,
+                                   start=start0)
                 if res0.converged and turns != 0:
                     predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
                                                                 boost, r_eff, res, res0, run.tol)
@@ -207,6 +208,12 @@ def solve_branch_point(run, model_index, alpha_index, state_index=None):
                            f"holds for TTbar alone"}
     from threadpoolctl import threadpool_limits
 
+    if run.model_has_poles(model_index):
+        if level is not None:  # the level's fold on its undeformed curve holds for TTbar alone
+            return {"status": BP_NOT_APPLICABLE,
+                    "message": "CDD pole/resonance factors: an excited level's fold is located "
+                               "on its undeformed curve, which holds for TTbar alone"}
+        return _kernel_fold(run, model_index, alpha)
     try:
         with threadpool_limits(limits=1, user_api="blas"):  # the same bits on every executor
             model = _model(run.models[model_index])
@@ -224,6 +231,31 @@ def solve_branch_point(run, model_index, alpha_index, state_index=None):
         values.update(branch_radius=bp.radius, branch_radius_error=bp.radius_error, energy=bp.energy,
                       energy_error=bp.energy_error, effective_radius=bp.effective_radius)
     return values
+
+
+def _kernel_fold(run, model_index, alpha):
+    """With pole or resonance factors the turning point comes from the full equations (the
+    kernel's own fold, moved by alpha): `locate_fold` on two grids, for every alpha. Status
+    none when the ground state is real down to R = 1e-3 (`locate_fold`'s refusal)."""
+    from threadpoolctl import threadpool_limits
+
+    from tba.physics.continuation import locate_fold
+
+    deformation = run.deformation(alpha, model_index)
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            fold = locate_fold(_model(run.models[model_index]), deformation, tol=run.tol)
+    except ValueError as exc:
+        return {"status": BP_NONE, "message": one_line(exc).split(": ", 1)[-1]}
+    except Exception as exc:  # noqa: BLE001 (stored, never lost)
+        if caused_by_interrupt(exc):
+            raise KeyboardInterrupt from None
+        return {"status": BP_FAILED, "message": one_line(exc)}
+    return {"status": BP_FOUND, "message": "fold of the full equations with the pole factors "
+                                           "(locate_fold, two grids)",
+            "branch_radius": fold.value, "branch_radius_error": float(fold.value_error),
+            "energy": fold.energy, "energy_error": float(fold.energy_error),
+            "effective_radius": fold.value + alpha * fold.energy}
 
 
 def describe_chunk(run, chunk):

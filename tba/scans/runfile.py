@@ -17,6 +17,8 @@ solver tolerance, the output file and how the scan is cut into chunks::
     [deformation]
     alphas = [-0.1, 0.05, 0.1]          # TTbar couplings (spin 1)
     higher_spin = { 3 = -0.01 }         # optional: odd spin >= 3 -> alpha_s, at every alpha
+    poles = [[0.3, -1], [0.2, -1]]      # optional: CDD pole factors F_(pi x)^p as [x, p], at every alpha
+    resonances = [[16.0, -1]]           # optional: resonance factors (sin u = cosh theta0) as [theta0, p]
 
     [radii]                             # or: radii = [0.5, 1.0, {start = 2, stop = 4, count = 3}]
     start = 0.3
@@ -68,7 +70,7 @@ from pathlib import Path
 import numpy as np
 
 from tba.models.catalog import ModelError, canonical_name, get_model, model_label
-from tba.models.cdd import CDD
+from tba.models.cdd import CDD, pole_factors
 from tba.scans.limits import (MAX_POINTS, coupling_problem, deformation_problem, radius_problem,
                               size_text)
 from tba.solvers.ground import MIN_TOL
@@ -190,11 +192,32 @@ class ModelSpec:
 
     name: str
     coupling: float | None = None
+    #: this entry's own CDD pole and resonance factors ((x, p), ...), ((theta0, p), ...): a scan
+    #: over factor parameters is a list of entries of one model, like a scan over its coupling
+    poles: tuple = ()
+    resonances: tuple = ()
 
     @property
     def label(self):
-        """Coordinate label in output files, e.g. ``sinh-gordon B=0.6``."""
-        return model_label(self.name, self.coupling)
+        """Coordinate label in output files, e.g. ``sinh-gordon B=0.6``, with the entry's own
+        factors: ``free-fermion poles=0.3:-1,0.2:-1``."""
+        label = model_label(self.name, self.coupling)
+        if self.poles:
+            label += " poles=" + ",".join(f"{x:.12g}:{p}" for x, p in self.poles)
+        if self.resonances:
+            label += " resonances=" + ",".join(f"{t:.12g}:{p}" for t, p in self.resonances)
+        return label
+
+    def to_dict(self):
+        d = {"name": self.name, "coupling": self.coupling}
+        if self.poles:
+            d["poles"] = [list(p) for p in self.poles]
+        if self.resonances:
+            d["resonances"] = [list(r) for r in self.resonances]
+        return d
+
+    def factors(self):
+        return pole_factors(self.poles, self.resonances)
 
     def build(self):
         return get_model(self.name, self.coupling)
@@ -225,6 +248,8 @@ class RunSpec:
     alphas: tuple
     radii: tuple
     higher_spin: tuple = ()  # ((spin, alpha_s), ...) sorted by spin
+    poles: tuple = ()        # ((x, power), ...) in the order given: F_(pi x)^power
+    resonances: tuple = ()   # ((theta0, power), ...): F^power with sin u = cosh theta0
     states: tuple = ("ground",)
     tol: float = 1e-12
     chunk_size: int = 8
@@ -254,16 +279,32 @@ class RunSpec:
     def n_points(self):
         return math.prod(self.shape)
 
-    def deformation(self, alpha):
-        """The CDD factor at TTbar coupling ``alpha`` (with the run's higher-spin terms)."""
+    def deformation(self, alpha, model=None):
+        """The CDD factor at TTbar coupling ``alpha`` (with the run's higher-spin terms, its
+        pole and resonance factors and those of model entry ``model``, an index)."""
         couplings = {1: alpha} if alpha else {}
         couplings.update(dict(self.higher_spin))
-        return CDD(couplings)
+        return CDD(couplings) + self.base_deformation(model)
+
+    def base_deformation(self, model=None):
+        """The pole and resonance factors alone (the run's, and model entry ``model``'s): the
+        'undeformed' theory of the flow check, E(R, alpha) = E(R + alpha E, 0 with them)."""
+        own = self.models[model].factors() if model is not None else CDD({})
+        return pole_factors(self.poles, self.resonances) + own
+
+    def model_has_poles(self, model):
+        return self.base_deformation(model).has_poles
 
     @property
     def ttbar_only(self):
-        """True without higher-spin terms: then E(R, alpha) = E(R + alpha E, 0) is exact."""
+        """True without higher-spin terms: then E(R, alpha) = E(R + alpha E, 0) is exact (the
+        pole factors, if any, in both)."""
         return not self.higher_spin
+
+    @property
+    def has_poles(self):
+        """Pole or resonance factors anywhere in the run (for all models or for one)."""
+        return bool(self.poles or self.resonances) or any(m.poles or m.resonances for m in self.models)
 
     def to_dict(self):
         """The resolved run as a JSON-ready dict (also a valid input of `resolve_run`)."""
@@ -271,15 +312,23 @@ class RunSpec:
             "name": self.name,
             "description": self.description,
             "output": self.output,
-            "models": [{"name": m.name, "coupling": m.coupling} for m in self.models],
-            "deformation": {"alphas": list(self.alphas),
-                            "higher_spin": {str(s): a for s, a in self.higher_spin}},
+            "models": [m.to_dict() for m in self.models],
+            "deformation": self._deformation_dict(),
             "radii": list(self.radii),
             "states": list(self.states),
             "solver": {"tol": self.tol},
             "scan": {"chunk_size": self.chunk_size, "flow_check": self.flow_check,
                      "sweep": self.sweep, "branch_points": self.branch_points},
         }
+
+    def _deformation_dict(self):
+        d = {"alphas": list(self.alphas), "higher_spin": {str(s): a for s, a in self.higher_spin}}
+        # only when present, so that the identity of runs without factors is unchanged
+        if self.poles:
+            d["poles"] = [list(p) for p in self.poles]
+        if self.resonances:
+            d["resonances"] = [list(r) for r in self.resonances]
+        return d
 
     def to_json(self):
         return json.dumps(self.to_dict(), indent=1, allow_nan=False)
@@ -449,7 +498,7 @@ def resolve_run(data, base_dir=None, name="run", *, limits=False, max_points=MAX
             output = Path(base_dir) / output
         output = os.path.abspath(output)
     models = _models(top.get("models"))
-    alphas, higher_spin, keys = _deformation(top.get("deformation"), models, limits)
+    alphas, higher_spin, keys, poles, resonances = _deformation(top.get("deformation"), models, limits)
     states = _states(top.get("states", DEFAULTS["states"]))
     per_radius = len(models) * len(alphas) * len(states)
     size = _Size(per_radius, max_points, models, alphas, states) if limits else None
@@ -477,8 +526,10 @@ def resolve_run(data, base_dir=None, name="run", *, limits=False, max_points=MAX
     branch_points = _boolean("scan.branch_points", scan.get("branch_points", d["branch_points"]))
     scan.finish()
     top.finish()
+    factors = [pole_factors(poles, resonances) + m.factors() for m in models]
     return RunSpec(models=models, alphas=alphas, radii=radii, higher_spin=higher_spin,
-                   states=states, unavailable=_unavailable(models, states, higher_spin), tol=tol, chunk_size=chunk_size, flow_check=flow_check,
+                   poles=poles, resonances=resonances,
+                   states=states, unavailable=_unavailable(models, states, higher_spin, factors), tol=tol, chunk_size=chunk_size, flow_check=flow_check,
                    sweep=sweep, branch_points=branch_points, name=name, description=description,
                    output=output)
 
@@ -501,8 +552,10 @@ def _models(value):
             raise RunFileError(t.key("name" if exc.argument == "model" else "coupling"),
                                exc.reason) from None
         name = canonical_name(name)
+        poles, resonances = _factor_list(t, "poles", key), _factor_list(t, "resonances", key)
+        _check_factors(poles, resonances, key)
         t.finish()
-        spec = ModelSpec(name, coupling)
+        spec = ModelSpec(name, coupling, poles, resonances)
         if spec in specs:
             raise RunFileError(key, f"repeats models[{specs.index(spec)}] ({spec.label})")
         specs.append(spec)
@@ -548,10 +601,38 @@ def _deformation(value, models, limits):
                 CDD({spin: 1.0}).check(m.build())
             except ValueError as exc:
                 raise RunFileError(key, str(exc).split(": ", 1)[-1]) from None
+    poles = _factor_list(t, "poles", "deformation")
+    resonances = _factor_list(t, "resonances", "deformation")
+    _check_factors(poles, resonances, "deformation")
     t.finish()
     higher = tuple(sorted(higher.items()))
     keys = [first_key[a] for a in alphas] + [hs.key(str(s)) for s, _ in higher]
-    return alphas, higher, keys
+    return alphas, higher, keys, poles, resonances
+
+
+def _check_factors(poles, resonances, prefix):
+    try:
+        pole_factors(poles, resonances)
+    except ValueError as exc:
+        entry, problem = str(exc).split(": ", 1)
+        raise RunFileError(f"{prefix}.{entry}", problem) from None
+
+
+def _factor_list(table, name, prefix):
+    """``poles`` or ``resonances`` of the table at ``prefix``: an array of [value, power] pairs,
+    as a tuple of tuples (values as floats, powers as ints; checked by `pole_factors`)."""
+    raw = _array(f"{prefix}.{name}", table.get(name, []))
+    out = []
+    for i, item in enumerate(raw):
+        key = f"{prefix}.{name}[{i}]"
+        if not isinstance(item, (list, tuple)) or len(item) != 2:
+            raise RunFileError(key, f"expected a pair [value, power], got {_got(item)}")
+        value = _number(f"{key}[0]", item[0])
+        power = item[1]
+        if isinstance(power, bool) or not isinstance(power, int):
+            raise RunFileError(f"{key}[1]", f"the power must be a nonzero integer, got {_got(power)}")
+        out.append((float(value), int(power)))
+    return tuple(out)
 
 
 def _missing(key):
@@ -648,18 +729,22 @@ def _states(value):
     return tuple(states)
 
 
-def _unavailable(models, states, higher_spin):
+def _unavailable(models, states, higher_spin, factors=None):
     """((model, state, why), ...) for the states a model does not have; a state that no
-    model has is an error of the run file."""
+    model has is an error of the run file. ``factors``: the pole and resonance factors of each
+    model entry (a list), or None."""
     from tba.solvers.levels import GROUND, unavailable
 
     out = []
-    deformation = CDD(dict(higher_spin)) if higher_spin else None
+    spins = CDD(dict(higher_spin)) if higher_spin else None
     for s, state in enumerate(states):
         if state == GROUND:
             continue
         reasons = []
         for m, spec in enumerate(models):
+            deformation = spins
+            if factors is not None and factors[m].has_poles:
+                deformation = factors[m] if spins is None else spins + factors[m]
             why = unavailable(spec.build(), state, deformation)
             if why is not None:
                 out.append((m, s, why))

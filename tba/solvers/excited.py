@@ -47,6 +47,12 @@ BETHE_YANG_RADIUS = 12.0
 #: grid half-widths are rounded up to multiples of this many points: the continuations of
 #: excited levels next to their branch points need the margin of a wider cutoff
 EXCITED_QUANTUM = 16
+#: excited levels with CDD pole or resonance factors are refused: their sources
+#: log S(t - t_j - i pi/2) and the quantisation phases would need the factors too (and the
+#: poles of a resonance factor sit at Im t = pi/2, on the line the sources are evaluated on)
+POLE_REFUSAL = ("excited levels take the spin CDD factors only (pole and resonance factors: "
+                "ground state only)")
+
 #: blocks whose psi has poles closer to the real axis than this are integrated with the
 #: poles taken out (see `NearPoles`)
 POLE_SUBTRACTION = 0.25
@@ -152,10 +158,35 @@ class NearPoles:
         return value, dvalue, dL
 
 
+def state_items(state):
+    """The quantum numbers of ``state`` as a list of items, not yet checked: the one reading
+    of a level's name shared by `solve_excited`, `solve_level`, scans and ``tba solve --state``.
+    A string is split at commas ("1/2,-1/2", " -0.5 , 0.5", "0"); a single real number is a
+    one-particle state; any other iterable gives its elements."""
+    if isinstance(state, str):
+        if state.strip() == "ground":
+            raise ValueError("state: 'ground' names the ground state (solve_ground_state or "
+                             "solve_level), not an excited level")
+        items = [part.strip() for part in state.split(",")]
+        if any(not part for part in items):
+            raise ValueError(f"state: an empty quantum number in {state!r} (write e.g. '1/2,-1/2')")
+        return items
+    if isinstance(state, bool):
+        raise TypeError(f"state: quantum numbers must be real numbers, got {state!r}")
+    if isinstance(state, (numbers.Real, Fraction)):
+        return [state]
+    try:
+        return list(state)
+    except TypeError:
+        raise TypeError(f"state must be quantum numbers, a string like '1/2,-1/2' or a sequence "
+                        f"of numbers, got {type(state).__name__} {state!r}") from None
+
+
 def parse_state(numbers_):
-    """Quantum numbers from ints, floats, Fractions or strings like "1/2" and "-3/2"."""
+    """Quantum numbers from a name like "1/2,-1/2" or from ints, floats, Fractions or strings
+    like "1/2" and "-3/2" (see `state_items`)."""
     out = []
-    for n in numbers_:
+    for n in state_items(numbers_):
         if isinstance(n, str):
             try:
                 n = Fraction(n.strip())
@@ -163,6 +194,8 @@ def parse_state(numbers_):
                 raise ValueError(f"state: not a number or fraction: {n!r}") from None
         elif isinstance(n, bool) or not isinstance(n, (numbers.Real, Fraction)):
             raise TypeError(f"state: quantum numbers must be real numbers, got {n!r}")
+        elif not math.isfinite(n):
+            raise ValueError(f"state: quantum numbers must be finite, got {n!r}")
         out.append(Fraction(n).limit_denominator(1000))
     if not out:
         raise ValueError("state: at least one quantum number is needed (the ground state has none)")
@@ -178,6 +211,9 @@ def parse_state(numbers_):
 
 
 def check_model(model):
+    from tba.solvers.ground import require_model
+
+    require_model(model)
     if model.is_massless or model.has_multiplicity:
         raise ValueError("model: real-rapidity excited states need one massive species of "
                          "multiplicity 1 (free massless models: tba.solvers.massless)")
@@ -199,6 +235,8 @@ class Scattering:
     -i log(-S(u)) and delta' = phi."""
 
     def __init__(self, model, deformation):
+        if deformation.has_poles:
+            raise ValueError(f"deformation: {POLE_REFUSAL}")
         self.model = model
         m = float(model.masses[0])
         self.cdd = [(s, a * (m * m if s == 1 else 1.0)) for s, a in deformation.couplings.items()]
@@ -554,6 +592,47 @@ def _unbounded(deformation, radius, state, energy):
             f"below, no solution of this form")
 
 
+def _spin_tails(model, deformation, level, undeformed=False):
+    """Why the highest CDD spin s > 1 leaves no real solution near ``level`` (a solved state,
+    usually the undeformed one at the same R), or None.
+
+    Beyond the driving term's reach the spin-s terms decide eps: with sign_s = (-1)^((s-1)/2),
+    the source alpha_s sign_s cosh(s(t - t_j)) and the kernel term alpha_s s cosh(s(t - t'))
+    give eps(t) ~ C_+- e^(s|t|) / 2 as t -> +-oo, with
+
+        C_+- = alpha_s (sign_s sum_j e^(-+s t_j) - (s / 2pi) int e^(-+s t') L(t') dt').
+
+    Where C_+ or C_- < 0 eps is unbounded below, L grows like e^(s|t|) and the integrals
+    diverge: no real solution on the whole line, whatever the radius. A finite grid hides this
+    (the tail only takes over at |t| ~ log(m R / |C|) / (s - 1)), so the check is made here,
+    before any deformed solve. For sinh-Gordon (L > 0) and s = 3, 7, ... both terms have the
+    sign of -alpha_s: alpha_s > 0 never has a real solution, for any state; for s = 5, 9, ...
+    the particles and the sea compete and the level decides."""
+    spins = [s for s, a in deformation.couplings.items() if s > 1 and a]
+    if not spins:
+        return None
+    s = max(spins)
+    a = float(deformation.couplings[s])
+    sign = (-1) ** ((s - 1) // 2)
+    grid, t = level.grid, np.asarray(level.rapidities, dtype=float)
+    kappa = model.source_sign ** len(t)
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        L = np.log1p(kappa * np.exp(-level.eps))
+        tails = []
+        for side in (1, -1):
+            sea = (s / (2 * np.pi)) * grid.h * float(np.sum(np.exp(-side * s * grid.t) * L))
+            tails.append(a * (sign * float(np.sum(np.exp(-side * s * t))) - sea))
+    bad = [(name, c) for name, c in zip(("+", "-"), tails) if not c > 0]
+    if not bad:
+        return None
+    name, c = bad[0]
+    where = (f"already for any small alpha_{s} of this sign" if undeformed
+             else "reached on the way from alpha_s = 0")
+    return (f"no real solution: the spin-{s} CDD term makes eps ~ {c:.3g} e^({s}|t|)/2 as "
+            f"t -> {name}oo, unbounded below, so L and the integrals diverge (alpha_{s} = {a:g}: "
+            f"{where})")
+
+
 def _effective_radius(deformation, radius, E, P=0.0):
     """(R~, beta) of the driving term m (R + alpha E) cosh t - m alpha P sinh t = m R~ cosh(t - beta)
     (TTbar only; other deformations keep R)."""
@@ -576,12 +655,15 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
     requested coupling (positive levels for alpha < 0). A moving level (P != 0) that cannot
     be reached that way is taken from large R at fixed alpha (`_or_from_large_radius`).
     """
-    from tba.solvers.ground import _validate
+    from tba.solvers.ground import _validate, require_deformation, require_start
 
     check_model(model)
     state = parse_state(state)
     radius, tol = _validate(radius, tol)
-    deformation = NO_DEFORMATION if deformation is None else deformation
+    deformation = require_deformation(deformation)
+    require_start(start)
+    if deformation.has_poles:
+        raise ValueError(f"deformation: {POLE_REFUSAL}")
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling, state=state)
     prev = start._state if (isinstance(start, SolveResult) and start.converged
@@ -602,6 +684,10 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
         return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations, message=msg)
     undeformed = seed
     # -- switch the deformation on at fixed R ------------------------------------------------------
+    tails = _spin_tails(model, deformation, undeformed, undeformed=True)
+    if tails is not None:
+        return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=iterations,
+                           message=tails)
     if not deformation.is_zero:
         seed, msg, its = _follow(model, deformation, state, tol, seed, "coupling", 1.0)
         iterations += its
@@ -627,6 +713,9 @@ def _refine(model, deformation, radius, state, tol, seed, undeformed, base, iter
             new, msg = None, "the solution left the branch (det J changed sign)"
         if new is not None and _unbounded(deformation, radius, state, new.energy):
             new, msg = None, _unbounded(deformation, radius, state, new.energy)
+        if new is not None and _spin_tails(model, deformation, new):
+            return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=iterations,
+                               message=_spin_tails(model, deformation, new))
         if new is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=f"refinement level {level}: {msg}")
@@ -710,6 +799,9 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
         if new is not None and _unbounded(defo, R, state, new.energy):
             new, msg = None, _unbounded(defo, R, state, new.energy)
             spurious = True
+        if new is not None and parameter == "coupling" and _spin_tails(model, defo, new):
+            # the tail coefficient of the top spin passed through zero on the way
+            return None, _spin_tails(model, defo, new), its_total
         if new is not None:
             seed, now = new, trial
             history.append((now, new.jac_scale))
@@ -719,6 +811,12 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
         if abs(step) < 1e-9 * max(abs(now), 1e-3):
             if spurious:  # the path meets R~ -> 0, not a fold: no verdict on real solutions
                 return None, f"continuation stalled at {now:.12g}: {msg}", its_total
+            if parameter == "coupling" and msg.startswith("the solution left the branch"):
+                # det J changes sign within a step of ~1e-9 of the coupling scale: J is
+                # singular there, the level's fold, whether or not the pivots' trend showed it
+                return None, (f"no real solution: the level meets its branch point at about "
+                              f"{now:.6g} times the requested couplings (det J changes sign "
+                              f"there)"), its_total
             return None, _stalled(parameter, history, target, now, msg), its_total
     return seed, "converged", its_total
 

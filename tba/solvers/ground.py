@@ -761,6 +761,53 @@ def _outcome(fam, pt, target, tol, parameter):
 
 # -- the point solve ------------------------------------------------------------------------------
 
+def require_model(model):
+    """TypeError naming the argument unless ``model`` is a DiagonalModel (e.g. a name)."""
+    if not isinstance(model, DiagonalModel):
+        raise TypeError(f"model must be a DiagonalModel (e.g. tba.sinh_gordon(0.6) or "
+                        f"tba.get_model(name)), got {type(model).__name__} {model!r}")
+    return model
+
+
+def require_deformation(deformation):
+    """The deformation (NO_DEFORMATION for None); TypeError naming the argument unless a CDD."""
+    deformation = NO_DEFORMATION if deformation is None else deformation
+    if not isinstance(deformation, CDD):
+        raise TypeError(f"deformation must be a CDD (e.g. tba.ttbar(0.1)), got "
+                        f"{type(deformation).__name__} {deformation!r}")
+    return deformation
+
+
+def _unbounded_spin_tails(model, deformation):
+    """Why the ground state has no real solution because of the highest CDD spin s > 1, or
+    None. Its term s alpha_s E_s q_s^a cosh(s t) in eps_a outgrows m_a R cosh t, and E_s =
+    -(1/2pi) sum_b q_s^b int cosh(s t) L_b (L_b > 0); when q_s has one sign (one species: q_s = 1)
+    E_s has the opposite sign, so alpha_s > 0 makes every eps_a unbounded below: L and E_s
+    diverge, at every radius (tba/models/cdd.py). A finite grid would hide the tail and give a
+    number that depends on its cutoff. Charges of both signs are not decided here (README,
+    Known limitations)."""
+    spins = [s for s, a in deformation.couplings.items() if s > 1 and a]
+    if not spins or model.is_massless:
+        return None
+    s = max(spins)
+    alpha = float(deformation.couplings[s])
+    q = np.asarray(model.charges(s), dtype=float)
+    if alpha <= 0 or not (np.all(q > 0) or np.all(q < 0)):
+        return None
+    return (f"no real solution: the spin-{s} CDD term {s} alpha_{s} E_{s} q cosh({s} t) with "
+            f"alpha_{s} = {alpha:g} > 0 and E_{s} q < 0 makes eps unbounded below as |t| -> oo, "
+            f"at every radius (alpha_{s} < 0 is the side with a real ground state)")
+
+
+def require_start(start):
+    """TypeError naming the argument unless ``start`` is None or a SolveResult (a solved
+    neighbour; one that does not fit the point is ignored, as documented)."""
+    if start is not None and not isinstance(start, SolveResult):
+        raise TypeError(f"start must be a SolveResult (a solved neighbour) or None, got "
+                        f"{type(start).__name__} {start!r}")
+    return start
+
+
 def _validate(radius, tol):
     if isinstance(radius, bool) or not isinstance(radius, numbers.Real):
         raise TypeError(f"radius must be a real number, got {radius!r}")
@@ -841,15 +888,15 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         unless converged.
     """
     radius, tol = _validate(radius, tol)
-    if not isinstance(model, DiagonalModel):
-        raise TypeError(f"model must be a DiagonalModel (e.g. tba.sinh_gordon(0.6)), got "
-                        f"{type(model).__name__} {model!r}")
-    deformation = NO_DEFORMATION if deformation is None else deformation
-    if not isinstance(deformation, CDD):
-        raise TypeError(f"deformation must be a CDD, got {type(deformation).__name__}")
+    require_model(model)
+    deformation = require_deformation(deformation)
+    require_start(start)
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)
+    tails = _unbounded_spin_tails(model, deformation)
+    if tails is not None:
+        return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=0, message=tails)
     prev = None
     if isinstance(start, SolveResult) and start.converged and isinstance(start._state, State) \
             and start._state.model is model:
@@ -1007,6 +1054,10 @@ def energy_derivatives(result, spins=(1,), second=False):
     if not isinstance(result._state, State):
         raise ValueError("result: derivatives are available for ground states only (this "
                          "result is an excited level)")
+    if isinstance(spins, (str, bytes)) or not hasattr(spins, "__iter__"):
+        raise TypeError(f"spins must be a sequence of spins, e.g. (1, 3), got {spins!r}")
+    if not isinstance(second, (bool, np.bool_)):
+        raise TypeError(f"second must be True or False, got {second!r}")
     fine = result._state
     d_fine = fine.derivatives(spins, second)
     d_coarse = fine.coarse.derivatives(spins, second) if fine.coarse is not None else None

@@ -36,7 +36,11 @@ quantisation condition is 1 + Y = 0 at c = i pi/3 + zeta (c = i y above R*, x + 
     G = R cosh c - log S(2c) - (1/2) log Q(c + i pi/3) + (1/2) log S(i pi/3 + 2 zeta)
         - (1/2) log(8 i s tanh zeta) - log S(zeta - i pi/6) - (1/2pi) int phi(c - t') F(t') dt'
 
-(the singular factors of log Q(c + 2i pi/3) and log S(c - zeta) are combined analytically). G is
+(the singular factors of log Q(c + 2i pi/3) and log S(c - zeta) are combined analytically). Above
+R*, c = i y with y = pi/6 + tau and tau ~ e^(-sqrt(3) R / 2): S(2c) has a pole, S(zeta - i pi/6) a
+zero and Q(c + i pi/3) a double pole at tau = 0, so tau is computed from v without cancellation
+and those three factors in factored form (`Pair.singular_logs`); from pi/6 - arcsin(sqrt sigma)
+they lost accuracy like 1e-16 / tau (3e-7 relative at R = 25, 0.1 at R = 40). G is
 odd in arcsin sqrt(sigma): real above R* (Im G = -pi) and imaginary below (Re G = 0), so the
 equation solved is G / sqrt|sigma| = 0 (Re above, Im below), analytic through R*, without the
 trivial root sigma = 0. Where c approaches the axis (c - i pi/3 real below R*) the integral is
@@ -62,7 +66,6 @@ import numpy as np
 import scipy.linalg
 from scipy.interpolate import CubicSpline
 
-from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.result import SolveResult, Status
 
 _EPS = np.finfo(float).eps
@@ -105,16 +108,27 @@ class Pair:
 
     def __init__(self, v):
         self.v = float(v)
-        self.sigma = 0.25 - math.exp(-self.v)
+        w = math.exp(-self.v)  # 1/4 - sigma, exact however close sigma is to 1/4
+        self.sigma = 0.25 - w
         if self.sigma == 0.0:  # exactly at R*: nudge (G / sqrt|sigma| is continuous there)
             self.sigma = 1e-300
-        self.zeta = -1j * cmath.asin(cmath.sqrt(self.sigma))
         self.above = self.sigma > 0  # R > R*: points at +-i y on the imaginary axis
+        self.tau = math.nan
+        if self.above:
+            # y = pi/6 + tau with sin(tau) sin(pi/3 - tau) = w: tan(tau) is the small root of
+            # (1 + 2w) u^2 - sqrt(3) u + 2w = 0, in the form without cancellation. tau -> 0
+            # like e^(-sqrt(3) R / 2) at large R, and pi/6 - arcsin(sqrt(sigma)) would carry an
+            # absolute error ~1e-16, i.e. a relative one ~1e-16 / tau
+            disc = max(3.0 - 8.0 * w * (1.0 + 2.0 * w), 0.0)
+            self.tau = math.atan(4.0 * w / (math.sqrt(3.0) + math.sqrt(disc)))
+            self.zeta = complex(0.0, -(math.pi / 6 - self.tau))
+        else:
+            self.zeta = -1j * cmath.asin(cmath.sqrt(self.sigma))
         self.norm = math.sqrt(abs(self.sigma))
 
     @property
     def y(self):
-        return math.pi / 3 + self.zeta.imag  # above R*
+        return math.pi / 6 + self.tau  # above R*
 
     @property
     def x(self):
@@ -136,13 +150,43 @@ class Pair:
                 - np.log(np.abs(_q(t + _I3, self.sigma)))
                 - np.log1p(-2 * _S / (np.cosh(t) + _S)))
 
+    def singular_logs(self):
+        """Above R*: log|S(2c)|, log|S(zeta - i pi/6)| and log|Q(c + i pi/3)| at c = i y,
+        y = pi/6 + tau; the three numbers are real, S(2c) > 0 and the other two < 0. They have a
+        pole, a zero and a double pole as tau -> 0, where the plain expressions subtract nearly
+        equal numbers; here each difference is a product of sines (s = sin(pi/3)):
+
+            sin 2y - s = 2 cos(pi/3 + tau) sin tau,   s - sin(pi/3 - tau) = 2 cos(pi/3 - tau/2) sin(tau/2),
+            sigma - cos^2 tau = -s cos(pi/6 - 2 tau),  cosh^2(c + i pi/3) = sin^2 tau,
+
+        and the logarithms are taken factor by factor (sin(tau)^2 underflows beyond R ~ 410)."""
+        tau = self.tau
+        log_sin = math.log(math.sin(tau))
+        log_s_2c = (math.log(math.sin(math.pi / 3 + 2 * tau) + _S)
+                    - math.log(2 * math.cos(math.pi / 3 + tau)) - log_sin)
+        log_s_zero = (math.log(2 * math.cos(math.pi / 3 - tau / 2)) + math.log(math.sin(tau / 2))
+                      - math.log(math.sin(math.pi / 3 - tau) + _S))
+        log_q_pole = math.log(_S * math.cos(math.pi / 6 - 2 * tau)) - 2 * log_sin
+        return log_s_2c, log_s_zero, log_q_pole
+
     def G_constant(self, r_eff):
         """The terms of G that do not involve the integral."""
         z, s = self.zeta, self.sigma
-        c = _I3 + z
-        return (r_eff * cmath.cosh(c) - cmath.log(_S_of(2 * c)) - 0.5 * cmath.log(_q(c + _I3, s))
-                + 0.5 * cmath.log(_S_of(_I3 + 2 * z)) - 0.5 * cmath.log(8j * _S * cmath.tanh(z))
-                - cmath.log(_S_of(z - 1j * math.pi / 6)))
+        if not self.above:
+            c = _I3 + z
+            return (r_eff * cmath.cosh(c) - cmath.log(_S_of(2 * c)) - 0.5 * cmath.log(_q(c + _I3, s))
+                    + 0.5 * cmath.log(_S_of(_I3 + 2 * z)) - 0.5 * cmath.log(8j * _S * cmath.tanh(z))
+                    - cmath.log(_S_of(z - 1j * math.pi / 6)))
+        # above R* every factor is real (c = i y): the same sum from the factored forms, with
+        # the principal logarithm (log x = log|x| + i pi for x < 0); S(2 i tau) < 0 and
+        # 8 i s tanh(zeta) = 8 s tan(pi/6 - tau) > 0 have no cancellation
+        tau = self.tau
+        log_s_2c, log_s_zero, log_q_pole = self.singular_logs()
+        log_s_small = math.log((_S + math.sin(2 * tau)) / (_S - math.sin(2 * tau)))
+        real = (r_eff * math.cos(math.pi / 6 + tau) - log_s_2c - 0.5 * log_q_pole + 0.5 * log_s_small
+                - 0.5 * math.log(8 * _S * math.tan(math.pi / 6 - tau)) - log_s_zero)
+        # imaginary parts: -(0) - pi/2 + pi/2 - 0 - pi
+        return complex(real, -math.pi)
 
     def G_weights(self, t, h):
         """w_j with (1/2pi) int phi(c - t') F(t') dt' = sum_j w_j F(t_j) (see the module doc)."""
@@ -445,10 +489,11 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
     switched on at fixed R, and the point is solved on two grids for the error estimate.
     Status NO_REAL_SOLUTION when the level meets its branch point before the requested
     coupling (alpha < 0). Returns a SolveResult with state (0,) and no particle rapidities."""
-    from tba.solvers.ground import _validate
+    from tba.solvers.ground import _validate, require_deformation, require_start
 
     radius, tol = _validate(radius, tol)
-    deformation = NO_DEFORMATION if deformation is None else deformation
+    deformation = require_deformation(deformation)
+    require_start(start)
     base = dict(model="lee-yang", radius=radius, couplings=dict(deformation.couplings),
                 coupling=None, state=(Fraction(0),))
     if not deformation.is_zero and not deformation.is_ttbar:

@@ -21,18 +21,17 @@ accept or refuse (`unavailable`).
 
 from fractions import Fraction
 
-from tba.solvers.excited import check_model, parse_state, solve_excited
-from tba.solvers.ground import solve_ground_state
+from tba.solvers.excited import POLE_REFUSAL, check_model, parse_state, solve_excited, state_items
+from tba.solvers.ground import require_deformation, require_model, solve_ground_state
 
 GROUND = "ground"
 
 
 def parse_level(text):
     """``"ground"`` or a tuple of Fractions (sorted) from a name like ``"1/2,-1/2"``."""
-    if isinstance(text, str):
-        if text.strip() == GROUND:
-            return GROUND
-        text = text.split(",")
+    if isinstance(text, str) and text.strip() == GROUND:
+        return GROUND
+    text = state_items(text)
     try:
         return parse_state(text)
     except ValueError:
@@ -64,9 +63,12 @@ def level_name(level):
 
 def unavailable(model, level, deformation=None):
     """Why ``level`` cannot be computed for ``model`` (with ``deformation``), or None."""
+    require_model(model)
     level = parse_level(level)
     if level == GROUND:
         return None
+    if deformation is not None and deformation.has_poles:
+        return POLE_REFUSAL
     if model.is_massless:
         from tba.solvers.massless import refusal
 
@@ -91,6 +93,7 @@ def solve_level(model, radius, level, deformation=None, *, tol=1e-12, start=None
     level = parse_level(level)
     if level == GROUND:
         return solve_ground_state(model, radius, deformation, tol=tol, start=start)
+    deformation = require_deformation(deformation)
     why = unavailable(model, level, deformation)
     if why is not None:
         raise ValueError(f"state: {why}")

@@ -39,7 +39,6 @@ from itertools import combinations
 import numpy as np
 
 from kernels import occupation_terms
-from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.excited import parse_state
 from tba.solvers.grid import choose_grid
 from tba.solvers.result import SolveResult, Status
@@ -164,7 +163,9 @@ def free_levels(model, max_level):
     modes, D their sum) and Ramond levels (an odd number, distinct positive integer modes,
     D = 1/16 + their sum; the zero mode, and with it the Ramond ground state, is not a TBA level
     here)."""
-    why = model_refusal(model)
+    from tba.solvers.ground import require_model
+
+    why = model_refusal(require_model(model))
     if why is not None:
         raise ValueError(f"model: {why}")
     if isinstance(max_level, bool) or not isinstance(max_level, (int, np.integer)) or max_level < 0:
@@ -489,11 +490,13 @@ def solve_massless_level(model, radius, state, deformation=None, *, tol=1e-12, s
     NO_REAL_SOLUTION when the level meets its branch point on the way, with the coupling scale
     of the fold in the message. ``start``: a converged result of the same level and coupling
     (a neighbouring radius), whose A / R, B / R and rapidities start Newton directly."""
-    from tba.solvers.ground import _validate
+    from tba.solvers.ground import _validate, require_deformation, require_model, require_start
     from tba.solvers.levels import parse_level
 
+    require_model(model)
     radius, tol = _validate(radius, tol)
-    deformation = NO_DEFORMATION if deformation is None else deformation
+    deformation = require_deformation(deformation)
+    require_start(start)
     level = parse_level(state)
     if level == "ground":
         raise ValueError("state: the ground state is solved by tba.solve_ground_state")

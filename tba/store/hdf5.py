@@ -150,6 +150,9 @@ its Bethe quantum numbers I_k (m R sinh t_k + sum_j delta(t_k - t_j) = 2 pi I_k 
 for Lee-Yang, "0" is its one-particle state).
 Deformation: S_ab(t) -> S_ab(t) exp(i alpha m_a m_b sinh t) (phi_ab += alpha m_a m_b cosh t),
 higher odd spins s: exp(i alpha_s sinh(s t)) (single-species models).
+Pole and resonance factors of the run (deformation.poles [x, p]: F_(pi x)^p; deformation.resonances
+[theta0, p]: F^p with sin u = cosh theta0; F_u = (sinh t + i sin u) / (sinh t - i sin u)) multiply
+every S_ab at every alpha (root attribute cdd_factors); alpha = 0 then means these factors alone.
 Then d/dalpha E = E dE/dR + P^2/R. With TTbar alone the deformed level is the undeformed one
 at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_n(R~, 0) + alpha P^2 R / R~
 (for P = 0: E(R, alpha) = E_n(R + alpha E, 0)). flow_radius is R~, flow_prediction E_flow that
@@ -322,6 +325,25 @@ def _recovery_bytes(run):
     return len(json.dumps(run.to_dict(), separators=(",", ":"))) + 16384
 
 
+def cdd_factors_attribute(run):
+    """The run's pole and resonance factors, self-describing: what each entry means and the
+    factors F_sigma^power the solver uses (sigma = sin u)."""
+    def entry(poles, resonances, deformation):
+        return {"poles": [{"x": x, "power": p} for x, p in poles],
+                "resonances": [{"theta0": t, "power": p} for t, p in resonances],
+                "factors": deformation.describe()["factors"], "sign": deformation.sign}
+
+    out = {"convention": "S_ab -> S_ab * sign * prod F_sigma^power, F_sigma = (sinh t + i sigma) / "
+                         "(sinh t - i sigma); poles [x, p]: sigma = sin(pi x); resonances "
+                         "[theta0, p]: sigma = cosh(theta0); sign keeps S_ab(0). Top level: the "
+                         "factors of every model entry ([deformation]); 'models': per entry, "
+                         "those and its own",
+           **entry(run.poles, run.resonances, run.base_deformation())}
+    out["models"] = [{"label": m.label, **entry(m.poles, m.resonances, run.base_deformation(i))}
+                     for i, m in enumerate(run.models)]
+    return out
+
+
 def _write_layout(f, run, run_file, models_info, shard=None):
     s = h5py.string_dtype()  # variable-length: coordinates and fixed metadata only
     f.attrs.update({
@@ -333,6 +355,8 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         "status_legend": _legend(STATUS_MEANINGS), "flow_status_legend": _legend(FLOW_MEANINGS),
         "branch_point_status_legend": _legend(BRANCH_MEANINGS), "layout": LAYOUT,
     })
+    if run.has_poles:
+        f.attrs["cdd_factors"] = json.dumps(cdd_factors_attribute(run))
     if shard is not None:
         f.attrs.update({"shard": shard.label, "shard_index": shard.index, "shard_count": shard.count,
                         "layout": SHARD_LAYOUT})
@@ -1228,7 +1252,10 @@ class StoreData:
         names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
         for m in range(len(self.model)):
             for a, alpha in enumerate(self.alpha):
-                cdd = {str(k): float(v) for k, v in self.run.deformation(float(alpha)).couplings.items()}
+                deformation = self.run.deformation(float(alpha), m)
+                cdd = {str(k): float(v) for k, v in deformation.couplings.items()}
+                factors = ({k: deformation.describe()[k] for k in ("factors", "sign")}
+                           if deformation.has_poles else None)
                 for r, R in enumerate(self.radius):
                     for s, state in enumerate(self.state):
                         i = (m, a, r, s)
@@ -1236,6 +1263,7 @@ class StoreData:
                         if code in (NOT_COMPUTED, NOT_AVAILABLE) and not include_not_computed:
                             continue
                         ok = names.get(code) == "converged"
+                        extra = {} if factors is None else {"cdd_factors": factors}  # as tba solve
                         rec = {
                             "model": self.model_name[m],
                             "coupling": _model_coupling(self.model_coupling[m]),
@@ -1249,6 +1277,7 @@ class StoreData:
                             "iterations": int(self.data["iterations"][i]),
                             "message": self.data["message"][i],
                             "state": state,
+                            **extra,
                         }
                         if deprecated:
                             rec["couplings"] = dict(cdd)
