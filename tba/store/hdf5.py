@@ -1051,6 +1051,14 @@ def _verify(snap, mine, offsets, bsum, lsum=None):
     ``bad_chunks`` / ``bad_branch`` (and out of the done mask)."""
     run, progress = snap.run, snap.progress
     for c in mine:
+        # the done flag is a chunk's last write: a chunk not marked done whose checksum (its
+        # second-to-last write) verifies its values is complete (a kill between the two, or a
+        # flipped bit in the flag, loses nothing); before the checksum it is 0 or the old one
+        if not snap.done[c.index] and int(progress["checksum"][c.index]) != 0:
+            found = chunk_checksum(c.index, chunk_values(snap.points, run, c, offsets),
+                                   progress["invocation"][c.index], progress["seconds"][c.index])
+            snap.done[c.index] = found == int(progress["checksum"][c.index])
+    for c in mine:
         if snap.done[c.index]:
             found = chunk_checksum(c.index, chunk_values(snap.points, run, c, offsets),
                                    progress["invocation"][c.index], progress["seconds"][c.index])
