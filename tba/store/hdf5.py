@@ -43,8 +43,8 @@ Layout (schema version 5; readable with plain h5py, and with xarray through
                                (`tba.physics.flow.excited_branch_point` at the run's tol): the
                                level's R_c(alpha), E(R_c), R~_* and errors; status 0 found, 1
                                none (no fold on this side of alpha, or alpha = 0), 2
-                               not-applicable (higher-spin factors, or a level the model
-                               lacks), 3 failed, -1 not computed (always for "ground": its
+                               not-applicable (higher-spin or pole factors, or a level the
+                               model lacks), 3 failed, -1 not computed (always for "ground": its
                                branch point is /branch_points)
 
 ``message`` is a fixed-length UTF-8 string (256 bytes): h5py's ``.asstr()`` and xarray's
