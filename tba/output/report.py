@@ -384,8 +384,15 @@ def _excited_section(data):
                      f"level's undeformed curve R(R~) turns again)")
     none = [c for c in checks if c.status == "none"]
     if none:
-        lines.append(f"  status none (no fold on this side of alpha) for {len(none)} "
-                     f"(model, alpha, level) triple(s)")
+        lines.append(f"  status none (no fold on this side of alpha; the message in the file says "
+                     f"why) for {len(none)} (model, alpha, level) triple(s):")
+        for m in sorted({c.model for c in none}):
+            groups = {}
+            for c in none:
+                if c.model == m:
+                    groups.setdefault(c.alpha, []).append(data.state[c.state])
+            lines.append(f"    {data.model[m]}: " + "; ".join(
+                f"alpha = {number(data.alpha[a])}: {' '.join(states)}" for a, states in groups.items()))
     for c in checks:
         if c.status not in ("found", "none"):
             lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}, state "
