@@ -22,7 +22,8 @@ import numpy as np
 
 from tba import __version__
 from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
-                            add_max_points_argument, add_model_arguments, add_tol_argument,
+                            add_max_points_argument, add_model_arguments, add_progress_argument,
+                            add_tol_argument, progress_every,
                             build_model, check_deformation, coupling, json_text, max_points,
                             parse_cdd, parse_radii, parse_state_argument, plain, state_row,
                             table_row, tolerance, whole_number, writable_dir, writable_file)
@@ -90,9 +91,11 @@ def _scan(run, out_path, args, run_file, log, backend=None, shard=None):
     from tba.scans.cluster import ClusterError  # dask itself is imported only for a cluster
 
     workers = None if backend is not None else _workers(args.workers)
+    every = progress_every(args) if getattr(args, "progress_every", None) is not None else None
+    options = {} if every is None else {"progress_every": every}
     try:
         return run_scan(run, out_path, workers=workers, backend=backend, shard=shard,
-                        force=args.force, log=log, run_file=run_file)
+                        force=args.force, log=log, run_file=run_file, **options)
     except (StoreError, ClusterError) as exc:
         raise UsageError(str(exc)) from None
 
@@ -131,6 +134,7 @@ def _backend(args):
 def cmd_run(args, out):
     """Run a scan from a run file into its HDF5 store; resumes an interrupted one."""
     _workers(args.workers)  # checked with --dry-run too
+    progress_every(args)
     run = _load_run(args.runfile, max_points(args, MAX_POINTS))
     shard = _shard(args.shard)
     if args.out:
@@ -362,6 +366,7 @@ def build_parser():
     run.add_argument("--dry-run", action="store_true",
                      help="print the resolved run and the number of chunks, compute nothing")
     add_max_points_argument(run, MAX_POINTS, "points (models x alphas x radii x states)")
+    add_progress_argument(run)
     run.set_defaults(func=cmd_run)
     merge = sub.add_parser("merge", help="combine the shards of a run into one file",
                            description="Merge shard files of one run (tba run --shard I/N), or "

@@ -354,3 +354,24 @@ def add_max_points_argument(parser, default, what):
 
 def max_points(args, default):
     return default if args.max_points is None else whole_number("--max-points", args.max_points)
+
+
+def add_progress_argument(parser, terminal="a terminal shows a bar instead"):
+    """--progress-every SECONDS: periodic progress lines on stderr when it is not a terminal."""
+    parser.add_argument("--progress-every", default=None, action=Once, metavar="SECONDS",
+                        help="when stderr is not a terminal (a log file, a batch job), print a "
+                        "line on it with what is done, the rate and the time left every "
+                        f"SECONDS (default 30; 0: none); {terminal}")
+
+
+def progress_every(args):
+    """The --progress-every interval in seconds (>= 0; 0: no lines)."""
+    from tba.scans.progress import DEFAULT_EVERY
+
+    if args.progress_every is None:
+        return DEFAULT_EVERY
+    every = finite("--progress-every", args.progress_every)
+    if every < 0:
+        raise UsageError(f"argument --progress-every: must be >= 0 seconds (0: no progress "
+                         f"lines), got {args.progress_every!r}")
+    return every
