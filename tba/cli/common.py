@@ -10,17 +10,16 @@ import errno
 import json
 import math
 import os
+import sys
 import tempfile
 from fractions import Fraction
 from pathlib import Path
 
-import numpy as np
-
-from tba.models.catalog import ModelError, get_model
-from tba.models.cdd import CDD
 from tba.scans.limits import (MAX_SOLVE_POINTS, coupling_problem, deformation_problem,
                               radius_problem, size_text)
-from tba.solvers.ground import MIN_TOL
+
+# numpy, the models and the solvers are imported where they are used, so that building the
+# parser (tba --help, tba models) stays fast; tests/test_startup.py checks what is imported
 
 CONVENTIONS = """\
 conventions:
@@ -154,6 +153,8 @@ def parse_radii(tokens, max_points=MAX_SOLVE_POINTS):
         total += n
         if total > max_points:
             raise too_many("--radius", total, max_points, "radii")
+    import numpy as np
+
     radii = []
     for item in items:
         radii.extend(np.linspace(*item).tolist() if isinstance(item, tuple) else [item])
@@ -163,6 +164,8 @@ def parse_radii(tokens, max_points=MAX_SOLVE_POINTS):
 def parse_cdd(tokens, alpha, model=None):
     """The deformation of --alpha A and --cdd S:A (repeatable, same spins add up); with
     ``model``, every spin must be one of its."""
+    from tba.models.cdd import CDD
+
     couplings = {1: alpha} if alpha else {}
     for tok in tokens or []:
         spin, sep, value = tok.partition(":")
@@ -199,6 +202,8 @@ def check_deformation(deformation, radii):
 
 
 def tolerance(text):
+    from tba.solvers.ground import MIN_TOL
+
     tol = finite("--tol", text)
     if not MIN_TOL <= tol < 1e-2:
         raise UsageError(f"argument --tol: must lie in [{MIN_TOL:g}, 1e-2), got {text}")
@@ -206,6 +211,8 @@ def tolerance(text):
 
 
 def build_model(args):
+    from tba.models.catalog import ModelError, get_model
+
     coupling = None if args.coupling is None else finite("--coupling", args.coupling)
     try:
         return get_model(args.model, coupling)
@@ -218,7 +225,8 @@ def build_model(args):
 def plain(x):
     """``x`` with every non-finite float replaced by None (JSON null, an empty CSV cell),
     numpy scalars as Python numbers."""
-    if isinstance(x, np.generic):
+    np = sys.modules.get("numpy")  # no numpy scalar without numpy
+    if np is not None and isinstance(x, np.generic):
         x = x.item()
     if isinstance(x, float):
         return x if math.isfinite(x) else None

@@ -12,10 +12,9 @@ from tba.cli.common import (Once, UsageError, add_max_points_argument, add_model
                             add_progress_argument, add_tol_argument, build_model,
                             check_deformation, coupling, fmt, json_text, max_points, parse_radii,
                             progress_every, too_many, tolerance)
-from tba.models.cdd import ttbar
-from tba.physics.flow import BranchPoint, branch_point
 from tba.scans.limits import MAX_SOLVE_POINTS
-from tba.solvers.ground import flow_residual, solve_ground_state
+
+# the models, solvers and physics are imported by the commands (tba --help stays fast)
 
 
 def _progress(args, prefix, total=None):
@@ -30,6 +29,9 @@ def _progress(args, prefix, total=None):
 
 
 def cmd_branch_point(args, out):
+    from tba.models.cdd import ttbar
+    from tba.physics.flow import BranchPoint, branch_point
+
     model = build_model(args)
     alpha = coupling("--alpha", args.alpha)
     tol = tolerance(args.tol)
@@ -68,6 +70,9 @@ FLOW_HEADER = (f"{'R':>10} {'alpha':>8} {'E':>22} {'dE/dR':>14} {'dE/dalpha':>14
 
 
 def cmd_flow_check(args, out):
+    from tba.models.cdd import ttbar
+    from tba.solvers.ground import flow_residual, solve_ground_state
+
     model = build_model(args)
     limit = max_points(args, MAX_SOLVE_POINTS)
     radii = parse_radii(args.radius, limit)
