@@ -94,11 +94,11 @@ def test_lines_in_process():
     lines = log.getvalue().splitlines()
     _check_counted(lines, "points", 5)
     rates = [float(COUNTED.match(line)[6]) for line in lines]
-    assert 5 / 0.15 * 0.2 < rates[-1] < 5 / 0.15 * 1.1  # 5 points in about 0.15 s (and load)
+    assert 0 < rates[-1] <= 5 / 0.15 * 1.01  # 5 points in at least 0.15 s (longer under load)
     # time left: the remaining points at the rate so far, e.g. 2 left at 20/s is about 0.1 s
-    m = next(COUNTED.match(line) for line in lines if "left" in line and "about" in line)
+    m = next(m for m in map(COUNTED.match, lines) if m[8] and re.fullmatch(r"[\d.]+ s", m[8]))
     left = int(m[3]) - int(m[2])
-    assert float(m[8].split()[0]) == pytest.approx(left / float(m[6]), abs=0.06)
+    assert float(m[8].split()[0]) == pytest.approx(left / float(m[6]), rel=0.05, abs=0.06)
 
 
 def test_no_lines_before_the_first_interval():
