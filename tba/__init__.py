@@ -1,8 +1,8 @@
 """TBA energy levels of integrable S-matrices with CDD (TTbar) deformations.
 
-The public API: every name below is importable from ``tba`` and stays stable. Solvers and
-physics are imported on first use, scans and figures (xarray, h5py, matplotlib) only when
-asked for, so ``import tba`` stays light::
+The public API: every name below is importable from ``tba`` and stays stable. Each is
+imported on first use (models, solvers and physics; scans and figures with xarray, h5py,
+matplotlib only when asked for), so ``import tba`` itself loads nothing heavy::
 
     import tba
     res = tba.solve(tba.sinh_gordon(0.6), 2.0, tba.ttbar(-0.1), state="-1/2,1/2")
@@ -28,29 +28,20 @@ Results         SolveResult, Status, SolveError, BranchPoint, BranchStatus
 
 import importlib
 
-from tba.models.cdd import CDD, NO_DEFORMATION, cdd_factor, higher_spin, resonance, ttbar
-from tba.models import (
-    DiagonalModel,
-    HalfBlock,
-    free_fermion,
-    get_model,
-    ising_e8,
-    lee_yang,
-    massless_bosons,
-    massless_fermion,
-    model_names,
-    sine_gordon,
-    sinh_gordon,
-    tricritical_to_ising,
-    user_model,
-)
-from tba.solvers.result import SolveError, SolveResult, Status
-from tba.solvers.ground import energy_derivatives, flow_residual, solve_ground_state, solve_radii
-
 __version__ = "0.1.0"
 
-#: names imported on first use: name -> module
+#: names imported on first use: name -> module. Nothing is imported with the package itself,
+#: so that ``python -m tba --help`` and ``tba models`` do not load numba, scipy or the solvers.
 _LAZY = {
+    **dict.fromkeys(["CDD", "NO_DEFORMATION", "cdd_factor", "higher_spin", "resonance", "ttbar"],
+                    "tba.models.cdd"),
+    **dict.fromkeys(["DiagonalModel", "HalfBlock", "free_fermion", "get_model", "ising_e8",
+                     "lee_yang", "massless_bosons", "massless_fermion", "model_names",
+                     "sine_gordon", "sinh_gordon", "tricritical_to_ising", "user_model"],
+                    "tba.models"),
+    **dict.fromkeys(["SolveError", "SolveResult", "Status"], "tba.solvers.result"),
+    **dict.fromkeys(["energy_derivatives", "flow_residual", "solve_ground_state", "solve_radii"],
+                    "tba.solvers.ground"),
     "solve_excited": "tba.solvers.excited",
     "bethe_yang_energy": "tba.solvers.excited",
     "solve_lee_yang_one_particle": "tba.solvers.lee_yang",
@@ -99,8 +90,15 @@ def solve(model, radius, deformation=None, *, state="ground", tol=1e-12, start=N
     return solve_level(model, radius, state, deformation, tol=tol, start=start)
 
 
+#: the subpackages, reachable as attributes (``tba.solvers.ground``) as when they were
+#: imported with the package
+_SUBPACKAGES = {"models", "solvers", "physics", "scans", "store", "output", "cli"}
+
+
 def __getattr__(name):
     module = _LAZY.get(name)
+    if module is None and name in _SUBPACKAGES:
+        return importlib.import_module(f"tba.{name}")
     if module is None:
         raise AttributeError(f"module 'tba' has no attribute {name!r}")
     value = getattr(importlib.import_module(module), name)
@@ -112,12 +110,4 @@ def __dir__():
     return sorted(set(globals()) | set(_LAZY))
 
 
-__all__ = [
-    "CDD", "NO_DEFORMATION", "cdd_factor", "higher_spin", "resonance", "ttbar",
-    "DiagonalModel", "HalfBlock", "free_fermion", "get_model", "ising_e8", "lee_yang", "model_names",
-    "sine_gordon", "sinh_gordon", "user_model", "massless_fermion", "massless_bosons",
-    "tricritical_to_ising",
-    "SolveError", "SolveResult", "Status",
-    "solve", "solve_ground_state", "solve_radii", "energy_derivatives", "flow_residual",
-    *_LAZY,
-]
+__all__ = ["solve", *_LAZY]

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 import tba.cli.commands
+import tba.scans.runfile
 from tba.cli import main
 from tba.solvers.result import STATUS_CODES, Status
 from tba.scans.runfile import loads_run
@@ -231,7 +232,8 @@ DEMO_LIKE = RUN.replace('output = "scan.h5"', 'output = "out/demo.h5"')
 def test_demo_code_path_with_a_tiny_run(tmp_path, capsys, monkeypatch):
     # `tba demo` with its run file swapped for a tiny one: same code path, seconds instead of ~10 s
     runfile = _write(tmp_path, DEMO_LIKE, "demo.toml")
-    monkeypatch.setattr(tba.cli.commands, "demo_run_path", lambda: (runfile, False))
+    # tba demo imports demo_run_path from tba.scans.runfile when it runs
+    monkeypatch.setattr(tba.scans.runfile, "demo_run_path", lambda: (runfile, False))
     monkeypatch.chdir(tmp_path)
     assert main(["demo", "--workers", "1"]) == 0
     out = capsys.readouterr().out

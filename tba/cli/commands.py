@@ -18,22 +18,21 @@ import signal
 import sys
 from pathlib import Path
 
-import numpy as np
-
 from tba import __version__
 from tba.cli.common import (CONVENTIONS, STATE_HEADER, TABLE_HEADER, Once, Parser, UsageError,
                             add_max_points_argument, add_model_arguments, add_output_argument,
+                            add_progress_argument, progress_every,
                             add_tol_argument, build_model, check_deformation, coupling, json_text,
                             max_points, parse_alphas, parse_cdd, parse_factors, parse_radii,
                             parse_state_argument, plain, require_output, spelled, state_row,
                             table_row, too_many, tolerance, whole_number, writable_dir,
                             writable_file)
-from tba.output.report import format_report
 from tba.scans.limits import MAX_POINTS, MAX_SOLVE_POINTS
 from tba.scans import interrupts
-from tba.scans.runfile import RunFileError, demo_run_path, load_run, parse_shard
-from tba.store.driver import ScanFailed, ScanInterrupted, run_scan
-from tba.store.hdf5 import NOT_COMPUTED, StoreError, read_store
+
+# Everything else (the solvers, numba, scipy, h5py, matplotlib, the scan driver) is imported
+# by the command that needs it, so that tba --help and tba models start fast; tests/
+# test_startup.py checks which libraries each command path loads.
 
 
 def cmd_solve(args, out):
@@ -98,6 +97,8 @@ def _workers(text):
 
 
 def _load_run(path, limit=MAX_POINTS):
+    from tba.scans.runfile import RunFileError, load_run
+
     try:
         return load_run(path, max_points=limit)
     except RunFileError as exc:
@@ -106,11 +107,15 @@ def _load_run(path, limit=MAX_POINTS):
 
 def _scan(run, out_path, args, run_file, log, backend=None, shard=None):
     from tba.scans.cluster import ClusterError  # dask itself is imported only for a cluster
+    from tba.store.driver import run_scan
+    from tba.store.errors import StoreError
 
     workers = None if backend is not None else _workers(args.workers)
+    every = progress_every(args) if getattr(args, "progress_every", None) is not None else None
+    options = {} if every is None else {"progress_every": every}
     try:
         return run_scan(run, out_path, workers=workers, backend=backend, shard=shard,
-                        force=args.force, log=log, run_file=run_file)
+                        force=args.force, log=log, run_file=run_file, **options)
     except (StoreError, ClusterError) as exc:
         raise UsageError(str(exc)) from None
 
@@ -118,6 +123,8 @@ def _scan(run, out_path, args, run_file, log, backend=None, shard=None):
 def _shard(text):
     if text is None:
         return None
+    from tba.scans.runfile import parse_shard
+
     try:
         return parse_shard(text)
     except ValueError as exc:
@@ -149,6 +156,7 @@ def _backend(args):
 def cmd_run(args, out):
     """Run a scan from a run file into its HDF5 store; resumes an interrupted one."""
     _workers(args.workers)  # checked with --dry-run too
+    progress_every(args)
     run = _load_run(args.runfile, max_points(args, MAX_POINTS))
     shard = _shard(args.shard)
     if args.output:
@@ -180,6 +188,7 @@ def cmd_run(args, out):
 
 def cmd_merge(args, out):
     """Combine shard files (or stores) of one run into a full store."""
+    from tba.store.errors import StoreError
     from tba.store.merge import merge_stores
 
     output = require_output(args)
@@ -202,6 +211,8 @@ def cmd_merge(args, out):
 
 
 def _read(path):
+    from tba.store.hdf5 import StoreError, read_store
+
     try:
         return read_store(path)
     except StoreError as exc:
@@ -209,6 +220,8 @@ def _read(path):
 
 
 def cmd_report(args, out):
+    from tba.output.report import format_report
+
     print(format_report(_read(args.file)), file=out)
     return 0
 
@@ -264,6 +277,10 @@ EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "cdd_couplings", "energy"
 
 
 def cmd_export(args, out):
+    import numpy as np
+
+    from tba.store.hdf5 import NOT_COMPUTED
+
     if args.output:
         writable_file(f"argument {spelled(args, 'output', '-o/--output')}", args.output,
                       replace=False)
@@ -298,6 +315,10 @@ def cmd_export(args, out):
 def cmd_demo(args, out):
     """The built-in demonstration: runs/demo.toml into runs/out/ (or ./tba-demo-out/)."""
     from tba.output.plotting import save_figure
+    from tba.output.report import format_report
+    from tba.scans.runfile import demo_run_path
+    from tba.store.driver import run_scan
+    from tba.store.errors import StoreError
 
     workers = _workers(args.workers)
     run_file, in_repo = demo_run_path()
@@ -404,6 +425,7 @@ def build_parser():
     run.add_argument("--dry-run", action="store_true",
                      help="print the resolved run and the number of chunks, compute nothing")
     add_max_points_argument(run, MAX_POINTS, "points (models x alphas x radii x states)")
+    add_progress_argument(run)
     run.set_defaults(func=cmd_run)
     merge = sub.add_parser("merge", help="combine the shards of a run into one file",
                            description="Merge shard files of one run (tba run --shard I/N), or "
@@ -519,17 +541,32 @@ def _main(argv):
     except UsageError as exc:
         print(f"tba: error: {' '.join(str(exc).split())}", file=sys.stderr)
         return 2
-    except ScanInterrupted as exc:
-        print(f"tba: {exc}", file=sys.stderr)
-        return 128 + exc.signum
-    except ScanFailed as exc:
-        print(f"tba: error: {exc}", file=sys.stderr)
-        return 1
+    except Exception as exc:
+        code = _scan_stopped(exc)
+        if code is None:
+            raise
+        return code
     except KeyboardInterrupt as exc:
         signum = interrupts.signal_number(exc)
         how = "interrupted" if signum == signal.SIGINT else f"terminated ({interrupts.signal_name(signum)})"
         print(f"tba: {how}; the points printed above are complete", file=sys.stderr)
         return 128 + signum
+
+
+def _scan_stopped(exc):
+    """The exit code of a scan that was interrupted (128 + signal) or whose tasks failed (1),
+    after its one line; None for any other exception. The scan driver is looked up only if
+    it was imported: otherwise no scan ran, and it need not be loaded to say so."""
+    driver = sys.modules.get("tba.store.driver")
+    if driver is None:
+        return None
+    if isinstance(exc, driver.ScanInterrupted):
+        print(f"tba: {exc}", file=sys.stderr)
+        return 128 + exc.signum
+    if isinstance(exc, driver.ScanFailed):
+        print(f"tba: error: {exc}", file=sys.stderr)
+        return 1
+    return None
 
 
 if __name__ == "__main__":

@@ -10,17 +10,16 @@ import errno
 import json
 import math
 import os
+import sys
 import tempfile
 from fractions import Fraction
 from pathlib import Path
 
-import numpy as np
-
-from tba.models.catalog import ModelError, get_model
-from tba.models.cdd import CDD
 from tba.scans.limits import (MAX_SOLVE_POINTS, coupling_problem, deformation_problem,
                               radius_problem, size_text)
-from tba.solvers.ground import MIN_TOL
+
+# numpy, the models and the solvers are imported where they are used, so that building the
+# parser (tba --help, tba models) stays fast; tests/test_startup.py checks what is imported
 
 CONVENTIONS = """\
 conventions:
@@ -182,6 +181,8 @@ def parse_range(name, tok, value):
 
 def range_values(start, stop, n, log):
     """The values of a parsed range, both ends exactly as given."""
+    import numpy as np
+
     values = (np.geomspace(start, stop, n) if log else np.linspace(start, stop, n)).tolist()
     values[0], values[-1] = start, stop
     return values
@@ -222,6 +223,8 @@ def parse_alphas(tokens, max_points=MAX_SOLVE_POINTS):
 def parse_cdd(tokens, alpha, model=None):
     """The deformation of --alpha A and --cdd S:A (repeatable, same spins add up); with
     ``model``, every spin must be one of its."""
+    from tba.models.cdd import CDD
+
     couplings = {1: alpha} if alpha else {}
     for tok in tokens or []:
         spin, sep, value = tok.partition(":")
@@ -250,7 +253,7 @@ def parse_cdd(tokens, alpha, model=None):
 def parse_factors(poles, resonances):
     """The pole and resonance factors of --pole X:P and --resonance THETA0:P (repeatable):
     F_(pi x)^P and F^P with sin u = cosh theta0 (`tba.models.cdd.pole_factors`)."""
-    from tba.models.cdd import pole_factors
+    from tba.models.cdd import CDD, pole_factors
 
     out = CDD({})
     for option, tokens, builder in (("--pole", poles, "poles"), ("--resonance", resonances, "resonances")):
@@ -282,6 +285,8 @@ def check_deformation(deformation, radii):
 
 
 def tolerance(text):
+    from tba.solvers.ground import MIN_TOL
+
     tol = finite("--tol", text)
     if not MIN_TOL <= tol < 1e-2:
         raise UsageError(f"argument --tol: must lie in [{MIN_TOL:g}, 1e-2), got {text}")
@@ -289,6 +294,8 @@ def tolerance(text):
 
 
 def build_model(args):
+    from tba.models.catalog import ModelError, get_model
+
     coupling = None if args.coupling is None else finite("--coupling", args.coupling)
     try:
         return get_model(args.model, coupling)
@@ -301,7 +308,8 @@ def build_model(args):
 def plain(x):
     """``x`` with every non-finite float replaced by None (JSON null, an empty CSV cell),
     numpy scalars as Python numbers."""
-    if isinstance(x, np.generic):
+    np = sys.modules.get("numpy")  # no numpy scalar without numpy
+    if np is not None and isinstance(x, np.generic):
         x = x.item()
     if isinstance(x, float):
         return x if math.isfinite(x) else None
@@ -442,3 +450,24 @@ def add_max_points_argument(parser, default, what):
 
 def max_points(args, default):
     return default if args.max_points is None else whole_number("--max-points", args.max_points)
+
+
+def add_progress_argument(parser, terminal="a terminal shows a bar instead"):
+    """--progress-every SECONDS: periodic progress lines on stderr when it is not a terminal."""
+    parser.add_argument("--progress-every", default=None, action=Once, metavar="SECONDS",
+                        help="when stderr is not a terminal (a log file, a batch job), print a "
+                        "line on it with what is done, the rate and the time left every "
+                        f"SECONDS (default 30; 0: none); {terminal}")
+
+
+def progress_every(args):
+    """The --progress-every interval in seconds (>= 0; 0: no lines)."""
+    from tba.scans.progress import DEFAULT_EVERY
+
+    if args.progress_every is None:
+        return DEFAULT_EVERY
+    every = finite("--progress-every", args.progress_every)
+    if every < 0:
+        raise UsageError(f"argument --progress-every: must be >= 0 seconds (0: no progress "
+                         f"lines), got {args.progress_every!r}")
+    return every

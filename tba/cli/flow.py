@@ -5,16 +5,28 @@ exit code 2).
 """
 
 import argparse
+import contextlib
+import sys
 
 from tba.cli.common import (ENERGY_SPEC, R_SPEC, Once, UsageError, add_max_points_argument,
-                            add_model_arguments, add_tol_argument, build_model, check_deformation,
-                            coupling, fmt, json_text, max_points, parse_alphas, parse_radii,
-                            parse_state_argument, too_many, tolerance)
-from tba.models.cdd import ttbar
-from tba.output.labels import number
-from tba.physics.flow import BranchPoint, BranchStatus, branch_point
+                            add_model_arguments, add_progress_argument, add_tol_argument,
+                            build_model, check_deformation, coupling, fmt, json_text, max_points,
+                            parse_alphas, parse_radii, parse_state_argument, progress_every,
+                            too_many, tolerance)
 from tba.scans.limits import MAX_SOLVE_POINTS
-from tba.solvers.ground import flow_residual, solve_ground_state
+
+# the models, solvers and physics are imported by the commands (tba --help stays fast)
+
+
+def _progress(args, prefix, total=None):
+    """Periodic lines on stderr when it is not a terminal (`tba.scans.progress`), as a
+    context manager giving the `ProgressLines` (None when there are to be no lines)."""
+    from tba.scans.progress import ProgressLines, lines_wanted
+
+    every = progress_every(args)
+    if not lines_wanted(every):
+        return contextlib.nullcontext(None)
+    return ProgressLines(prefix, total, unit="points", every=every, log=sys.stderr)
 
 
 def _excited_branch_point(args, out, model, alpha, level):
@@ -43,6 +55,10 @@ def _excited_branch_point(args, out, model, alpha, level):
 
 
 def cmd_branch_point(args, out):
+    from tba.models.cdd import ttbar
+    from tba.output.labels import number
+    from tba.physics.flow import BranchPoint, branch_point
+
     model = build_model(args)
     alpha = coupling("--alpha", args.alpha)
     if args.state is not None:
@@ -50,22 +66,23 @@ def cmd_branch_point(args, out):
         if level != "ground":
             return _excited_branch_point(args, out, model, alpha, level)
     tol = tolerance(args.tol)
-    if args.method == "continuation":
-        from tba.physics.continuation import locate_fold
+    with _progress(args, "tba branch-point"):  # one computation: the time it has taken
+        if args.method == "continuation":
+            from tba.physics.continuation import locate_fold
 
-        if alpha <= 0:
-            bp = branch_point(model, alpha, tol)  # status "none" with its reason
+            if alpha <= 0:
+                bp = branch_point(model, alpha, tol)  # status "none" with its reason
+            else:
+                try:
+                    fold = locate_fold(model, ttbar(alpha), tol=tol)
+                except RuntimeError as exc:
+                    raise UsageError(f"argument --method: continuation failed: {exc}") from None
+                bp = BranchPoint(
+                    model.name, alpha, "found", radius=fold.value, energy=fold.energy,
+                    radius_error=fold.value_error, energy_error=fold.energy_error,
+                    message=f"fold located by pseudo-arclength continuation in {fold.steps} steps")
         else:
-            try:
-                fold = locate_fold(model, ttbar(alpha), tol=tol)
-            except RuntimeError as exc:
-                raise UsageError(f"argument --method: continuation failed: {exc}") from None
-            bp = BranchPoint(
-                model.name, alpha, BranchStatus.FOUND, radius=fold.value, energy=fold.energy,
-                radius_error=fold.value_error, energy_error=fold.energy_error,
-                message=f"fold located by pseudo-arclength continuation in {fold.steps} steps")
-    else:
-        bp = branch_point(model, alpha, tol)
+            bp = branch_point(model, alpha, tol)
     rec = {"model": model.name, "coupling": model.coupling, **bp.as_record(), "method": args.method}
     if args.json:
         print(json_text(rec), file=out)
@@ -92,6 +109,9 @@ FLOW_HEADER = (f"{'R':>16} {'alpha':>12} {'E':>22} {'dE/dR':>20} {'dE/dalpha1':>
 
 
 def cmd_flow_check(args, out):
+    from tba.models.cdd import ttbar
+    from tba.solvers.ground import flow_residual, solve_ground_state
+
     model = build_model(args)
     limit = max_points(args, MAX_SOLVE_POINTS)
     radii = parse_radii(args.radius, limit)
@@ -105,32 +125,37 @@ def cmd_flow_check(args, out):
         from tba.cli.flowlevels import flow_check_levels
 
         return flow_check_levels(args, out, model, radii, alphas, tol)
+    lines = _progress(args, "tba flow-check", len(radii) * len(alphas))
     if not args.json:
         print(FLOW_HEADER, file=out, flush=True)
-    for alpha in alphas:
-        start = None
-        for R in radii:
-            res = solve_ground_state(model, R, ttbar(alpha), tol=tol, start=start)
-            rec = {"model": model.name, "coupling": model.coupling, "radius": R, "alpha": alpha,
-                   "status": res.status.value, "energy": None, "dE_dR": None, "dE_dalpha1": None,
-                   "residual": None, "residual_error": None, "relative_residual": None,
-                   "relative_error": None, "scale": None}
-            if res.converged:
-                start = res
-                f = flow_residual(res)
-                rec.update(energy=res.energy, dE_dR=f["dE_dR"], dE_dalpha1=f["dE_dalpha1"],
-                           residual=f["residual"], residual_error=f["error"],
-                           relative_residual=f["relative_residual"],
-                           relative_error=f["relative_error"], scale=f["scale"])
-            rec["dE_dalpha"] = rec["dE_dalpha1"]  # deprecated name, kept for one release
-            if args.json:
-                print(json_text(rec), file=out, flush=True)
-                continue
-            print(f"{R:{R_SPEC}} {alpha:>12.10g} {fmt(rec['energy'], ENERGY_SPEC):>22} "
-                  f"{fmt(rec['dE_dR'], '20.15g'):>20} {fmt(rec['dE_dalpha1'], '20.15g'):>20} "
-                  f"{fmt(rec['residual'], '9.2e'):>9} {fmt(rec['residual_error'], '8.1e'):>8} "
-                  f"{fmt(rec['relative_residual'], '9.2e'):>9} "
-                  f"{fmt(rec['relative_error'], '10.1e'):>10}  {rec['status']}", file=out, flush=True)
+    with lines as progress:
+        for alpha in alphas:
+            start = None
+            for R in radii:
+                res = solve_ground_state(model, R, ttbar(alpha), tol=tol, start=start)
+                if progress is not None:
+                    progress.update()
+                rec = {"model": model.name, "coupling": model.coupling, "radius": R,
+                       "alpha": alpha, "status": res.status.value, "energy": None, "dE_dR": None,
+                       "dE_dalpha1": None, "residual": None, "residual_error": None,
+                       "relative_residual": None, "relative_error": None, "scale": None}
+                if res.converged:
+                    start = res
+                    f = flow_residual(res)
+                    rec.update(energy=res.energy, dE_dR=f["dE_dR"], dE_dalpha1=f["dE_dalpha1"],
+                               residual=f["residual"], residual_error=f["error"],
+                               relative_residual=f["relative_residual"],
+                               relative_error=f["relative_error"], scale=f["scale"])
+                rec["dE_dalpha"] = rec["dE_dalpha1"]  # deprecated name, kept for one release
+                if args.json:
+                    print(json_text(rec), file=out, flush=True)
+                    continue
+                print(f"{R:{R_SPEC}} {alpha:>12.10g} {fmt(rec['energy'], ENERGY_SPEC):>22} "
+                      f"{fmt(rec['dE_dR'], '20.15g'):>20} {fmt(rec['dE_dalpha1'], '20.15g'):>20} "
+                      f"{fmt(rec['residual'], '9.2e'):>9} {fmt(rec['residual_error'], '8.1e'):>8} "
+                      f"{fmt(rec['relative_residual'], '9.2e'):>9} "
+                      f"{fmt(rec['relative_error'], '10.1e'):>10}  {rec['status']}", file=out,
+                      flush=True)
     return 0
 
 
@@ -152,6 +177,7 @@ def add_flow_commands(sub, conventions):
                     "fold in R at fixed alpha, on its undeformed curve")
     add_tol_argument(bp)
     bp.add_argument("--json", action="store_true", help="one JSON object")
+    add_progress_argument(bp, "on a terminal, none")
     bp.set_defaults(func=cmd_branch_point)
 
     fc = sub.add_parser("flow-check", help="Burgers-flow residuals over radii and alphas",
@@ -177,4 +203,5 @@ def add_flow_commands(sub, conventions):
     add_tol_argument(fc)
     fc.add_argument("--json", action="store_true", help="one JSON object per line per point")
     add_max_points_argument(fc, MAX_SOLVE_POINTS, "points (radii x alphas)")
+    add_progress_argument(fc, "on a terminal, none (the rows show it)")
     fc.set_defaults(func=cmd_flow_check)

@@ -10,7 +10,8 @@ the keys name, parameters, species, masses, c_eff, massless, spins.
 from fractions import Fraction
 
 from tba.cli.common import UsageError, json_text
-from tba.models.catalog import MAX_RANK, ModelError, model_names, model_summaries, resolve
+
+# the catalog is imported by the command, not to build the parser (tba --help stays fast)
 
 _JSON_KEYS = ("name", "parameters", "species", "masses", "c_eff", "massless", "spins")
 
@@ -40,11 +41,15 @@ def _row(rec):
 
 def _massless_names():
     """'a, b and c': the massless models of the registry."""
+    from tba.models.catalog import model_names, resolve
+
     names = [n for n in model_names() if resolve(n).massless]
     return ", ".join(names[:-1]) + " and " + names[-1] if len(names) > 1 else "".join(names)
 
 
 def cmd_models(args, out):
+    from tba.models.catalog import MAX_RANK, ModelError, model_summaries
+
     coupling = args.coupling
     if coupling is not None:
         try:

@@ -42,7 +42,6 @@ import operator
 from dataclasses import dataclass
 from fractions import Fraction
 
-import mpmath
 import numpy as np
 
 from tba.models.blocks import block_transform, key_order, pair_half_blocks
@@ -184,6 +183,8 @@ def _half_multiplicities(inc, h):
 
 def _verify_identity(inc, h, mult):
     """The integer content against the identity at two momenta, in 60-digit arithmetic."""
+    import mpmath  # here only: solving an ADE model does not need it
+
     n = len(inc)
     with mpmath.workdps(_CHECK_DIGITS):
         for k in (mpmath.mpf(h) / 7, mpmath.mpf(3) * h / 11):

@@ -36,8 +36,9 @@ without kernels (eps = 0).
 
 import math
 
-import mpmath
 import numpy as np
+
+# mpmath is imported by the dilogarithm sums that use it: solving a model does not need it
 
 _RUNAWAY = -50.0
 
@@ -75,6 +76,8 @@ def plateau(model, maxiter=200, species=None):
 
 def rogers(x):
     """Rogers' dilogarithm Lr(x) = Li_2(x) + log(x) log(1 - x) / 2, Lr(1) = pi^2/6 (mpmath)."""
+    import mpmath
+
     x = mpmath.mpf(x)
     if x == 1:
         return mpmath.pi ** 2 / 6
@@ -83,6 +86,8 @@ def rogers(x):
 
 def _occupation_dilog(model, eps):
     """sum_a g_a Lr(x(eps_a)) over the species of ``eps`` (a dict index -> eps; +inf: absent)."""
+    import mpmath
+
     with mpmath.workdps(30):
         total = mpmath.mpf(0)
         for a, e in eps.items():
@@ -106,6 +111,8 @@ def _subsystem(model, species):
 
 def _kinks(model, inner, right_out, left_out):
     """c_eff = (c_right + c_left) / 2 from the plateaus around the two kinks (module docstring)."""
+    import mpmath
+
     c = [_occupation_dilog(model, inner) - _occupation_dilog(model, out) for out in (right_out, left_out)]
     with mpmath.workdps(30):
         return float(3 * (c[0] + c[1]) / mpmath.pi ** 2)
@@ -142,6 +149,8 @@ def ir_central_charge(model):
 def uv_central_charge(model):
     """c_eff as R -> 0: (6 / pi^2) sum_a Lr(1 / (1 + e^{eps_a})) for massive models; kink by kink
     with massless species (module docstring)."""
+    import mpmath
+
     if model.is_massless:
         return _massless_uv(model)
     if model.statistics != "fermion" or model.has_multiplicity:

@@ -14,8 +14,8 @@ Models that are not listed in `MODEL_TITLES` keep their command-line name.
 
 from fractions import Fraction
 
-from tba.models.catalog import ModelError, resolve
-from tba.solvers.levels import GROUND, parse_level
+# the model catalog and the level parser are imported where used: the command line reads
+# PANELS and FORMATS when it builds its parser, and should not load the solvers for that
 
 #: the panels of a figure (`tba.output.plotting`) and its file formats: here, so that the
 #: command line offers them without importing matplotlib
@@ -47,6 +47,8 @@ def number(x):
 
 
 def _entry(name):
+    from tba.models.catalog import ModelError, resolve
+
     try:
         return resolve(name)
     except ModelError:  # a file written by another version may name a model unknown here
@@ -69,6 +71,8 @@ def is_massless(name):
 
 def particles(state):
     """The number of particles of a level (0 for the ground state)."""
+    from tba.solvers.levels import GROUND, parse_level
+
     level = parse_level(state)
     return 0 if level == GROUND else len(level)
 
@@ -76,6 +80,8 @@ def particles(state):
 def level_title(state):
     """``ground state``, ``one-particle level I = 0``, ``two-particle level I = (-1/2, 1/2)``;
     a moving level adds its momentum, ``P = 4π/R`` (R P = 2 pi sum I_k)."""
+    from tba.solvers.levels import GROUND, parse_level
+
     level = parse_level(state)
     if level == GROUND:
         return "ground state"

@@ -67,12 +67,12 @@ def unavailable(model, level, deformation=None):
     level = parse_level(level)
     if level == GROUND:
         return None
-    if deformation is not None and deformation.has_poles:
-        return POLE_REFUSAL
-    if model.is_massless:
+    if model.is_massless:  # the TTbar factor only, said in the massless solver's words
         from tba.solvers.massless import refusal
 
         return refusal(model, level, deformation)
+    if deformation is not None and deformation.has_poles:
+        return POLE_REFUSAL
     if model.name == "lee-yang":
         if level != (0,):
             return "lee-yang has one excited level here: its one-particle state 0"

@@ -15,6 +15,7 @@ from pathlib import Path
 from tba.scans.backends import BranchDone, ChunkDone, local_backend
 from tba.scans.codes import BP_FAILED, NOT_COMPUTED
 from tba.scans.interrupts import installed, signal_name, signal_number
+from tba.scans.progress import DEFAULT_EVERY, ProgressLines, lines_wanted
 from tba.scans.runfile import Shard
 from tba.store.errors import StoreError, StoreWriteError
 from tba.store.hdf5 import check_store, describe_branch
@@ -91,8 +92,20 @@ def _progress_bar(total, desc, enabled):
                 disable=None if enabled is None else not enabled, dynamic_ncols=True)
 
 
+def _progress_lines(run, summary, pending, branch_pending, progress, every, log):
+    """Periodic lines on ``log`` (`tba.scans.progress`) where no bar is shown: ``progress``
+    None and stderr not a terminal, ``every`` > 0."""
+    if progress is not None or not lines_wanted(every):
+        return None
+    extra = None
+    if branch_pending:
+        extra = lambda: f"{summary.branch_points_computed}/{len(branch_pending)} branch points"  # noqa: E731
+    return ProgressLines("tba run", summary.chunks_total, unit="chunks", done=summary.chunks_before,
+                         points=sum(c.size for c in pending), every=every, log=log, extra=extra)
+
+
 def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=False,
-             progress=None, log=None, run_file=None):
+             progress=None, log=None, run_file=None, progress_every=DEFAULT_EVERY):
     """Compute every chunk of ``run`` not yet in the store at ``path`` (default ``run.output``),
     then the branch points not yet stored (``run.branch_points``).
 
@@ -104,7 +117,10 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
     e.g. `tba.scans.cluster.DaskBackend`), else ``workers`` processes on this machine (default:
     the usable cores). ``shard`` (a `tba.scans.runfile.Shard`) computes only that shard's
     chunks and branch points into a shard file. ``progress`` None shows a bar on a terminal
-    only. Lines about what is done go to ``log`` (default stderr). Returns a `ScanSummary`;
+    and, where stderr is not a terminal (a log file), one line every ``progress_every``
+    seconds (0: none) on ``log`` with the chunks done, the rate and the time left
+    (`tba.scans.progress`); True always the bar, False neither. Lines about what is done go
+    to ``log`` (default stderr). Returns a `ScanSummary`;
     Ctrl-C or SIGTERM raises `ScanInterrupted` (the history entry closed), chunks a cluster
     gave up on `ScanFailed` (after everything else is saved).
 
@@ -134,7 +150,8 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
                 raise
             return _read_only(run, path, shard, lock.unwritable, log)
         try:
-            return _scan(run, path, workers, backend, shard, force, progress, log, run_file)
+            return _scan(run, path, workers, backend, shard, force, (progress, progress_every),
+                         log, run_file)
         finally:
             lock.release()
 
@@ -222,12 +239,16 @@ def _scan(run, path, workers, backend, shard, force, progress, log, run_file):
 def _drive(run, path, prepared, backend, pending, branch_pending, summary, progress, log):
     """Write what ``backend`` computes as it arrives: the driver is the only writer."""
     store = open_store(path, prepared, run)
-    bar = None
+    bar = lines = None
+    progress, every = progress
     try:
         store.begin_invocation(summary.workers, len(pending), len(branch_pending),
                                executor=backend.describe())
         try:
             bar = _progress_bar(sum(c.size for c in pending), run.name, progress) if pending else None
+            lines = _progress_lines(run, summary, pending, branch_pending, progress, every, log)
+            if lines is not None:
+                lines.start()
             results = backend.compute(run, pending, branch_pending)
             try:
                 for item in results:
@@ -236,6 +257,8 @@ def _drive(run, path, prepared, backend, pending, branch_pending, summary, progr
                         summary.chunks_computed += 1
                         if bar is not None:
                             bar.update(item.chunk.size)
+                        if lines is not None:
+                            lines.update(1, item.chunk.size)
                     elif isinstance(item, BranchDone):
                         values = item.values
                         store.write_branch_point(item.model, item.alpha, values, state=item.state)
@@ -262,7 +285,11 @@ def _drive(run, path, prepared, backend, pending, branch_pending, summary, progr
                 pass
             raise
         store.end_invocation(failed=[f"{f.what}: {f.error}" for f in summary.failed])
+        if lines is not None:
+            lines.stop("complete" if not summary.failed else "incomplete")
     finally:
+        if lines is not None:  # after an exception: the thread stops, the line says so
+            lines.stop("stopped")
         if bar is not None:
             bar.close()
         store.close()
