@@ -24,6 +24,10 @@ def reseal(path):
                     snap.progress["invocation"][c.index], snap.progress["seconds"][c.index])
         for m, a in zip(*np.nonzero(snap.branch["status"] != NOT_COMPUTED)):
             f["branch_points/checksum"][m, a] = branch_checksum(m, a, branch_values(snap.branch, m, a))
+        if snap.version >= 5:  # the excited levels' branch points
+            for m, a, s in zip(*np.nonzero(snap.levels["status"] != NOT_COMPUTED)):
+                f["level_branch_points/checksum"][m, a, s] = branch_checksum(
+                    m, a, branch_values(snap.levels, m, a, s), state=s)
 
 
 def flip_bit(path, offset, bit=0):

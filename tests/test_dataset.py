@@ -46,6 +46,8 @@ POINT = ["energy", "error", "momentum", "status", "iterations", "message", "flow
          "flow_prediction", "flow_error", "flow_residual", "flow_status"]
 BRANCH = ["branch_radius", "branch_radius_error", "branch_energy", "branch_energy_error",
           "branch_effective_radius", "branch_status", "branch_message"]
+#: the excited levels' branch points, from the group /level_branch_points (model, alpha, state)
+LEVEL_BRANCH = [f"level_{name}" for name in BRANCH]
 
 
 @pytest.fixture(scope="module")
@@ -68,7 +70,7 @@ def test_open_scan_has_the_layout_xarray_reads_from_the_file(stored):
     group = xr.open_dataset(stored.output, engine="h5netcdf", group="branch_points")
     try:
         assert set(ds.coords) == set(raw.coords) == {"model", "alpha", "radius", "state"}
-        assert set(ds.data_vars) == set(raw.data_vars) | set(BRANCH)
+        assert set(ds.data_vars) == set(raw.data_vars) | set(BRANCH) | set(LEVEL_BRANCH)
         for name in raw.variables:
             assert ds[name].dims == raw[name].dims, name
             values = raw[name].values
@@ -85,6 +87,17 @@ def test_open_scan_has_the_layout_xarray_reads_from_the_file(stored):
             if values.dtype.kind == "S":
                 values = np.char.decode(values, "utf-8")
             assert ds[mine].dims == ("model", "alpha") and _equal(ds[mine].values, values), name
+        levels = xr.open_dataset(stored.output, engine="h5netcdf", group="level_branch_points")
+        with levels:
+            for name in levels.variables:
+                if name == "checksum":
+                    continue
+                mine = "level_" + ("branch_" + name if not name.startswith("branch_") else name)
+                values = levels[name].values
+                if values.dtype.kind == "S":
+                    values = np.char.decode(values, "utf-8")
+                assert ds[mine].dims == ("model", "alpha", "state"), name
+                assert _equal(ds[mine].values, values), name
         assert dict(ds.attrs).keys() == dict(raw.attrs).keys()
         assert ds.status.attrs["flag_meanings"].split()[1] == "converged"
         assert ds.message.dtype == object and isinstance(ds.message.values.flat[0], str)

@@ -153,8 +153,18 @@ def test_energy_panel_carries_the_numbers_predictions_and_branch_points(data):
         lo, hi = np.nanmin(deformed), np.nanmax(deformed)
         pad = 0.06 * (hi - lo)
         assert ax.get_ylim() == pytest.approx((lo - pad, hi + pad), rel=1e-12)
-    # excited levels: the last real point of alpha = -0.2 (no real solution below) is a star
-    stars = _lines(panels[(TITLES[1], "energy")], marker="*")
+    # excited levels: the stored fold of alpha = -0.2 (/level_branch_points) is a diamond at
+    # (R_c, E(R_c)) in place of the star the last real point gets without it (below)
+    ax = panels[(TITLES[1], "energy")]
+    assert data.levels["status"][0, 0, 1] == BP_FOUND
+    (diamond,) = _lines(ax, marker="D")
+    assert list(diamond.get_xdata()) == [data.levels["branch_radius"][0, 0, 1]]
+    assert list(diamond.get_ydata()) == [data.levels["energy"][0, 0, 1]]
+    assert not _lines(ax, marker="*")
+    levels = {k: v.copy() for k, v in data.levels.items()}
+    levels["status"][...] = -1  # a file without them (schema 4): the star, as before
+    stars = _lines(_panels(plot_store(dataclasses.replace(data, levels=levels)))[(TITLES[1], "energy")],
+                   marker="*")
     assert len(stars) == 1
 
 

@@ -53,7 +53,8 @@ BRANCH_NUMBERS = [name for name, (kind, _, _) in BRANCH_VARIABLES.items() if kin
 #: data sets that record how and when, not what: the rest must equal the serial file's
 # provenance (and the checksums and maps that cover it): may differ between equal files
 METADATA = {"progress/invocation", "progress/seconds", "message", "branch_points/message",
-            "progress/checksum", "branch_points/checksum", "progress/history", "recovery/map"}
+            "progress/checksum", "branch_points/checksum", "progress/history", "recovery/map",
+            "level_branch_points/message", "level_branch_points/checksum"}
 
 
 @pytest.fixture(scope="module")
@@ -111,6 +112,15 @@ def test_shards_split_the_run_exactly_once():
         assert sorted(owned) == list(range(TOTAL))
         pairs = [p for k in range(1, n + 1) for p in Shard(k, n).branch_pairs(run)]
         assert sorted(pairs) == [(m, a) for m in range(2) for a in range(2)]
+        # every branch-point task (excited levels' (m, a, s) included) in exactly one shard
+        keys = [k for i in range(1, n + 1) for k in Shard(i, n).branch_keys(run)]
+        assert sorted(keys) == sorted(run.branch_keys()) and len(set(keys)) == len(keys)
+    from tba.scans.runfile import loads_run
+    levels = loads_run(LEVELS)  # two states: (m, a, s) tasks for the excited one
+    assert any(len(k) == 3 for k in levels.branch_keys())
+    for n in range(1, 5):
+        keys = [k for i in range(1, n + 1) for k in Shard(i, n).branch_keys(levels)]
+        assert sorted(keys) == sorted(levels.branch_keys()) and len(set(keys)) == len(keys)
     assert parse_shard(" 2/3") == Shard(2, 3)
     for bad in ("0/3", "4/3", "3", "a/b", "1/0", "-1/3"):
         with pytest.raises(ValueError, match="I/N"):

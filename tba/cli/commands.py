@@ -178,7 +178,7 @@ def cmd_run(args, out):
               f"output {out_path}", file=out)
         if shard is not None:
             mine = shard.chunks(run)
-            pairs = len(shard.branch_pairs(run)) if run.branch_points else 0
+            pairs = len(shard.branch_keys(run)) if run.branch_points else 0
             print(f"shard {shard.label}: {len(mine)} chunks ({sum(c.size for c in mine)} points) "
                   f"and {pairs} branch points", file=out)
         return 0

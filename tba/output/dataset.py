@@ -10,6 +10,12 @@ Both give the same Dataset, laid out like the HDF5 store (`tba.store.hdf5`):
   ``/branch_points``: ``branch_radius``, ``branch_radius_error``, ``branch_energy``,
   ``branch_energy_error``, ``branch_effective_radius``, ``branch_status``, ``branch_message``
   (the store's checksums and bookkeeping are verified when the file is read and left out);
+* the excited levels' branch points (the fold in R at fixed alpha) per (model, alpha, state),
+  from the group ``/level_branch_points``: ``level_branch_radius``,
+  ``level_branch_radius_error``, ``level_branch_energy``, ``level_branch_energy_error``,
+  ``level_branch_effective_radius``, ``level_branch_status``, ``level_branch_message``; the
+  "ground" column is not computed there (it is ``branch_radius``), and a file written before
+  schema 5 has them all "not computed" (status -1);
 * the file's attributes (units, conventions, the resolved run as JSON, status legends) on the
   Dataset and on each variable (``status`` and ``flow_status`` carry CF ``flag_values`` and
   ``flag_meanings``).
@@ -34,13 +40,16 @@ import numpy as np
 import xarray as xr
 
 from tba.scans.backends import BranchDone, ChunkDone, TaskFailed, local_backend
-from tba.scans.codes import BRANCH_DIMS, BRANCH_VARIABLES, DIMS, POINT_VARIABLES
+from tba.scans.codes import (BRANCH_DIMS, BRANCH_VARIABLES, DIMS, LEVEL_BRANCH_ATTRS,
+                             LEVEL_BRANCH_DIMS, NOT_COMPUTED, POINT_VARIABLES)
 from tba.scans.runfile import RunFileError, RunSpec, Shard, load_run, resolve_run
-from tba.store.hdf5 import StoreData, StoreError, create_store, read_store
+from tba.store.hdf5 import StoreData, StoreError, create_store, full, level_shape, read_store
 
 #: names in the Dataset of the variables of /branch_points (R_c already says what it is)
 BRANCH_NAMES = {name: name if name.startswith("branch_") else f"branch_{name}"
                 for name in BRANCH_VARIABLES}
+#: names in the Dataset of the variables of /level_branch_points (excited levels)
+LEVEL_BRANCH_NAMES = {name: f"level_{BRANCH_NAMES[name]}" for name in BRANCH_VARIABLES}
 #: bookkeeping attributes of HDF5 dimension scales, not copied
 _H5_ATTRS = {"DIMENSION_LIST", "REFERENCE_LIST", "CLASS", "NAME", "_Netcdf4Dimid",
              "_Netcdf4Coordinates"}
@@ -125,8 +134,7 @@ def scan_run(run, *, workers=1, backend=None):
         data = read_store(path)
         attrs = _variable_attributes(path)
     chunks = run.chunks()
-    pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
-             if run.branch_points else [])
+    pairs = run.branch_keys() if run.branch_points else []
     backend = local_backend(workers, len(chunks)) if backend is None else backend
     failed = []
     if chunks or pairs:
@@ -136,8 +144,9 @@ def scan_run(run, *, workers=1, backend=None):
                 if isinstance(item, ChunkDone):
                     _fill_chunk(data, item)
                 elif isinstance(item, BranchDone):
+                    arrays = data.branch if item.state is None else data.levels
                     for name, (_, fill, _) in BRANCH_VARIABLES.items():
-                        data.branch[name][item.model, item.alpha] = item.values.get(name, fill)
+                        arrays[name][item.key] = item.values.get(name, fill)
                 elif isinstance(item, TaskFailed):
                     failed.append(f"{item.what}: {item.error}")
         finally:
@@ -228,6 +237,16 @@ def to_dataset(data, attributes=None):
         values = data.branch[name]
         values = np.asarray(values, dtype=object) if kind == "str" else np.asarray(values)
         variables[BRANCH_NAMES[name]] = (BRANCH_DIMS, values, attrs(f"branch_points/{name}", default))
+    for name, (kind, fill, default) in BRANCH_VARIABLES.items():
+        values = data.levels.get(name) if data.levels else None
+        if values is None:  # a file written before schema 5
+            values = full(level_shape(data.run), kind, fill)
+            if kind == "str":
+                values = values.astype(str)
+        values = np.asarray(values, dtype=object) if kind == "str" else np.asarray(values)
+        level_attrs = dict(attributes.get(f"level_branch_points/{name}",
+                                          LEVEL_BRANCH_ATTRS.get(name, default)))
+        variables[LEVEL_BRANCH_NAMES[name]] = (LEVEL_BRANCH_DIMS, values, level_attrs)
     return xr.Dataset(variables, coords=coords, attrs=dict(data.attrs))
 
 
@@ -246,11 +265,19 @@ def store_data(ds):
     data = {name: ds[name].transpose(*DIMS).values for name in POINT_VARIABLES}
     branch = {name: ds[BRANCH_NAMES[name]].transpose(*BRANCH_DIMS).values
               for name in BRANCH_VARIABLES}
+    if LEVEL_BRANCH_NAMES["status"] in ds:
+        levels = {name: ds[LEVEL_BRANCH_NAMES[name]].transpose(*LEVEL_BRANCH_DIMS).values
+                  for name in BRANCH_VARIABLES}
+    else:
+        shape = tuple(ds.sizes[d] for d in LEVEL_BRANCH_DIMS)
+        levels = {name: np.full(shape, NOT_COMPUTED if name == "status" else
+                                ("" if kind == "str" else fill), dtype=object if kind == "str" else None)
+                  for name, (kind, fill, _) in BRANCH_VARIABLES.items()}
     couplings = [None if np.isnan(c) else float(c) for c in ds["model_coupling"].values]
     shard = ds.attrs.get("shard")
     return StoreData(path=None, attrs=dict(ds.attrs), run=run, model=list(ds["model"].values),
                      model_name=list(ds["model_name"].values), model_coupling=couplings,
                      alpha=ds["alpha"].values, radius=ds["radius"].values,
-                     state=list(ds["state"].values), data=data, branch=branch,
+                     state=list(ds["state"].values), data=data, branch=branch, levels=levels,
                      schema_version=int(ds.attrs.get("schema_version", 0)),
                      shard=Shard(*map(int, shard.split("/"))) if shard else None)

@@ -328,19 +328,25 @@ def _energy_panel(ax, data, sel, m, s, colors):
             if np.isfinite(pred).any():
                 ax.plot(R, pred, ls="none", marker="x", ms=3.5, mew=0.7, color="k", zorder=3)
                 used.add("prediction")
-    if data.state[s] == GROUND:
-        found = data.branch["status"][m] == BP_FOUND
+    # the stored branch points: the ground state's (/branch_points), an excited level's fold
+    # (/level_branch_points, absent from files before schema 5: then the scan's bracket below)
+    ground = data.state[s] == GROUND
+    arrays = data.branch if ground else (data.levels or None)
+    found = np.zeros(len(data.alpha), dtype=bool)
+    if arrays is not None:
+        found = np.array([int(arrays["status"][(m, a) if ground else (m, a, s)]) == BP_FOUND
+                          for a in range(len(data.alpha))], dtype=bool)
+    if found.any():
         for a in sel.alphas:
             if found[a]:
                 alpha = float(data.alpha[a])
-                Rc, Ec = float(data.branch["branch_radius"][m, a]), float(data.branch["energy"][m, a])
+                key = (m, a) if ground else (m, a, s)
+                Rc, Ec = float(arrays["branch_radius"][key]), float(arrays["energy"][key])
                 ax.axvline(Rc, ls=":", lw=1.0, color=colors[alpha], zorder=1)
                 ax.plot([Rc], [Ec], ls="none", marker="D", ms=5, mfc="none", mew=1.2,
                         color=colors[alpha], zorder=3)
                 deformed.append(np.array([Ec]))
                 used.add("branch_point")
-    else:
-        found = np.zeros(len(data.alpha), dtype=bool)
     for p in last_real_points(data):
         if p.model == m and p.state == s and p.bracketed and p.alpha in sel.alphas and not found[p.alpha]:
             ax.plot([p.radius], [p.energy], ls="none", marker="*", ms=10, mfc="none", mew=1.1,

@@ -2,7 +2,9 @@
 residuals and, on the alpha > 0 side, the ground state's branch points R_c (with E(R_c) and
 the Hagedorn temperature 1/R_c) checked against the scan: the last radius with a real
 solution must lie at or above R_c, and the next radius down, when it has no real solution,
-below."""
+below. The excited levels' branch points (their folds in R, /level_branch_points) are shown
+and checked the same way; a file written before they were stored (schema < 5) shows the
+bracket between two scan radii instead."""
 
 import math
 from dataclasses import dataclass
@@ -60,8 +62,8 @@ def last_real_points(data):
 
 @dataclass
 class BranchCheck:
-    """The stored branch point of one (model, alpha > 0) curve of the ground state, and
-    whether the scan agrees with it.
+    """The stored branch point of one (model, alpha > 0) curve of the ground state (or of
+    one (model, alpha, excited level): ``state``), and whether the scan agrees with it.
 
     ``consistent`` is True when every check that applies holds (the last real radius is
     >= R_c; the next radius down, if computed and without a real solution, is < R_c; both
@@ -75,6 +77,12 @@ class BranchCheck:
     radius_error: float = math.nan
     energy: float = math.nan
     message: str = ""
+    #: the state index of an excited level's branch point (None: the ground state's)
+    state: int | None = None
+    energy_error: float = math.nan
+    #: converged points of the level below its fold on another branch (R~ < R~_*), left out
+    #: of the last real radius
+    other_branch: int = 0
     last_real: float = math.nan
     below: float = math.nan
     below_status: str = ""
@@ -91,7 +99,6 @@ def branch_checks(data, state="ground"):
     of the ground state). The last real radius and the one below it are filled in whether
     or not a branch point is stored."""
     names = {code: name for code, (name, _) in BRANCH_MEANINGS.items()}
-    point_names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
     s = data.state.index(state) if state in data.state else None
     out = []
     for m in range(len(data.model)):
@@ -99,51 +106,113 @@ def branch_checks(data, state="ground"):
             code = int(data.branch["status"][m, a])
             if alpha <= 0 and code != BP_FOUND:  # found for alpha <= 0: a fold of pole factors
                 continue
-            c = BranchCheck(m, a, names.get(code, str(code)), message=str(data.branch["message"][m, a]))
+            c = _stored(data.branch, (m, a), names)
             out.append(c)
-            if code == BP_FOUND:
-                c.radius = float(data.branch["branch_radius"][m, a])
-                c.radius_error = float(data.branch["branch_radius_error"][m, a])
-                c.energy = float(data.branch["energy"][m, a])
             if s is None:
                 c.why = f"no {state} state in the scan"
                 continue
-            st = data["status"][m, a, :, s]
-            ok = np.flatnonzero(st == CONVERGED)
-            computed = np.flatnonzero(st != NOT_COMPUTED)
-            # the radius just below the smallest real one (the largest radius if none is real)
-            if ok.size:
-                c.last_real = float(data.radius[ok[0]])
-                j = int(ok[0]) - 1
-            else:
-                j = len(data.radius) - 1 if computed.size else -1
-            if j >= 0:
-                c.below = float(data.radius[j])
-                c.below_status = point_names.get(int(st[j]), str(int(st[j])))
-            if code != BP_FOUND:
-                c.why = "no branch point stored"
-                continue
-            tol = c.radius_error if math.isfinite(c.radius_error) else 0.0
-            checks, failures = [], []
-            if ok.size:
-                checks.append("last real R >= R_c")
-                if c.last_real < c.radius - tol:
-                    failures.append(f"last real R = {c.last_real:{RADIUS_FORMAT}} < R_c")
-            if j >= 0 and st[j] == NO_REAL:
-                checks.append("next R down < R_c")
-                if c.below >= c.radius + tol:
-                    failures.append(f"R = {c.below:{RADIUS_FORMAT}} has no real solution but is >= R_c")
-            if failures:
-                c.consistent, c.why = False, "; ".join(failures)
-            elif checks:
-                c.consistent, c.why = True, " and ".join(checks)
-                if j < 0:
-                    c.why += " (real down to the smallest radius)"
-            elif not computed.size:
-                c.why = "no point of the curve computed yet"
-            else:
-                c.why = f"next R down is {c.below_status}"
+            _against_scan(c, data, m, a, s)
     return out
+
+
+def _stored(arrays, key, names):
+    """The `BranchCheck` of the stored branch point ``key`` of ``arrays``."""
+    code = int(arrays["status"][key])
+    c = BranchCheck(key[0], key[1], names.get(code, str(code)), message=str(arrays["message"][key]),
+                    state=key[2] if len(key) == 3 else None)
+    if code == BP_FOUND:
+        c.radius = float(arrays["branch_radius"][key])
+        c.radius_error = float(arrays["branch_radius_error"][key])
+        c.energy = float(arrays["energy"][key])
+        c.energy_error = float(arrays["energy_error"][key])
+    return c
+
+
+def level_branch_checks(data):
+    """One `BranchCheck` per (model, alpha != 0, excited level) whose branch point is stored
+    (/level_branch_points), checked against the level's scan like the ground state's; [] for
+    a file without them (schema < 5)."""
+    if not data.has_level_branch_points or not data.levels:
+        return []
+    names = {code: name for code, (name, _) in BRANCH_MEANINGS.items()}
+    out = []
+    for m in range(len(data.model)):
+        for a, alpha in enumerate(data.alpha):
+            for s, state in enumerate(data.state):
+                if state == "ground" or int(data.levels["status"][m, a, s]) == NOT_COMPUTED:
+                    continue
+                c = _stored(data.levels, (m, a, s), names)
+                out.append(c)
+                _against_scan(c, data, m, a, s)
+    return out
+
+
+def _against_scan(c, data, m, a, s):
+    """Fill in the last real radius of curve (m, a, s), the one below it, and whether they
+    agree with the branch point of ``c``."""
+    point_names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
+    code = BP_FOUND if c.status == "found" else None
+    st = data["status"][m, a, :, s]
+    real = st == CONVERGED
+    if c.state is not None and code == BP_FOUND:
+        # an excited level's curve R(R~) may turn again below its fold (sinh-Gordon's levels
+        # at small R~, where E~ -> -pi c / (6 R~)): the scan can find real points there, on
+        # another branch; those with R~ < R~_* are not the branch that comes from large R
+        other = real & (_undeformed_radius(data, m, a, s) < float(data.levels["effective_radius"][m, a, s])
+                        * (1 - 1e-9))
+        c.other_branch = int(other.sum())
+        real = real & ~other
+        st = np.where(other, OTHER_BRANCH, st)
+        point_names = {**point_names, OTHER_BRANCH: "converged, another branch"}
+    ok = np.flatnonzero(real)
+    computed = np.flatnonzero(st != NOT_COMPUTED)
+    # the radius just below the smallest real one (the largest radius if none is real)
+    if ok.size:
+        c.last_real = float(data.radius[ok[0]])
+        j = int(ok[0]) - 1
+    else:
+        j = len(data.radius) - 1 if computed.size else -1
+    if j >= 0:
+        c.below = float(data.radius[j])
+        c.below_status = point_names.get(int(st[j]), str(int(st[j])))
+    if code != BP_FOUND:
+        c.why = "no branch point stored"
+        return
+    tol = c.radius_error if math.isfinite(c.radius_error) else 0.0
+    checks, failures = [], []
+    if ok.size:
+        checks.append("last real R >= R_c")
+        if c.last_real < c.radius - tol:
+            failures.append(f"last real R = {c.last_real:{RADIUS_FORMAT}} < R_c")
+    if j >= 0 and st[j] in (NO_REAL, OTHER_BRANCH):
+        checks.append("next R down < R_c")
+        if c.below >= c.radius + tol:
+            failures.append(f"R = {c.below:{RADIUS_FORMAT}} has no real solution but is >= R_c")
+    if failures:
+        c.consistent, c.why = False, "; ".join(failures)
+    elif checks:
+        c.consistent, c.why = True, " and ".join(checks)
+        if j < 0:
+            c.why += " (real down to the smallest radius)"
+    elif not computed.size:
+        c.why = "no point of the curve computed yet"
+    else:
+        c.why = f"next R down is {c.below_status}"
+
+
+#: a converged point of an excited level on another branch than the one from large R (reports only)
+OTHER_BRANCH = -100
+
+
+def _undeformed_radius(data, m, a, s):
+    """R~ = sqrt((R + alpha E)^2 - (alpha P)^2) of the points of curve (m, a, s) (NaN where no
+    energy): where on the level's undeformed curve each deformed point lies."""
+    alpha = float(data.alpha[a])
+    R = np.asarray(data.radius, dtype=float)
+    E = np.asarray(data["energy"][m, a, :, s], dtype=float)
+    P = np.nan_to_num(np.asarray(data["momentum"][m, a, :, s], dtype=float))
+    with np.errstate(invalid="ignore"):
+        return np.sqrt((R + alpha * E) ** 2 - (alpha * P) ** 2)
 
 
 def status_counts(codes, meanings):
@@ -282,18 +351,84 @@ def _format_report(data):
 
 
 def _excited_section(data):
-    """Excited levels that stop having a real solution (positive levels for alpha < 0)."""
+    """The excited levels' branch points (the fold in R at fixed alpha) as stored, with the
+    scan's bracket as a cross-check; for a file without them (schema < 5), or a run that did
+    not compute them, the levels that stop having a real solution between two radii."""
     if "ground" in data.state and len(data.state) == 1:
         return []
+    checks = level_branch_checks(data)
+    if not checks:
+        return _bracket_section(data)
+    lines = ["", "branch points of the excited levels: R_c where the level's branch from large R "
+                 "meets another real branch (dR/dR~ = 0 on its undeformed curve; P = 0: alpha "
+                 "E~'(R~) = 1), E(R_c) there; last real point per curve:"]
+    found = [c for c in checks if c.status == "found"]
+    rows = []
+    for c in found:
+        mark = {True: "yes", False: "NO", None: "-"}[c.consistent]
+        below = "-" if math.isnan(c.below) else f"{c.below:{RADIUS_FORMAT}} ({c.below_status})"
+        rows.append([data.model[c.model], number(data.alpha[c.alpha]), data.state[c.state],
+                     f"{c.radius:{VALUE_FORMAT}}", f"{c.radius_error:.2g}",
+                     f"{c.energy:{VALUE_FORMAT}}", f"{c.energy_error:.2g}",
+                     _g(c.last_real, RADIUS_FORMAT), below, mark])
+    if rows:
+        lines.append(_table(["model", "alpha", "state", "R_c", "+- error", "E(R_c)", "+- error",
+                             "last real R", "next R down", "consistent"], rows))
+    else:
+        lines.append("  (no excited level has a branch point in the run)")
+    other = [c for c in found if c.other_branch]
+    if other:
+        lines.append(f"  (last real R: on the level's branch from large R, R~ >= R~_*; "
+                     f"{sum(c.other_branch for c in other)} converged point(s) of "
+                     f"{len(other)} curve(s) lie on another real branch, R~ < R~_*, where the "
+                     f"level's undeformed curve R(R~) turns again)")
+    none = [c for c in checks if c.status == "none"]
+    if none:
+        lines.append(f"  status none (no fold on this side of alpha; the message in the file says "
+                     f"why) for {len(none)} (model, alpha, level) triple(s):")
+        for m in sorted({c.model for c in none}):
+            groups = {}
+            for c in none:
+                if c.model == m:
+                    groups.setdefault(c.alpha, []).append(data.state[c.state])
+            lines.append(f"    {data.model[m]}: " + "; ".join(
+                f"alpha = {number(data.alpha[a])}: {' '.join(states)}" for a, states in groups.items()))
+    for c in checks:
+        if c.status not in ("found", "none"):
+            lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}, state "
+                         f"{data.state[c.state]}: {c.status}: {c.message}")
+    checked = [c for c in found if c.consistent is not None]
+    failed = [c for c in checked if not c.consistent]
+    rule = "last real R >= R_c, and the next R down < R_c where it has no real solution"
+    if not checked:
+        lines.append(f"consistency with the scan ({rule}): nothing to check")
+    elif not failed:
+        lines.append(f"consistency with the scan ({rule}): holds for all {len(checked)} "
+                     f"checked curve(s)")
+    else:
+        lines.append(f"consistency with the scan ({rule}): FAILS for {len(failed)} of "
+                     f"{len(checked)} checked curve(s)")
+        for c in failed:
+            lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}, state "
+                         f"{data.state[c.state]}: {c.why}")
+    return lines
+
+
+def _bracket_section(data):
+    """Excited levels that stop having a real solution between two scan radii."""
     rows = [[data.model[p.model], number(data.alpha[p.alpha]), data.state[p.state],
              f"{p.radius:{RADIUS_FORMAT}}", f"{p.below:{RADIUS_FORMAT}}"]
             for p in last_real_points(data) if p.bracketed and data.state[p.state] != "ground"]
+    why = ("this file was written before the excited levels' branch points were stored (schema "
+           f"version {data.schema_version})" if not data.has_level_branch_points else
+           "not computed: scan.branch_points = false, another shard, or tba run has not finished")
+    note = (f"  (the exact R_c of the excited levels is not in the file: {why}; with its error: "
+            f"tba branch-point --model M --alpha A --state=S)")
     if not rows:
-        return []
+        return [] if data.has_level_branch_points else ["", note]
     return ["", "excited levels meeting their branch point between two radii (no real solution "
                 "below):", _table(["model", "alpha", "state", "last real R", "next R down"], rows),
-            "  (the exact R_c of such a level, with its error: tba branch-point --model M "
-            "--alpha A --state=S)"]
+            note]
 
 
 def _branch_section(data):
@@ -375,4 +510,5 @@ def _where(data, index):
 
 
 __all__ = ["format_report", "last_real_points", "LastRealPoint", "branch_checks", "BranchCheck",
+           "level_branch_checks",
            "status_counts"]

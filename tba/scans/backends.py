@@ -105,11 +105,27 @@ class ChunkDone:
 
 @dataclass
 class BranchDone:
-    """A branch point, as `solve_branch_point` returns it."""
+    """A branch point, as `solve_branch_point` returns it (``state``: the state index of an
+    excited level, None for the ground state's)."""
 
     model: int
     alpha: int
     values: dict
+    state: int | None = None
+
+    @property
+    def key(self):
+        return (self.model, self.alpha) if self.state is None else (self.model, self.alpha, self.state)
+
+
+def branch_done(key, values):
+    """`BranchDone` of the task ``key`` ((m, a) or (m, a, s), `RunSpec.branch_keys`)."""
+    return BranchDone(key[0], key[1], values, key[2] if len(key) == 3 else None)
+
+
+def solve_branch_task(run, key):
+    """`solve_branch_point` of a task key."""
+    return solve_branch_point(run, key[0], key[1], key[2] if len(key) == 3 else None)
 
 
 @dataclass
@@ -120,6 +136,12 @@ class TaskFailed:
     what: str
     error: str
     chunk: Chunk | None = None
+
+
+def branch_label(run, key):
+    """``branch point of lee-yang at alpha = -0.1`` (``, state 0`` for an excited level)."""
+    state = "" if len(key) == 2 else f", state {run.states[key[2]]}"
+    return f"branch point of {run.models[key[0]].label} at alpha = {run.alphas[key[1]]:.10g}{state}"
 
 
 def chunk_failed(run, chunk, exc):
@@ -152,9 +174,9 @@ class Backend:
         pass
 
 
-def _branch_points_here(run, pairs):
-    for m, a in pairs:
-        yield BranchDone(m, a, solve_branch_point(run, m, a))
+def _branch_points_here(run, keys):
+    for key in keys:
+        yield branch_done(key, solve_branch_task(run, key))
 
 
 def _here(run, chunk):
@@ -179,8 +201,9 @@ class InProcess(Backend):
 
 class ProcessPool(Backend):
     """A ``ProcessPoolExecutor`` of spawned processes on this machine (one task per chunk,
-    one BLAS thread per worker); the branch points are computed in the driver after the
-    chunks (a few undeformed solves each).
+    one BLAS thread per worker); the ground state's branch points are computed in the driver
+    after the chunks (a few undeformed solves each), the excited levels' folds (up to seconds
+    each) are tasks of the pool after the chunks, one per (model, alpha, state).
 
     The first chunk is still solved in the driver, before the pool starts: on a fresh
     install that compiles the numba kernels once and caches them on disk, instead of once
@@ -194,23 +217,32 @@ class ProcessPool(Backend):
         if chunks:
             yield _here(run, chunks[0])
         rest = chunks[1:]
-        if rest:
-            workers = min(self.workers, len(rest))
+        levels = [k for k in branch_pairs if len(k) == 3]
+        branch_pairs = [k for k in branch_pairs if len(k) == 2]
+        if rest or levels:
+            workers = min(self.workers, len(rest) + len(levels))
             executor = ProcessPoolExecutor(max_workers=workers,
                                            mp_context=multiprocessing.get_context("spawn"),
                                            initializer=_worker_init, initargs=(os.getpid(),))
             try:
                 with _single_threaded_children(), _children_ignore_ctrl_c():  # workers start on submit
                     futures = {executor.submit(solve_chunk, run, chunk): chunk for chunk in rest}
+                    futures.update({executor.submit(solve_branch_task, run, key): key
+                                    for key in levels})
                 pending = set(futures)
                 while pending:
                     finished, pending = wait(pending, return_when=FIRST_COMPLETED)
                     for future in finished:
                         exc = future.exception()
+                        what = futures[future]
                         # a worker that died (killed, out of memory) breaks the pool: its
                         # chunks and those still queued come back failed, the rest is saved
-                        yield (ChunkDone(*future.result()) if exc is None else
-                               chunk_failed(run, futures[future], exc))
+                        if isinstance(what, tuple):
+                            yield (branch_done(what, future.result()) if exc is None else
+                                   TaskFailed(f"{branch_label(run, what)}", one_line(exc)))
+                        else:
+                            yield (ChunkDone(*future.result()) if exc is None else
+                                   chunk_failed(run, what, exc))
             except BaseException:  # Ctrl-C, an error, or the generator closed early
                 _stop(executor)
                 raise

@@ -55,7 +55,8 @@ import os
 import time
 import uuid
 
-from tba.scans.backends import Backend, BranchDone, ChunkDone, TaskFailed, _children_ignore_ctrl_c
+from tba.scans.backends import (Backend, ChunkDone, TaskFailed, _children_ignore_ctrl_c, branch_done,
+                               branch_label)
 from tba.scans.points import describe_chunk, one_line, solve_branch_point, solve_chunk
 
 #: pip extra that brings dask.distributed
@@ -194,9 +195,9 @@ def _chunk_task(run, chunk, version):
     return solve_chunk(run, chunk)
 
 
-def _branch_task(run, model, alpha, version):
+def _branch_task(run, model, alpha, version, state=None):
     _check_version(version)
-    return solve_branch_point(run, model, alpha)
+    return solve_branch_point(run, model, alpha, state)
 
 
 # -- the backend ----------------------------------------------------------------------------------
@@ -204,9 +205,7 @@ def _branch_task(run, model, alpha, version):
 def _failed(run, what, error):
     """`TaskFailed` for a chunk or a branch-point pair ``what``."""
     if isinstance(what, tuple):
-        m, a = what
-        return TaskFailed(f"branch point of {run.models[m].label} at alpha = {run.alphas[a]:.10g}",
-                          error)
+        return TaskFailed(branch_label(run, what), error)
     return TaskFailed(describe_chunk(run, what), error, chunk=what)
 
 
@@ -290,10 +289,12 @@ class DaskBackend(Backend):
                 future = client.submit(_chunk_task, run_future, chunk, version, pure=False,
                                        key=f"tba-chunk-{chunk.index}-{token}")
                 pending[future] = chunk
-            for m, a in branch_pairs:
-                future = client.submit(_branch_task, run_future, m, a, version, pure=False,
-                                       priority=-1, key=f"tba-branch-{m}-{a}-{token}")
-                pending[future] = (m, a)
+            for key in branch_pairs:  # (m, a), or (m, a, s) of an excited level
+                state = key[2] if len(key) == 3 else None
+                name = "-".join(str(i) for i in key)
+                future = client.submit(_branch_task, run_future, key[0], key[1], version, state,
+                                       pure=False, priority=-1, key=f"tba-branch-{name}-{token}")
+                pending[future] = key
             yield from self._results(run, pending, workers)
         finally:
             left = list(pending) + [run_future]
@@ -348,7 +349,7 @@ class DaskBackend(Backend):
                 return _failed(run, what, one_line(err))
             future.release()
             if isinstance(what, tuple):
-                return BranchDone(*what, result)
+                return branch_done(what, result)
             return ChunkDone(*result)
         try:
             exc = future.exception(timeout=POLL)

@@ -46,12 +46,16 @@ FLOW_MEANINGS = {
 }
 BRANCH_MEANINGS = {
     NOT_COMPUTED: ("not-computed", "not computed yet (or scan.branch_points = false)"),
-    BP_FOUND: ("found", "R_c from E_0'(R~) = 1/alpha (with pole factors: the fold of the full "
-                        "equations); branch_radius, energy, errors valid"),
-    BP_NONE: ("none", "alpha <= 0: no branch point on this side (with pole factors: a real "
-                      "ground state at R = 1e-3)"),
+    BP_FOUND: ("found", "R_c located (ground state: E_0'(R~) = 1/alpha, with pole factors the "
+                        "fold of the full equations; an excited level: dR/dR~ = 0); "
+                        "branch_radius, energy, errors valid"),
+    BP_NONE: ("none", "no branch point on this side of alpha (ground state: alpha <= 0, with "
+                      "pole factors a real ground state at R = 1e-3; an excited level: no fold "
+                      "in R, the message says why)"),
     BP_NOT_APPLICABLE: ("not-applicable", "higher-spin CDD factors in the run (R_c from the "
-                                          "undeformed curve holds for TTbar alone)"),
+                                          "undeformed curve holds for TTbar alone), an "
+                                          "excited level with pole factors, or a level the "
+                                          "model lacks"),
     BP_FAILED: ("failed", "the computation raised an error (see message)"),
 }
 
@@ -105,3 +109,16 @@ BRANCH_VARIABLES = {
     "message": ("str", "", {"long_name": f"message (UTF-8, at most {MESSAGE_BYTES} bytes)"}),
 }
 BRANCH_DIMS = ("model", "alpha")
+#: /level_branch_points (schema 5): the same variables per excited level, the fold in R of the
+#: level at fixed alpha (`tba.physics.flow.excited_branch_point`); the "ground" column is left
+#: not computed (the ground state's branch point is /branch_points)
+LEVEL_BRANCH_DIMS = ("model", "alpha", "state")
+#: the attributes of /level_branch_points that differ from those of /branch_points
+LEVEL_BRANCH_ATTRS = {
+    "branch_radius": {"long_name": "branch radius R_c of the excited level: its fold in R at "
+                                   "fixed alpha", "units": "1/m_1"},
+    "energy": {"long_name": "energy of the level at its branch point E(R_c, alpha) = "
+                            "E~(R~_*, 0), bulk term excluded", "units": "m_1"},
+    "effective_radius": {"long_name": "R~_* where dR/dR~ = 0 on the level's undeformed curve "
+                                      "(P = 0: alpha E~'(R~_*) = 1)", "units": "1/m_1"},
+}

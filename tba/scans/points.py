@@ -31,7 +31,11 @@ backends compute them in the driver after the chunks; a dask cluster gets them a
 at a lower priority than the chunks. alpha <= 0 has none; with higher-spin factors they are not
 applicable; an exception is stored as "failed" with its message and never loses the scan.
 Each is a function of (model, alpha, tol) alone, computed from scratch, so resumed runs
-agree bit for bit; stored ones are never computed again.
+agree bit for bit; stored ones are never computed again. The same for every excited level
+on the state axis (``solve_branch_point(run, m, a, s)``: its fold in R,
+`tba.physics.flow.excited_branch_point`, up to seconds each): one task per (model, alpha,
+state), in the local pool or on the cluster after the chunks; "none" where the level has no
+fold on that side of alpha, "not-applicable" for a level the model lacks.
 
 `tba.store.driver.run_scan` is the driver: the only writer of the store. Where the chunks are computed is a
 `Backend`: `InProcess` (one worker), `ProcessPool` (local processes, one task per chunk) or
@@ -47,7 +51,7 @@ import time
 import numpy as np
 
 from tba.models.cdd import NO_DEFORMATION
-from tba.physics.flow import branch_point
+from tba.physics.flow import branch_point, excited_branch_point
 from tba.solvers.levels import GROUND, parse_level, solve_level
 from tba.solvers.result import STATUS_CODES, Status
 from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
@@ -183,11 +187,20 @@ def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, 
     return predicted, abs(a_eff) / r_eff * res0.error + abs(dpred) * res.error
 
 
-def solve_branch_point(run, model_index, alpha_index):
-    """The ground state's branch point of one (model, alpha) of the run, as the values of
-    `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left out). Never raises
-    an Exception: a failure comes back with status "failed" and the error as message."""
+def solve_branch_point(run, model_index, alpha_index, state_index=None):
+    """The ground state's branch point of one (model, alpha) of the run (with
+    ``state_index``: the fold of that excited level, `tba.physics.flow.excited_branch_point`),
+    as the values of `tba.store.hdf5.BRANCH_VARIABLES` (scalars; the missing ones are left
+    out). Never raises an Exception: a failure comes back with status "failed" and the error
+    as message."""
     alpha = run.alphas[alpha_index]
+    level = None if state_index is None else run.states[state_index]
+    if level == "ground":
+        level = None
+    if level is not None:
+        why = run.why_unavailable(model_index, state_index)
+        if why is not None:
+            return {"status": BP_NOT_APPLICABLE, "message": f"the model lacks this level: {why}"}
     if not run.ttbar_only:
         spins = ", ".join(f"{s}" for s, _ in run.higher_spin)
         return {"status": BP_NOT_APPLICABLE,
@@ -196,15 +209,21 @@ def solve_branch_point(run, model_index, alpha_index):
     from threadpoolctl import threadpool_limits
 
     if run.model_has_poles(model_index):
+        if level is not None:  # the level's fold on its undeformed curve holds for TTbar alone
+            return {"status": BP_NOT_APPLICABLE,
+                    "message": "CDD pole/resonance factors: an excited level's fold is located "
+                               "on its undeformed curve, which holds for TTbar alone"}
         return _kernel_fold(run, model_index, alpha)
     try:
         with threadpool_limits(limits=1, user_api="blas"):  # the same bits on every executor
-            bp = branch_point(_model(run.models[model_index]), alpha, tol=run.tol)
+            model = _model(run.models[model_index])
+            bp = (branch_point(model, alpha, tol=run.tol) if level is None else
+                  excited_branch_point(model, level, alpha, tol=run.tol))
     except Exception as exc:  # noqa: BLE001 (stored, never lost: the scan's points are kept)
         if caused_by_interrupt(exc):
             raise KeyboardInterrupt from None
         return {"status": BP_FAILED, "message": one_line(exc)}
-    code = BP_CODES.get(bp.status)
+    code = {**BP_CODES, "failed": BP_FAILED}.get(str(bp.status))
     if code is None:
         return {"status": BP_FAILED, "message": f"unexpected status {bp.status!r}: {bp.message}"}
     values = {"status": code, "message": bp.message}

@@ -33,7 +33,8 @@ solver tolerance, the output file and how the scan is cut into chunks::
     chunk_size = 8                      # consecutive radii solved as one warm-started chain
     flow_check = true                   # undeformed solve at R + alpha E for every point
     sweep = "descending"                # order of the radii inside a chunk
-    branch_points = true                # R_c(alpha) of the ground state, once per model and alpha
+    branch_points = true                # R_c(alpha) of the ground state, once per model and
+                                        # alpha, and each excited level's fold in R
 
 A state that a model does not have (excited states of E8, or a two-particle level of
 Lee-Yang, whose only excited level here is its one-particle state "0") is not computed for
@@ -359,6 +360,15 @@ class RunSpec:
                         out.append(Chunk(len(out), m, a, s, start, min(start + self.chunk_size, n)))
         return out
 
+    def branch_keys(self):
+        """The branch-point tasks of the run (with ``branch_points = true``): (model, alpha)
+        of the ground state, then (model, alpha, state) of every excited level on the state
+        axis (one task each: an excited level's fold takes up to seconds)."""
+        M, A, S = len(self.models), len(self.alphas), len(self.states)
+        excited = [s for s in range(S) if self.states[s] != "ground"]
+        return ([(m, a) for m in range(M) for a in range(A)]
+                + [(m, a, s) for m in range(M) for a in range(A) for s in excited])
+
     def with_output(self, output):
         return RunSpec(**{**self.__dict__, "output": None if output is None else str(output)})
 
@@ -368,7 +378,8 @@ class Shard:
     """Shard ``index`` of ``count`` (1 <= index <= count) of a run, for job arrays without a
     scheduler: it owns every ``count``-th chunk, starting with chunk ``index - 1``, and the
     (model, alpha) branch points whose row-major number ``model * len(alphas) + alpha`` is
-    ``index - 1`` modulo ``count``.
+    ``index - 1`` modulo ``count``, and the excited levels' (model, alpha, state) ones whose
+    row-major number ``(model * len(alphas) + alpha) * len(states) + state`` is.
 
     Round robin rather than contiguous blocks: chunks of one curve lie next to each other in
     the chunk table, and neighbouring curves cost about the same, so every shard gets a
@@ -402,6 +413,17 @@ class Shard:
     def branch_pairs(self, run):
         return [(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))
                 if self.owns_pair(run, m, a)]
+
+    def owns_branch(self, run, key):
+        """Whether this shard computes the branch-point task ``key`` (`RunSpec.branch_keys`)."""
+        if len(key) == 2:
+            return self.owns_pair(run, *key)
+        m, a, s = key
+        return ((m * len(run.alphas) + a) * len(run.states) + s) % self.count == self.index - 1
+
+    def branch_keys(self, run):
+        """This shard's branch-point tasks, in the order of `RunSpec.branch_keys`."""
+        return [k for k in run.branch_keys() if self.owns_branch(run, k)]
 
 
 def parse_shard(text):

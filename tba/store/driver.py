@@ -18,7 +18,7 @@ from tba.scans.interrupts import installed, signal_name, signal_number
 from tba.scans.progress import DEFAULT_EVERY, ProgressLines, lines_wanted
 from tba.scans.runfile import Shard
 from tba.store.errors import StoreError, StoreWriteError
-from tba.store.hdf5 import check_store
+from tba.store.hdf5 import check_store, describe_branch
 from tba.store.lock import OutputLock
 from tba.store.writer import open_store, prepare_store, unwritable_message
 
@@ -161,10 +161,9 @@ def _pending(run, shard, snap):
     mine = run.chunks() if shard is None else shard.chunks(run)
     pending = [c for c in mine if not snap.done[c.index]]
     branch_pending = []
-    if run.branch_points:
-        pairs = ([(m, a) for m in range(len(run.models)) for a in range(len(run.alphas))]
-                 if shard is None else shard.branch_pairs(run))
-        branch_pending = [(m, a) for m, a in pairs if snap.branch["status"][m, a] == NOT_COMPUTED]
+    if run.branch_points:  # (m, a) of the ground state, (m, a, s) of the excited levels
+        keys = run.branch_keys() if shard is None else shard.branch_keys(run)
+        branch_pending = [k for k in keys if snap.branch_arrays(k)["status"][k] == NOT_COMPUTED]
     return mine, pending, branch_pending
 
 
@@ -193,8 +192,8 @@ def _scan(run, path, workers, backend, shard, force, progress, log, run_file):
         for note in prepared.notes:
             print(f"tba run: note: {note}", file=log)
         mine, pending, branch_pending = _pending(run, shard, prepared.snapshot)
-        if backend is None:
-            backend = local_backend(workers, len(pending))
+        if backend is None:  # excited levels' folds are pool tasks too (tba.scans.backends)
+            backend = local_backend(workers, len(pending) + sum(len(k) == 3 for k in branch_pending))
         points = sum(c.size for c in mine)
         summary = ScanSummary(str(path), len(mine), len(mine) - len(pending), 0, points, 0.0,
                               backend.workers, len(branch_pending), shard=shard)
@@ -261,13 +260,12 @@ def _drive(run, path, prepared, backend, pending, branch_pending, summary, progr
                         if lines is not None:
                             lines.update(1, item.chunk.size)
                     elif isinstance(item, BranchDone):
-                        m, a, values = item.model, item.alpha, item.values
-                        store.write_branch_point(m, a, values)
+                        values = item.values
+                        store.write_branch_point(item.model, item.alpha, values, state=item.state)
                         summary.branch_points_computed += 1
                         if values["status"] == BP_FAILED:
-                            print(f"tba run: branch point of {run.models[m].label} at alpha = "
-                                  f"{run.alphas[a]:.10g} failed (stored as failed): "
-                                  f"{values['message']}", file=log, flush=True)
+                            print(f"tba run: {describe_branch(run, item.key)[4:]} failed (stored "
+                                  f"as failed): {values['message']}", file=log, flush=True)
                     else:
                         summary.failed.append(item)
                         if len(summary.failed) <= _FAILURES_SHOWN:

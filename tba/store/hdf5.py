@@ -1,6 +1,6 @@
 """The HDF5 store of a scan: layout, creation, validated reading.
 
-Layout (schema version 4; readable with plain h5py, and with xarray through
+Layout (schema version 5; readable with plain h5py, and with xarray through
 ``xarray.open_dataset(path, engine="h5netcdf")`` or ``engine="netcdf4"``)::
 
     /                          root attributes: schema, schema_version, package,
@@ -37,6 +37,15 @@ Layout (schema version 4; readable with plain h5py, and with xarray through
                                found, 1 none (alpha <= 0), 2 not-applicable (higher-spin
                                factors in the run), 3 failed (message: the exception),
                                -1 not computed
+    /level_branch_points/{branch_radius, ..., status, message, checksum}
+                               (model, alpha, state): the same variables for each excited
+                               level, its fold in R at fixed alpha
+                               (`tba.physics.flow.excited_branch_point` at the run's tol): the
+                               level's R_c(alpha), E(R_c), R~_* and errors; status 0 found, 1
+                               none (no fold on this side of alpha, or alpha = 0), 2
+                               not-applicable (higher-spin or pole factors, or a level the
+                               model lacks), 3 failed, -1 not computed (always for "ground": its
+                               branch point is /branch_points)
 
 ``message`` is a fixed-length UTF-8 string (256 bytes): h5py's ``.asstr()`` and xarray's
 netcdf4 engine give str, the h5netcdf engine gives bytes (``.astype(str)``).
@@ -71,9 +80,10 @@ Schema history: 1 reserved ``/branch_points`` (empty); 2 fills it; 3 adds ``/mom
 excited states on the state axis and the status "not-available" (3) for the points of a state
 that a model lacks (set when the file is created); 4 adds the checksums, the recovery map,
 the history as fixed slots (instead of a ``/progress`` attribute ``history`` that grew with
-every invocation) and HDF5's own metadata checksums (file format of HDF5 1.10). Files of
-schemas 1 to 3 are still read (branch points of schema 1 count as not computed, momentum is
-NaN; no checksums to verify) but never resumed.
+every invocation) and HDF5's own metadata checksums (file format of HDF5 1.10); 5 adds
+``/level_branch_points``. Files of schemas 1 to 4 are still read (branch points of schema 1
+and excited-level branch points before schema 5 count as not computed, momentum before 3 is
+NaN; no checksums to verify before 4) but never resumed.
 
 How a store is written (`tba.store.writer`): the file is built complete in memory, every point
 "not computed", and written under a temporary name, then renamed; the free space is checked
@@ -102,7 +112,8 @@ import numpy as np
 from tba.scans.codes import (  # noqa: F401 (re-exported: the layout of a store)
     NOT_COMPUTED, NOT_AVAILABLE, FLOW_OFF, FLOW_NOT_APPLICABLE, FLOW_NO_ENERGY, BP_FOUND,
     BP_NONE, BP_NOT_APPLICABLE, BP_FAILED, BP_CODES, STATUS_MEANINGS, FLOW_MEANINGS,
-    BRANCH_MEANINGS, MESSAGE_BYTES, POINT_VARIABLES, DIMS, BRANCH_VARIABLES, BRANCH_DIMS)
+    BRANCH_MEANINGS, MESSAGE_BYTES, POINT_VARIABLES, DIMS, BRANCH_VARIABLES, BRANCH_DIMS,
+    LEVEL_BRANCH_DIMS, LEVEL_BRANCH_ATTRS)
 from tba.scans.points import describe_chunk
 from tba.scans.runfile import RunFileError, RunSpec, Shard, differing_keys, resolve_run
 from tba.store.errors import DamagedStore, StoreError, StoreWriteError  # noqa: F401 (re-exported)
@@ -114,9 +125,11 @@ from tba.store.lock import holder, partial_path
 SCHEMA = "tba-flow scan"
 #: schema of a shard file (one shard of a run, `tba.scans.runfile.Shard`)
 SHARD_SCHEMA = "tba-flow scan shard"
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 #: schema versions `read_store` understands (only SCHEMA_VERSION is ever resumed)
-READABLE_VERSIONS = (1, 2, 3, 4)
+READABLE_VERSIONS = (1, 2, 3, 4, 5)
+#: the group of the excited levels' branch points (schema 5)
+LEVEL_GROUP = "level_branch_points"
 #: HDF5 file format of the stores: that of HDF5 1.10, whose metadata carries checksums
 LIBVER = ("v110", "v110")
 #: invocations kept in /progress/history, and the bytes of one entry
@@ -149,26 +162,30 @@ times (R + alpha E) / R~, plus for P != 0 |d prediction / dE| times the error of
 alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
 /branch_points: R_c(alpha) = R~ - alpha E_0(R~, 0) where E_0'(R~, 0) = 1/alpha (TTbar only;
 E_0 the ground state); energy there E(R_c) = E_0(R_c, alpha) = E_0(R~, 0) (read as
-branch_energy); Hagedorn temperature T_H = 1/R_c. Names: docs/glossary.md.
+branch_energy); Hagedorn temperature T_H = 1/R_c.
+/level_branch_points (model, alpha, state): an excited level's fold in R at fixed alpha, where
+it meets another real branch and both turn complex: dR/dR~ = 0 along R^2 = (R~ - alpha E~)^2 -
+(alpha P~)^2 on its undeformed curve E~(R~) (for P = 0: alpha E~'(R~_*) = 1); energy is E(R_c)
+of the level. Names: docs/glossary.md.
 error estimates |energy - exact| and is meant to bound it; tol is relative."""
 
 UNITS = ("radius, flow_radius, branch_points/{branch_radius, branch_radius_error, "
          "effective_radius}: 1/m_1; "
          "energy, error, flow_prediction, flow_error, flow_residual, "
-         "branch_points/{energy, energy_error}: m_1; alpha: 1/m_1^2; m_1 = lightest mass = 1")
+         "branch_points/{energy, energy_error}: m_1 (the same in /level_branch_points); alpha: 1/m_1^2; m_1 = lightest mass = 1")
 
 LAYOUT = ("data sets (model, alpha, radius, state): energy error momentum status iterations message "
           "flow_radius flow_prediction flow_error flow_residual flow_status; /progress: chunk "
           "table, done mask, checksums, history, recovery map; /branch_points (model, alpha): "
           "branch_radius branch_radius_error energy energy_error effective_radius status message "
-          "checksum")
+          "checksum; /level_branch_points (model, alpha, state): the same for excited levels")
 
 SHARD_LAYOUT = ("shard of a run: /shard_points (point): energy error momentum status iterations "
                 "message flow_radius flow_prediction flow_error flow_residual flow_status and "
                 "model_index alpha_index radius_index state_index (the point's place in the "
                 "full grid); /progress: chunk table, done mask, owned mask, checksums, history, "
-                "recovery map; /branch_points (model, alpha) as in a full store, this shard's "
-                "pairs only")
+                "recovery map; /branch_points (model, alpha) and /level_branch_points (model, "
+                "alpha, state) as in a full store, this shard's ones only")
 
 #: messages are fixed-length UTF-8 strings (`MESSAGE_BYTES`): writing a chunk only overwrites
 #: bytes at fixed places in the file and never changes its metadata (see `tba.store.writer`)
@@ -273,9 +290,27 @@ def chunk_values(points, run, chunk, offsets=None):
     return {name: points[name][sl] for name in POINT_VARIABLES}
 
 
-def branch_values(branch, m, a):
-    """{name: 0-d array} of the branch point (m, a) (0-d arrays keep the stored types)."""
-    return {name: branch[name][m, a, ...] for name in BRANCH_VARIABLES}
+def branch_values(branch, *key):
+    """{name: 0-d array} of the branch point ``key`` = (m, a), or (m, a, s) in the arrays of
+    the excited levels (0-d arrays keep the stored types)."""
+    return {name: branch[name][(*key, ...)] for name in BRANCH_VARIABLES}
+
+
+def key_checksum(key, values):
+    """`branch_checksum` of a ground-state (m, a) or excited-level (m, a, s) branch point."""
+    return branch_checksum(key[0], key[1], values, None if len(key) == 2 else key[2])
+
+
+def key_group(key):
+    """The HDF5 group of a branch-point key: /branch_points (m, a), /level_branch_points (m, a, s)."""
+    return "branch_points" if len(key) == 2 else LEVEL_GROUP
+
+
+def describe_branch(run, key):
+    """``the branch point of lee-yang at alpha = -0.1`` (``, state 0`` for a level)."""
+    state = "" if len(key) == 2 else f", state {run.states[key[2]]}"
+    return (f"the branch point of {run.models[key[0]].label} at alpha = "
+            f"{run.alphas[key[1]]:.10g}{state}")
 
 
 def stored_scalar(kind, value):
@@ -367,15 +402,18 @@ def _write_layout(f, run, run_file, models_info, shard=None):
                   "derivative); R_c = R~ - alpha E_0(R~); at the run's tol",
         "legend": _legend(BRANCH_MEANINGS),
     })
-    shape = (len(run.models), len(run.alphas))
-    for name, (kind, fill, attrs) in {**BRANCH_VARIABLES, "checksum": (
-            "u8", 0, {"long_name": "checksum of the branch point (tba.store.integrity)"})}.items():
-        ds = bp.create_dataset(name, data=full(shape, kind, fill))
-        ds.attrs.update(attrs)
-        if name == "status":
-            ds.attrs.update(_flags(BRANCH_MEANINGS))
-        for i, dim in enumerate(BRANCH_DIMS):
-            ds.dims[i].attach_scale(scales[dim])
+    _write_branch_group(bp, (len(run.models), len(run.alphas)), BRANCH_DIMS, scales)
+    lp = f.create_group(LEVEL_GROUP)
+    lp.attrs.update({
+        "long_name": "branch points R_c(alpha) of the excited levels: the fold in R at fixed "
+                     "alpha (tba.physics.flow.excited_branch_point)",
+        "method": "the first zero of dR/dR~ along the characteristic R(R~) on the level's "
+                  "undeformed curve, walking down from R~ = 20 (Brent); errors from a second "
+                  "curve at a coarser tolerance; at the run's tol. The ground column is not "
+                  "computed: see /branch_points",
+        "legend": _legend(BRANCH_MEANINGS),
+    })
+    _write_branch_group(lp, level_shape(run), LEVEL_BRANCH_DIMS, scales, LEVEL_BRANCH_ATTRS)
     chunks = run.chunks()
     g.attrs.update({"chunk_size": run.chunk_size, "n_chunks": len(chunks),
                     "long_name": "scan bookkeeping: chunk table, resume mask, checksums, history"})
@@ -413,6 +451,21 @@ def _write_layout(f, run, run_file, models_info, shard=None):
         f"the last {HISTORY_SLOTS} invocations of tba run (and merges): one JSON entry per slot, "
         f"invocation k in slot (k - 1) mod {HISTORY_SLOTS}, followed by a newline and its checksum")
     history.dims[0].attach_scale(slot)
+
+
+def level_shape(run):
+    return (len(run.models), len(run.alphas), len(run.states))
+
+
+def _write_branch_group(group, shape, dims, scales, overrides=None):
+    for name, (kind, fill, attrs) in {**BRANCH_VARIABLES, "checksum": (
+            "u8", 0, {"long_name": "checksum of the branch point (tba.store.integrity)"})}.items():
+        ds = group.create_dataset(name, data=full(shape, kind, fill))
+        ds.attrs.update((overrides or {}).get(name, attrs))
+        if name == "status":
+            ds.attrs.update(_flags(BRANCH_MEANINGS))
+        for i, dim in enumerate(dims):
+            ds.dims[i].attach_scale(scales[dim])
 
 
 def mark_unavailable(arrays, run):
@@ -472,7 +525,8 @@ def _write_shard_points(f, run, shard):
 class Contents:
     """What a new store holds beyond "not computed" (a merge, a recovery): point arrays in the
     stored types (full or shard layout), the done mask, invocation and seconds per chunk,
-    branch-point arrays and history entries. Checksums are computed when written."""
+    branch-point arrays (ground state; excited levels) and history entries. Checksums are
+    computed when written."""
 
     points: dict
     done: np.ndarray
@@ -480,6 +534,10 @@ class Contents:
     seconds: np.ndarray
     branch: dict
     history: list
+    levels: dict = None
+
+    def branch_arrays(self, key):
+        return self.branch if len(key) == 2 else self.levels
 
 
 def empty_contents(run, shard=None):
@@ -493,7 +551,9 @@ def empty_contents(run, shard=None):
     bshape = (len(run.models), len(run.alphas))
     return Contents(points=points, done=np.zeros(n, dtype=bool), invocation=np.zeros(n, dtype="<i4"),
                     seconds=np.full(n, np.nan), history=[],
-                    branch={name: full(bshape, kind, fill) for name, (kind, fill, _) in BRANCH_VARIABLES.items()})
+                    branch={name: full(bshape, kind, fill) for name, (kind, fill, _) in BRANCH_VARIABLES.items()},
+                    levels={name: full(level_shape(run), kind, fill)
+                            for name, (kind, fill, _) in BRANCH_VARIABLES.items()})
 
 
 def _write_contents(f, run, shard, contents):
@@ -511,14 +571,16 @@ def _write_contents(f, run, shard, contents):
     g["invocation"][...] = contents.invocation
     g["seconds"][...] = contents.seconds
     g["checksum"][...] = checksum
-    bp = f["branch_points"]
-    status = contents.branch["status"]
-    bsum = np.zeros(status.shape, dtype="<u8")
-    for m, a in zip(*np.nonzero(status != NOT_COMPUTED)):
-        bsum[m, a] = branch_checksum(m, a, branch_values(contents.branch, m, a))
-    for name in BRANCH_VARIABLES:
-        bp[name][...] = contents.branch[name]
-    bp["checksum"][...] = bsum
+    for group, arrays in (("branch_points", contents.branch), (LEVEL_GROUP, contents.levels)):
+        if arrays is None:
+            continue
+        status = arrays["status"]
+        bsum = np.zeros(status.shape, dtype="<u8")
+        for key in zip(*np.nonzero(status != NOT_COMPUTED)):
+            bsum[key] = key_checksum(key, branch_values(arrays, *key))
+        for name in BRANCH_VARIABLES:
+            f[group][name][...] = arrays[name]
+        f[group]["checksum"][...] = bsum
     write_history(f, contents.history)
 
 
@@ -648,7 +710,9 @@ class Snapshot:
 
     ``points`` are full (model, alpha, radius, state) arrays, or /shard_points arrays for a
     shard (``shard``); ``done`` is the mask of chunks whose values are stored and verified;
-    ``bad_chunks`` / ``bad_branch`` list what is marked stored but fails its checksum;
+    ``bad_chunks`` / ``bad_branch`` list what is marked stored but fails its checksum
+    (``bad_branch``: keys (m, a) of /branch_points, (m, a, s) of /level_branch_points);
+    ``levels`` holds the /level_branch_points arrays (model, alpha, state);
     ``offsets`` maps data-set names to (byte offset, dtype, shape) for in-place writes
     (schema 4 only)."""
 
@@ -666,6 +730,10 @@ class Snapshot:
     bad_chunks: list = field(default_factory=list)
     bad_branch: list = field(default_factory=list)
     offsets: dict = field(default_factory=dict)
+    levels: dict = field(default_factory=dict)
+
+    def branch_arrays(self, key):
+        return self.branch if len(key) == 2 else self.levels
 
 
 def _hdf5_signature(path):
@@ -874,14 +942,24 @@ def _load(path, f, verify):
         branch[name] = ds[...].astype(STORED[kind], copy=False)
     bsum = (_require(path, f, "branch_points/checksum", bshape, "u", STORED["u8"])[...]
             if version >= 4 else None)
+    lshape = level_shape(run)
+    levels, lsum = {}, None
+    for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+        if version < 5:  # before schema 5: no excited-level branch points
+            levels[name] = full(lshape, kind, fill)
+            continue
+        ds = _require(path, f, f"{LEVEL_GROUP}/{name}", lshape, _kinds(kind), STORED[kind])
+        levels[name] = ds[...].astype(STORED[kind], copy=False)
+    if version >= 5:
+        lsum = _require(path, f, f"{LEVEL_GROUP}/checksum", lshape, "u", STORED["u8"])[...]
     history, invocations = _history(path, f, version)
     snap = Snapshot(path=path, version=version, attrs=attrs, run=run, shard=shard, points=points,
                     progress=progress, branch=branch, history=history, invocations=invocations,
-                    done=done_flags.astype(bool))
+                    done=done_flags.astype(bool), levels=levels)
     if version >= 4:
         snap.offsets = _offsets(path, f)
         if verify:
-            _verify(snap, mine, offsets, bsum)
+            _verify(snap, mine, offsets, bsum, lsum)
     if verify:
         _check_values(snap, mine, offsets)
     _consistent(snap, offsets)
@@ -968,10 +1046,18 @@ def _offsets(path, f):
     return out
 
 
-def _verify(snap, mine, offsets, bsum):
+def _verify(snap, mine, offsets, bsum, lsum=None):
     """Checksums of the chunks and branch points marked stored: the failing ones into
     ``bad_chunks`` / ``bad_branch`` (and out of the done mask)."""
     run, progress = snap.run, snap.progress
+    for c in mine:
+        # the done flag is a chunk's last write: a chunk not marked done whose checksum (its
+        # second-to-last write) verifies its values is complete (a kill between the two, or a
+        # flipped bit in the flag, loses nothing); before the checksum it is 0 or the old one
+        if not snap.done[c.index] and int(progress["checksum"][c.index]) != 0:
+            found = chunk_checksum(c.index, chunk_values(snap.points, run, c, offsets),
+                                   progress["invocation"][c.index], progress["seconds"][c.index])
+            snap.done[c.index] = found == int(progress["checksum"][c.index])
     for c in mine:
         if snap.done[c.index]:
             found = chunk_checksum(c.index, chunk_values(snap.points, run, c, offsets),
@@ -979,10 +1065,12 @@ def _verify(snap, mine, offsets, bsum):
             if found != int(progress["checksum"][c.index]):
                 snap.bad_chunks.append(c.index)
     snap.done[snap.bad_chunks] = False
-    status = snap.branch["status"]
-    for m, a in zip(*np.nonzero(status != NOT_COMPUTED)):
-        if branch_checksum(m, a, branch_values(snap.branch, m, a)) != int(bsum[m, a]):
-            snap.bad_branch.append((int(m), int(a)))
+    for arrays, sums in ((snap.branch, bsum), (snap.levels, lsum)):
+        if sums is None:
+            continue
+        for key in zip(*np.nonzero(arrays["status"] != NOT_COMPUTED)):
+            if key_checksum(key, branch_values(arrays, *key)) != int(sums[key]):
+                snap.bad_branch.append(tuple(int(i) for i in key))
 
 
 _POINT_CODES = set(STATUS_MEANINGS) - {NOT_COMPUTED, NOT_AVAILABLE}
@@ -1011,13 +1099,15 @@ def _check_values(snap, mine, offsets):
             raise DamagedStore(f"{snap.path}: {describe_chunk(snap.run, c)} holds {problem} "
                                f"(damaged or edited)")
     codes = set(BRANCH_MEANINGS)
-    found = snap.branch["status"]
-    if not set(np.unique(found).tolist()) <= codes:
-        raise DamagedStore(f"{snap.path}: /branch_points/status holds a value that is not a known code")
-    ok = found == BP_FOUND
-    if not (np.isfinite(snap.branch["branch_radius"][ok]).all()
-            and np.isfinite(snap.branch["energy"][ok]).all()):
-        raise DamagedStore(f"{snap.path}: a branch point marked found has no finite R_c and energy")
+    for group, arrays in (("branch_points", snap.branch), (LEVEL_GROUP, snap.levels)):
+        found = arrays["status"]
+        if not set(np.unique(found).tolist()) <= codes:
+            raise DamagedStore(f"{snap.path}: /{group}/status holds a value that is not a known code")
+        ok = found == BP_FOUND
+        if not (np.isfinite(arrays["branch_radius"][ok]).all()
+                and np.isfinite(arrays["energy"][ok]).all()):
+            raise DamagedStore(f"{snap.path}: a branch point marked found in /{group} has no "
+                               f"finite R_c and energy")
 
 
 def _consistent(snap, offsets):
@@ -1031,9 +1121,9 @@ def _consistent(snap, offsets):
             sl = chunk_slice(run, c, offsets)
             for name, (kind, fill, _) in POINT_VARIABLES.items():
                 snap.points[name][sl] = full((), kind, fill)
-    for m, a in snap.bad_branch:
+    for key in snap.bad_branch:
         for name, (kind, fill, _) in BRANCH_VARIABLES.items():
-            snap.branch[name][m, a] = full((), kind, fill)
+            snap.branch_arrays(key)[name][key] = full((), kind, fill)
 
 
 def load_settled(path, verify=True):
@@ -1062,9 +1152,8 @@ def damage_message(snap):
         more = f" (and {len(snap.bad_chunks) - 1} more chunks)" if len(snap.bad_chunks) > 1 else ""
         what.append(f"{describe_chunk(run, c)}{more}")
     if snap.bad_branch:
-        m, a = snap.bad_branch[0]
         more = f" (and {len(snap.bad_branch) - 1} more)" if len(snap.bad_branch) > 1 else ""
-        what.append(f"the branch point of {run.models[m].label} at alpha = {run.alphas[a]:.10g}{more}")
+        what.append(f"{describe_branch(run, snap.bad_branch[0])}{more}")
     run_file = snap.attrs.get("run_file") or "RUNFILE"
     shard = f" --shard {snap.shard.label}" if snap.shard is not None else ""
     return (f"{path}: {' and '.join(what)} fails its checksum (the file is damaged there); "
@@ -1134,6 +1223,9 @@ class StoreData:
     #: /branch_points arrays (model, alpha), names of `BRANCH_VARIABLES` (schema 1: not computed)
     branch: dict = field(default_factory=dict)
     schema_version: int = SCHEMA_VERSION
+    #: /level_branch_points arrays (model, alpha, state): the excited levels' branch points
+    #: (before schema 5: not computed; see `has_level_branch_points`)
+    levels: dict = field(default_factory=dict)
     #: the `tba.scans.runfile.Shard` of a shard file (its points only; the rest "not computed")
     shard: Shard | None = None
     #: invocations recorded in all (more than ``len(history)`` once old entries were dropped)
@@ -1141,6 +1233,11 @@ class StoreData:
 
     def __getitem__(self, name):
         return self.data[name]
+
+    @property
+    def has_level_branch_points(self):
+        """The file has /level_branch_points (schema 5 on); older ones only a bracket."""
+        return self.schema_version >= 5
 
     @property
     def n_chunks(self):
@@ -1241,11 +1338,13 @@ def store_data(snap):
         mark_unavailable(data, run)
     branch = {name: _decode(v) if BRANCH_VARIABLES[name][0] == "str" else v
               for name, v in snap.branch.items()}
+    levels = {name: _decode(v) if BRANCH_VARIABLES[name][0] == "str" else v
+              for name, v in snap.levels.items()}
     progress = dict(snap.progress, done=snap.done.astype("u1"))
     return StoreData(path=snap.path, attrs=snap.attrs, run=run, model=[m.label for m in run.models],
                      model_name=[m.name for m in run.models],
                      model_coupling=[m.coupling for m in run.models],
                      alpha=np.array(run.alphas), radius=np.array(run.radii),
                      state=list(run.states), data=data, progress=progress, history=snap.history,
-                     branch=branch, schema_version=snap.version, shard=snap.shard,
+                     branch=branch, levels=levels, schema_version=snap.version, shard=snap.shard,
                      invocations=snap.invocations)

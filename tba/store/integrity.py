@@ -6,7 +6,8 @@ A store of schema 4 carries
   per-point variable (energy, error, ..., message, in the order of
   `tba.scans.codes.POINT_VARIABLES`), its ``invocation`` and ``seconds`` and its index;
 * one per branch point (``/branch_points/checksum``), over the values of
-  `tba.scans.codes.BRANCH_VARIABLES` of that (model, alpha) and the pair itself;
+  `tba.scans.codes.BRANCH_VARIABLES` of that (model, alpha) and the pair itself; the same
+  per excited level (``/level_branch_points/checksum``, over (model, alpha, state));
 * one over the root attributes (``header_checksum``), the resolved run among them;
 * one inside each history slot (``/progress/history``, JSON text, a newline, 16 hex digits);
 * a recovery map (``/recovery/map``): the byte offset, type and shape of every data set,
@@ -51,10 +52,12 @@ def chunk_checksum(index, values, invocation, seconds):
                   np.array([seconds], "<f8").tobytes(), *(_bytes(values[n]) for n in POINT_VARIABLES))
 
 
-def branch_checksum(model, alpha, values):
-    """Checksum of the branch point (model, alpha): ``values`` maps the names of
-    `BRANCH_VARIABLES` to its stored scalars (0-d arrays or numpy scalars)."""
-    return digest(np.array([model, alpha], "<i8").tobytes(),
+def branch_checksum(model, alpha, values, state=None):
+    """Checksum of the branch point (model, alpha) (of an excited level: (model, alpha,
+    state)): ``values`` maps the names of `BRANCH_VARIABLES` to its stored scalars (0-d
+    arrays or numpy scalars)."""
+    key = [model, alpha] if state is None else [model, alpha, state]
+    return digest(np.array(key, "<i8").tobytes(),
                   *(_bytes(np.asarray(values[n])) for n in BRANCH_VARIABLES))
 
 

@@ -35,7 +35,8 @@ from tba.scans.runfile import differing_keys
 from tba.scans.points import describe_chunk
 from tba.store.errors import StoreError
 from tba.store.hdf5 import (BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES, SCHEMA_VERSION,
-                            SHARD_INDEX, check_store, create_store, damage_message, empty_contents,
+                            SHARD_INDEX, check_store, create_store, damage_message, describe_branch,
+                            empty_contents, level_shape,
                             git_commit, load_settled, now, package_version, shard_index)
 from tba.store.lock import OutputLock
 
@@ -50,7 +51,7 @@ class MergeSummary:
     files: list
     chunks_total: int
     chunks_present: int
-    branch_total: int  # pairs expected (0 with scan.branch_points = false)
+    branch_total: int  # tasks expected, excited levels' included (0 with scan.branch_points = false)
     branch_present: int
     missing: list = field(default_factory=list)  # lines saying what is missing
 
@@ -76,6 +77,7 @@ class _Merged:
         self.contents = empty_contents(run)
         shape = (len(run.models), len(run.alphas))
         self.branch_source = np.full(shape, -1)
+        self.level_source = np.full(level_shape(run), -1)
         self.source = np.full(len(self.chunks), -1)  # index of the file a chunk was taken from
         self.point_chunk = np.full(run.shape, -1, dtype="i4")  # -1: a state the model lacks
         for c in self.chunks:
@@ -122,23 +124,29 @@ class _Merged:
         merged.invocation[new_chunks] = np.where(inv > 0, inv + offset, 0)
         merged.seconds[new_chunks] = snap.progress["seconds"][new_chunks]
         merged.done |= done
-        # branch points: (model, alpha) with a status are stored
-        status = snap.branch["status"]
-        have = status != NOT_COMPUTED
-        both = have & (self.branch_source >= 0)
-        for name in BRANCH_NUMBERS:
-            old, new = merged.branch[name][both], snap.branch[name][both]
-            same = (old == new) | (np.isnan(old) & np.isnan(new)) if old.dtype.kind == "f" else old == new
-            if not same.all():
-                m, a = (int(x[~same][0]) for x in np.nonzero(both))
-                raise StoreError(f"{path}: the branch point of {self.run.models[m].label} at alpha = "
-                                 f"{self.run.alphas[a]:.10g} differs ({name}) from the one in "
-                                 f"{self.files[self.branch_source[m, a]]}; refusing to merge "
-                                 f"inconsistent files")
-        new = have & (self.branch_source < 0)
-        for name in BRANCH_VARIABLES:
-            merged.branch[name][new] = snap.branch[name][new]
-        self.branch_source[new] = k
+        # branch points: (model, alpha) -- and excited levels' (model, alpha, state) -- with a
+        # status are stored
+        for mine, theirs, source in ((merged.branch, snap.branch, self.branch_source),
+                                     (merged.levels, snap.levels, self.level_source)):
+            have = theirs["status"] != NOT_COMPUTED
+            both = have & (source >= 0)
+            for name in BRANCH_NUMBERS:
+                old, new = mine[name][both], theirs[name][both]
+                same = (old == new) | (np.isnan(old) & np.isnan(new)) if old.dtype.kind == "f" else old == new
+                if not same.all():
+                    key = tuple(int(x[~same][0]) for x in np.nonzero(both))
+                    raise StoreError(f"{path}: {describe_branch(self.run, key)} differs ({name}) "
+                                     f"from the one in {self.files[source[key]]}; refusing to "
+                                     f"merge inconsistent files")
+            new = have & (source < 0)
+            for name in BRANCH_VARIABLES:
+                mine[name][new] = theirs[name][new]
+            source[new] = k
+
+    @property
+    def branch_merged(self):
+        """Branch points taken from the inputs (ground state and excited levels)."""
+        return int((self.branch_source >= 0).sum() + (self.level_source >= 0).sum())
 
 
 def _check(path, snap, first, first_path):
@@ -201,7 +209,7 @@ def merge_stores(paths, out, force=False):
                  "git_commit": git_commit(), "host": platform.node(),
                  "merge": [str(p) for p in sources],
                  "chunks_merged": int(merged.contents.done.sum()),
-                 "branch_points_merged": int((merged.branch_source >= 0).sum())}
+                 "branch_points_merged": merged.branch_merged}
         merged.contents.history.append(entry)
         create_store(out, run, first.attrs.get("run_file") or None, contents=merged.contents)
     inputs, shard_counts = sources, sorted(shard_counts)
@@ -211,9 +219,9 @@ def merge_stores(paths, out, force=False):
 def _summary(run, out, inputs, merged, shard_counts):
     chunks = merged.chunks
     done = merged.contents.done
-    n_pairs = len(run.models) * len(run.alphas) if run.branch_points else 0
+    n_pairs = len(run.branch_keys()) if run.branch_points else 0
     s = MergeSummary(str(out), [str(p) for p in inputs], len(chunks), int(done.sum()), n_pairs,
-                     int((merged.branch_source >= 0).sum()) if n_pairs else 0)
+                     merged.branch_merged if n_pairs else 0)
     missing = np.flatnonzero(~done)
     if missing.size:
         if len(shard_counts) == 1:  # shards of one split: say which shard lacks what

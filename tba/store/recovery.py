@@ -16,17 +16,17 @@ import numpy as np
 
 from tba.scans.codes import BRANCH_VARIABLES, NOT_COMPUTED, POINT_VARIABLES
 from tba.scans.runfile import RunFileError, parse_shard, resolve_run
-from tba.store.hdf5 import (SCHEMA_VERSION, STORED, branch_values, chunk_values,
-                            shard_points)
-from tba.store.integrity import (branch_checksum, chunk_checksum, decode_history_entry,
-                                 find_recovery_map)
+from tba.store.hdf5 import (LEVEL_GROUP, SCHEMA_VERSION, STORED, branch_values, chunk_values,
+                            key_checksum, shard_points)
+from tba.store.integrity import chunk_checksum, decode_history_entry, find_recovery_map
 
 
 @dataclass
 class Salvage:
     """What a damaged store still holds: ``chunks`` maps chunk indices to (values in the stored
     types, invocation, seconds) for the chunks whose checksums verify, ``branch`` maps
-    (model, alpha) to the values of the branch points that verify; ``marked`` counts the
+    (model, alpha) (excited levels: (model, alpha, state)) to the values of the branch
+    points that verify; ``marked`` counts the
     chunks the damaged file marks done."""
 
     run: object
@@ -100,13 +100,14 @@ def _read(buffer, run, shard, datasets, run_file, version):
         values = {k: v.copy() for k, v in chunk_values(points, run, c, offsets).items()}
         if chunk_checksum(c.index, values, invocation[c.index], seconds[c.index]) == int(checksum[c.index]):
             out.chunks[c.index] = (values, invocation[c.index], seconds[c.index])
-    branch = {name: get(f"branch_points/{name}", kind) for name, (kind, _, _) in BRANCH_VARIABLES.items()}
-    bsum = get("branch_points/checksum", "u8")
-    if bsum is not None and all(v is not None for v in branch.values()):
-        for m, a in zip(*np.nonzero(branch["status"] != NOT_COMPUTED)):
-            values = branch_values(branch, m, a)
-            if branch_checksum(m, a, values) == int(bsum[m, a]):
-                out.branch[(int(m), int(a))] = {k: np.array(v) for k, v in values.items()}
+    for group in ("branch_points", LEVEL_GROUP):
+        branch = {name: get(f"{group}/{name}", kind) for name, (kind, _, _) in BRANCH_VARIABLES.items()}
+        bsum = get(f"{group}/checksum", "u8")
+        if bsum is not None and all(v is not None for v in branch.values()):
+            for key in zip(*np.nonzero(branch["status"] != NOT_COMPUTED)):
+                values = branch_values(branch, *key)
+                if key_checksum(key, values) == int(bsum[key]):
+                    out.branch[tuple(int(i) for i in key)] = {k: np.array(v) for k, v in values.items()}
     entry = datasets.get("progress/history")
     for raw in _array(buffer, entry, np.dtype(entry[1])) if entry else ():
         try:

@@ -28,9 +28,10 @@ from tba.scans.interrupts import deferred, signal_name
 from tba.scans.points import describe_chunk
 from tba.store.errors import DamagedStore, StoreError, StoreWriteError
 from tba.store.hdf5 import (HISTORY_BYTES, HISTORY_DTYPE, HISTORY_SLOTS, Snapshot, as_stored,
+                            describe_branch, key_checksum, key_group,
                             check_store, chunk_slice, create_store, empty_contents, git_commit,
                             load, now, package_version, shard_points, stored_scalar, write_all)
-from tba.store.integrity import branch_checksum, chunk_checksum, encode_history_entry
+from tba.store.integrity import chunk_checksum, encode_history_entry
 from tba.store.lock import clean_partials
 from tba.store.recovery import salvage
 
@@ -125,9 +126,9 @@ def recover_store(path, run, shard, run_file, damage, notes):
         contents.done[index] = True
         contents.invocation[index] = invocation
         contents.seconds[index] = seconds
-    for (m, a), values in found.branch.items():
+    for key, values in found.branch.items():  # (m, a) and excited levels' (m, a, s)
         for name in BRANCH_VARIABLES:
-            contents.branch[name][m, a] = values[name]
+            contents.branch_arrays(key)[name][key] = values[name]
     stamp = now().replace(":", "").replace("+0000", "Z")
     keep = path.with_name(f"{path.name}.damaged-{stamp}")
     last = max((e["invocation"] for e in found.history), default=0)
@@ -230,26 +231,29 @@ class Store:
         if self._invocation is not None:
             self._invocation["chunks_computed"] += 1  # saved with the history at the end
 
-    def write_branch_point(self, model, alpha, values):
-        """Write the branch point of (model index, alpha index): ``values`` maps the names of
+    def write_branch_point(self, model, alpha, values, state=None):
+        """Write the branch point of (model index, alpha index) (with ``state``, a state
+        index: of that excited level, in /level_branch_points): ``values`` maps the names of
         `BRANCH_VARIABLES` to scalars (the missing ones take their fill values)."""
         stored = {name: stored_scalar(kind, values.get(name, fill))
                   for name, (kind, fill, _) in BRANCH_VARIABLES.items()}
-        checksum = np.uint64(branch_checksum(model, alpha, stored))
-        k = model * self._dims[1] + alpha
+        key = (model, alpha) if state is None else (model, alpha, state)
+        checksum = np.uint64(key_checksum(key, stored))
+        group = key_group(key)
+        _, A, _, S = self._dims
+        k = model * A + alpha if state is None else (model * A + alpha) * S + state
         try:
             with deferred():
-                if (model, alpha) in self._bad_branch:
-                    self._write("branch_points/status", k, stored_scalar("i1", NOT_COMPUTED))
-                    self._bad_branch.discard((model, alpha))
+                if key in self._bad_branch:
+                    self._write(f"{group}/status", k, stored_scalar("i1", NOT_COMPUTED))
+                    self._bad_branch.discard(key)
                 for name, value in stored.items():
                     if name != "status":
-                        self._write(f"branch_points/{name}", k, value)
-                self._write("branch_points/checksum", k, checksum)
-                self._write("branch_points/status", k, stored["status"])
+                        self._write(f"{group}/{name}", k, value)
+                self._write(f"{group}/checksum", k, checksum)
+                self._write(f"{group}/status", k, stored["status"])
         except OSError as exc:
-            label = f"the branch point of {self.run.models[model].label} at alpha = {self.run.alphas[alpha]:.10g}"
-            raise self._failed(label, exc) from None
+            raise self._failed(describe_branch(self.run, key), exc) from None
         if self._invocation is not None:
             self._invocation["branch_points_computed"] += 1
 
