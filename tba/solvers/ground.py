@@ -393,7 +393,7 @@ class State:
     coarse: object = field(default=None, repr=False)
     #: an inverse of J0 near this point (dense systems): chord steps of the next radius
     A: object = field(default=None, repr=False)
-    #: (radii, g = eps - R drive) of this grid level at this and up to two previous radii
+    #: (radii, g = eps - R drive) of this grid level at this and up to five previous radii
     #: of a scan, newest first (for extrapolation in R)
     history: tuple = field(default=None, repr=False)
     #: every grid level of this point, coarsest first (each level's own warm starts)
@@ -632,8 +632,8 @@ def _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule=None):
         disc = Discretization(model, deformation, radius, grid)
         e_start = np.ascontiguousarray(_start(disc, seed, coarse)[0].reshape(-1))
     K = ops.matrix if not ops.trivial else _NO_MATRIX
-    out = np.empty((7, M))
-    small = np.empty(c.size + 3)
+    out = np.empty((4 + _dense.HISTORY, M))
+    small = np.empty(c.size + _dense.HISTORY)
     its, res, dE, status, fold, rounding, A_out, E, P, tail, k = _dense.solve_level(
         K, ops.drive_flat, Uf, Vf, c, ops.wE_flat, ops.wP_flat, radius, hist_r, hist_g,
         use_history, e_start, rule.sign if rule is not None else
@@ -653,14 +653,14 @@ def _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule=None):
 
 def _link(state, seed):
     """The level's history along a scan: this state's g = eps - R drive in front of the
-    seed's (same grid and deformation, other radii; at most three)."""
+    seed's (same grid and deformation, other radii; at most `kernels.dense.HISTORY`)."""
     g = (state.eps - state.disc.nu).reshape(1, -1)
     radii = np.array([state.radius])
     if seed is not None and seed.history is not None and _compatible(seed, state.disc):
         old_r, old_g = seed.history
         keep = old_r != state.radius
-        radii = np.concatenate([radii, old_r[keep][:2]])
-        g = np.concatenate([g, old_g[keep][:2]])
+        radii = np.concatenate([radii, old_r[keep][:_dense.HISTORY - 1]])
+        g = np.concatenate([g, old_g[keep][:_dense.HISTORY - 1]])
     state.history = (radii, g)
 
 
