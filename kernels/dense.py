@@ -450,6 +450,8 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     rate = 0.0
     dE = np.inf
     rounding = nan
+    fold_at = -1  # the iteration whose fold indicator `fold_at_it` is
+    fold_at_it = nan
     for it in range(maxiter + 1):
         cap = _cap_of(c, V, dL, Z, CVd)
         _mv(A, F, y)
@@ -483,8 +485,9 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
         done = small and dE <= max(1e-1 * tol, 8 * _EPS) * abs(E)
         if not done and r <= 1e3 * floor:  # residual at rounding level: is dE the floor?
             if not (rounding == rounding):
-                rounding = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
-                                              trivial)[1]
+                fold_at_it, rounding = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z,
+                                                          fresh, trivial)
+                fold_at = it
             # at the floor the steps are amplified rounding noise: stop once they stop
             # shrinking; the iterate's error is then the rounding the estimate covers, and
             # only the part of the step beyond it counts as iteration error
@@ -492,9 +495,13 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
             if done:
                 dE = max(dE - rounding, 0.0)
         if done:
-            fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial)
-            if not (rounding == rounding):
-                rounding = rnd
+            if fold_at == it:  # this iterate's fold indicator and rounding are known
+                fold = fold_at_it
+            else:
+                fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
+                                               trivial)
+                if not (rounding == rounding):
+                    rounding = rnd
             return e, L, dL, it, r, dE, CONVERGED, fold, rounding, A, inversions
         if it == maxiter:
             break

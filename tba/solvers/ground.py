@@ -905,6 +905,25 @@ def _checked(model, radius, deformation, tol, start):
     return radius, tol, deformation, prev
 
 
+#: a scan keeps a level's grid while the rule asks for the same spacing and up to this many
+#: fewer points (a narrower cutoff)
+KEEP_POINTS = 8
+
+
+def _keep_wider(grid, seed):
+    """The seed's grid instead of ``grid`` when it has the same spacing and a cutoff at most
+    KEEP_POINTS / 2 steps wider: a wider cutoff is never less accurate (the tails are still
+    checked), and the level then starts from its own history and inverse of J0 instead of
+    interpolating and inverting anew where the rule's cutoff moves by one quantum (or back
+    and forth across the tail check)."""
+    if seed is None:
+        return grid
+    g = seed.grid
+    if g is grid or g.h != grid.h or not grid.N <= g.N <= grid.N + KEEP_POINTS:
+        return grid
+    return g
+
+
 def _solve_point(model, radius, deformation, tol, prev, rule):
     """`solve_ground_state` after its checks, with the grid rule of (model, deformation, tol)."""
     t0 = time.perf_counter()
@@ -920,6 +939,7 @@ def _solve_point(model, radius, deformation, tol, prev, rule):
     while True:
         grid = rule.grid(r_eff, level, cutoff_extra)
         seed = prev_levels[level] if level < len(prev_levels) else (prev_levels[-1] if prev_levels else None)
+        grid = _keep_wider(grid, seed)
         coarse = states[-1] if states else None
         state, nt = _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule)
         iterations += nt.iterations
