@@ -394,6 +394,21 @@ REFINE_FOLD = 0.2
 
 
 @numba.njit(cache=True, nogil=True)
+def _fold_only(K, U, V, c, dL, A, Z, fresh, trivial):
+    """The fold indicator of `_fold_and_rounding` without the rounding estimate."""
+    r = c.size
+    if r == 0:
+        return 1.0
+    CVd = np.empty((r, dL.size))
+    cap = _cap_of(c, V, dL, Z, CVd)
+    fold = _small_det(cap)
+    if not fresh and abs(fold) < REFINE_FOLD:
+        Z, cap, _ = refine_capacitance(K, U, dL, A, CVd, Z.copy(), trivial, 30)
+        fold = _small_det(cap)
+    return fold
+
+
+@numba.njit(cache=True, nogil=True)
 def _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial):
     """(fold indicator, rounding estimate) at the final iterate. With a chord inverse (not
     ``fresh``) the capacitance is off by the chord's rate (a few per cent): enough away from
@@ -497,6 +512,8 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
         if done:
             if fold_at == it:  # this iterate's fold indicator and rounding are known
                 fold = fold_at_it
+            elif rounding == rounding:  # the rounding (of an earlier iterate) is what is kept
+                fold = _fold_only(K, U, V, c, dL, A, Z, fresh, trivial)
             else:
                 fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
                                                trivial)

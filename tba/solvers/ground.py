@@ -632,22 +632,23 @@ def _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule=None):
         disc = Discretization(model, deformation, radius, grid)
         e_start = np.ascontiguousarray(_start(disc, seed, coarse)[0].reshape(-1))
     K = ops.matrix if not ops.trivial else _NO_MATRIX
-    out = np.empty((4 + _dense.HISTORY, M))
+    out = np.empty((4 + _dense.HISTORY, n, N))  # the compiled call fills it through `flat`
+    flat = out.reshape(4 + _dense.HISTORY, M)
     small = np.empty(c.size + _dense.HISTORY)
     its, res, dE, status, fold, rounding, A_out, E, P, tail, k = _dense.solve_level(
         K, ops.drive_flat, Uf, Vf, c, ops.wE_flat, ops.wP_flat, radius, hist_r, hist_g,
         use_history, e_start, rule.sign if rule is not None else
         (1 if model.statistics == "fermion" else -1), tol, 60,
-        A if A is not None else _NO_MATRIX, A is not None, ops.trivial, n, N, out, small)
+        A if A is not None else _NO_MATRIX, A is not None, ops.trivial, n, N, flat, small)
     if status != _dense.CONVERGED:
         return None, _Failure(_DENSE_MESSAGES[status].format(maxiter=60), its)
     r = c.size
-    state = State(grid=grid, radius=radius, deformation=deformation, eps=out[0].reshape(n, N),
-                  dressing=out[3].reshape(n, N), scalars=small[:r], energy=E, momentum=P,
+    state = State(grid=grid, radius=radius, deformation=deformation, eps=out[0],
+                  dressing=out[3], scalars=small[:r], energy=E, momentum=P,
                   iteration_error=dE, rounding_error=rounding, tail_error=tail,
                   fold_indicator=fold, residual=res, iterations=its, _disc=disc,
-                  L=out[1].reshape(n, N), dL=out[2].reshape(n, N), A=A_out,
-                  history=(small[r:r + k], out[4:4 + k]), model=model)
+                  L=out[1], dL=out[2], A=A_out, history=(small[r:r + k], flat[4:4 + k]),
+                  model=model)
     return state, state
 
 
