@@ -694,9 +694,10 @@ def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e
 
     The arrays go into buffers of the caller (boxing new arrays costs more than the whole
     iteration on a small grid): ``out`` of shape (4 + HISTORY, M) gets e, L, dL, the dressing
-    and the history's g (rows 4 to 4 + k - 1), ``small`` of size r + HISTORY the scalars S = V L
-    and the history's radii (from r on). Returns (iterations, residual, iteration_error, status, fold,
-    rounding, A, E, P, tail, k); A is ``A0`` itself unless J0 was inverted here."""
+    and the history's g (rows 4 to 4 + k - 1), ``small`` of size r + HISTORY the scalars
+    S = V L and the history's radii (from r on). Returns (iterations, residual,
+    iteration_error, status, fold, rounding, A, E, P, tail, k); A is ``A0`` itself unless J0
+    was inverted here."""
     M = drive.size
     r = c.size
     nu = R * drive

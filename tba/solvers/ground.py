@@ -940,7 +940,8 @@ def _solve_point(model, radius, deformation, tol, prev, rule):
     while True:
         grid = rule.grid(r_eff, level, cutoff_extra)
         seed = prev_levels[level] if level < len(prev_levels) else (prev_levels[-1] if prev_levels else None)
-        grid = _keep_wider(grid, seed)
+        if cutoff_extra == 0:  # (a widened cutoff is the rule's own answer to its tails)
+            grid = _keep_wider(grid, seed)
         coarse = states[-1] if states else None
         state, nt = _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule)
         iterations += nt.iterations
