@@ -43,13 +43,21 @@ CHORD_RATE = 0.1
 SMALL = 128
 #: safety factor of the rounding estimate over the root-mean-square effect of rounding
 ROUNDING_SAFETY = 5.0
+#: radii a grid level keeps along a scan for its extrapolated start (degree HISTORY - 1): on
+#: the sinh-Gordon scan of benchmarks/ six radii take 1.8 chord steps per level, three 3.9
+HISTORY = 6
 
 _EPS = 2.220446049250313e-16
+#: floating-point freedoms of the small loops: reassociation (so that the sums of the
+#: matrix-vector products vectorise) and fused multiply-adds. No assumptions about NaN or
+#: infinity: the iteration tests for them. A reassociated sum has at most the rounding error
+#: of the sequential one that `rounding_error` allows for.
+_FAST = {"reassoc", "contract"}
 
 
 # -- linear algebra building blocks ---------------------------------------------------------
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def _mv(A, x, out):
     """out = A x (loops for small systems, BLAS above SMALL)."""
     M, N = A.shape
@@ -64,7 +72,7 @@ def _mv(A, x, out):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def _mtv(A, x, out):
     """out = A^T x."""
     M, N = A.shape
@@ -156,7 +164,7 @@ def _small_solve(C, b):
 
 # -- the equations and their Jacobian ------------------------------------------------------
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def _residual_into(K, nu, U, V, c, e, L, trivial, work, F):
     M = e.size
     if not trivial:
@@ -183,7 +191,7 @@ def residual(K, nu, U, V, c, e, L, trivial):
     return _residual_into(K, nu, U, V, c, e, L, trivial, np.empty(M), np.empty(M))
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def jacobian0(K, dL, trivial):
     """J0 = 1 + K diag(L')."""
     M = dL.size
@@ -231,7 +239,7 @@ def _z_of(A, U):
     return Z
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def _cap_of(c, V, dL, Z, CVd):
     """CVd = diag(c) V diag(L') (filled in place) and cap = 1 + CVd Z."""
     r = c.size
@@ -320,7 +328,7 @@ def woodbury_transposed(A, CVd, Z, cap, b):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def rounding_error(K, nu, U, c, wE, e, L, dL, A, CVd, Z, cap, S, trivial):
     """The effect on E of rounding errors in the equations and in the energy sum:
     ROUNDING_SAFETY * sqrt(sum_i (lambda_i dF_i)^2) + 4 eps sum |wE L|, lambda = J^{-T} (L' wE).
@@ -386,6 +394,21 @@ REFINE_FOLD = 0.2
 
 
 @numba.njit(cache=True, nogil=True)
+def _fold_only(K, U, V, c, dL, A, Z, fresh, trivial):
+    """The fold indicator of `_fold_and_rounding` without the rounding estimate."""
+    r = c.size
+    if r == 0:
+        return 1.0
+    CVd = np.empty((r, dL.size))
+    cap = _cap_of(c, V, dL, Z, CVd)
+    fold = _small_det(cap)
+    if not fresh and abs(fold) < REFINE_FOLD:
+        Z, cap, _ = refine_capacitance(K, U, dL, A, CVd, Z.copy(), trivial, 30)
+        fold = _small_det(cap)
+    return fold
+
+
+@numba.njit(cache=True, nogil=True)
 def _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial):
     """(fold indicator, rounding estimate) at the final iterate. With a chord inverse (not
     ``fresh``) the capacitance is off by the chord's rate (a few per cent): enough away from
@@ -442,6 +465,8 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     rate = 0.0
     dE = np.inf
     rounding = nan
+    fold_at = -1  # the iteration whose fold indicator `fold_at_it` is
+    fold_at_it = nan
     for it in range(maxiter + 1):
         cap = _cap_of(c, V, dL, Z, CVd)
         _mv(A, F, y)
@@ -475,8 +500,9 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
         done = small and dE <= max(1e-1 * tol, 8 * _EPS) * abs(E)
         if not done and r <= 1e3 * floor:  # residual at rounding level: is dE the floor?
             if not (rounding == rounding):
-                rounding = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
-                                              trivial)[1]
+                fold_at_it, rounding = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z,
+                                                          fresh, trivial)
+                fold_at = it
             # at the floor the steps are amplified rounding noise: stop once they stop
             # shrinking; the iterate's error is then the rounding the estimate covers, and
             # only the part of the step beyond it counts as iteration error
@@ -484,9 +510,15 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
             if done:
                 dE = max(dE - rounding, 0.0)
         if done:
-            fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial)
-            if not (rounding == rounding):
-                rounding = rnd
+            if fold_at == it:  # this iterate's fold indicator and rounding are known
+                fold = fold_at_it
+            elif rounding == rounding:  # the rounding (of an earlier iterate) is what is kept
+                fold = _fold_only(K, U, V, c, dL, A, Z, fresh, trivial)
+            else:
+                fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh,
+                                               trivial)
+                if not (rounding == rounding):
+                    rounding = rnd
             return e, L, dL, it, r, dE, CONVERGED, fold, rounding, A, inversions
         if it == maxiter:
             break
@@ -539,7 +571,7 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     return e, L, dL, maxiter, r, dE, MAX_ITERATIONS, nan, nan, A, inversions
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def summary(K, L, e, wE, wP, V, n, N, trivial):
     """What a solved grid level keeps: (dressing -K L, scalars V L, E, P, tail estimate).
 
@@ -574,13 +606,11 @@ def summary(K, L, e, wE, wP, V, n, N, trivial):
 @numba.njit(cache=True, nogil=True)
 def extrapolate(radii, g, R):
     """Lagrange extrapolation to R of the rows of ``g`` given at ``radii`` (the history of a
-    grid level along a scan, newest first): quadratic from three radii, linear from two. Far
-    outside the spacing of the history the order is lowered."""
+    grid level along a scan, newest first): degree k - 1 from k radii. Far outside the spacing
+    of the history the order is lowered."""
     k = radii.size
-    if k == 3 and abs(R - radii[0]) > 4 * abs(radii[0] - radii[2]):
-        k = 2
-    if k >= 2 and abs(R - radii[0]) > 4 * abs(radii[0] - radii[1]):
-        k = 1
+    while k >= 2 and abs(R - radii[0]) > 4 * abs(radii[0] - radii[k - 1]):
+        k -= 1
     out = np.zeros(g.shape[1])
     for a in range(k):
         w = 1.0
@@ -588,6 +618,29 @@ def extrapolate(radii, g, R):
             if b != a:
                 w *= (R - radii[b]) / (radii[a] - radii[b])
         out += w * g[a]
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def interpolate(values, t_first, h, t):
+    """Cubic (4-point Lagrange) interpolation of the rows of ``values``, given on the uniform
+    grid t_first + j h (j = 0 .. N - 1, N >= 4), at the points ``t``; 0 outside that grid.
+    Exact at its points."""
+    n, N = values.shape
+    out = np.zeros((n, t.size))
+    for q in range(t.size):
+        x = (t[q] - t_first) / h
+        if x < -1e-9 or x > N - 1 + 1e-9:
+            continue
+        i = min(max(int(np.floor(x)) - 1, 0), N - 4)
+        u = x - i
+        w0 = -(u - 1) * (u - 2) * (u - 3) / 6
+        w1 = u * (u - 2) * (u - 3) / 2
+        w2 = -u * (u - 1) * (u - 3) / 2
+        w3 = u * (u - 1) * (u - 2) / 6
+        for a in range(n):
+            out[a, q] = (w0 * values[a, i] + w1 * values[a, i + 1] + w2 * values[a, i + 2]
+                         + w3 * values[a, i + 3])
     return out
 
 
@@ -634,14 +687,19 @@ def solve_j0(K, dL, A, b, trivial, maxiter):
 
 @numba.njit(cache=True, nogil=True)
 def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e_start, sign,
-                tol, maxiter, A0, have_A, trivial, n, N):
+                tol, maxiter, A0, have_A, trivial, n, N, out, small):
     """One grid level of a point in one call: the start (the level's own history extrapolated
     in R, or ``e_start``), `newton`, `summary`, and the level's new history (this point in
-    front of up to two older radii).
+    front of up to HISTORY - 1 older radii).
 
-    Returns (e, L, dL, iterations, residual, iteration_error, status, fold, rounding, A,
-    dressing, S, E, P, tail, history_radii, history_g)."""
+    The arrays go into buffers of the caller (boxing new arrays costs more than the whole
+    iteration on a small grid): ``out`` of shape (4 + HISTORY, M) gets e, L, dL, the dressing
+    and the history's g (rows 4 to 4 + k - 1), ``small`` of size r + HISTORY the scalars
+    S = V L and the history's radii (from r on). Returns (iterations, residual,
+    iteration_error, status, fold, rounding, A, E, P, tail, k); A is ``A0`` itself unless J0
+    was inverted here."""
     M = drive.size
+    r = c.size
     nu = R * drive
     if use_history:
         e0 = nu + extrapolate(hist_radii, hist_g, R)
@@ -650,21 +708,20 @@ def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e
     e, L, dL, its, res, dE, status, fold, rounding, A, _ = newton(
         K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial)
     dressing, S, E, P, tail = summary(K, L, e, wE, wP, V, n, N, trivial)
-    keep = 0
-    if use_history:
-        for a in range(hist_radii.size):
-            if hist_radii[a] != R and keep < 2:
-                keep += 1
-    radii = np.empty(keep + 1)
-    g = np.empty((keep + 1, M))
-    radii[0] = R
-    g[0] = e - nu
+    for i in range(M):
+        out[0, i] = e[i]
+        out[1, i] = L[i]
+        out[2, i] = dL[i]
+        out[3, i] = dressing[i]
+        out[4, i] = e[i] - nu[i]
+    for k in range(r):
+        small[k] = S[k]
+    small[r] = R
     k = 1
     if use_history:
         for a in range(hist_radii.size):
-            if hist_radii[a] != R and k <= keep:
-                radii[k] = hist_radii[a]
-                g[k] = hist_g[a]
+            if hist_radii[a] != R and k < HISTORY:
+                small[r + k] = hist_radii[a]
+                out[4 + k] = hist_g[a]
                 k += 1
-    return (e, L, dL, its, res, dE, status, fold, rounding, A, dressing, S, E, P, tail,
-            radii, g)
+    return its, res, dE, status, fold, rounding, A, E, P, tail, k

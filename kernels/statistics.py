@@ -14,6 +14,9 @@ import numpy as np
 
 @numba.njit(cache=True, nogil=True)
 def _fermion(e):
+    if e > 37.5:  # x < 2^-54: log1p(x) and x / (1 + x) round to x itself, without the log
+        x = math.exp(-e)
+        return x, -x
     if e > 0.0:
         x = math.exp(-e)
         return math.log1p(x), -x / (1.0 + x)

@@ -129,15 +129,10 @@ class Discretization:
 
 def _interpolate(grid, values, t):
     """Cubic (4-point Lagrange) interpolation of values on ``grid`` at ``t``; 0 outside the grid.
-    Exact at the points of ``grid`` (same spacing: the values are copied)."""
-    x = (t - grid.t[0]) / grid.h
-    i = np.clip(np.floor(x).astype(int) - 1, 0, grid.N - 4)
-    u = x - i
-    w = np.stack([-(u - 1) * (u - 2) * (u - 3) / 6, u * (u - 2) * (u - 3) / 2,
-                  -u * (u - 1) * (u - 3) / 2, u * (u - 1) * (u - 2) / 6])
-    out = sum(w[k] * values[:, i + k] for k in range(4))
-    out[:, (x < -1e-9) | (x > grid.N - 1 + 1e-9)] = 0.0
-    return out
+    Exact at the points of ``grid`` (same spacing: the values are copied). Compiled
+    (`kernels.dense.interpolate`)."""
+    return _dense.interpolate(np.ascontiguousarray(values, dtype=float), float(grid.t[0]),
+                              float(grid.h), np.ascontiguousarray(t, dtype=float))
 
 
 class DenseJacobian:
@@ -398,7 +393,7 @@ class State:
     coarse: object = field(default=None, repr=False)
     #: an inverse of J0 near this point (dense systems): chord steps of the next radius
     A: object = field(default=None, repr=False)
-    #: (radii, g = eps - R drive) of this grid level at this and up to two previous radii
+    #: (radii, g = eps - R drive) of this grid level at this and up to five previous radii
     #: of a scan, newest first (for extrapolation in R)
     history: tuple = field(default=None, repr=False)
     #: every grid level of this point, coarsest first (each level's own warm starts)
@@ -602,11 +597,16 @@ class _Failure:
     ok: bool = False
 
 
-def _solve_on(model, deformation, radius, grid, tol, seed, coarse):
+def _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule=None):
     """Newton on one grid from the best start (`_start`): (State, outcome) with State None if
     Newton failed. Dense systems take one compiled call for start, iteration, summary and the
-    level's history (`kernels.dense.solve_level`): the path of every point of a scan."""
-    ops = operators(model, grid, deformation)
+    level's history (`kernels.dense.solve_level`): the path of every point of a scan.
+    ``rule``: the `_GridRule` of (model, deformation, tol), which keeps the operators."""
+    if rule is None:
+        ops = operators(model, grid, deformation)
+        terms = None
+    else:
+        ops, terms = rule.operators(grid)
     if not ops.dense:
         disc = Discretization(model, deformation, radius, grid)
         e0, A = _start(disc, seed, coarse)
@@ -616,49 +616,52 @@ def _solve_on(model, deformation, radius, grid, tol, seed, coarse):
         state = _state(disc, nt)
         _link(state, seed)
         return state, nt
-    U, V, c, Uf, Vf = ops.terms(deformation)
+    U, V, c, Uf, Vf = terms or ops.terms(deformation)
     n, N = ops.n, ops.N
     M = n * N
-    same = seed is not None and seed.grid == grid
+    same = seed is not None and (seed.grid is grid or seed.grid == grid)
     A = seed.A if same and seed.A is not None and seed.A.shape == (M, M) else None
-    use_history = same and seed.history is not None and seed.deformation == deformation
+    use_history = same and seed.history is not None and (seed.deformation is deformation
+                                                         or seed.deformation == deformation)
     disc = None
     if use_history:
         hist_r, hist_g = seed.history
         e_start = _NO_HISTORY[0]
     else:
-        hist_r, hist_g = np.zeros(0), np.zeros((0, M))
+        hist_r, hist_g = _NO_HISTORY[0], np.zeros((0, M))
         disc = Discretization(model, deformation, radius, grid)
         e_start = np.ascontiguousarray(_start(disc, seed, coarse)[0].reshape(-1))
-    sign = 1 if model.statistics == "fermion" else -1
     K = ops.matrix if not ops.trivial else _NO_MATRIX
-    (e, L, dL, its, res, dE, status, fold, rounding, A_out, dressing, S, E, P, tail, h_r,
-     h_g) = _dense.solve_level(K, ops.drive_flat, Uf, Vf, c, ops.wE_flat, ops.wP_flat, radius,
-                               hist_r, hist_g, use_history, e_start, sign, float(tol), 60,
-                               A if A is not None else _NO_MATRIX, A is not None, ops.trivial,
-                               n, N)
+    out = np.empty((4 + _dense.HISTORY, n, N))  # the compiled call fills it through `flat`
+    flat = out.reshape(4 + _dense.HISTORY, M)
+    small = np.empty(c.size + _dense.HISTORY)
+    its, res, dE, status, fold, rounding, A_out, E, P, tail, k = _dense.solve_level(
+        K, ops.drive_flat, Uf, Vf, c, ops.wE_flat, ops.wP_flat, radius, hist_r, hist_g,
+        use_history, e_start, rule.sign if rule is not None else
+        (1 if model.statistics == "fermion" else -1), tol, 60,
+        A if A is not None else _NO_MATRIX, A is not None, ops.trivial, n, N, flat, small)
     if status != _dense.CONVERGED:
-        return None, _Failure(_DENSE_MESSAGES[status].format(maxiter=60), int(its))
-    shape = (n, N)
-    state = State(grid=grid, radius=radius, deformation=deformation, eps=e.reshape(shape),
-                  dressing=dressing.reshape(shape), scalars=S, energy=float(E),
-                  momentum=float(P), iteration_error=float(dE), rounding_error=float(rounding),
-                  tail_error=float(tail), fold_indicator=float(fold), residual=float(res),
-                  iterations=int(its), _disc=disc, L=L.reshape(shape), dL=dL.reshape(shape),
-                  A=A_out, history=(h_r, h_g), model=model)
+        return None, _Failure(_DENSE_MESSAGES[status].format(maxiter=60), its)
+    r = c.size
+    state = State(grid=grid, radius=radius, deformation=deformation, eps=out[0],
+                  dressing=out[3], scalars=small[:r], energy=E, momentum=P,
+                  iteration_error=dE, rounding_error=rounding, tail_error=tail,
+                  fold_indicator=fold, residual=res, iterations=its, _disc=disc,
+                  L=out[1], dL=out[2], A=A_out, history=(small[r:r + k], flat[4:4 + k]),
+                  model=model)
     return state, state
 
 
 def _link(state, seed):
     """The level's history along a scan: this state's g = eps - R drive in front of the
-    seed's (same grid and deformation, other radii; at most three)."""
+    seed's (same grid and deformation, other radii; at most `kernels.dense.HISTORY`)."""
     g = (state.eps - state.disc.nu).reshape(1, -1)
     radii = np.array([state.radius])
     if seed is not None and seed.history is not None and _compatible(seed, state.disc):
         old_r, old_g = seed.history
         keep = old_r != state.radius
-        radii = np.concatenate([radii, old_r[keep][:2]])
-        g = np.concatenate([g, old_g[keep][:2]])
+        radii = np.concatenate([radii, old_r[keep][:_dense.HISTORY - 1]])
+        g = np.concatenate([g, old_g[keep][:_dense.HISTORY - 1]])
     state.history = (radii, g)
 
 
@@ -809,6 +812,9 @@ def require_start(start):
 
 
 def _validate(radius, tol):
+    if (type(radius) is float or type(radius) is np.float64) and type(tol) is float \
+            and 0 < radius < math.inf and MIN_TOL <= tol < 1e-2:  # the common case, quickly
+        return float(radius), tol
     if isinstance(radius, bool) or not isinstance(radius, numbers.Real):
         raise TypeError(f"radius must be a real number, got {radius!r}")
     radius = float(radius)
@@ -857,10 +863,50 @@ def _grid(model, deformation, r_eff, tol, level, cutoff_extra):
     """The grid of a refinement level. The effective radius is rounded down to 1/64 of an
     octave (a slightly wider cutoff, never a coarser grid), so that neighbouring radii share
     grids, operators and inverses of J0."""
-    r_q = 2.0 ** (math.floor(64 * math.log2(r_eff)) / 64)
-    min_mass, massless, kernel_decay = grid_masses(model)
-    return _cached_grid(grid_pole_distance(model, deformation), min_mass, r_q, tol, level,
-                        cutoff_extra, max(deformation.couplings, default=1), massless, kernel_decay)
+    return _GridRule(model, deformation, tol).grid(r_eff, level, cutoff_extra)
+
+
+class _GridRule:
+    """`_grid` for one model, deformation and tolerance: what the rule needs of them is taken
+    once, and the grids are kept by (octave index of the effective radius, level, cutoff
+    extra), so that the radii of a scan look their grids up in one dictionary."""
+
+    __slots__ = ("args", "tol", "grids", "model", "deformation", "ops", "ttbar", "sign")
+
+    def __init__(self, model, deformation, tol):
+        min_mass, massless, kernel_decay = grid_masses(model)
+        self.args = (grid_pole_distance(model, deformation), min_mass,
+                     max(deformation.couplings, default=1), massless, kernel_decay)
+        self.tol = tol
+        self.grids = {}
+        self.model, self.deformation = model, deformation
+        self.ops = {}
+        #: the TTbar coupling when R + alpha E is the effective radius (`_effective_radius`)
+        self.ttbar = deformation.alpha if deformation.is_ttbar else None
+        self.sign = 1 if model.statistics == "fermion" else -1
+
+    def effective_radius(self, state, radius):
+        """`_effective_radius` of a state at ``radius``: R + alpha E or None."""
+        if state is None or self.ttbar is None:
+            return None
+        return radius + self.ttbar * state.energy
+
+    def operators(self, grid):
+        """(`operators` of the model on ``grid``, their separable terms of the deformation)."""
+        out = self.ops.get(grid)
+        if out is None:
+            ops = operators(self.model, grid, self.deformation)
+            out = self.ops[grid] = (ops, ops.terms(self.deformation))
+        return out
+
+    def grid(self, r_eff, level, cutoff_extra):
+        key = (math.floor(64 * math.log2(r_eff)), level, cutoff_extra)
+        grid = self.grids.get(key)
+        if grid is None:
+            pole, min_mass, max_spin, massless, decay = self.args
+            grid = self.grids[key] = _cached_grid(pole, min_mass, 2.0 ** (key[0] / 64), self.tol,
+                                                  level, cutoff_extra, max_spin, massless, decay)
+        return grid
 
 
 def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None):
@@ -887,32 +933,64 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         the requested coupling at this R) or NOT_CONVERGED; energy and error are NaN
         unless converged.
     """
+    radius, tol, deformation, prev = _checked(model, radius, deformation, tol, start)
+    return _solve_point(model, radius, deformation, tol, prev, _GridRule(model, deformation, tol))
+
+
+def _checked(model, radius, deformation, tol, start):
+    """(radius, tol, deformation, the start's State or None) after checking the arguments."""
     radius, tol = _validate(radius, tol)
     require_model(model)
     deformation = require_deformation(deformation)
     require_start(start)
+    prev = None
+    if isinstance(start, SolveResult) and start.converged and isinstance(start._state, State) \
+            and start._state.model is model:
+        prev = start._state
+    return radius, tol, deformation, prev
+
+
+#: a scan keeps a level's grid while the rule asks for the same spacing and up to this many
+#: fewer points (a narrower cutoff)
+KEEP_POINTS = 8
+
+
+def _keep_wider(grid, seed):
+    """The seed's grid instead of ``grid`` when it has the same spacing and a cutoff at most
+    KEEP_POINTS / 2 steps wider: a wider cutoff is never less accurate (the tails are still
+    checked), and the level then starts from its own history and inverse of J0 instead of
+    interpolating and inverting anew where the rule's cutoff moves by one quantum (or back
+    and forth across the tail check)."""
+    if seed is None:
+        return grid
+    g = seed.grid
+    if g is grid or g.h != grid.h or not grid.N <= g.N <= grid.N + KEEP_POINTS:
+        return grid
+    return g
+
+
+def _solve_point(model, radius, deformation, tol, prev, rule):
+    """`solve_ground_state` after its checks, with the grid rule of (model, deformation, tol)."""
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)
     tails = _unbounded_spin_tails(model, deformation)
     if tails is not None:
         return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=0, message=tails)
-    prev = None
-    if isinstance(start, SolveResult) and start.converged and isinstance(start._state, State) \
-            and start._state.model is model:
-        prev = start._state
     prev_levels = (prev.levels or [prev]) if prev is not None else []
-    r_eff = _effective_radius(prev, radius, deformation) if prev is not None else None
+    r_eff = rule.effective_radius(prev, radius)
     r_eff = r_eff if r_eff and r_eff > 0 else radius
     states = []
     iterations = 0
     level, cutoff_extra = 0, 0.0
     verdicts = []
     while True:
-        grid = _grid(model, deformation, r_eff, tol, level, cutoff_extra)
+        grid = rule.grid(r_eff, level, cutoff_extra)
         seed = prev_levels[level] if level < len(prev_levels) else (prev_levels[-1] if prev_levels else None)
+        if cutoff_extra == 0:  # (a widened cutoff is the rule's own answer to its tails)
+            grid = _keep_wider(grid, seed)
         coarse = states[-1] if states else None
-        state, nt = _solve_on(model, deformation, radius, grid, tol, seed, coarse)
+        state, nt = _solve_on(model, deformation, radius, grid, tol, seed, coarse, rule)
         iterations += nt.iterations
         if deformation.is_zero:
             fold = 1.0
@@ -956,7 +1034,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         if state.coarse is not None:
             state.coarse.coarse = None  # keep two levels: enough for derivative errors
         states.append(state)
-        r_eff = _effective_radius(state, radius, deformation) or r_eff
+        r_eff = rule.effective_radius(state, radius) or r_eff
         if len(states) >= 2:
             fine, coarse = states[-1], states[-2]
             error = (abs(fine.energy - coarse.energy) + fine.iteration_error + coarse.iteration_error
@@ -982,7 +1060,7 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
     return SolveResult(**base, status=status, energy=fine.energy if ok else np.nan,
                        error=error if ok else np.nan, momentum=fine.momentum, message=message,
                        iterations=iterations, residual=fine.residual,
-                       effective_radius=_effective_radius(fine, radius, deformation) or np.nan,
+                       effective_radius=rule.effective_radius(fine, radius) or np.nan,
                        fold_indicator=fine.fold_indicator, grid=fine.grid,
                        rapidity_grid=fine.grid.t, pseudo_energies=fine.eps, _state=fine)
 
@@ -1029,8 +1107,12 @@ def _effective_radius(state, radius, deformation):
 def solve_radii(model, radii, deformation=None, *, tol=1e-12, start=None):
     """Solve a sequence of radii in order, each warm-started from the last converged one."""
     results = []
+    rule = None
     for R in radii:
-        res = solve_ground_state(model, R, deformation, tol=tol, start=start)
+        R, tol_, deformation_, prev = _checked(model, R, deformation, tol, start)
+        if rule is None:  # one grid rule for the scan: its grids are looked up, not rebuilt
+            rule = _GridRule(model, deformation_, tol_)
+        res = _solve_point(model, R, deformation_, tol_, prev, rule)
         if res.converged:
             start = res
         results.append(res)

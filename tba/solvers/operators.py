@@ -35,6 +35,7 @@ summed over species: its kernel columns, its energy and momentum weights and the
 scalars carry g_b.
 """
 
+import functools
 import math
 
 import numpy as np
@@ -51,6 +52,13 @@ PANEL_NODES = 24
 PANEL_PHASE = 6 * math.pi
 
 
+@functools.lru_cache(maxsize=1)
+def _gauss_legendre():
+    """The PANEL_NODES Gauss-Legendre nodes and weights on [-1, 1], computed once (an eigenvalue
+    problem: most of the cost of the kernel samples of a small grid)."""
+    return np.polynomial.legendre.leggauss(PANEL_NODES)
+
+
 def uses_band_limited_kernels(model):
     """True when the model's kernels are discretised band-limited (their transform is known)."""
     return bool(getattr(model, "has_kernel_transform", False))
@@ -64,7 +72,7 @@ def band_limited_samples(transform, h, N, oscillation=0.0):
     tau = h * np.arange(N)
     span = (tau[-1] if N > 1 else 0.0) + oscillation
     panels = max(1, math.ceil(omega_max * span / PANEL_PHASE))
-    x, w = np.polynomial.legendre.leggauss(PANEL_NODES)
+    x, w = _gauss_legendre()
     edges = np.linspace(0.0, omega_max, panels + 1)
     half = 0.5 * (edges[1:] - edges[:-1])
     nodes = (half[:, None] * x[None, :] + 0.5 * (edges[1:] + edges[:-1])[:, None]).ravel()
