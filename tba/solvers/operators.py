@@ -120,6 +120,8 @@ class Operators:
         else:
             self.matrix = None
             self._spectral = SpectralConvolver(kern)
+            self._kern = kern
+            self._spectral_t = self._spectral_abs = None
         t, h = grid.t, grid.h
         self.drive = model.energies(t)
         self.momentum = model.momenta(t)
@@ -193,6 +195,25 @@ class Operators:
         if self.dense:
             return (self.matrix @ f.reshape(-1)).reshape(f.shape)
         return self._spectral(f)
+
+    def convolve_transposed(self, f):
+        """K^T f (the adjoint product: sum_a sum_i w_ab(t_i - t_j) f_a(t_i)), Krylov path only."""
+        if self.trivial:
+            return np.zeros_like(f)
+        if self._spectral_t is None:
+            kern_t = np.ascontiguousarray(np.swapaxes(self._kern, 0, 1)[..., ::-1])
+            self._spectral_t = SpectralConvolver(kern_t)
+        return self._spectral_t(f)
+
+    def convolve_abs(self, f):
+        """sum_b sum_j |w_ab(t_i - t_j)| f_b(t_j) for f >= 0 (the size of the terms of the
+        convolution, for rounding bounds; FFT rounding on positive data is relative to the
+        result), Krylov path only."""
+        if self.trivial:
+            return np.zeros_like(f)
+        if self._spectral_abs is None:
+            self._spectral_abs = SpectralConvolver(np.abs(self._kern))
+        return np.abs(self._spectral_abs(f))
 
 
 def operators(model, grid, deformation=None):
