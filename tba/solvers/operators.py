@@ -35,6 +35,7 @@ summed over species: its kernel columns, its energy and momentum weights and the
 scalars carry g_b.
 """
 
+import functools
 import math
 
 import numpy as np
@@ -56,6 +57,13 @@ def uses_band_limited_kernels(model):
     return bool(getattr(model, "has_kernel_transform", False))
 
 
+@functools.lru_cache(maxsize=4)
+def _gauss_legendre(nodes):
+    x, w = np.polynomial.legendre.leggauss(nodes)
+    x.flags.writeable = w.flags.writeable = False
+    return x, w
+
+
 def band_limited_samples(transform, h, N, oscillation=0.0):
     """W(kh) for k = 0 .. N-1 of the even kernel(s) whose transform is ``transform(k)``
     (returning shape S + k.shape): shape S + (N,). ``oscillation``: the transform's own
@@ -64,7 +72,7 @@ def band_limited_samples(transform, h, N, oscillation=0.0):
     tau = h * np.arange(N)
     span = (tau[-1] if N > 1 else 0.0) + oscillation
     panels = max(1, math.ceil(omega_max * span / PANEL_PHASE))
-    x, w = np.polynomial.legendre.leggauss(PANEL_NODES)
+    x, w = _gauss_legendre(PANEL_NODES)
     edges = np.linspace(0.0, omega_max, panels + 1)
     half = 0.5 * (edges[1:] - edges[:-1])
     nodes = (half[:, None] * x[None, :] + 0.5 * (edges[1:] + edges[:-1])[:, None]).ravel()
