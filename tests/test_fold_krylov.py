@@ -32,12 +32,15 @@ def path(krylov, extra_margin=0.0):
     """Force the Krylov path (or the dense one) and optionally finer, wider grids."""
     old_limit, old_margin = operators.DENSE_LIMIT, grid_rule.BASE_MARGIN
     operators.DENSE_LIMIT = 0 if krylov else 10 ** 9
+    old_many = operators.MANY_SPECIES_DENSE_LIMIT
+    operators.MANY_SPECIES_DENSE_LIMIT = operators.DENSE_LIMIT
     grid_rule.BASE_MARGIN = old_margin + extra_margin
     ground._cached_grid.cache_clear()
     try:
         yield
     finally:
         operators.DENSE_LIMIT, grid_rule.BASE_MARGIN = old_limit, old_margin
+        operators.MANY_SPECIES_DENSE_LIMIT = old_many
         ground._cached_grid.cache_clear()
 
 

@@ -43,13 +43,29 @@ import numpy as np
 from kernels import SpectralConvolver, block_toeplitz_matrix
 
 #: systems with n_species * N at or below this are solved densely (inverse of J0 reused along
-#: a scan); larger ones use GMRES with FFT products. With band-limited kernels E8 needs
-#: n N ~ 250-600 at tol 1e-12, so every built-in model is dense at ordinary radii.
+#: a scan); larger ones use GMRES with FFT products
 DENSE_LIMIT = 1600
+#: massive models with at least MANY_SPECIES species are dense only up to n N =
+#: MANY_SPECIES_DENSE_LIMIT: the dense cost grows like (n N)^3, GMRES's with n N log N, and
+#: scans measured on this machine (1 BLAS thread, CPU time per point, radii 0.6-5, alpha
+#: 0.05, tol 1e-12; DEVELOPERS.md) cross over near n N = 600 (E8, n N <= 456: dense 1.8x
+#: faster; A12, 396-684: GMRES 1.3x; A16, 528-912: 2.2x; A24, 792-1368: 4.8x). Fewer species
+#: and massless models keep DENSE_LIMIT (GMRES stalls on the plateaus of massless species).
+MANY_SPECIES = 3
+MANY_SPECIES_DENSE_LIMIT = 576
 #: Gauss-Legendre nodes per panel of the band integral; a panel spans at most
 #: PANEL_PHASE radians of cos(k tau) at the largest offset
 PANEL_NODES = 24
 PANEL_PHASE = 6 * math.pi
+
+
+def use_dense(model, n, N):
+    """True when the system of n species on N points is solved densely (the cost model of
+    DENSE_LIMIT and MANY_SPECIES_DENSE_LIMIT)."""
+    size = n * N
+    if n >= MANY_SPECIES and not model.is_massless:
+        return size <= min(DENSE_LIMIT, MANY_SPECIES_DENSE_LIMIT)
+    return size <= DENSE_LIMIT
 
 
 def uses_band_limited_kernels(model):
@@ -120,7 +136,7 @@ class Operators:
         self.n, self.N = n, N
         self.model, self.grid = model, grid
         self.trivial = not np.any(kern)
-        self.dense = n * N <= DENSE_LIMIT
+        self.dense = use_dense(model, n, N)
         if self.trivial:
             self.matrix = np.zeros((1, 1))
         elif self.dense:
