@@ -16,7 +16,8 @@ of the deformed equations), and det(cap) = det J / det J0 is the fold indicator.
 Chord iteration: ``A`` may be the inverse of J0 at another point (the previous radius of a
 scan, on the same grid). The iteration then converges linearly; J0 is inverted afresh at the
 current iterate (a Newton step) as soon as a chord step reduces max |F| by less than a factor
-``1 / CHORD_RATE`` (``1 / CHORD_RATE_LARGE`` above SMALL), and Newton with backtracking on max |F| takes over.
+``1 / CHORD_RATE`` (``1 / CHORD_RATE_LARGE`` above SMALL unknowns), and Newton with
+backtracking on max |F| takes over.
 
 Stopping rule: before a step is applied, the energy change it would make, dE = |wE . (L' delta)|,
 is compared with max(tol / 10, 8 eps) |E|; once the step is also small (max |delta| < 1e-6 or
