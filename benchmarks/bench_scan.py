@@ -362,6 +362,8 @@ def main(argv=None):
     ap.add_argument("--repeat", type=int, default=None, help="timed runs per scan (default 5, quick 1)")
     ap.add_argument("--plain-stride", type=int, default=0,
                     help="time the plain scan on every k-th radius (default: 1 unless too slow)")
+    ap.add_argument("--only", choices=["sinh-gordon", "ising-e8"], default=None,
+                    help="run only this scan")
     ap.add_argument("--no-cold-start", action="store_true", help="skip the fresh-process timings")
     ap.add_argument("--json", default=None,
                     help="output file (default benchmarks/results.json, with --quick results-quick.json)")
@@ -398,7 +400,8 @@ def main(argv=None):
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):
-        rows = [run_scan(cfg, repeat, args.plain_stride) for cfg in scans(args.quick)]
+        rows = [run_scan(cfg, repeat, args.plain_stride) for cfg in scans(args.quick)
+                if args.only in (None, cfg["name"])]
     cold = None
     if not args.no_cold_start:
         print("\n== cold start", flush=True)

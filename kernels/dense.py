@@ -16,7 +16,8 @@ of the deformed equations), and det(cap) = det J / det J0 is the fold indicator.
 Chord iteration: ``A`` may be the inverse of J0 at another point (the previous radius of a
 scan, on the same grid). The iteration then converges linearly; J0 is inverted afresh at the
 current iterate (a Newton step) as soon as a chord step reduces max |F| by less than a factor
-``1 / CHORD_RATE``, and Newton with backtracking on max |F| takes over.
+``1 / CHORD_RATE`` (``1 / CHORD_RATE_LARGE`` above SMALL unknowns), and Newton with
+backtracking on max |F| takes over.
 
 Stopping rule: before a step is applied, the energy change it would make, dE = |wE . (L' delta)|,
 is compared with max(tol / 10, 8 eps) |E|; once the step is also small (max |delta| < 1e-6 or
@@ -39,6 +40,11 @@ from kernels.statistics import occupation_terms
 CONVERGED, MAX_ITERATIONS, LINE_SEARCH_FAILED, OUTSIDE_DOMAIN, SINGULAR = 0, 1, 2, 3, 4
 #: a chord step must reduce max |F| at least by this factor, else J0 is inverted afresh
 CHORD_RATE = 0.1
+#: the same for systems above SMALL (many species): there an inversion costs as much as
+#: hundreds of chord steps (E8, M = 264-456: 2-16 ms against 30 us), so slower chord steps
+#: are kept (E8 scan of benchmarks/bench_scan.py, 40 radii: 4.1 ms of CPU per point with 0.1,
+#: 2.9 with 0.3, 0.5 or 0.7; 0.3 keeps the iteration error's 1 / (1 - rate) small)
+CHORD_RATE_LARGE = 0.3
 #: up to this size, matrix-vector products and inverses are the loops of this module
 SMALL = 128
 #: safety factor of the rounding estimate over the root-mean-square effect of rounding
@@ -442,6 +448,7 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     A = A0
     inversions = 0
     nan = np.nan
+    chord_rate = CHORD_RATE if M <= SMALL else CHORD_RATE_LARGE
     if occupation_terms(e, sign, L, dL) != 0:
         return e, L, dL, 0, np.inf, np.inf, OUTSIDE_DOMAIN, nan, nan, A, inversions
     work = np.empty(M)
@@ -563,7 +570,7 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
             rate = 0.0
         elif lam == 1.0:
             rate = max(rate, min(step_rate, 0.9))
-        if not was_fresh and lam == 1.0 and step_rate > CHORD_RATE and r > floor:
+        if not was_fresh and lam == 1.0 and step_rate > chord_rate and r > floor:
             A = inverse_j0(K, dL, trivial)
             Z = _z_of(A, U)
             inversions += 1

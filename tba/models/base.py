@@ -26,6 +26,7 @@ x -> 1 - x, and S_{a-bar b}(0) = S_ab(0) (-1)^{N_ab} with N_ab the number of hal
 counting as two). A self-conjugate pair therefore has full blocks only (<x><1-x> = -f_x).
 """
 
+import functools
 from dataclasses import dataclass, field
 from typing import Callable, Optional
 
@@ -438,13 +439,25 @@ class DiagonalModel:
             raise NotImplementedError("kernel_transform: not known for a kernel callable")
         k = np.asarray(k, dtype=float)
         n = self.n_species
-        keys = sorted({key for row in self.blocks for c in row for key in c},
-                      key=_blocks.key_order)
         out = np.zeros((n, n) + k.shape)
-        for key in keys:
-            mult = np.array([[c.get(key, 0) for c in row] for row in self.blocks], dtype=float)
+        for key, mult in self._block_table:
             out += mult.reshape((n, n) + (1,) * k.ndim) * _blocks.key_transform(key, k)
         return out
+
+    @functools.cached_property
+    def _block_table(self):
+        """((key, multiplicity matrix), ...) over the distinct blocks, in canonical order:
+        built once (hashing the Fraction keys of every cell cost more than the transforms)."""
+        n = self.n_species
+        table = {}
+        for a, row in enumerate(self.blocks):
+            for b, cell in enumerate(row):
+                for key, m in cell.items():
+                    mult = table.get(key)
+                    if mult is None:
+                        mult = table[key] = np.zeros((n, n))
+                    mult[a, b] += m
+        return tuple((key, table[key]) for key in sorted(table, key=_blocks.key_order))
 
     def s_matrix(self, t):
         """S_ab(t) for block models, shape (n, n) + t.shape (complex); t may be complex."""

@@ -364,6 +364,39 @@ class KrylovJacobian:
         """The fold indicator (no determinant of J0 for systems this large)."""
         return self.fold_indicator()
 
+    def _matvec0_transposed(self, x):
+        x = np.asarray(x).reshape(self.disc.shape)
+        return (x + self.dL * self.disc.ops.convolve_transposed(x)).reshape(-1)
+
+    def adjoint(self, b, rtol=1e-6):
+        """J^{-T} b for a flat vector b, through J0^T (well conditioned next to folds):
+        b^T J^{-1} = b^T (A - Z cap^{-1} CVd A) with A = J0^{-1}, Z = A U^T, so
+        J^{-T} b = J0^{-T} (b - CVd^T cap^{-T} Z^T b): one GMRES solve with J0^T."""
+        rhs = np.asarray(b, dtype=float)
+        if self.disc.c.size:  # the capacitance of the fold indicator (GMRES to 1e-10)
+            Z, cap = self._capacitance()
+            rhs = rhs - self.CVd.T @ np.linalg.solve(cap.T, Z.T @ rhs)
+        op = scipy.sparse.linalg.LinearOperator((self.size, self.size),
+                                                matvec=self._matvec0_transposed, dtype=float)
+        return self._gmres(op, rhs, rtol)
+
+    def rounding_error(self, e, L):
+        """The effect on E of rounding errors in the equations and in the energy sum, as on the
+        dense path (`kernels.dense.rounding_error`): ROUNDING_SAFETY sqrt(sum_i (lambda_i
+        dF_i)^2) + 4 eps sum |wE L| with lambda = J^{-T} (L' wE) and dF_i = eps (|e_i| +
+        |nu_i| + sum_j |K_ij L_j| + |rank-one terms_i|). Near a fold lambda grows like dE/dR:
+        the amplification the error estimate must carry."""
+        d = self.disc
+        try:
+            lam = self.adjoint((self.dL * d.wE).reshape(-1))
+        except np.linalg.LinAlgError:  # no bound on the amplification: no certified number
+            return math.inf
+        S = d.V_flat @ L.reshape(-1)
+        sep = (np.abs(d.c * S) @ np.abs(d.U_flat)).reshape(d.shape) if d.c.size else 0.0
+        dF = _EPS * (np.abs(e) + np.abs(d.nu) + d.ops.convolve_abs(np.abs(L)) + sep)
+        total = float(np.sqrt(np.sum((lam.reshape(d.shape) * dF) ** 2)))
+        return _dense.ROUNDING_SAFETY * total + 4 * _EPS * float(np.sum(np.abs(d.wE * L)))
+
     def bordered_solve(self, f, p, q, a1, a2):
         return _bordered(self, f, p, q, a1, a2)
 
@@ -549,8 +582,8 @@ def _state(disc, nt, fold=None):
     dressing = dressing.reshape(disc.shape) if ops.dense else disc.dressing(L)
     if nt.rounding is not None:  # the compiled iteration propagates rounding through J^{-T}
         rounding = nt.rounding
-    else:  # every term of E and of eps carries a relative error of a few ulps
-        rounding = 4 * _EPS * (np.sum(np.abs(disc.wE * L)) + np.sum(np.abs(disc.wE * nt.dL * e)))
+    else:  # the Krylov path: rounding of the equations through the adjoint solution
+        rounding = nt.jacobian().rounding_error(e, L)
     if fold is None:
         fold = nt.fold_indicator
     return State(grid=disc.grid, radius=disc.radius, deformation=disc.deformation, eps=e,

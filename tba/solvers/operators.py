@@ -43,25 +43,41 @@ import numpy as np
 from kernels import SpectralConvolver, block_toeplitz_matrix
 
 #: systems with n_species * N at or below this are solved densely (inverse of J0 reused along
-#: a scan); larger ones use GMRES with FFT products. With band-limited kernels E8 needs
-#: n N ~ 250-600 at tol 1e-12, so every built-in model is dense at ordinary radii.
+#: a scan); larger ones use GMRES with FFT products
 DENSE_LIMIT = 1600
+#: massive models with at least MANY_SPECIES species are dense only up to n N =
+#: MANY_SPECIES_DENSE_LIMIT: the dense cost grows like (n N)^3, GMRES's with n N log N, and
+#: scans measured on this machine (1 BLAS thread, CPU time per point, radii 0.6-5, alpha
+#: 0.05, tol 1e-12; DEVELOPERS.md) cross over near n N = 600 (E8, n N <= 456: dense 1.8x
+#: faster; A12, 396-684: GMRES 1.3x; A16, 528-912: 2.2x; A24, 792-1368: 4.8x). Fewer species
+#: and massless models keep DENSE_LIMIT (GMRES stalls on the plateaus of massless species).
+MANY_SPECIES = 3
+MANY_SPECIES_DENSE_LIMIT = 576
 #: Gauss-Legendre nodes per panel of the band integral; a panel spans at most
 #: PANEL_PHASE radians of cos(k tau) at the largest offset
 PANEL_NODES = 24
 PANEL_PHASE = 6 * math.pi
 
 
-@functools.lru_cache(maxsize=1)
-def _gauss_legendre():
-    """The PANEL_NODES Gauss-Legendre nodes and weights on [-1, 1], computed once (an eigenvalue
-    problem: most of the cost of the kernel samples of a small grid)."""
-    return np.polynomial.legendre.leggauss(PANEL_NODES)
+def use_dense(model, n, N):
+    """True when the system of n species on N points is solved densely (the cost model of
+    DENSE_LIMIT and MANY_SPECIES_DENSE_LIMIT)."""
+    size = n * N
+    if n >= MANY_SPECIES and not model.is_massless:
+        return size <= min(DENSE_LIMIT, MANY_SPECIES_DENSE_LIMIT)
+    return size <= DENSE_LIMIT
 
 
 def uses_band_limited_kernels(model):
     """True when the model's kernels are discretised band-limited (their transform is known)."""
     return bool(getattr(model, "has_kernel_transform", False))
+
+
+@functools.lru_cache(maxsize=4)
+def _gauss_legendre(nodes):
+    x, w = np.polynomial.legendre.leggauss(nodes)
+    x.flags.writeable = w.flags.writeable = False
+    return x, w
 
 
 def band_limited_samples(transform, h, N, oscillation=0.0):
@@ -72,7 +88,7 @@ def band_limited_samples(transform, h, N, oscillation=0.0):
     tau = h * np.arange(N)
     span = (tau[-1] if N > 1 else 0.0) + oscillation
     panels = max(1, math.ceil(omega_max * span / PANEL_PHASE))
-    x, w = _gauss_legendre()
+    x, w = _gauss_legendre(PANEL_NODES)
     edges = np.linspace(0.0, omega_max, panels + 1)
     half = 0.5 * (edges[1:] - edges[:-1])
     nodes = (half[:, None] * x[None, :] + 0.5 * (edges[1:] + edges[:-1])[:, None]).ravel()
@@ -120,7 +136,7 @@ class Operators:
         self.n, self.N = n, N
         self.model, self.grid = model, grid
         self.trivial = not np.any(kern)
-        self.dense = n * N <= DENSE_LIMIT
+        self.dense = use_dense(model, n, N)
         if self.trivial:
             self.matrix = np.zeros((1, 1))
         elif self.dense:
@@ -128,6 +144,8 @@ class Operators:
         else:
             self.matrix = None
             self._spectral = SpectralConvolver(kern)
+            self._kern = kern
+            self._spectral_t = self._spectral_abs = None
         t, h = grid.t, grid.h
         self.drive = model.energies(t)
         self.momentum = model.momenta(t)
@@ -201,6 +219,25 @@ class Operators:
         if self.dense:
             return (self.matrix @ f.reshape(-1)).reshape(f.shape)
         return self._spectral(f)
+
+    def convolve_transposed(self, f):
+        """K^T f (the adjoint product: sum_a sum_i w_ab(t_i - t_j) f_a(t_i)), Krylov path only."""
+        if self.trivial:
+            return np.zeros_like(f)
+        if self._spectral_t is None:
+            kern_t = np.ascontiguousarray(np.swapaxes(self._kern, 0, 1)[..., ::-1])
+            self._spectral_t = SpectralConvolver(kern_t)
+        return self._spectral_t(f)
+
+    def convolve_abs(self, f):
+        """sum_b sum_j |w_ab(t_i - t_j)| f_b(t_j) for f >= 0 (the size of the terms of the
+        convolution, for rounding bounds; FFT rounding on positive data is relative to the
+        result), Krylov path only."""
+        if self.trivial:
+            return np.zeros_like(f)
+        if self._spectral_abs is None:
+            self._spectral_abs = SpectralConvolver(np.abs(self._kern))
+        return np.abs(self._spectral_abs(f))
 
 
 def operators(model, grid, deformation=None):
