@@ -41,6 +41,8 @@ CONVERGED, MAX_ITERATIONS, LINE_SEARCH_FAILED, OUTSIDE_DOMAIN, SINGULAR = 0, 1, 
 CHORD_RATE = 0.1
 #: up to this size, matrix-vector products and inverses are the loops of this module
 SMALL = 128
+#: Newton steps taken with the residual at rounding level before the iterate is returned
+FLOOR_STEPS = 8
 #: safety factor of the rounding estimate over the root-mean-square effect of rounding
 ROUNDING_SAFETY = 5.0
 
@@ -442,6 +444,7 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     rate = 0.0
     dE = np.inf
     rounding = nan
+    at_floor = 0
     for it in range(maxiter + 1):
         cap = _cap_of(c, V, dL, Z, CVd)
         _mv(A, F, y)
@@ -483,6 +486,15 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
             done = dE <= 2.0 * rounding and dE > 0.5 * dE_last
             if done:
                 dE = max(dE - rounding, 0.0)
+            else:
+                # next to a fold the steps at the floor can be amplified noise well above the
+                # estimate (rounding that is not independent between equations): after
+                # FLOOR_STEPS of them stop, the larger of the last two steps' energy changes
+                # being the iterate's error (the caller's tolerance decides whether it is met)
+                at_floor += 1
+                if at_floor >= FLOOR_STEPS:
+                    done = True
+                    dE = max(dE, dE_last)
         if done:
             fold, rnd = _fold_and_rounding(K, nu, U, V, c, wE, e, L, dL, A, Z, fresh, trivial)
             if not (rounding == rounding):

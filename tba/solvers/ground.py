@@ -698,8 +698,9 @@ def _polish(state):
     energy is E(eps) - lambda . F(eps) with lambda = J^{-T} (L' wE), the adjoint: the energy
     the Newton step from eps would reach. The change between the two corrected energies is the
     remaining iteration error; rounding is then that of extended precision (the double
-    estimate scaled by the ratio of the epsilons, with a safety factor of 4) plus the rounding
-    of the final energy to double. Dense systems of fermions or bosons only; else a no-op."""
+    estimate scaled by the ratio of the epsilons, with a safety factor of 4), the rounding of
+    the final energy to double, and the conditioning floor eps R |dE/dR| (one ulp of R), which
+    keeps points too close to the fold for the tolerance refused. Dense systems of fermions or bosons only; else a no-op."""
     disc = state.disc
     if not (_HAVE_LONG and disc.ops.dense) or state.L is None:
         return
@@ -729,7 +730,11 @@ def _polish(state):
     state.energy = float(energies[1])
     state.iteration_error = change
     energy_sum = float(np.sum(np.abs(disc.ops.wE_flat * state.L.reshape(-1))))
-    state.rounding_error = 4.0 * (_LONG_EPS / _EPS) * state.rounding_error + 4 * _EPS * energy_sum
+    # the conditioning floor: eps R |dE/dR| (lambda . nu = R dE/dR), what one ulp of R changes;
+    # next to a fold every perturbation of the equations (the grid's too) is amplified so
+    conditioning = _EPS * abs(float(np.dot(lam, disc.nu.reshape(-1))))
+    state.rounding_error = (4.0 * (_LONG_EPS / _EPS) * state.rounding_error + 4 * _EPS * energy_sum
+                            + conditioning)
 
 
 # -- folds ---------------------------------------------------------------------------------------
