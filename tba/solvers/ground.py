@@ -666,6 +666,9 @@ def _link(state, seed):
 
 #: a state is polished when rounding and iteration error exceed this fraction of the tolerance
 POLISH_FRACTION = 1e-2
+#: ... and their rounding allowance is amplified (next to a fold): above this, relative (~100
+#: ulps; ordinary points have a few ulps, E8 at R_c(1 + 1e-4) 2e-14)
+AMPLIFIED = 1e-14
 _LONG = np.longdouble
 #: extended precision is available (x86: 64-bit mantissa); elsewhere no polish is done
 _LONG_EPS = float(np.finfo(_LONG).eps)
@@ -679,7 +682,7 @@ def _long_residual(disc, x):
         ex = np.exp(-np.abs(x))
         L = np.where(x > 0, np.log1p(ex), -x + np.log1p(ex))
     else:
-        L = -np.log1p(-np.exp(-x))
+        L = -np.log(-np.expm1(-x))
     ops = disc.ops
     F = x - disc.nu.reshape(-1).astype(_LONG)
     if not ops.trivial:
@@ -719,8 +722,9 @@ def _polish(state):
     x = state.eps.reshape(-1).astype(_LONG)
     energies = []
     for _ in range(2):
-        F, L, E = _long_residual(disc, x)
-        if not np.all(np.isfinite(F)):
+        with np.errstate(all="ignore"):
+            F, L, E = _long_residual(disc, x)
+        if not (np.all(np.isfinite(F)) and np.isfinite(E)):
             return
         energies.append(E - np.sum(lam.astype(_LONG) * F))
         x = x - scipy.linalg.lu_solve(lu, F.astype(float)).astype(_LONG)
@@ -1021,7 +1025,8 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         if state is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=nt.message)
-        if state.rounding_error + state.iteration_error > POLISH_FRACTION * tol * abs(state.energy):
+        if state.rounding_error > AMPLIFIED * abs(state.energy) and \
+                state.rounding_error + state.iteration_error > POLISH_FRACTION * tol * abs(state.energy):
             _polish(state)
         scale = abs(state.energy)
         if state.tail_error > 1e-3 * tol * scale and cutoff_extra < 60:
