@@ -21,6 +21,8 @@ Every point is solved on two grids of increasing resolution (`tba.solvers.grid`)
 difference of their energies, plus the Newton iteration error and the rounding of the
 equations propagated to E through the adjoint solution (which grows like 1/sqrt(R - R_c) next
 to a branch point), is the error estimate. More levels are added until it meets the tolerance.
+Where that rounding is amplified next to a fold, each level's energy is polished with residuals
+in extended precision (`_polish`), leaving the conditioning floor eps R |dE/dR| in its place.
 Each level starts from its own solutions at the previous radii (extrapolated in R on the same
 grid), or from the coarser level of this point.
 
@@ -703,7 +705,8 @@ def _polish(state):
     remaining iteration error; rounding is then that of extended precision (the double
     estimate scaled by the ratio of the epsilons, with a safety factor of 4), the rounding of
     the final energy to double, and the conditioning floor eps R |dE/dR| (one ulp of R), which
-    keeps points too close to the fold for the tolerance refused. Dense systems of fermions or bosons only; else a no-op."""
+    keeps points too close to the fold for the tolerance refused. Dense systems with extended
+    precision only; elsewhere (and if the corrections do not settle) a no-op."""
     disc = state.disc
     if not (_HAVE_LONG and disc.ops.dense) or state.L is None:
         return
@@ -1025,9 +1028,10 @@ def solve_ground_state(model, radius, deformation=None, *, tol=1e-12, start=None
         if state is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=nt.message)
-        if state.rounding_error > AMPLIFIED * abs(state.energy) and \
-                state.rounding_error + state.iteration_error > POLISH_FRACTION * tol * abs(state.energy):
-            _polish(state)
+        size = abs(state.energy)
+        if state.rounding_error > AMPLIFIED * size and \
+                state.rounding_error + state.iteration_error > POLISH_FRACTION * tol * size:
+            _polish(state)  # next to a fold: the energy without double-precision rounding
         scale = abs(state.energy)
         if state.tail_error > 1e-3 * tol * scale and cutoff_extra < 60:
             cutoff_extra += 4 + math.log(state.tail_error / (1e-3 * tol * scale))
