@@ -47,6 +47,8 @@ CHORD_RATE = 0.1
 CHORD_RATE_LARGE = 0.3
 #: up to this size, matrix-vector products and inverses are the loops of this module
 SMALL = 128
+#: Newton steps taken with the residual at rounding level before the iterate is returned
+FLOOR_STEPS = 8
 #: safety factor of the rounding estimate over the root-mean-square effect of rounding
 ROUNDING_SAFETY = 5.0
 #: radii a grid level keeps along a scan for its extrapolated start (degree HISTORY - 1): on
@@ -474,6 +476,7 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
     rounding = nan
     fold_at = -1  # the iteration whose fold indicator `fold_at_it` is
     fold_at_it = nan
+    at_floor = 0
     for it in range(maxiter + 1):
         cap = _cap_of(c, V, dL, Z, CVd)
         _mv(A, F, y)
@@ -516,6 +519,15 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
             done = dE <= 2.0 * rounding and dE > 0.5 * dE_last
             if done:
                 dE = max(dE - rounding, 0.0)
+            else:
+                # next to a fold the steps at the floor can be amplified noise well above the
+                # estimate (rounding that is not independent between equations): after
+                # FLOOR_STEPS of them stop, the larger of the last two steps' energy changes
+                # being the iterate's error (the caller's tolerance decides whether it is met)
+                at_floor += 1
+                if at_floor >= FLOOR_STEPS:
+                    done = True
+                    dE = max(dE, dE_last)
         if done:
             if fold_at == it:  # this iterate's fold indicator and rounding are known
                 fold = fold_at_it

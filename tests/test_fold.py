@@ -10,12 +10,17 @@ no real solution; below R_c it must never return a number.
 
 Reference (common practice, no source): the same equations solved on grids forced finer and
 wider: every grid level asked for REFERENCE_MARGIN more e-folds, which shrinks the spacing
-and widens the cutoff, so that no grid of the reference is a grid of the tested solve.
+and widens the cutoff, so that no grid of the reference is a grid of the tested solve. Both
+energies are polished in extended precision next to the fold (tba/solvers/ground.py
+`_polish`); that polish is checked on its own against mpmath below, so the reference's
+rounding does not depend on the BLAS thread count (it did: at d = 1e-8 the E8 estimate was
+5.4e-12 with two threads, 2.9e-11 with one).
 """
 
 import contextlib
 import math
 
+import mpmath
 import numpy as np
 import pytest
 
@@ -161,3 +166,49 @@ def test_second_branch_near_the_fold_is_right_or_refused(branches, name):
         checked += 1
     assert checked >= 1
     assert np.isfinite(fold.energy)
+
+
+def _discrete_energy_mp(model, deformation, radius, grid, eps, dps=30, steps=3):
+    """The energy of the exact solution of the discretised equations on ``grid`` (their data,
+    kernel matrix, drive and rank-one rows, taken as exact doubles): Newton from ``eps`` with
+    residuals and energies in ``dps``-digit mpmath arithmetic and the linear solves in double
+    (mixed-precision iterative refinement; common practice, no source)."""
+    disc = ground.Discretization(model, deformation, radius, grid)
+    K, nu = disc.ops.matrix, disc.nu.reshape(-1)
+    U, V, c, wE = disc.U_flat, disc.V_flat, np.asarray(disc.c), disc.ops.wE_flat
+    M = nu.size
+    with mpmath.workdps(dps):
+        x = [mpmath.mpf(float(v)) for v in eps.reshape(-1)]
+        for _ in range(steps):
+            L = [mpmath.log1p(mpmath.exp(-v)) if disc.sign > 0 else -mpmath.log1p(-mpmath.exp(-v))
+                 for v in x]
+            S = [mpmath.fsum(mpmath.mpf(float(V[r, j])) * L[j] for j in range(M))
+                 for r in range(c.size)]
+            F = [x[i] - mpmath.mpf(float(nu[i]))
+                 + mpmath.fsum(mpmath.mpf(float(K[i, j])) * L[j] for j in range(M))
+                 + mpmath.fsum(mpmath.mpf(float(c[r])) * S[r] * mpmath.mpf(float(U[r, i]))
+                               for r in range(c.size)) for i in range(M)]
+            dL = np.array([float(-1 / (1 + mpmath.exp(v))) if disc.sign > 0
+                           else float(1 / (1 - mpmath.exp(v))) for v in x])
+            J = np.eye(M) + K * dL[None, :] + (U.T * c) @ (V * dL[None, :])
+            delta = np.linalg.solve(J, -np.array([float(f) for f in F]))
+            x = [x[i] + mpmath.mpf(float(delta[i])) for i in range(M)]
+        L = [mpmath.log1p(mpmath.exp(-v)) if disc.sign > 0 else -mpmath.log1p(-mpmath.exp(-v))
+             for v in x]
+        return float(mpmath.fsum(mpmath.mpf(float(wE[i])) * L[i] for i in range(M)))
+
+
+def test_next_to_the_fold_the_energy_is_free_of_double_rounding(branches):
+    # at d = 1e-8 rounding of the double-precision equations, amplified like dE/dR, moves E by
+    # a few 1e-12 (and by how much depends on the summation order, e.g. the BLAS threads): the
+    # solver polishes the energy with extended-precision residuals, so on each grid it must be
+    # the exact discrete solution to ~1e-14, against mpmath at 30 digits
+    model, rc, _ = branches("lee-yang")
+    deformation = tba.ttbar(ALPHA)
+    radius = rc * (1 + 1e-8)
+    res = tba.solve(model, radius, deformation, tol=TOL)
+    assert res.status is tba.Status.CONVERGED, res.message
+    for state in (res._state, res._state.coarse):
+        exact = _discrete_energy_mp(model, deformation, radius, state.grid, state.eps)
+        assert abs(state.energy - exact) <= 1e-13 * abs(exact), (state.energy, exact)
+        assert abs(state.energy - exact) <= state.iteration_error + state.rounding_error

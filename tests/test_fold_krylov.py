@@ -53,10 +53,12 @@ def fold():
 
 @pytest.fixture(scope="module")
 def near(fold):
-    """Krylov solve at R_c (1 + 1e-6), tol 1e-12 (where rounding is the largest term)."""
+    """Krylov solve at R_c (1 + 1e-6), tol 5e-12 (where rounding is the largest term; the
+    conditioning allows ~8e-13 relative there, so tol 1e-12, which needs twice that, is
+    refused or not depending on the BLAS threads' rounding)."""
     radius = fold * (1 + 1e-6)
     with path(krylov=True):
-        res = tba.solve(tba.ising_e8(), radius, tba.ttbar(ALPHA), tol=1e-12)
+        res = tba.solve(tba.ising_e8(), radius, tba.ttbar(ALPHA), tol=5e-12)
     assert isinstance(res._state.jacobian(), ground.KrylovJacobian)
     return radius, res
 

@@ -21,6 +21,8 @@ Every point is solved on two grids of increasing resolution (`tba.solvers.grid`)
 difference of their energies, plus the Newton iteration error and the rounding of the
 equations propagated to E through the adjoint solution (which grows like 1/sqrt(R - R_c) next
 to a branch point), is the error estimate. More levels are added until it meets the tolerance.
+Where that rounding is amplified next to a fold, each level's energy is polished with residuals
+in extended precision (`_polish`), leaving the conditioning floor eps R |dE/dR| in its place.
 Each level starts from its own solutions at the previous radii (extrapolated in R on the same
 grid), or from the coarser level of this point.
 
@@ -540,16 +542,26 @@ def newton(disc, e, tol, maxiter=60, A=None):
     r = float(np.max(np.abs(F)))
     floor = 64 * _EPS * max(1.0, float(np.max(np.abs(disc.nu))))
     dE = np.inf
+    at_floor = 0
     for it in range(maxiter + 1):
         try:
             jac = disc.jacobian(dL)
             delta = jac.solve(-F, rtol=min(1e-3, max(1e-13, 1e-2 * r)))
         except (np.linalg.LinAlgError, ValueError) as exc:
             return _Newton(False, e, L, dL, it, r, dE, f"linear solve failed: {exc}")
-        dE = abs(float(np.sum(disc.wE * dL * delta)))
+        dE_last, dE = dE, abs(float(np.sum(disc.wE * dL * delta)))
         small = float(np.max(np.abs(delta))) < 1e-6 or r <= floor
         if small and dE <= max(1e-2 * tol, 8 * _EPS) * abs(disc.energy(L)):
             return _Newton(True, e, L, dL, it, r, dE, "converged", jac, disc)
+        if r <= 1e3 * floor and dE > 0.5 * dE_last:
+            # residual at rounding level, steps still above the request and no longer
+            # shrinking: next to a fold they are amplified rounding noise (as in
+            # `kernels.dense.newton`). After FLOOR_STEPS of them stop, the larger of the last two energy changes being the iterate's
+            # iteration error: the caller's tolerance decides whether that is good enough
+            at_floor += 1
+            if at_floor >= _dense.FLOOR_STEPS:
+                return _Newton(True, e, L, dL, it, r, max(dE, dE_last),
+                               "converged (rounding floor)", jac, disc)
         if it == maxiter:
             break
         lam = 1.0
@@ -696,6 +708,86 @@ def _link(state, seed):
         radii = np.concatenate([radii, old_r[keep][:_dense.HISTORY - 1]])
         g = np.concatenate([g, old_g[keep][:_dense.HISTORY - 1]])
     state.history = (radii, g)
+
+
+# -- extended-precision polish -----------------------------------------------------------------
+
+#: a state is polished when rounding and iteration error exceed this fraction of the tolerance
+POLISH_FRACTION = 1e-2
+#: ... and their rounding allowance is amplified (next to a fold): above this, relative (~100
+#: ulps; ordinary points have a few ulps, E8 at R_c(1 + 1e-4) 2e-14)
+AMPLIFIED = 1e-14
+_LONG = np.longdouble
+#: extended precision is available (x86: 64-bit mantissa); elsewhere no polish is done
+_LONG_EPS = float(np.finfo(_LONG).eps)
+_HAVE_LONG = _LONG_EPS < 1e-18
+
+
+def _long_residual(disc, x):
+    """(F, L, E) at eps = ``x`` (extended precision), the equations' data (kernel matrix,
+    drive, rank-one rows, weights) taken as exact double numbers."""
+    if disc.sign > 0:
+        ex = np.exp(-np.abs(x))
+        L = np.where(x > 0, np.log1p(ex), -x + np.log1p(ex))
+    else:
+        L = -np.log(-np.expm1(-x))
+    ops = disc.ops
+    F = x - disc.nu.reshape(-1).astype(_LONG)
+    if not ops.trivial:
+        F = F + ops.matrix.astype(_LONG) @ L
+    if disc.c.size:
+        S = disc.V_flat.astype(_LONG) @ L
+        F = F + (np.asarray(disc.c, dtype=_LONG) * S) @ disc.U_flat.astype(_LONG)
+    return F, L, np.sum(ops.wE_flat.astype(_LONG) * L)
+
+
+def _polish(state):
+    """Next to a fold dE/deps is large and the rounding of the double-precision equations
+    (and the Newton steps they drive) limits the energy: correct it by two Newton steps whose
+    residuals and energies are evaluated in extended precision (mixed-precision iterative
+    refinement; the linear solves stay in double, the dense Jacobian at this point). Each
+    energy is E(eps) - lambda . F(eps) with lambda = J^{-T} (L' wE), the adjoint: the energy
+    the Newton step from eps would reach. The change between the two corrected energies is the
+    remaining iteration error; rounding is then that of extended precision (the double
+    estimate scaled by the ratio of the epsilons, with a safety factor of 4), the rounding of
+    the final energy to double, and the conditioning floor eps R |dE/dR| (one ulp of R), which
+    keeps points too close to the fold for the tolerance refused. Dense systems with extended
+    precision only; elsewhere (and if the corrections do not settle) a no-op."""
+    disc = state.disc
+    if not (_HAVE_LONG and disc.ops.dense) or state.L is None:
+        return
+    M = state.eps.size
+    dL = state.dL.reshape(-1)
+    J = np.eye(M)
+    if not disc.ops.trivial:
+        J = J + disc.ops.matrix * dL[None, :]
+    if disc.c.size:
+        J = J + (disc.U_flat.T * np.asarray(disc.c)) @ (disc.V_flat * dL[None, :])
+    try:
+        lu = scipy.linalg.lu_factor(J, check_finite=True)
+    except (ValueError, np.linalg.LinAlgError):
+        return
+    lam = scipy.linalg.lu_solve(lu, dL * disc.ops.wE_flat, trans=1)
+    x = state.eps.reshape(-1).astype(_LONG)
+    energies = []
+    for _ in range(2):
+        with np.errstate(all="ignore"):
+            F, L, E = _long_residual(disc, x)
+        if not (np.all(np.isfinite(F)) and np.isfinite(E)):
+            return
+        energies.append(E - np.sum(lam.astype(_LONG) * F))
+        x = x - scipy.linalg.lu_solve(lu, F.astype(float)).astype(_LONG)
+    change = abs(float(energies[1] - energies[0]))
+    if not change <= state.rounding_error + state.iteration_error:
+        return  # the correction does not settle: keep the double-precision estimate
+    state.energy = float(energies[1])
+    state.iteration_error = change
+    energy_sum = float(np.sum(np.abs(disc.ops.wE_flat * state.L.reshape(-1))))
+    # the conditioning floor: eps R |dE/dR| (lambda . nu = R dE/dR), what one ulp of R changes;
+    # next to a fold every perturbation of the equations (the grid's too) is amplified so
+    conditioning = _EPS * abs(float(np.dot(lam, disc.nu.reshape(-1))))
+    state.rounding_error = (4.0 * (_LONG_EPS / _EPS) * state.rounding_error + 4 * _EPS * energy_sum
+                            + conditioning)
 
 
 # -- folds ---------------------------------------------------------------------------------------
@@ -1057,6 +1149,10 @@ def _solve_point(model, radius, deformation, tol, prev, rule):
         if state is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=nt.message)
+        size = abs(state.energy)
+        if state.rounding_error > AMPLIFIED * size and \
+                state.rounding_error + state.iteration_error > POLISH_FRACTION * tol * size:
+            _polish(state)  # next to a fold: the energy without double-precision rounding
         scale = abs(state.energy)
         if state.tail_error > 1e-3 * tol * scale and cutoff_extra < 60:
             cutoff_extra += 4 + math.log(state.tail_error / (1e-3 * tol * scale))
