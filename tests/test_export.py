@@ -173,3 +173,16 @@ def test_branch_points_csv(store):
         assert row["status"] == rec["status"] and row["message"] == rec["message"]
         for key in ("branch_radius", "branch_energy", "branch_effective_radius"):
             assert (row[key] == "") if rec[key] is None else (float(row[key]) == rec[key]), key
+
+
+def test_a_run_without_branch_points_says_so(tmp_path):
+    text = (RUN.replace('states = ["ground", "0"]', "")
+            .replace("alphas = [-0.1, 0, 0.1]", "alphas = [0.1]")
+            .replace("stop = 2.0", "stop = 1.0").replace("count = 2", "count = 1")
+            + "\n[scan]\nbranch_points = false\n")
+    run = loads_run(text, base_dir=tmp_path)
+    run_scan(run, workers=1, log=io.StringIO())
+    code, out, err = tba_main("export", "--branch-points", "--json", run.output)
+    assert code == 0 and out == "" and "scan.branch_points = false" in err
+    code, out, err = tba_main("export", "--branch-points", "--csv", run.output)
+    assert code == 0 and out.splitlines() == [",".join(BRANCH_RECORD_KEYS)]

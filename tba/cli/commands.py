@@ -320,7 +320,8 @@ def _export_branch_points(args, data, out):
     """``tba export --branch-points``: one record per stored branch point."""
     from tba.store.hdf5 import BRANCH_RECORD_KEYS
 
-    records = list(data.branch_records())
+    every = list(data.branch_records(include_not_computed=True))
+    records = [rec for rec in every if rec["status"] != "not-computed"]
     target = open(args.output, "w", newline="", encoding="utf-8") if args.output else out
     try:
         if args.json:
@@ -341,6 +342,12 @@ def _export_branch_points(args, data, out):
     elif not data.has_level_branch_points and len(data.state) > 1:
         print(f"tba export: {args.file} (schema {data.schema_version}) has no excited-level "
               f"branch points (stored from schema 5 on)", file=sys.stderr)
+    if not data.run.branch_points:
+        print(f"tba export: {args.file} has no branch points (scan.branch_points = false in "
+              f"its run)", file=sys.stderr)
+    elif data.shard is None and len(every) > len(records):
+        print(f"tba export: {len(every) - len(records)} branch points not computed yet were "
+              f"left out", file=sys.stderr)
     return 0
 
 

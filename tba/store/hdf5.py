@@ -1321,16 +1321,15 @@ class StoreData:
             code = int(arrays["status"][i])
             if code == NOT_COMPUTED and not include_not_computed:
                 continue
-            ok = code == BP_FOUND
-            value = lambda name: _finite(arrays[name][i]) if ok else None  # noqa: E731
+            # stored name -> record name (`tba.physics.flow.BranchPoint.as_record`)
+            values = {f"branch_{name}" if not name.startswith("branch_") else name:
+                      _finite(arrays[name][i]) if code == BP_FOUND else None
+                      for name in ("branch_radius", "branch_radius_error", "energy",
+                                   "energy_error", "effective_radius")}
             m, a = i[0], i[1]
             yield {"model": self.model_name[m], "coupling": _model_coupling(self.model_coupling[m]),
                    "alpha": float(self.alpha[a]), "state": state,
-                   "status": names.get(code, str(code)),
-                   "branch_radius": value("branch_radius"),
-                   "branch_radius_error": value("branch_radius_error"),
-                   "branch_energy": value("energy"), "branch_energy_error": value("energy_error"),
-                   "branch_effective_radius": value("effective_radius"),
+                   "status": names.get(code, str(code)), **values,
                    "message": arrays["message"][i]}
 
 
