@@ -49,6 +49,10 @@ chunk_size = 2
 NUMBERS = [name for name, (kind, _, _) in POINT_VARIABLES.items() if kind != "str"]
 SOLVE_KEYS = {"model", "coupling", "radius", "alpha", "cdd_couplings", "energy", "error", "status",
               "iterations", "message", "couplings"}  # couplings: deprecated, one release
+#: tba export: the solve keys (without rapidities, not stored) plus state, momentum and the
+#: stored flow check
+EXPORT_KEYS = SOLVE_KEYS | {"state", "momentum", "flow_radius", "flow_prediction", "flow_error",
+                            "flow_residual", "flow_status"}
 
 
 def _write(tmp_path, text=RUN, name="scan.toml"):
@@ -168,14 +172,14 @@ def test_run_report_export_end_to_end(tmp_path, capsys):
     assert main(["export", str(h5), "--json"]) == 0
     records = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
     assert len(records) == 20
-    assert all(set(r) == SOLVE_KEYS | {"state", "momentum"} for r in records)
+    assert all(set(r) == EXPORT_KEYS for r in records)
     assert {r["status"] for r in records} <= {"converged", "no-real-solution"}
 
     out = tmp_path / "scan.csv"
     assert main(["export", str(h5), "--csv", "-o", str(out)]) == 0
     with out.open(newline="") as fh:
         rows = list(csv.DictReader(fh))
-    assert len(rows) == 20 and set(rows[0]) == SOLVE_KEYS | {"state", "momentum"}
+    assert len(rows) == 20 and set(rows[0]) == EXPORT_KEYS
     for rec, row in zip(records, rows):
         assert row["energy"] == ("" if rec["energy"] is None else repr(rec["energy"]))
         assert float(row["radius"]) == rec["radius"] and json.loads(row["cdd_couplings"]) == rec["cdd_couplings"]
@@ -196,7 +200,7 @@ def test_export_matches_tba_solve_for_the_same_chain(tmp_path, capsys):
     solved = {r["radius"]: r for r in map(json.loads, capsys.readouterr().out.splitlines())}
     for rec in (r for r in exported if r["model"] == "lee-yang"):
         ref = solved[rec["radius"]]
-        assert set(ref) == set(rec) - {"state", "momentum"}
+        assert set(ref) == set(rec) - (EXPORT_KEYS - SOLVE_KEYS)
         for key in SOLVE_KEYS - {"message"}:
             assert rec[key] == ref[key], key
 

@@ -271,9 +271,11 @@ def cmd_plot(args, out):
     return 0
 
 
-#: CSV columns; ``couplings`` is the deprecated name of ``cdd_couplings``, kept for one release
+#: CSV columns; ``couplings`` is the deprecated name of ``cdd_couplings``, kept for one release;
+#: then the stored flow check (`tba.store.hdf5.FLOW_RECORD_KEYS`)
 EXPORT_KEYS = ["model", "coupling", "radius", "alpha", "cdd_couplings", "energy", "error",
-               "momentum", "status", "iterations", "message", "state", "couplings"]
+               "momentum", "status", "iterations", "message", "state", "couplings",
+               "flow_radius", "flow_prediction", "flow_error", "flow_residual", "flow_status"]
 
 
 def cmd_export(args, out):
@@ -285,7 +287,9 @@ def cmd_export(args, out):
         writable_file(f"argument {spelled(args, 'output', '-o/--output')}", args.output,
                       replace=False)
     data = _read(args.file)
-    records = list(data.records())
+    if args.branch_points:
+        return _export_branch_points(args, data, out)
+    records = list(data.records(flow=True))
     skipped = int(np.count_nonzero(data["status"] == NOT_COMPUTED))
     target = open(args.output, "w", newline="", encoding="utf-8") if args.output else out
     try:
@@ -309,6 +313,41 @@ def cmd_export(args, out):
               f"its points; combine the shards with tba merge", file=sys.stderr)
     elif skipped:
         print(f"tba export: {skipped} points not computed yet were left out", file=sys.stderr)
+    return 0
+
+
+def _export_branch_points(args, data, out):
+    """``tba export --branch-points``: one record per stored branch point."""
+    from tba.store.hdf5 import BRANCH_RECORD_KEYS
+
+    every = list(data.branch_records(include_not_computed=True))
+    records = [rec for rec in every if rec["status"] != "not-computed"]
+    target = open(args.output, "w", newline="", encoding="utf-8") if args.output else out
+    try:
+        if args.json:
+            for rec in records:
+                print(json_text(rec), file=target)
+        else:
+            writer = csv.DictWriter(target, fieldnames=list(BRANCH_RECORD_KEYS),
+                                    lineterminator="\n")
+            writer.writeheader()
+            for rec in map(plain, records):
+                writer.writerow(rec)
+    finally:
+        if target is not out:
+            target.close()
+    if data.shard is not None:
+        print(f"tba export: {args.file} is shard {data.shard.label} of a run (partial): only "
+              f"its branch points; combine the shards with tba merge", file=sys.stderr)
+    elif not data.has_level_branch_points and len(data.state) > 1:
+        print(f"tba export: {args.file} (schema {data.schema_version}) has no excited-level "
+              f"branch points (stored from schema 5 on)", file=sys.stderr)
+    if not data.run.branch_points:
+        print(f"tba export: {args.file} has no branch points (scan.branch_points = false in "
+              f"its run)", file=sys.stderr)
+    elif data.shard is None and len(every) > len(records):
+        print(f"tba export: {len(every) - len(records)} branch points not computed yet were "
+              f"left out", file=sys.stderr)
     return 0
 
 
@@ -472,11 +511,17 @@ def build_parser():
     plot.add_argument("--dpi", type=int, metavar="N", help="resolution of a .png (default 150)")
     plot.set_defaults(func=cmd_plot)
     export = sub.add_parser("export", help="one record per point, JSON lines or CSV",
-                            description="The keys of tba solve --json plus state; points not "
-                            "computed yet are left out.")
+                            description="The keys of tba solve --json plus state and the "
+                            "stored flow check (flow_radius, flow_prediction, flow_error, "
+                            "flow_residual, flow_status); points not computed yet are left "
+                            "out. With --branch-points: one record per stored branch point "
+                            "instead, with the keys of tba branch-point --json.")
     fmt = export.add_mutually_exclusive_group(required=True)
     fmt.add_argument("--json", action="store_true", help="one JSON object per line")
     fmt.add_argument("--csv", action="store_true", help="CSV with a header line")
+    export.add_argument("--branch-points", action="store_true",
+                        help="the stored branch points (ground state per model and alpha, "
+                        "excited levels per model, alpha and state) instead of the points")
     export.add_argument("file", metavar="FILE", help="HDF5 file written by tba run")
     add_output_argument(export, "OUT", "write here instead of stdout")
     export.set_defaults(func=cmd_export)

@@ -1253,11 +1253,14 @@ class StoreData:
         """Mask of the chunks this file is responsible for (all of them in a full store)."""
         return self.progress.get("owned", np.ones(self.n_chunks, dtype="u1")).astype(bool)
 
-    def records(self, include_not_computed=False, deprecated=True):
+    def records(self, include_not_computed=False, deprecated=True, flow=False):
         """One dict per point with the keys of ``tba solve --json`` plus ``state``
-        (``deprecated``: with the earlier key ``couplings`` beside ``cdd_couplings``)."""
+        (``deprecated``: with the earlier key ``couplings`` beside ``cdd_couplings``;
+        ``flow``: also the stored flow check `FLOW_RECORD_KEYS`, None where not computed and
+        ``flow_status`` by its name, as in /flow_status's legend)."""
         st = self.data["status"]
         names = {code: name for code, (name, _) in STATUS_MEANINGS.items()}
+        flow_names = {code: name for code, (name, _) in FLOW_MEANINGS.items()}
         for m in range(len(self.model)):
             for a, alpha in enumerate(self.alpha):
                 deformation = self.run.deformation(float(alpha), m)
@@ -1287,9 +1290,61 @@ class StoreData:
                             "state": state,
                             **extra,
                         }
+                        if flow:  # a prediction only from a converged undeformed solve
+                            code = int(self.data["flow_status"][i])
+                            checked = flow_names.get(code) == "converged"
+                            rec["flow_radius"] = _finite(self.data["flow_radius"][i])
+                            for key in ("flow_prediction", "flow_error", "flow_residual"):
+                                rec[key] = _finite(self.data[key][i]) if checked else None
+                            rec["flow_status"] = flow_names.get(code, str(code))
                         if deprecated:
                             rec["couplings"] = dict(cdd)
                         yield rec
+
+    def branch_records(self, include_not_computed=False):
+        """One dict per stored branch point: the ground state's of /branch_points per
+        (model, alpha), then the excited levels' of /level_branch_points per (model, alpha,
+        state), with the keys `BRANCH_RECORD_KEYS` (those of ``tba branch-point --json``
+        without the derived ``hagedorn_temperature``); values None unless found, ``status``
+        by its name. Not computed ones (always the "ground" column of the levels, every level
+        before schema 5) are left out unless ``include_not_computed``."""
+        names = {code: name for code, (name, _) in BRANCH_MEANINGS.items()}
+        keyed = []
+        if self.branch:
+            keyed += [(self.branch, (m, a), "ground") for m in range(len(self.model))
+                      for a in range(len(self.alpha))]
+        if self.levels:
+            keyed += [(self.levels, (m, a, s), state) for m in range(len(self.model))
+                      for a in range(len(self.alpha)) for s, state in enumerate(self.state)
+                      if state != "ground"]
+        for arrays, i, state in keyed:
+            code = int(arrays["status"][i])
+            if code == NOT_COMPUTED and not include_not_computed:
+                continue
+            # stored name -> record name (`tba.physics.flow.BranchPoint.as_record`)
+            values = {f"branch_{name}" if not name.startswith("branch_") else name:
+                      _finite(arrays[name][i]) if code == BP_FOUND else None
+                      for name in ("branch_radius", "branch_radius_error", "energy",
+                                   "energy_error", "effective_radius")}
+            m, a = i[0], i[1]
+            yield {"model": self.model_name[m], "coupling": _model_coupling(self.model_coupling[m]),
+                   "alpha": float(self.alpha[a]), "state": state,
+                   "status": names.get(code, str(code)), **values,
+                   "message": arrays["message"][i]}
+
+
+#: the flow-check keys of `StoreData.records` (``flow=True``), in CSV column order
+FLOW_RECORD_KEYS = ("flow_radius", "flow_prediction", "flow_error", "flow_residual", "flow_status")
+#: the keys of `StoreData.branch_records`, in CSV column order
+BRANCH_RECORD_KEYS = ("model", "coupling", "alpha", "state", "status", "branch_radius",
+                      "branch_radius_error", "branch_energy", "branch_energy_error",
+                      "branch_effective_radius", "message")
+
+
+def _finite(value):
+    """A stored float as a plain float, None for NaN (not computed)."""
+    value = float(value)
+    return value if math.isfinite(value) else None
 
 
 def _model_coupling(value):
