@@ -397,21 +397,25 @@ def _excited_section(data):
         if c.status not in ("found", "none"):
             lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}, state "
                          f"{data.state[c.state]}: {c.status}: {c.message}")
-    checked = [c for c in found if c.consistent is not None]
+    lines += _consistency_lines(found, lambda c: f"{data.model[c.model]}, alpha = "
+                                f"{number(data.alpha[c.alpha])}, state {data.state[c.state]}")
+    return lines
+
+
+def _consistency_lines(checks, where):
+    """The report's verdict on stored branch points against the scanned points (``where(c)``
+    names a failing curve)."""
+    checked = [c for c in checks if c.consistent is not None]
     failed = [c for c in checked if not c.consistent]
     rule = "last real R >= R_c, and the next R down < R_c where it has no real solution"
     if not checked:
-        lines.append(f"consistency with the scan ({rule}): nothing to check")
-    elif not failed:
-        lines.append(f"consistency with the scan ({rule}): holds for all {len(checked)} "
-                     f"checked curve(s)")
-    else:
-        lines.append(f"consistency with the scan ({rule}): FAILS for {len(failed)} of "
-                     f"{len(checked)} checked curve(s)")
-        for c in failed:
-            lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}, state "
-                         f"{data.state[c.state]}: {c.why}")
-    return lines
+        return [f"consistency with the scan ({rule}): nothing to check"]
+    if not failed:
+        return [f"consistency with the scan ({rule}): holds for all {len(checked)} "
+                f"checked curve(s)"]
+    return ([f"consistency with the scan ({rule}): FAILS for {len(failed)} of "
+             f"{len(checked)} checked curve(s)"]
+            + [f"  {where(c)}: {c.why}" for c in failed])
 
 
 def _bracket_section(data):
@@ -472,19 +476,8 @@ def _branch_section(data):
                    "scan.branch_points = false, or tba run has not finished: run it again "
                    "with branch_points = true to add them")
             lines.append(f"  {missing} branch point(s) not computed ({why})")
-        checked = [c for c in checks if c.consistent is not None]
-        failed = [c for c in checked if not c.consistent]
-        rule = "last real R >= R_c, and the next R down < R_c where it has no real solution"
-        if not checked:
-            lines.append(f"consistency with the scan ({rule}): nothing to check")
-        elif not failed:
-            lines.append(f"consistency with the scan ({rule}): holds for all {len(checked)} "
-                         f"checked curve(s)")
-        else:
-            lines.append(f"consistency with the scan ({rule}): FAILS for {len(failed)} of "
-                         f"{len(checked)} checked curve(s)")
-            for c in failed:
-                lines.append(f"  {data.model[c.model]}, alpha = {number(data.alpha[c.alpha])}: {c.why}")
+        lines += _consistency_lines(checks, lambda c: f"{data.model[c.model]}, alpha = "
+                                    f"{number(data.alpha[c.alpha])}")
     return lines
 
 
