@@ -8,8 +8,13 @@ CPUDispatcher(...) returned a result with an exception set"): a traceback, exit 
 the interrupt is lost. With `installed` handlers:
 
 * inside numba's own Python code (a frame of the numba package on the stack) a signal is
-  noted and sent again `RETRY` seconds later, until the main thread is back in plain
-  Python code, where it is raised;
+  noted and raised at the first Python call or return outside numba (a one-shot profile
+  function of the main thread). Compiled functions that release the GIL run numba's Python
+  code on their way out (boxing a new array calls ``_numba_unpickle``), and a signal that
+  arrives during the compiled part is handled there; a retry by a timer thread would come
+  back at the same place (that thread gets the GIL when the next compiled call releases
+  it). Where a profiler is already installed the signal is instead sent again `RETRY`
+  seconds later, until it arrives in plain Python code;
 * inside a `deferred` block (a chunk being written to the store) it is raised when the
   block ends, so that what the block writes is written whole;
 * where Python swallows exceptions (a garbage-collector callback, such as the one
@@ -117,13 +122,30 @@ def _send_again(signum):
     timer.start()
 
 
+def _raise_outside_numba(frame, event, arg):
+    """Profile function armed by `_handler` inside numba: the pending signal is raised at the
+    first event outside numba's code (an exception raised by a profile function unsets it and
+    propagates into the frame), or left to `deferred` inside such a block."""
+    signum = _state["pending"]
+    if signum is not None and _in_numba(frame):
+        return
+    sys.setprofile(None)
+    if signum is None or _state["depth"] > 0:
+        return
+    _state["pending"] = None
+    raise _exception(signum)
+
+
 def _handler(signum, frame):
     if _state["depth"] > 0:
         _state["pending"] = signum
         return
     if _in_numba(frame):
         _state["pending"] = signum
-        _send_again(signum)
+        if sys.getprofile() is None:
+            sys.setprofile(_raise_outside_numba)
+        else:
+            _send_again(signum)
         return
     _state["pending"] = None
     raise _exception(signum)
@@ -157,6 +179,8 @@ def installed():
         for signum, handler in previous.items():
             signal.signal(signum, handler)
         sys.unraisablehook = hook
+        if sys.getprofile() is _raise_outside_numba:
+            sys.setprofile(None)
 
 
 @contextlib.contextmanager
