@@ -48,7 +48,7 @@ CHORD_RATE_LARGE = 0.3
 #: up to this size, matrix-vector products and inverses are the loops of this module
 SMALL = 128
 #: Newton steps taken with the residual at rounding level before the iterate is returned
-FLOOR_STEPS = 8
+FLOOR_STEPS = 16
 #: safety factor of the rounding estimate over the root-mean-square effect of rounding
 ROUNDING_SAFETY = 5.0
 #: radii a grid level keeps along a scan for its extrapolated start (degree HISTORY - 1): on
@@ -626,17 +626,32 @@ def summary(K, L, e, wE, wP, V, n, N, trivial):
 def extrapolate(radii, g, R):
     """Lagrange extrapolation to R of the rows of ``g`` given at ``radii`` (the history of a
     grid level along a scan, newest first): degree k - 1 from k radii. Far outside the spacing
-    of the history the order is lowered."""
+    of the history the order is lowered, and where the weights would amplify the history more
+    than 4 2^k (radii clustered far from R, as a root search leaves them: at equal spacing one
+    step ahead the sum of |weights| is 2^k - 1)."""
     k = radii.size
+    if k == 0:
+        return np.zeros(g.shape[1])
     while k >= 2 and abs(R - radii[0]) > 4 * abs(radii[0] - radii[k - 1]):
         k -= 1
+    w = np.empty(k)
+    while k >= 2:
+        total = 0.0
+        for a in range(k):
+            w[a] = 1.0
+            for b in range(k):
+                if b != a:
+                    w[a] *= (R - radii[b]) / (radii[a] - radii[b])
+            total += abs(w[a])
+        if total <= 4.0 * 2.0 ** k:
+            break
+        k -= 1
+    if k < 2:
+        w[0] = 1.0
+        k = 1
     out = np.zeros(g.shape[1])
     for a in range(k):
-        w = 1.0
-        for b in range(k):
-            if b != a:
-                w *= (R - radii[b]) / (radii[a] - radii[b])
-        out += w * g[a]
+        out += w[a] * g[a]
     return out
 
 

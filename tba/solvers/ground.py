@@ -756,6 +756,8 @@ def _polish(state):
     disc = state.disc
     if not (_HAVE_LONG and disc.ops.dense) or state.L is None:
         return
+    if not state.iteration_error <= 1e-6 * abs(state.energy):
+        return  # not converged to the rounding floor: nothing for the polish to correct
     M = state.eps.size
     dL = state.dL.reshape(-1)
     J = np.eye(M)
