@@ -48,7 +48,7 @@ CHORD_RATE_LARGE = 0.3
 #: up to this size, matrix-vector products and inverses are the loops of this module
 SMALL = 128
 #: Newton steps taken with the residual at rounding level before the iterate is returned
-FLOOR_STEPS = 16
+FLOOR_STEPS = 8
 #: safety factor of the rounding estimate over the root-mean-square effect of rounding
 ROUNDING_SAFETY = 5.0
 #: radii a grid level keeps along a scan for its extrapolated start (degree HISTORY - 1): on
@@ -523,8 +523,10 @@ def newton(K, nu, U, V, c, wE, e0, sign, tol, maxiter, A0, have_A, trivial):
                 # next to a fold the steps at the floor can be amplified noise well above the
                 # estimate (rounding that is not independent between equations): after
                 # FLOOR_STEPS of them stop, the larger of the last two steps' energy changes
-                # being the iterate's error (the caller's tolerance decides whether it is met)
-                at_floor += 1
+                # being the iterate's error (the caller's tolerance decides whether it is met);
+                # steps that still shrink (a chord iteration converging) are not counted
+                if dE > 0.5 * dE_last:
+                    at_floor += 1
                 if at_floor >= FLOOR_STEPS:
                     done = True
                     dE = max(dE, dE_last)
