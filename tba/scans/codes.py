@@ -80,8 +80,8 @@ POINT_VARIABLES = {
     "flow_prediction": ("f8", np.nan, {"long_name": "flow prediction of E from the undeformed "
                                                     "level at flow_radius",
                                        "units": "m_1"}),
-    "flow_error": ("f8", np.nan, {"long_name": "error estimate of flow_prediction (for P != 0 "
-                                               "including its sensitivity to E)",
+    "flow_error": ("f8", np.nan, {"long_name": "error estimate of flow_prediction, its "
+                                               "sensitivity to the error of E included",
                                   "units": "m_1"}),
     "flow_residual": ("f8", np.nan, {"long_name": "flow residual |E(R, alpha) - E_0(R + alpha E, 0)|",
                                      "units": "m_1"}),

@@ -52,6 +52,7 @@ import numpy as np
 
 from tba.models.cdd import NO_DEFORMATION
 from tba.physics.flow import branch_point, excited_branch_point
+from tba.solvers.ground import energy_derivatives
 from tba.solvers.levels import GROUND, parse_level, solve_level
 from tba.solvers.result import STATUS_CODES, Status
 from tba.scans.codes import (BP_CODES, BP_FAILED, BP_FOUND, BP_NONE, BP_NOT_APPLICABLE, FLOW_NO_ENERGY,
@@ -136,11 +137,9 @@ def _solve_chunk(run, chunk):
             try:
                 res0 = solve_level(model, r_eff, level, run.base_deformation(chunk.model), tol=run.tol,
                                    start=start0)
-                if res0.converged and turns != 0:
+                if res0.converged:
                     predicted, flow_error = _boosted_prediction(model, level, R, alpha, a_eff,
                                                                 boost, r_eff, res, res0, run.tol)
-                elif res0.converged:
-                    predicted, flow_error = res0.energy, res0.error
             except Exception as exc:  # noqa: BLE001 (the point keeps its energy)
                 if caused_by_interrupt(exc):
                     raise KeyboardInterrupt from None
@@ -167,24 +166,41 @@ def _failed_point(values, i, exc, run):
 
 
 def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, tol):
-    """The flow prediction of a level with P != 0 and its error estimate.
+    """The flow prediction of a level and its error estimate.
 
     E R~ = A E_n(R~, 0) + alpha P^2 R / R~ with A = R + alpha E and R~ = sqrt(A^2 - (alpha P)^2)
-    (E_n(R~, 0) = res0, the level undeformed). The prediction depends on E through A and R~,
-    so its error estimate is (A / R~) err(E_n(R~, 0)) + |d prediction / dE| err(E), with
-    E_n'(R~, 0) from a second undeformed
-    solve at R~ (1 + 1e-6); NaN if that solve fails."""
+    (E_n(R~, 0) = res0, the level undeformed; for P = 0 the prediction is E_n(R + alpha E, 0)).
+    The prediction depends on E through A and R~, so its error estimate is
+    (A / R~) err(E_n(R~, 0)) + |d prediction / dE| err(E) (for P = 0: err(E_n) + |alpha
+    E_n'(R~, 0)| err(E), the term that dominates where the level is steep), with E_n'(R~, 0)
+    from the exact derivative of the ground state, or from a second undeformed solve at
+    R~ (1 + 1e-6) for excited levels; NaN if that fails."""
     e0 = res0.energy
     predicted = (a_eff * e0 + boost * boost * R / (alpha * r_eff)) / r_eff
-    step = 1e-6 * r_eff
-    res1 = solve_level(model, r_eff + step, level, NO_DEFORMATION, tol=tol, start=res0)
-    if not res1.converged:
+    de0 = _slope(model, level, r_eff, res0, tol)
+    if not math.isfinite(de0):
         return predicted, math.nan
-    de0 = (res1.energy - e0) / step
     dr = alpha * a_eff / r_eff  # dR~/dE
     dpred = (alpha * e0 + a_eff * de0 * dr - boost * boost * R * dr / (alpha * r_eff ** 2)) / r_eff \
         - predicted * dr / r_eff
     return predicted, abs(a_eff) / r_eff * res0.error + abs(dpred) * res.error
+
+
+def _slope(model, level, r_eff, res0, tol):
+    """E_n'(R~, 0) of the undeformed level ``res0`` (an upper estimate: its error added to its
+    magnitude), NaN if it cannot be had."""
+    if level == GROUND:
+        try:
+            d = energy_derivatives(res0)
+        except ValueError:  # a ground state without exact derivatives (massless models)
+            pass
+        else:
+            return abs(d["dE_dR"]) + d["dE_dR_error"]
+    step = 1e-6 * r_eff
+    res1 = solve_level(model, r_eff + step, level, NO_DEFORMATION, tol=tol, start=res0)
+    if not res1.converged:
+        return math.nan
+    return (res1.energy - res0.energy) / step
 
 
 def solve_branch_point(run, model_index, alpha_index, state_index=None):

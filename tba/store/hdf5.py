@@ -158,7 +158,8 @@ at R~ = sqrt((R + alpha E)^2 - (alpha P)^2), boosted: E R~ = (R + alpha E) E_n(R
 (for P = 0: E(R, alpha) = E_n(R + alpha E, 0)). flow_radius is R~, flow_prediction E_flow that
 expression with E_n(R~, 0) solved at R~ (the same level undeformed), flow_residual = |energy -
 flow_prediction|, flow_error the error estimate of the prediction: the undeformed solve's
-times (R + alpha E) / R~, plus for P != 0 |d prediction / dE| times the error of E.
+times (R + alpha E) / R~, plus |d prediction / dE| times the error of E (for P = 0: |alpha
+E_n'(R~, 0)| err(E), which dominates where the level is steep).
 alpha > 0 is the Hagedorn side: below a branch radius R_c there is no real ground state.
 /branch_points: R_c(alpha) = R~ - alpha E_0(R~, 0) where E_0'(R~, 0) = 1/alpha (TTbar only;
 E_0 the ground state); energy there E(R_c) = E_0(R_c, alpha) = E_0(R~, 0) (read as
