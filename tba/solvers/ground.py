@@ -51,7 +51,7 @@ from tba.models.base import DiagonalModel
 from tba.models.cdd import CDD, NO_DEFORMATION
 from tba.solvers import arclength
 from tba.solvers.grid import Grid, choose_grid
-from tba.solvers.operators import DENSE_LIMIT, operators, uses_band_limited_kernels  # noqa: F401
+from tba.solvers.operators import operators, uses_band_limited_kernels
 from tba.solvers.result import SolveResult, Status
 
 #: refinement levels tried before a point is declared not converged
