@@ -245,8 +245,15 @@ def test_branch_panel_with_hagedorn_axis(data):
     assert forward(np.array([0.5]))[0] == pytest.approx(2.0)
 
 
-def test_tick_labels_never_overlap(data):
+@pytest.mark.parametrize("widen", [1.0, 40.0])
+def test_tick_labels_never_overlap(data, widen):
     fig = plot_store(data, size=(13.6, 7.8))  # the smallest size allowed: where collisions appear first
+    # widen: a stored fold far below the scanned radii stretches the R axis (the ticks follow
+    # the span drawn, not the radii: "0.010.0203" before)
+    for ax in fig.axes:
+        if ax.get_label() == "energy" and ax.get_xscale() == "log":
+            lo, hi = ax.get_xlim()
+            ax.set_xlim(lo / widen, hi)
     fig.canvas.draw()
     renderer = fig.canvas.get_renderer()
     for ax in fig.axes + [child for ax in fig.axes for child in ax.child_axes]:

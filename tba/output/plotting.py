@@ -539,16 +539,26 @@ def _branch_panel(ax, data, sel):
     ax.legend(fontsize="x-small", loc="best", title="ground state", title_fontsize="x-small")
 
 
+class _RadiusTicks(LogLocator):
+    """Log ticks whose subdivision follows the span the axis shows when it is drawn (a
+    stored fold outside the scanned radii widens it): decades only beyond 2.5 decades,
+    1-2-5 below, 1-2-3-5 below one decade, so that the labels cannot collide."""
+
+    def tick_values(self, vmin, vmax):
+        lo, hi = sorted((vmin, vmax))
+        decades = math.log10(hi / lo) if lo > 0 else math.inf
+        self.set_params(subs=(1.0,) if decades > 2.5 else (1.0, 2.0, 5.0) if decades > 1.0
+                        else (1.0, 2.0, 3.0, 5.0))
+        return super().tick_values(vmin, vmax)
+
+
 def _radius_axis(ax, R):
-    """Log scale when the radii span a factor 5 or more; tick labels that cannot collide:
-    decades only beyond 2.5 decades, 1-2-5 below, 1-2-3-5 below one decade."""
+    """Log scale when the radii span a factor 5 or more, with `_RadiusTicks`."""
     ax.grid(True, alpha=0.3)
     if not (R.size > 1 and R.max() / R.min() >= 5):
         return
     ax.set_xscale("log")
-    decades = math.log10(R.max() / R.min())
-    subs = (1.0,) if decades > 2.5 else (1.0, 2.0, 5.0) if decades > 1.0 else (1.0, 2.0, 3.0, 5.0)
-    ax.xaxis.set_major_locator(LogLocator(subs=subs))
+    ax.xaxis.set_major_locator(_RadiusTicks())
     ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x:g}"))
     ax.xaxis.set_minor_locator(LogLocator(subs=np.arange(2, 10)))
     ax.xaxis.set_minor_formatter(NullFormatter())
