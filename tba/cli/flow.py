@@ -31,7 +31,7 @@ def _progress(args, prefix, total=None):
 
 def _excited_branch_point(args, out, model, alpha, level):
     """tba branch-point --state: the fold of an excited level (`excited_branch_point`)."""
-    from tba.output.labels import level_title, model_title
+    from tba.output.labels import level_title, number
     from tba.physics.flow import excited_branch_point
     from tba.solvers.levels import level_name
 
@@ -44,8 +44,8 @@ def _excited_branch_point(args, out, model, alpha, level):
     if args.json:
         print(json_text(rec), file=out)
         return 0
-    where = (f"{model_title(model.name, model.coupling)}, state {level_name(level)} "
-             f"({level_title(level)}), alpha = {alpha:g}")
+    where = (f"{_model_words(model)}, state {level_name(level)} ({level_title(level)}), "
+             f"alpha = {number(alpha)}")
     if bp.status == "found":
         print(f"{where}: branch point at R_c = {bp.radius:.15g} +- {bp.radius_error:.1e}, "
               f"E(R_c) = {bp.energy:.15g} +- {bp.energy_error:.1e}; status {bp.status}", file=out)

@@ -20,7 +20,7 @@ from tba.cli.common import (ENERGY_SPEC, R_SPEC, UsageError, check_deformation, 
                             parse_cdd, parse_state_argument)
 from tba.models.cdd import CDD
 
-HEADER = (f"{'R':>16} {'alpha':>12} {'spin':>4} {'E':>22} {'dE/dR':>14} {'dE/dalpha_s':>14} "
+HEADER = (f"{'R':>16} {'alpha':>12} {'spin':>4} {'E':>22} {'dE/dR':>20} {'dE/dalpha_s':>20} "
           f"{'residual':>9} {'error':>8} {'relative':>9} {'rel. error':>10}  status")
 
 
@@ -93,8 +93,8 @@ def flow_check_levels(args, out, model, radii, alphas, tol):
                     print(json_text(rec), file=out, flush=True)
                     continue
                 print(f"{R:{R_SPEC}} {alpha:>12.10g} {spin:>4} "
-                      f"{fmt(rec['energy'], ENERGY_SPEC):>22} {fmt(rec['dE_dR'], '14.8g'):>14} "
-                      f"{fmt(rec['dE_dalpha_s'], '14.8g'):>14} {fmt(rec['residual'], '9.2e'):>9} "
+                      f"{fmt(rec['energy'], ENERGY_SPEC):>22} {fmt(rec['dE_dR'], '20.15g'):>20} "
+                      f"{fmt(rec['dE_dalpha_s'], '20.15g'):>20} {fmt(rec['residual'], '9.2e'):>9} "
                       f"{fmt(rec['residual_error'], '8.1e'):>8} "
                       f"{fmt(rec['relative_residual'], '9.2e'):>9} "
                       f"{fmt(rec['relative_error'], '10.1e'):>10}  {rec['status']}", file=out,

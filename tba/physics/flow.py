@@ -365,8 +365,10 @@ class BranchPoint:
 
     @property
     def hagedorn_temperature(self):
-        """T_H = 1/R_c (NaN unless found)."""
-        return 1.0 / self.radius if self.found and self.radius > 0 else math.nan
+        """T_H = 1/R_c of the ground state (NaN unless found; NaN for an excited level, whose
+        fold is not a temperature: only the ground state's R_c bounds the thermal ensemble)."""
+        ground = self.state == "ground"
+        return 1.0 / self.radius if ground and self.found and self.radius > 0 else math.nan
 
     def as_record(self, deprecated=True):
         """The JSON-ready record (plain Python floats; None unless found): ``branch_radius``
@@ -374,7 +376,7 @@ class BranchPoint:
         ``hagedorn_temperature``. ``deprecated``: also the keys of earlier versions (`radius`,
         `energy`, ...; `DEPRECATED_BRANCH_KEYS`), kept for one release."""
         ok = self.found
-        value = lambda x: float(x) if ok else None  # noqa: E731
+        value = lambda x: float(x) if ok and math.isfinite(x) else None  # noqa: E731
         rec = {"model": self.model, "alpha": float(self.alpha), "state": self.state,
                "status": self.status.value,
                "branch_radius": value(self.radius), "branch_radius_error": value(self.radius_error),
@@ -392,9 +394,9 @@ class BranchPoint:
         head = f"{self.model}{level}, alpha = {self.alpha!r}: {self.status.value}"
         if not self.found:
             return f"BranchPoint({head}, {self.message!r})"
+        hagedorn = f", T_H = {self.hagedorn_temperature!r}" if self.state == "ground" else ""
         return (f"BranchPoint({head}, R_c = {self.radius!r} +- {self.radius_error:.2g}, "
-                f"E(R_c) = {self.energy!r} +- {self.energy_error:.2g}, "
-                f"T_H = {self.hagedorn_temperature!r})")
+                f"E(R_c) = {self.energy!r} +- {self.energy_error:.2g}{hagedorn})")
 
     def _repr_html_(self):
         """A two-column table for notebooks, like `SolveResult`'s."""
@@ -405,8 +407,9 @@ class BranchPoint:
         if self.found:
             rows += [("R_c", f"{self.radius!r} +- {self.radius_error:.2g}"),
                      ("E(R_c)", f"{self.energy!r} +- {self.energy_error:.2g}"),
-                     ("R~_*", repr(self.effective_radius)),
-                     ("T_H = 1/R_c", repr(self.hagedorn_temperature))]
+                     ("R~_*", repr(self.effective_radius))]
+            if self.state == "ground":
+                rows.append(("T_H = 1/R_c", repr(self.hagedorn_temperature)))
         rows.append(("message", self.message))
         body = "".join(f"<tr><th style='text-align:left'>{html.escape(k)}</th>"
                        f"<td style='text-align:left'>{html.escape(v)}</td></tr>" for k, v in rows)
