@@ -195,11 +195,13 @@ def test_run_on_a_terminal_keeps_the_bar(runfile):
 
 
 def test_flow_check_lines(tba, tmp_path):
-    r = tba("flow-check", "--model", "sinh-gordon", "--coupling", "0.6", "--radius", "0.8:2:6",
-             "--alpha", "0", "0.05", "--progress-every", "0.01")
+    # 60 points take more than a millisecond even with every grid and kernel cached by
+    # earlier tests (12 points once took less than the 0.01 s asked: no line at all)
+    r = tba("flow-check", "--model", "sinh-gordon", "--coupling", "0.6", "--radius", "0.8:2:30",
+             "--alpha", "0", "0.05", "--progress-every", "0.001")
     assert r.returncode == 0, r.stderr
-    _check_counted(_progress_lines(r.stderr, "tba flow-check"), "points", 12)
-    assert len(r.stdout.splitlines()) == 1 + 12  # the table is untouched: header and 12 rows
+    _check_counted(_progress_lines(r.stderr, "tba flow-check"), "points", 60)
+    assert len(r.stdout.splitlines()) == 1 + 60  # the table is untouched: header and 60 rows
     quiet = tba("flow-check", "--model", "sinh-gordon", "--coupling", "0.6", "--radius", "1",
                  "--alpha", "0", "--progress-every", "0")
     assert quiet.returncode == 0 and quiet.stderr == "", quiet.stderr
