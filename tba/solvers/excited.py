@@ -669,6 +669,12 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
     prev = start._state if (isinstance(start, SolveResult) and start.converged
                             and tuple(start.state) == state) else None
     iterations = 0
+    # -- along a scan: the previous point's level, same couplings, one step in R ------------------
+    if prev is not None and prev.radius != radius and prev.deformation == deformation:
+        result = _refine(model, deformation, radius, state, tol, prev, prev.undeformed, base, 0)
+        if result.converged:
+            return result
+        iterations = result.iterations  # e.g. past the level's fold: the paths below decide
     # -- the undeformed level at R: continuation in R ---------------------------------------------
     seed = prev.undeformed if prev is not None else None
     if seed is None:
