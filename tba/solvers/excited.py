@@ -648,9 +648,12 @@ def _effective_radius(deformation, radius, E, P=0.0):
 def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=None):
     """The excited level named by ``state`` (Bethe quantum numbers I_k) at radius R.
 
-    The undeformed level is followed in R from the Bethe-Yang solution at large R (or from
-    ``start``, a converged result for the same state); the deformation is then switched on
-    at fixed R, as the flow in alpha does. The point is solved on two grids for the error
+    With ``start`` a converged result of the same state and couplings at another radius (the
+    previous point of a scan), its solution is refined at R directly; a change of branch (det
+    J changes sign) or a spurious solution is refused. Otherwise, and where that fails, the
+    undeformed level is followed in R from the Bethe-Yang solution at large R (or from
+    ``start``'s undeformed level); the deformation is then switched on at fixed R, as the flow
+    in alpha does. The point is solved on two grids for the error
     estimate. Status NO_REAL_SOLUTION when the level meets its branch point before the
     requested coupling (positive levels for alpha < 0). A moving level (P != 0) that cannot
     be reached that way is taken from large R at fixed alpha (`_or_from_large_radius`).
