@@ -82,6 +82,29 @@ def test_free_fermion_positive_level_has_no_real_solution_below_branch_point():
     assert math.isnan(res.energy) and res.as_record()["energy"] is None
 
 
+@pytest.mark.parametrize("state, alpha, R_min", [(("1/2", "-1/2"), -0.1, 0.4),
+                                                 (("1/2", "3/2"), 0.1, 0.4),
+                                                 (("-1", "0", "2"), 0.1, 0.4),
+                                                 (("-1", "0", "2"), -0.1, 3.0)], ids=str)
+def test_a_scan_started_from_its_previous_point_stays_on_the_level(state, alpha, R_min):
+    # each point started from the previous radius's solution (the warm path of a scan) against
+    # the characteristics of the exact level (as above); across the branch radius of the
+    # positive P = 0 level at alpha < 0 (R_c = 1.584, the undeformed curve) the points below it
+    # have no real solution, although each starts from a real one
+    level, k = free_fermion_level(state)
+    R_c = level_branch_point(level, alpha)[0] if state == ("1/2", "-1/2") else 0.0
+    start = None
+    for R in np.geomspace(4.0, R_min, 14):
+        res = solve_excited(FF, R, state, ttbar(alpha), start=start)
+        if R < R_c:
+            assert res.status is Status.NO_REAL_SOLUTION, (R, R_c, res.message)
+            continue
+        assert res.converged, (R, res.message)
+        p = predict(level, R, alpha, k=k)
+        assert abs(res.energy - p.energy) <= 1e-11 * abs(p.energy), (R, res.energy, p.energy)
+        start = res
+
+
 def _status_bisection(model, state, alpha, lo, hi, rel=2e-10, tol=1e-9):
     """Smallest radius with a real solution, by bisection on the solver's status, at a
     tolerance the conditioning allows next to the branch point (rounding is amplified like
