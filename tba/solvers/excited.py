@@ -678,6 +678,17 @@ def solve_excited(model, radius, state, deformation=None, *, tol=1e-12, start=No
         if result.converged:
             return result
         iterations = result.iterations  # e.g. past the level's fold: the paths below decide
+        if "unbounded below" in result.message:
+            # one step landed on a spurious solution (a strongly boosted level changing fast):
+            # the same path in steps
+            seed, _, its = _follow(model, deformation, state, tol, prev, "radius", radius)
+            iterations += its
+            if seed is not None:
+                result = _refine(model, deformation, radius, state, tol, seed, prev.undeformed,
+                                 base, iterations)
+                if result.converged:
+                    return result
+                iterations = result.iterations
     # -- the undeformed level at R: continuation in R ---------------------------------------------
     seed = prev.undeformed if prev is not None else None
     if seed is None:
