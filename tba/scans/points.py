@@ -52,6 +52,7 @@ import numpy as np
 
 from tba.models.cdd import NO_DEFORMATION
 from tba.physics.flow import branch_point, excited_branch_point
+from tba.solvers.excited import excited_derivatives
 from tba.solvers.ground import energy_derivatives
 from tba.solvers.levels import GROUND, parse_level, solve_level
 from tba.solvers.result import STATUS_CODES, Status
@@ -173,8 +174,7 @@ def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, 
     The prediction depends on E through A and R~, so its error estimate is
     (A / R~) err(E_n(R~, 0)) + |d prediction / dE| err(E) (for P = 0: err(E_n) + |alpha
     E_n'(R~, 0)| err(E), the term that dominates where the level is steep), with E_n'(R~, 0)
-    from the exact derivative of the ground state, or from a second undeformed solve at
-    R~ (1 + 1e-6) for excited levels; NaN if that fails."""
+    from `_slope`; NaN if it cannot be had."""
     e0 = res0.energy
     predicted = (a_eff * e0 + boost * boost * R / (alpha * r_eff)) / r_eff
     de0 = _slope(model, level, r_eff, res0, tol)
@@ -187,15 +187,16 @@ def _boosted_prediction(model, level, R, alpha, a_eff, boost, r_eff, res, res0, 
 
 
 def _slope(model, level, r_eff, res0, tol):
-    """E_n'(R~, 0) of the undeformed level ``res0`` (an upper estimate: its error added to its
-    magnitude), NaN if it cannot be had."""
-    if level == GROUND:
-        try:
-            d = energy_derivatives(res0)
-        except ValueError:  # a ground state without exact derivatives (massless models)
-            pass
-        else:
-            return abs(d["dE_dR"]) + d["dE_dR_error"]
+    """E_n'(R~, 0) of the undeformed level ``res0``, its magnitude raised by its error
+    estimate (the sign kept): exact where the solver has derivatives (the ground state, excited
+    levels with real rapidities), else from a second undeformed solve at R~ (1 + 1e-6); NaN if
+    that fails."""
+    try:
+        d = energy_derivatives(res0) if level == GROUND else excited_derivatives(res0)
+    except ValueError:  # no exact derivatives here (massless models, the Lee-Yang level)
+        pass
+    else:
+        return d["dE_dR"] + math.copysign(d["dE_dR_error"], d["dE_dR"])
     step = 1e-6 * r_eff
     res1 = solve_level(model, r_eff + step, level, NO_DEFORMATION, tol=tol, start=res0)
     if not res1.converged:
