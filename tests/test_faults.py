@@ -35,7 +35,7 @@ import tba.scans.backends
 import tba.scans.points
 from tba.cli import main
 from tba.scans import interrupts
-from tba.scans.codes import NOT_COMPUTED
+from tba.scans.codes import BP_FOUND, NOT_COMPUTED
 from tba.scans.runfile import RunSpec, load_run, loads_run
 from tba.solvers.levels import solve_level
 from tba.solvers.result import STATUS_CODES, Status
@@ -248,6 +248,46 @@ def test_readers_see_consistent_snapshots_while_a_scan_writes(tmp_path):
     _, err = proc.communicate()
     assert proc.returncode == 0, err
     assert snapshots >= 1 and read_store(out).complete
+
+
+def test_a_reader_racing_a_branch_point_write_sees_it_whole_or_not_yet(tmp_path, monkeypatch):
+    # The torn read once seen beside a running scan: R_c read before the writer put it there,
+    # the status ("found") after, and the file refused as damaged. Here the writer's whole
+    # write lands before each data set the reader reads in turn (common practice for
+    # lock-free readers: the writer publishes a flag last, the reader reads it first).
+    import tba.store.hdf5 as hdf5
+
+    run = load_run(_runfile(tmp_path))
+    pristine = tmp_path / "pristine.h5"
+    prepare_store(pristine, run)
+    key = (0, 1)  # free fermion, alpha = 0.5
+    values = {"branch_radius": 0.625, "branch_radius_error": 1e-12, "energy": -0.75,
+              "energy_error": 1e-12, "effective_radius": 0.95, "status": BP_FOUND, "message": ""}
+    require, reads = hdf5._require, []
+    monkeypatch.setattr(hdf5, "_require", lambda *a, **k: reads.append(a[2]) or require(*a, **k))
+    hdf5.load(pristine)
+    assert "branch_points/status" in reads and "branch_points/branch_radius" in reads
+    seen = set()
+    for k in range(len(reads)):
+        path = tmp_path / f"race-{k}.h5"
+        shutil.copyfile(pristine, path)
+        store, calls = open_store(path, prepare_store(path, run), run), []
+
+        def racing(*a, **kw):
+            if len(calls) == k:
+                store.write_branch_point(*key, values)
+            calls.append(a[2])
+            return require(*a, **kw)
+
+        monkeypatch.setattr(hdf5, "_require", racing)
+        snap = hdf5.load(path)  # never DamagedStore
+        status = int(snap.branch["status"][key])
+        seen.add(status)
+        if status == BP_FOUND:
+            assert snap.branch["branch_radius"][key] == 0.625 and snap.branch["energy"][key] == -0.75
+        else:
+            assert status == NOT_COMPUTED and np.isnan(snap.branch["branch_radius"][key])
+    assert seen == {NOT_COMPUTED, BP_FOUND}
 
 
 # -- full disks and failed writes ----------------------------------------------------------------

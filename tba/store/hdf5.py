@@ -934,7 +934,9 @@ def _load(path, f, verify):
         points[name] = ds[...].astype(STORED[kind], copy=False)
     bshape = (len(run.models), len(run.alphas))
     branch = {}
-    for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+    # the status first, then the values and the checksum: a writer puts the status last, so
+    # an entry read as found has its values already
+    for name, (kind, fill, _) in _status_first(BRANCH_VARIABLES):
         if version < 2:  # schema 1: the group was reserved, empty
             branch[name] = full(bshape, kind, fill)
             continue
@@ -945,12 +947,14 @@ def _load(path, f, verify):
             if version >= 4 else None)
     lshape = level_shape(run)
     levels, lsum = {}, None
-    for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+    for name, (kind, fill, _) in _status_first(BRANCH_VARIABLES):
         if version < 5:  # before schema 5: no excited-level branch points
             levels[name] = full(lshape, kind, fill)
             continue
         ds = _require(path, f, f"{LEVEL_GROUP}/{name}", lshape, _kinds(kind), STORED[kind])
         levels[name] = ds[...].astype(STORED[kind], copy=False)
+    branch = {name: branch[name] for name in BRANCH_VARIABLES}
+    levels = {name: levels[name] for name in BRANCH_VARIABLES}
     if version >= 5:
         lsum = _require(path, f, f"{LEVEL_GROUP}/checksum", lshape, "u", STORED["u8"])[...]
     history, invocations = _history(path, f, version)
@@ -965,6 +969,11 @@ def _load(path, f, verify):
         _check_values(snap, mine, offsets)
     _consistent(snap, offsets)
     return snap
+
+
+def _status_first(variables):
+    """The items of ``variables`` with "status" first (the order a reader reads them in)."""
+    return sorted(variables.items(), key=lambda item: item[0] != "status")
 
 
 def _shard_of(f, path=None):
@@ -1114,7 +1123,7 @@ def _check_values(snap, mine, offsets):
 def _consistent(snap, offsets):
     """Points of chunks that are not done (or failed their checksum) read as not computed,
     whatever bytes a writer may have put there already; so do branch points that fail
-    their checksum."""
+    their checksum or whose status (read before their values) says not computed."""
     run = snap.run
     mine = run.chunks() if snap.shard is None else snap.shard.chunks(run)
     for c in mine:
@@ -1125,6 +1134,11 @@ def _consistent(snap, offsets):
     for key in snap.bad_branch:
         for name, (kind, fill, _) in BRANCH_VARIABLES.items():
             snap.branch_arrays(key)[name][key] = full((), kind, fill)
+    for arrays in (snap.branch, snap.levels):  # read as not computed: values not yet marked
+        pending = arrays["status"] == NOT_COMPUTED
+        if pending.any():
+            for name, (kind, fill, _) in BRANCH_VARIABLES.items():
+                arrays[name][pending] = full((), kind, fill)
 
 
 def load_settled(path, verify=True):
