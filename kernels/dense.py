@@ -761,3 +761,102 @@ def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e
                 out[4 + k] = hist_g[a]
                 k += 1
     return its, res, dE, status, fold, rounding, A, E, P, tail, k
+
+
+#: columns of the per-level record of `solve_run`: iterations, residual, iteration error,
+#: fold indicator, rounding estimate, E, P, tail estimate, history length, J0 inverted here
+RUN_FIELDS = 10
+
+
+@numba.njit(cache=True, nogil=True)
+def _run_level(K, drive, U, V, c, wE, wP, R, hist_r, hist_g, sign, tol, maxiter, A, trivial,
+               n, N, out, small, rec):
+    """`solve_level` from the level's history with chord steps on ``A``, its outcome written
+    into ``rec`` (`RUN_FIELDS`); returns (status, the inverse of J0 used last)."""
+    its, res, dE, status, fold, rounding, A_new, E, P, tail, k = solve_level(
+        K, drive, U, V, c, wE, wP, R, hist_r, hist_g, True, drive, sign, tol, maxiter, A,
+        True, trivial, n, N, out, small)
+    rec[0], rec[1], rec[2], rec[3], rec[4] = its, res, dE, fold, rounding
+    rec[5], rec[6], rec[7], rec[8] = E, P, tail, k
+    rec[9] = 1.0 if A_new.ctypes.data != A.ctypes.data else 0.0
+    return status, A_new
+
+
+@numba.njit(cache=True, nogil=True)
+def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, keys0,
+              K1, drive1, U1, V1, wE1, wP1, hr1, hg1, A1, out1, small1, rec1, keys1,
+              c, n, N0, N1, radii, E_prev, ttbar, deformed, sign, tol, maxiter, trivial,
+              amplified, polish_fraction, tail_fraction):
+    """Consecutive points of a scan whose two grid levels keep their grids, in one call: at
+    each radius, level 0 and then level 1 exactly as `solve_level` solves them along a scan
+    (from each level's own history, chord steps on its inverse of J0), while every decision
+    the caller's general path takes between the levels comes out the plain way: each level's
+    effective radius R + ttbar E (E: the previous point's fine energy for level 0, this point's
+    level-0 energy for level 1; ``ttbar`` NaN: R itself) has its octave key
+    floor(64 log2 R_eff) in [keys[0], keys[1]] (the keys whose grid is this one), Newton
+    converged, the fold indicator is positive (``deformed``), no extended-precision polish or
+    wider cutoff is called for (``amplified``, ``polish_fraction``, ``tail_fraction`` as in the
+    caller) and the two levels agree within tol. Point j's arrays go into out*[j], small*[j]
+    and rec*[j] (`RUN_FIELDS`), its history being point j - 1's (the caller's for j = 0).
+    Returns (points done, the inverses of J0 of the last point's two levels): the run stops
+    after a point where J0 was inverted (its new inverse is returned), before a point where any
+    decision goes the other way (the caller solves that one in full)."""
+    r = c.size
+    P = radii.size
+    A_0, A_1 = A0, A1
+    for j in range(P):
+        R = radii[j]
+        if j == 0:
+            h_r0, h_g0, h_r1, h_g1 = hr0, hg0, hr1, hg1
+        else:
+            k0 = int(rec0[j - 1, 8])
+            k1 = int(rec1[j - 1, 8])
+            h_r0, h_g0 = small0[j - 1, r:r + k0], out0[j - 1, 4:4 + k0]
+            h_r1, h_g1 = small1[j - 1, r:r + k1], out1[j - 1, 4:4 + k1]
+        r_eff = R + ttbar * E_prev if ttbar == ttbar else R
+        if not r_eff > 0:
+            r_eff = R
+        key = np.floor(64.0 * np.log2(r_eff))
+        if key < keys0[0] or key > keys0[1]:
+            return j, A_0, A_1
+        status, A_new0 = _run_level(K0, drive0, U0, V0, c, wE0, wP0, R, h_r0, h_g0, sign, tol,
+                                    maxiter, A_0, trivial, n, N0, out0[j], small0[j], rec0[j])
+        if status != CONVERGED:
+            return j, A_0, A_1
+        E0 = rec0[j, 5]
+        size = abs(E0)
+        if deformed and not rec0[j, 3] > 0:
+            return j, A_0, A_1
+        if rec0[j, 4] > amplified * size and rec0[j, 4] + rec0[j, 2] > polish_fraction * tol * size:
+            return j, A_0, A_1
+        if rec0[j, 7] > tail_fraction * tol * size:
+            return j, A_0, A_1
+        if ttbar == ttbar:
+            r_eff1 = R + ttbar * E0
+            if r_eff1 != 0.0:
+                r_eff = r_eff1
+        if not r_eff > 0:
+            return j, A_0, A_1
+        key = np.floor(64.0 * np.log2(r_eff))
+        if key < keys1[0] or key > keys1[1]:
+            return j, A_0, A_1
+        status, A_new1 = _run_level(K1, drive1, U1, V1, c, wE1, wP1, R, h_r1, h_g1, sign, tol,
+                                    maxiter, A_1, trivial, n, N1, out1[j], small1[j], rec1[j])
+        if status != CONVERGED:
+            return j, A_0, A_1
+        E1 = rec1[j, 5]
+        size = abs(E1)
+        if deformed and not rec1[j, 3] > 0:
+            return j, A_0, A_1
+        if rec1[j, 4] > amplified * size and rec1[j, 4] + rec1[j, 2] > polish_fraction * tol * size:
+            return j, A_0, A_1
+        if rec1[j, 7] > tail_fraction * tol * size:
+            return j, A_0, A_1
+        error = abs(E1 - E0) + rec1[j, 2] + rec0[j, 2] + rec1[j, 4] + rec1[j, 7]
+        if not error <= tol * size:
+            return j, A_0, A_1
+        E_prev = E1
+        A_0, A_1 = A_new0, A_new1
+        if rec0[j, 9] or rec1[j, 9]:
+            return j + 1, A_0, A_1
+    return P, A_0, A_1

@@ -373,3 +373,81 @@ def test_band_limited_samples_equal_the_closed_form(x, h):
                 a * np.cos(tau * omega) - tau * np.sin(tau * omega)) / (a * a + tau * tau)
     want = block_kernel(x, tau) - tail / math.pi
     assert np.max(np.abs(got - want)) <= 1e-13 * np.max(np.abs(want))
+
+
+# --------------------------------------------------------------------------------------
+# solve_run: consecutive points of a scan in one compiled call
+# --------------------------------------------------------------------------------------
+
+def _chain(model, radii, deformation, tol):
+    """The same scan one point at a time (`solve_ground_state`, each started from the last
+    converged point): the path that takes every decision in Python."""
+    from tba import solve_ground_state
+
+    out, start = [], None
+    for R in radii:
+        res = solve_ground_state(model, R, deformation, tol=tol, start=start)
+        start = res if res.converged else start
+        out.append(res)
+    return out
+
+
+SCANS = {  # (model, radii, alpha, tol): the two signs of alpha, both directions, no deformation
+    "sinh-gordon": ("sinh_gordon", list(np.linspace(0.6, 5.0, 150)), 0.1, 1e-12),
+    "sinh-gordon-down": ("sinh_gordon", list(np.linspace(5.0, 0.3, 90)), -0.2, 1e-10),
+    "undeformed": ("sinh_gordon", list(np.geomspace(0.05, 20.0, 120)), 0.0, 1e-12),
+    # the free fermion (no kernel matrix) towards its branch point R_c = 0.577... at alpha = 0.5
+    # (docs/physics.md section 4), an int radius in the middle taken by the point-by-point path
+    "free-fermion": ("free_fermion", [*np.linspace(3.0, 1.0, 40), 1, *np.linspace(0.98, 0.58, 40)],
+                     0.5, 1e-12),
+}
+
+
+@pytest.mark.parametrize("name", sorted(SCANS))
+def test_a_scan_in_one_compiled_call_equals_the_point_by_point_path(name, monkeypatch):
+    # solve_radii takes runs of points on unchanged grids in one call of kernels.dense.solve_run
+    # (the same compiled level solve from the same starts): every number must be the one of
+    # the point-by-point path, bit for bit, and so must the derivatives (common practice for
+    # a fast path, no source); the compiled run must really take most points
+    import kernels.dense
+    import tba
+    from tba.solvers.ground import energy_derivatives, solve_radii
+
+    factory, radii, alpha, tol = SCANS[name]
+    model = getattr(tba, factory)(0.6) if factory == "sinh_gordon" else getattr(tba, factory)()
+    deformation = tba.ttbar(alpha) if alpha else None
+    taken, run = [], kernels.dense.solve_run
+
+    def counted(*args):
+        out = run(*args)
+        taken.append(out[0])
+        return out
+
+    monkeypatch.setattr(kernels.dense, "solve_run", counted)
+    fast = solve_radii(model, radii, deformation, tol=tol)
+    monkeypatch.setattr(kernels.dense, "solve_run", run)
+    slow = _chain(getattr(tba, factory)(0.6) if factory == "sinh_gordon" else getattr(tba, factory)(),
+                  radii, deformation, tol)
+    assert sum(taken) >= 0.6 * len(radii), taken
+    for a, b in zip(fast, slow, strict=True):
+        assert (a.status, a.iterations, a.radius) == (b.status, b.iterations, b.radius)
+        assert np.array_equal([a.energy, a.error, a.momentum, a.residual, a.effective_radius,
+                               a.fold_indicator], [b.energy, b.error, b.momentum, b.residual,
+                                                   b.effective_radius, b.fold_indicator],
+                              equal_nan=True), a.radius
+        if a.converged:
+            assert a.grid == b.grid and np.array_equal(a.pseudo_energies, b.pseudo_energies)
+    for k in (1, len(radii) // 2, len(radii) - 1):
+        if fast[k].converged:
+            assert energy_derivatives(fast[k], spins=(1,), second=True) == \
+                energy_derivatives(slow[k], spins=(1,), second=True)
+    if factory == "free_fermion":
+        # against the closed form (tests/reference.py: E = E_NS(R + alpha E)): the error
+        # estimates of the compiled run bound the true errors
+        from reference import deformed_free_fermion_energy
+
+        for res in fast:
+            exact = deformed_free_fermion_energy(res.radius, alpha)
+            assert res.converged == (exact is not None)
+            if res.converged:
+                assert abs(res.energy - exact) <= res.error, res.radius

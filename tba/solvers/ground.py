@@ -998,7 +998,8 @@ class _GridRule:
     once, and the grids are kept by (octave index of the effective radius, level, cutoff
     extra), so that the radii of a scan look their grids up in one dictionary."""
 
-    __slots__ = ("args", "tol", "grids", "model", "deformation", "ops", "ttbar", "sign")
+    __slots__ = ("args", "tol", "grids", "model", "deformation", "ops", "ttbar", "sign", "tails",
+                 "_by_id")
 
     def __init__(self, model, deformation, tol):
         min_mass, massless, kernel_decay = grid_masses(model)
@@ -1011,6 +1012,9 @@ class _GridRule:
         #: the TTbar coupling when R + alpha E is the effective radius (`_effective_radius`)
         self.ttbar = deformation.alpha if deformation.is_ttbar else None
         self.sign = 1 if model.statistics == "fermion" else -1
+        #: `_unbounded_spin_tails` of (model, deformation): the same at every radius
+        self.tails = _unbounded_spin_tails(model, deformation)
+        self._by_id = {}  # id(grid) -> (grid, its operators): no hashing of grids
 
     def effective_radius(self, state, radius):
         """`_effective_radius` of a state at ``radius``: R + alpha E or None."""
@@ -1018,16 +1022,28 @@ class _GridRule:
             return None
         return radius + self.ttbar * state.energy
 
+    def effective_radius_of(self, energy, radius):
+        """R + alpha E for an energy, or None (not TTbar)."""
+        return None if self.ttbar is None else radius + self.ttbar * float(energy)
+
     def operators(self, grid):
         """(`operators` of the model on ``grid``, their separable terms of the deformation)."""
+        known = self._by_id.get(id(grid))
+        if known is not None and known[0] is grid:
+            return known[1]
         out = self.ops.get(grid)
         if out is None:
             ops = operators(self.model, grid, self.deformation)
             out = self.ops[grid] = (ops, ops.terms(self.deformation))
+        self._by_id[id(grid)] = (grid, out)
         return out
 
     def grid(self, r_eff, level, cutoff_extra):
-        key = (math.floor(64 * math.log2(r_eff)), level, cutoff_extra)
+        return self.grid_of_key(math.floor(64 * math.log2(r_eff)), level, cutoff_extra)
+
+    def grid_of_key(self, octave_key, level, cutoff_extra):
+        """The grid for effective radii R with floor(64 log2 R) = ``octave_key``."""
+        key = (octave_key, level, cutoff_extra)
         grid = self.grids.get(key)
         if grid is None:
             pole, min_mass, max_spin, massless, decay = self.args
@@ -1101,7 +1117,7 @@ def _solve_point(model, radius, deformation, tol, prev, rule):
     t0 = time.perf_counter()
     base = dict(model=model.name, radius=radius, couplings=dict(deformation.couplings),
                 coupling=model.coupling)
-    tails = _unbounded_spin_tails(model, deformation)
+    tails = rule.tails
     if tails is not None:
         return SolveResult(**base, status=Status.NO_REAL_SOLUTION, iterations=0, message=tails)
     prev_levels = (prev.levels or [prev]) if prev is not None else []
@@ -1237,16 +1253,173 @@ def _effective_radius(state, radius, deformation):
 
 def solve_radii(model, radii, deformation=None, *, tol=1e-12, start=None):
     """Solve a sequence of radii in order, each warm-started from the last converged one."""
+    radii = list(radii)
+    plain = [float(R) if (type(R) is float or type(R) is np.float64) and 0 < R < math.inf else None
+             for R in radii]  # the radii `_run` may take (`_checked` decides about the others)
     results = []
     rule = None
-    for R in radii:
-        R, tol_, deformation_, prev = _checked(model, R, deformation, tol, start)
+    i = 0
+    while i < len(radii):
+        R, tol_, deformation_, prev = _checked(model, radii[i], deformation, tol, start)
         if rule is None:  # one grid rule for the scan: its grids are looked up, not rebuilt
             rule = _GridRule(model, deformation_, tol_)
+        run = _run(model, plain, i, deformation_, tol_, prev, rule) if prev is not None else ()
+        if run:
+            results += run
+            start = run[-1]
+            i += len(run)
+            continue
         res = _solve_point(model, R, deformation_, tol_, prev, rule)
         if res.converged:
             start = res
         results.append(res)
+        i += 1
+    return results
+
+
+#: the most points `_run` solves in one compiled call
+RUN_POINTS = 256
+
+
+def _keys(rule, seed, level, key, low, high):
+    """[first, last] octave keys around ``key`` (`_GridRule.grid`), within [low, high], whose
+    grid of ``level`` is the seed's once `_keep_wider` has looked at it."""
+    g = seed.grid
+
+    def same(k):
+        grid = rule.grid_of_key(k, level, 0.0)
+        return grid is g or grid == g or _keep_wider(grid, seed) is g
+
+    if not same(key):
+        return None
+    lo = hi = key
+    while hi < high and same(hi + 1):
+        hi += 1
+    while lo > low and same(lo - 1):
+        lo -= 1
+    return lo, hi
+
+
+def _run(model, radii, i, deformation, tol, prev, rule):
+    """The points radii[i:] that `_solve_point` would solve on the previous point's two grids
+    with two warm-started levels and nothing else (the common case along a scan), solved in
+    one compiled call (`kernels.dense.solve_run`): the same compiled iteration from the same
+    starts, so the same numbers; the results are built from its buffers. Returns the results
+    of the leading points it could take (an empty list where it takes none; `_solve_point`
+    solves that point)."""
+    levels = prev.levels
+    if (rule.tails is not None or levels is None or len(levels) != 2 or prev is not levels[1]
+            or i + 1 >= len(radii)):
+        return []
+    s0, s1 = levels
+    ops0, terms0 = rule.operators(s0.grid)
+    ops1, terms1 = rule.operators(s1.grid)
+    if not (ops0.dense and ops1.dense) or ops0.trivial != ops1.trivial:
+        return []
+    M0, M1 = ops0.n * ops0.N, ops1.n * ops1.N
+    if M1 > _dense.SMALL:  # many species: the compiled iteration dominates, the Python around
+        return []          # it does not (E8: one point in _solve_point as before)
+    for seed, M in ((s0, M0), (s1, M1)):
+        if (seed.history is None or seed.A is None or seed.A.shape != (M, M)
+                or not (seed.deformation is deformation or seed.deformation == deformation)):
+            return []
+    radii_ = radii[i:i + RUN_POINTS]
+    if None in radii_:
+        radii_ = radii_[:radii_.index(None)]
+    if not radii_:
+        return []
+    R = radii_[0]
+    r_eff = rule.effective_radius(prev, R)
+    r_eff = r_eff if r_eff and r_eff > 0 else R
+    r_eff1 = rule.effective_radius(s0, R) or r_eff
+    if not r_eff1 > 0:
+        return []
+    # the keys the run may meet: its radii shifted as at its first point, and a margin
+    keys = []
+    for a in (r_eff, r_eff1):
+        span = [x + a - R for x in (min(radii_), max(radii_))]
+        keys.append((math.floor(64 * math.log2(a)),
+                     math.floor(64 * math.log2(span[0])) - 2 if span[0] > 0 else -10 ** 6,
+                     math.floor(64 * math.log2(span[1])) + 2 if span[1] > 0 else 10 ** 6))
+    keys0 = _keys(rule, s0, 0, *keys[0])
+    keys1 = _keys(rule, s1, 1, *keys[1]) if keys0 is not None else None
+    if keys1 is None:
+        return []
+    t0 = time.perf_counter()
+    P = len(radii_)
+    n, H = ops0.n, _dense.HISTORY
+    U0, V0, c, Uf0, Vf0 = terms0
+    U1, V1, _, Uf1, Vf1 = terms1
+    r = c.size
+    out0, out1 = np.empty((P, 4 + H, M0)), np.empty((P, 4 + H, M1))
+    small0, small1 = np.empty((P, r + H)), np.empty((P, r + H))
+    rec0, rec1 = np.empty((P, _dense.RUN_FIELDS)), np.empty((P, _dense.RUN_FIELDS))
+    trivial = ops0.trivial
+    K0 = ops0.matrix if not trivial else _NO_MATRIX
+    K1 = ops1.matrix if not trivial else _NO_MATRIX
+    ran, A0, A1 = _dense.solve_run(
+        K0, ops0.drive_flat, Uf0, Vf0, ops0.wE_flat, ops0.wP_flat, *s0.history, s0.A, out0, small0,
+        rec0, np.array(keys0, dtype=float),
+        K1, ops1.drive_flat, Uf1, Vf1, ops1.wE_flat, ops1.wP_flat, *s1.history, s1.A, out1, small1,
+        rec1, np.array(keys1, dtype=float),
+        c, n, ops0.N, ops1.N, np.array(radii_), prev.energy,
+        rule.ttbar if rule.ttbar is not None else math.nan, not deformation.is_zero, rule.sign,
+        tol, 60, trivial, AMPLIFIED, POLISH_FRACTION, 1e-3)
+    # the octave keys again, as `_solve_point` takes them (the compiled log2 may round
+    # differently right at a boundary): a point whose key falls outside is solved in full
+    E0s, E1s = rec0[:ran, 5].tolist(), rec1[:ran, 5].tolist()
+    E_prev, done = prev.energy, ran
+    ttbar = rule.ttbar
+    for j in range(ran):
+        R = radii_[j]
+        a = R + ttbar * E_prev if ttbar is not None else None
+        a = a if a and a > 0 else R
+        b = (R + ttbar * E0s[j] if ttbar is not None else None) or a
+        if not (keys0[0] <= math.floor(64 * math.log2(a)) <= keys0[1]
+                and keys1[0] <= math.floor(64 * math.log2(b)) <= keys1[1]):
+            done = j
+            break
+        E_prev = E1s[j]
+    if not done:
+        return []
+    if done < ran:  # the inverses of J0 of the last point kept: those it started from
+        A0, A1 = s0.A, s1.A
+    if done < P:  # keep only what the results use
+        out0, out1, small0, small1 = (x[:done].copy() for x in (out0, out1, small0, small1))
+    each = (time.perf_counter() - t0) / done
+    message = f"converged in {each:.3g} s"
+    levels = []
+    for grid, out, small, rec, A_old, A_new in ((s0.grid, out0, small0, rec0, s0.A, A0),
+                                                (s1.grid, out1, small1, rec1, s1.A, A1)):
+        views = out.reshape(done, 4 + H, n, out.shape[2] // n)
+        levels.append((grid, rec[:done].tolist(), list(views[:, 0]), list(views[:, 3]),
+                       list(views[:, 1]), list(views[:, 2]), list(small[:, :r]), list(small[:, r:]),
+                       list(out[:, 4:]), A_old, A_new))
+    base = dict(model=model.name, couplings=dict(deformation.couplings), coupling=model.coupling)
+    g1 = s1.grid
+    t1 = g1.t
+    results = []
+    for j in range(done):
+        R = radii_[j]
+        states = []
+        for grid, rec, eps, dressing, L, dL, scalars, hr, hg, A_old, A_new in levels:
+            its, res, dE, fold, rounding, E, P_, tail, k, _ = rec[j]
+            k = int(k)
+            states.append(State(
+                grid, R, deformation, eps[j], dressing[j], scalars[j], E, P_, dE, rounding, tail,
+                fold, res, int(its), None, None, L[j], dL[j], None, A_new if j == done - 1 else A_old,
+                (hr[j], hg[j]) if k == H else (hr[j][:k], hg[j][:k]), None, model))
+        coarse, fine = states
+        fine.coarse = coarse
+        fine.levels = states
+        error = (abs(fine.energy - coarse.energy) + fine.iteration_error + coarse.iteration_error
+                 + fine.rounding_error + fine.tail_error)
+        results.append(SolveResult(
+            **base, radius=R, status=Status.CONVERGED, energy=fine.energy, error=error,
+            momentum=fine.momentum, message=message, iterations=fine.iterations + coarse.iterations,
+            residual=fine.residual, effective_radius=R + ttbar * fine.energy if ttbar is not None
+            else np.nan, fold_indicator=fine.fold_indicator, grid=g1, rapidity_grid=t1,
+            pseudo_energies=fine.eps, _state=fine))
     return results
 
 
