@@ -68,7 +68,7 @@ def warm_up(factory, alpha):
     """Compile/load every numba kernel the scan will use, on a throwaway model and point."""
     model = factory()
     solve_ground_state(model, 1.7, ttbar(alpha), tol=TOL)
-    solve_radii(model, [2.9, 3.0], ttbar(alpha), tol=TOL)
+    solve_radii(model, [2.9, 2.95, 3.0, 3.05], ttbar(alpha), tol=TOL)  # also kernels.dense.solve_run
 
 
 def time_both(factory, alpha, radii, repeat, choice, stride):

@@ -764,8 +764,9 @@ def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e
 
 
 #: columns of the per-level record of `solve_run`: iterations, residual, iteration error,
-#: fold indicator, rounding estimate, E, P, tail estimate, history length, J0 inverted here
-RUN_FIELDS = 10
+#: fold indicator, rounding estimate, E, P, tail estimate, history length, J0 inverted here,
+#: the level's octave key within 1e-9 of an integer (the caller checks it again)
+RUN_FIELDS = 11
 
 
 @numba.njit(cache=True, nogil=True)
@@ -798,7 +799,9 @@ def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, ke
     wider cutoff is called for (``amplified``, ``polish_fraction``, ``tail_fraction`` as in the
     caller) and the two levels agree within tol. Point j's arrays go into out*[j], small*[j]
     and rec*[j] (`RUN_FIELDS`), its history being point j - 1's (the caller's for j = 0).
-    Returns (points done, the inverses of J0 of the last point's two levels): the run stops
+    A key within 1e-9 of an integer is flagged in rec*[j, 10] (the caller's log2 may round
+    the other way there). Returns (points done, the inverses of J0 of the last point's two
+    levels): the run stops
     after a point where J0 was inverted (its new inverse is returned), before a point where any
     decision goes the other way (the caller solves that one in full)."""
     r = c.size
@@ -816,9 +819,11 @@ def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, ke
         r_eff = R + ttbar * E_prev if ttbar == ttbar else R
         if not r_eff > 0:
             r_eff = R
-        key = np.floor(64.0 * np.log2(r_eff))
+        x = 64.0 * np.log2(r_eff)
+        key = np.floor(x)
         if key < keys0[0] or key > keys0[1]:
             return j, A_0, A_1
+        edge0 = min(x - key, key + 1.0 - x) < 1e-9
         status, A_new0 = _run_level(K0, drive0, U0, V0, c, wE0, wP0, R, h_r0, h_g0, sign, tol,
                                     maxiter, A_0, trivial, n, N0, out0[j], small0[j], rec0[j])
         if status != CONVERGED:
@@ -837,9 +842,11 @@ def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, ke
                 r_eff = r_eff1
         if not r_eff > 0:
             return j, A_0, A_1
-        key = np.floor(64.0 * np.log2(r_eff))
+        x = 64.0 * np.log2(r_eff)
+        key = np.floor(x)
         if key < keys1[0] or key > keys1[1]:
             return j, A_0, A_1
+        edge1 = min(x - key, key + 1.0 - x) < 1e-9
         status, A_new1 = _run_level(K1, drive1, U1, V1, c, wE1, wP1, R, h_r1, h_g1, sign, tol,
                                     maxiter, A_1, trivial, n, N1, out1[j], small1[j], rec1[j])
         if status != CONVERGED:
@@ -852,6 +859,8 @@ def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, ke
             return j, A_0, A_1
         if rec1[j, 7] > tail_fraction * tol * size:
             return j, A_0, A_1
+        rec0[j, 10] = 1.0 if edge0 else 0.0
+        rec1[j, 10] = 1.0 if edge1 else 0.0
         error = abs(E1 - E0) + rec1[j, 2] + rec0[j, 2] + rec1[j, 4] + rec1[j, 7]
         if not error <= tol * size:
             return j, A_0, A_1

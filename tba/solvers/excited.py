@@ -355,11 +355,22 @@ class ExcitedEquations:
         d = self.disc
         F = eps - d.nu[0] - self.sources(t) + d.ops.convolve(L[None, :])[0] + d.separable(L[None, :])[1][0]
         Q = np.empty(self.Np)
+        integrals = [self.psi_integral(tk, L) for tk in t]
         for k in range(self.Np):
             others = np.delete(t, k)
             Q[k] = (self.m * self.radius * math.sinh(t[k]) + np.sum(self.delta(t[k] - others))
-                    - self.psi_integral(t[k], L)[0] - 2 * np.pi * self.I[k])
+                    - integrals[k][0] - 2 * np.pi * self.I[k])
+        # the Jacobian at an accepted iterate needs the same integrals: kept for it
+        self._integrals = (t, L, integrals)
         return F, Q
+
+    def _psi_integrals(self, t, L):
+        """`psi_integral` at each rapidity of (clipped) ``t``: those of the last `residual`
+        when it was evaluated at the same t and the same array L."""
+        kept = getattr(self, "_integrals", None)
+        if kept is not None and kept[1] is L and np.array_equal(kept[0], t):
+            return kept[2]
+        return [self.psi_integral(tk, L) for tk in t]
 
     def jacobian(self, eps, t, L, dL):
         t = np.clip(t, -700.0, 700.0)
@@ -371,8 +382,9 @@ class ExcitedEquations:
         for j in range(Np):
             with np.errstate(divide="ignore", invalid="ignore"):  # B = 1: psi(0) is a pole
                 J[:N, N + j] = _finite(self.psi_full(tg - t[j]))  # d/dt_j of -D(t - t_j)
+        integrals = self._psi_integrals(t, L)
         for k in range(Np):
-            _, slope, grad = self.psi_integral(t[k], L)
+            _, slope, grad = integrals[k]
             J[N + k, :N] = -grad * dL
             others = np.delete(np.arange(Np), k)
             J[N + k, N + k] = (self.m * self.radius * math.cosh(t[k])
@@ -837,8 +849,29 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
                 return None, (f"no real solution: the level meets its branch point at about "
                               f"{now:.6g} times the requested couplings (det J changes sign "
                               f"there)"), its_total
+            if parameter == "coupling" and _collapsed(history):
+                # Newton from a solution fails ~1e-9 of the scale away, where the pivots of J
+                # have fallen by four orders of magnitude or more on the way: J is singular
+                # there (whether the last trial's rounding shows det J changing sign or a
+                # failed line search, which depends on the BLAS's order of operations)
+                return None, (f"no real solution: the level meets its branch point at about "
+                              f"{now:.6g} times the requested couplings (J is singular there: "
+                              f"its pivot ratio fell from {history[0][1]:.1e} to "
+                              f"{min(s for _, s in history):.1e})"), its_total
             return None, _stalled(parameter, history, target, now, msg), its_total
     return seed, "converged", its_total
+
+
+#: a continuation that stalls where the Jacobian's pivot ratio has fallen by this factor from
+#: its start has met a singular J (`_follow`)
+COLLAPSE = 1e-4
+
+
+def _collapsed(history):
+    """The pivot ratio (smallest over largest LU pivot) along a continuation fell by
+    `COLLAPSE` or more from its start."""
+    first = history[0][1]
+    return math.isfinite(first) and first > 0 and min(s for _, s in history) <= COLLAPSE * first
 
 
 def _stalled(parameter, history, target, now, msg):

@@ -1282,13 +1282,15 @@ RUN_POINTS = 256
 
 
 def _keys(rule, seed, level, key, low, high):
-    """[first, last] octave keys around ``key`` (`_GridRule.grid`), within [low, high], whose
-    grid of ``level`` is the seed's once `_keep_wider` has looked at it."""
+    """[first, last] octave keys around ``key`` (`_GridRule.grid_of_key`), within [low, high],
+    whose grid of ``level`` is the seed's once `_keep_wider` has looked at it (its test
+    written out: this runs for every key a scan meets)."""
     g = seed.grid
+    grids = rule.grids
 
     def same(k):
-        grid = rule.grid_of_key(k, level, 0.0)
-        return grid is g or grid == g or _keep_wider(grid, seed) is g
+        grid = grids.get((k, level, 0.0)) or rule.grid_of_key(k, level, 0.0)
+        return grid is g or (grid.h == g.h and grid.N <= g.N <= grid.N + KEEP_POINTS)
 
     if not same(key):
         return None
@@ -1365,37 +1367,36 @@ def _run(model, radii, i, deformation, tol, prev, rule):
         c, n, ops0.N, ops1.N, np.array(radii_), prev.energy,
         rule.ttbar if rule.ttbar is not None else math.nan, not deformation.is_zero, rule.sign,
         tol, 60, trivial, AMPLIFIED, POLISH_FRACTION, 1e-3)
-    # the octave keys again, as `_solve_point` takes them (the compiled log2 may round
-    # differently right at a boundary): a point whose key falls outside is solved in full
-    E0s, E1s = rec0[:ran, 5].tolist(), rec1[:ran, 5].tolist()
-    E_prev, done = prev.energy, ran
+    # the octave keys next to an integer again, as `_solve_point` takes them (the compiled
+    # log2 may round the other way there): a point whose key falls outside is solved in full
+    done = ran
     ttbar = rule.ttbar
-    for j in range(ran):
+    for j in np.flatnonzero(rec0[:ran, 10] + rec1[:ran, 10]).tolist():
         R = radii_[j]
-        a = R + ttbar * E_prev if ttbar is not None else None
+        a = R + ttbar * (rec1[j - 1, 5] if j else prev.energy) if ttbar is not None else None
         a = a if a and a > 0 else R
-        b = (R + ttbar * E0s[j] if ttbar is not None else None) or a
+        b = (R + ttbar * rec0[j, 5] if ttbar is not None else None) or a
         if not (keys0[0] <= math.floor(64 * math.log2(a)) <= keys0[1]
                 and keys1[0] <= math.floor(64 * math.log2(b)) <= keys1[1]):
             done = j
             break
-        E_prev = E1s[j]
     if not done:
         return []
     if done < ran:  # the inverses of J0 of the last point kept: those it started from
         A0, A1 = s0.A, s1.A
-    if done < P:  # keep only what the results use
-        out0, out1, small0, small1 = (x[:done].copy() for x in (out0, out1, small0, small1))
+    # (rows past ``done`` were never written: np.empty leaves their pages unmapped, so the
+    # results' views keep no more memory than they use)
     each = (time.perf_counter() - t0) / done
     message = f"converged in {each:.3g} s"
     levels = []
     for grid, out, small, rec, A_old, A_new in ((s0.grid, out0, small0, rec0, s0.A, A0),
                                                 (s1.grid, out1, small1, rec1, s1.A, A1)):
+        out, small = out[:done], small[:done]
         views = out.reshape(done, 4 + H, n, out.shape[2] // n)
         levels.append((grid, rec[:done].tolist(), list(views[:, 0]), list(views[:, 3]),
                        list(views[:, 1]), list(views[:, 2]), list(small[:, :r]), list(small[:, r:]),
                        list(out[:, 4:]), A_old, A_new))
-    base = dict(model=model.name, couplings=dict(deformation.couplings), coupling=model.coupling)
+    name, couplings, coupling = model.name, deformation.couplings, model.coupling
     g1 = s1.grid
     t1 = g1.t
     results = []
@@ -1403,9 +1404,9 @@ def _run(model, radii, i, deformation, tol, prev, rule):
         R = radii_[j]
         states = []
         for grid, rec, eps, dressing, L, dL, scalars, hr, hg, A_old, A_new in levels:
-            its, res, dE, fold, rounding, E, P_, tail, k, _ = rec[j]
+            its, res, dE, fold, rounding, E, P_, tail, k, _, _ = rec[j]
             k = int(k)
-            states.append(State(
+            states.append(State(  # positional (the field order of State): quicker
                 grid, R, deformation, eps[j], dressing[j], scalars[j], E, P_, dE, rounding, tail,
                 fold, res, int(its), None, None, L[j], dL[j], None, A_new if j == done - 1 else A_old,
                 (hr[j], hg[j]) if k == H else (hr[j][:k], hg[j][:k]), None, model))
@@ -1414,12 +1415,11 @@ def _run(model, radii, i, deformation, tol, prev, rule):
         fine.levels = states
         error = (abs(fine.energy - coarse.energy) + fine.iteration_error + coarse.iteration_error
                  + fine.rounding_error + fine.tail_error)
-        results.append(SolveResult(
-            **base, radius=R, status=Status.CONVERGED, energy=fine.energy, error=error,
-            momentum=fine.momentum, message=message, iterations=fine.iterations + coarse.iterations,
-            residual=fine.residual, effective_radius=R + ttbar * fine.energy if ttbar is not None
-            else np.nan, fold_indicator=fine.fold_indicator, grid=g1, rapidity_grid=t1,
-            pseudo_energies=fine.eps, _state=fine))
+        results.append(SolveResult(  # positional (the field order of SolveResult): quicker
+            name, R, dict(couplings), Status.CONVERGED, coupling, fine.energy, error,
+            fine.momentum, message, fine.iterations + coarse.iterations, fine.residual,
+            R + ttbar * fine.energy if ttbar is not None else np.nan, fine.fold_indicator, g1,
+            t1, fine.eps, (), (), fine))
     return results
 
 
