@@ -801,9 +801,9 @@ def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, ke
     and rec*[j] (`RUN_FIELDS`), its history being point j - 1's (the caller's for j = 0).
     A key within 1e-9 of an integer is flagged in rec*[j, 10] (the caller's log2 may round
     the other way there). Returns (points done, the inverses of J0 of the last point's two
-    levels): the run stops
-    after a point where J0 was inverted (its new inverse is returned), before a point where any
-    decision goes the other way (the caller solves that one in full)."""
+    levels): the run stops after a point where J0 was inverted (its new inverse is returned),
+    and before a point where any decision goes the other way (the caller solves that one in
+    full)."""
     r = c.size
     P = radii.size
     A_0, A_1 = A0, A1

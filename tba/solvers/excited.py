@@ -295,6 +295,7 @@ class ExcitedEquations:
         self.D, self.psi, self.dpsi, self.delta, self.ddelta = sc.D, sc.psi, sc.dpsi, sc.delta, sc.ddelta
         self.psi_full = sc.psi  # D' itself (self.psi may be its pole-subtracted part)
         self.near = NearPoles(model)
+        self._integrals = None  # (t, L, psi integrals) of the last `residual`, for `jacobian`
         if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
             self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
                                                                       np.sinh, 1, True)
@@ -367,7 +368,7 @@ class ExcitedEquations:
     def _psi_integrals(self, t, L):
         """`psi_integral` at each rapidity of (clipped) ``t``: those of the last `residual`
         when it was evaluated at the same t and the same array L."""
-        kept = getattr(self, "_integrals", None)
+        kept = self._integrals
         if kept is not None and kept[1] is L and np.array_equal(kept[0], t):
             return kept[2]
         return [self.psi_integral(tk, L) for tk in t]
@@ -857,7 +858,7 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
                 return None, (f"no real solution: the level meets its branch point at about "
                               f"{now:.6g} times the requested couplings (J is singular there: "
                               f"its pivot ratio fell from {history[0][1]:.1e} to "
-                              f"{min(s for _, s in history):.1e})"), its_total
+                              f"{history[-1][1]:.1e})"), its_total
             return None, _stalled(parameter, history, target, now, msg), its_total
     return seed, "converged", its_total
 
@@ -868,10 +869,10 @@ COLLAPSE = 1e-4
 
 
 def _collapsed(history):
-    """The pivot ratio (smallest over largest LU pivot) along a continuation fell by
-    `COLLAPSE` or more from its start."""
-    first = history[0][1]
-    return math.isfinite(first) and first > 0 and min(s for _, s in history) <= COLLAPSE * first
+    """The pivot ratio (smallest over largest LU pivot) at the last solution of a continuation
+    is `COLLAPSE` or less times the one at its start."""
+    first, last = history[0][1], history[-1][1]
+    return math.isfinite(first) and first > 0 and last <= COLLAPSE * first
 
 
 def _stalled(parameter, history, target, now, msg):

@@ -1022,10 +1022,6 @@ class _GridRule:
             return None
         return radius + self.ttbar * state.energy
 
-    def effective_radius_of(self, energy, radius):
-        """R + alpha E for an energy, or None (not TTbar)."""
-        return None if self.ttbar is None else radius + self.ttbar * float(energy)
-
     def operators(self, grid):
         """(`operators` of the model on ``grid``, their separable terms of the deformation)."""
         known = self._by_id.get(id(grid))
