@@ -70,7 +70,9 @@ def _mv(A, x, out):
     """out = A x (loops for small systems, BLAS above SMALL)."""
     M, N = A.shape
     if M > SMALL:
-        out[:] = np.dot(A, x)
+        y = np.dot(A, x)
+        for i in range(M):  # (element by element: a slice assignment compiles numba's
+            out[i] = y[i]   # shape-mismatch message formatting, seconds of first-run compile)
         return out
     for i in range(M):
         s = 0.0
@@ -85,7 +87,9 @@ def _mtv(A, x, out):
     """out = A^T x."""
     M, N = A.shape
     if M > SMALL:
-        out[:] = np.dot(A.T, x)
+        y = np.dot(A.T, x)
+        for j in range(N):
+            out[j] = y[j]
         return out
     for j in range(N):
         out[j] = 0.0
@@ -133,8 +137,12 @@ def _gauss_jordan(B):
     # undo the row permutation on the columns of the inverse
     out = np.empty_like(B)
     for j in range(M):
-        out[:, perm[j]] = B[:, j]
-    B[:, :] = out
+        pj = perm[j]
+        for i in range(M):
+            out[i, pj] = B[i, j]
+    for i in range(M):
+        for j in range(M):
+            B[i, j] = out[i, j]
     return True
 
 
@@ -243,7 +251,8 @@ def _z_of(A, U):
     col = np.empty(M)
     for k in range(r):
         _mv(A, U[k], col)
-        Z[:, k] = col
+        for i in range(M):
+            Z[i, k] = col[i]
     return Z
 
 
@@ -292,7 +301,8 @@ def refine_capacitance(K, U, dL, A, CVd, Z, trivial, sweeps):
             used = max(used, it + 1)
             if np.max(np.abs(dz)) <= 4 * _EPS * np.max(np.abs(z)):
                 break
-        Z[:, k] = z
+        for i in range(M):
+            Z[i, k] = z[i]
     cap = np.eye(r)
     for a in range(r):
         for b in range(r):
@@ -758,7 +768,8 @@ def solve_level(K, drive, U, V, c, wE, wP, R, hist_radii, hist_g, use_history, e
         for a in range(hist_radii.size):
             if hist_radii[a] != R and k < HISTORY:
                 small[r + k] = hist_radii[a]
-                out[4 + k] = hist_g[a]
+                for i in range(M):
+                    out[4 + k, i] = hist_g[a, i]
                 k += 1
     return its, res, dE, status, fold, rounding, A, E, P, tail, k
 
