@@ -170,6 +170,29 @@ def test_even_spin_leaves_the_ground_state_alone():
         assert res.converged and res.energy == pytest.approx(res0.energy, rel=1e-13)
 
 
+def test_a4_spin_3_flow_relation_at_zero_coupling():
+    # A_4 (the Z_5 S-matrix of Koberle and Swieca 1979) spin 3: q_3^a = sin(3 pi a / 5) (the exponents
+    # 1..n; Braden et al. 1990) has mixed signs, so as for E8 the check is at alpha_3 = 0:
+    # dE/dalpha_3 = 3 E_3 dE_3/dR (tba/models/cdd.py), the solver's exact derivative against the
+    # relation with E_3 from the solved pseudo-energies and dE_3/dR by a fourth-order difference,
+    # and against central differences of solved energies at a coupling small enough (a relative
+    # change of E of 1e-8) that the unbounded part of the driving term stays off the grid
+    model = get_model("A4")
+    q = model.charges(3)  # species ordered by mass: a = 1, 4 (m = 1), then 2, 3
+    assert np.allclose(np.sort(q / q[0]), np.sort([math.sin(3 * math.pi * a / 5)
+                                                   / math.sin(3 * math.pi / 5) for a in range(1, 5)]))
+    res = solve_ground_state(model, 1.0, tol=1e-13)
+    assert res.converged
+    exact = energy_derivatives(res, spins=(3,))["dE_dalpha3"]
+    E3 = lambda R: charge_expectation(solve_ground_state(model, R, tol=1e-13), model, 3)  # noqa: E731
+    assert exact == pytest.approx(3 * E3(1.0) * d_dR(E3, 1.0, 2e-3), rel=1e-7)
+    step = 1e-8 * abs(res.energy / exact)
+    plus = solve_ground_state(model, 1.0, higher_spin(3, step), tol=1e-13)
+    minus = solve_ground_state(model, 1.0, higher_spin(3, -step), tol=1e-13)
+    assert plus.converged and minus.converged
+    assert (plus.energy - minus.energy) / (2 * step) == pytest.approx(exact, rel=2e-5)
+
+
 @pytest.fixture(scope="module")
 def e8_at_zero():
     model = get_model("E8")
