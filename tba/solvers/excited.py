@@ -415,13 +415,35 @@ class ExcitedEquations:
         """eps from a solved neighbour (interpolating its kernel part) or from sources alone."""
         eps = self.disc.nu[0] + self.sources(t)
         if from_state is not None:
-            g = from_state.dressing
-            if from_state.grid != self.grid:
-                g = _interpolate(from_state.grid, g[None, :], self.grid.t)[0]
-            eps = eps + g
+            eps = eps + self._dressing_of(from_state)
             if self.disc.c.size and from_state.scalars.size == self.disc.c.size:
                 eps -= np.einsum("r,ri->i", self.disc.c * from_state.scalars, self.disc.U[:, 0])
         return eps
+
+    def _dressing_of(self, solved):
+        g = solved.dressing
+        if solved.grid != self.grid:
+            g = _interpolate(solved.grid, g[None, :], self.grid.t)[0]
+        return g
+
+    def extrapolated_guess(self, s1, s2):
+        """(rapidities, eps) extrapolated linearly in R from the solutions ``s1`` at R_1 and
+        ``s2`` at R_2 of the same level and couplings (rapidities, kernel part and separable
+        scalars), or None where that is not an interpolation or a modest extrapolation
+        (|R - R_1| <= 2 |R_1 - R_2|)."""
+        R, R1, R2 = self.radius, s1.radius, s2.radius
+        if (R1 == R2 or not abs(R - R1) <= 2 * abs(R1 - R2)
+                or s1.rapidities.shape != s2.rapidities.shape):
+            return None
+        w = (R - R1) / (R1 - R2)
+        t = s1.rapidities + w * (s1.rapidities - s2.rapidities)
+        g1, g2 = self._dressing_of(s1), self._dressing_of(s2)
+        eps = self.disc.nu[0] + self.sources(t) + g1 + w * (g1 - g2)
+        c = self.disc.c
+        if c.size and s1.scalars.size == c.size == s2.scalars.size:
+            scalars = s1.scalars + w * (s1.scalars - s2.scalars)
+            eps = eps - np.einsum("r,ri->i", c * scalars, self.disc.U[:, 0])
+        return t, eps
 
 
 @dataclass
@@ -449,6 +471,9 @@ class ExcitedState:
     jac_scale: float = field(default=np.nan)
     #: the same level undeformed at this radius (warm starts for neighbours)
     undeformed: object = field(default=None, repr=False)
+    #: the final solution at the previous radius of a scan this one was refined from (same
+    #: couplings; one deep): with it the next radius starts from a linear extrapolation in R
+    previous: object = field(default=None, repr=False)
     #: the model, the deformation and the next-coarser grid's solution of a final result (for
     #: `excited_derivatives`; None on intermediate solutions)
     model: object = field(default=None, repr=False)
@@ -592,13 +617,25 @@ def _grid(model, deformation, r_eff, tol, level):
                        strip=strip, shift=beta, quantum=EXCITED_QUANTUM)
 
 
-def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff):
+def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff, previous=None):
+    """Newton on one grid from ``seed`` (or the Bethe-Yang rapidities); with ``previous``, the
+    solution before ``seed`` along a scan, first from the linear extrapolation of the two in R
+    (kept if it lands on the seed's branch and is not spurious; else the plain start)."""
     grid = _grid(model, deformation, r_eff, tol, level)
     eqs = ExcitedEquations(model, deformation, radius, grid, state)
     if not eqs.disc.ops.dense:
         return None, f"grid of {grid.N} points: beyond the dense excited-state solver", 0
+    its = 0
+    guess = eqs.extrapolated_guess(seed, previous) if seed is not None and previous is not None \
+        else None
+    if guess is not None:
+        new, msg, its = _newton(eqs, guess[1], guess[0], tol)
+        if new is not None and new.det_sign == seed.det_sign \
+                and not _unbounded(deformation, radius, state, new.energy):
+            return new, msg, its
     t0 = seed.rapidities if seed is not None else bethe_yang(model, radius, state, deformation)
-    return _newton(eqs, eqs.initial_guess(t0, seed), t0, tol)
+    new, msg, more = _newton(eqs, eqs.initial_guess(t0, seed), t0, tol)
+    return new, msg, its + more
 
 
 def _unbounded(deformation, radius, state, energy):
@@ -748,9 +785,16 @@ def _refine(model, deformation, radius, state, tol, seed, undeformed, base, iter
     """Solve on grids of increasing resolution from ``seed`` until two agree within ``tol``."""
     states = []
     error = math.nan
+    # along a scan (``seed`` the previous radius's final solution, the same couplings): level 0
+    # starts from the extrapolation through the seed and the one before it
+    first = seed if seed.radius != radius and seed.deformation == deformation else None
+    previous = first.previous if first is not None else None
+    if previous is not None and previous.deformation != deformation:
+        previous = None
     for level in (0, 1, 2, 3):
         r_eff = _effective_radius(deformation, radius, seed.energy, seed.momentum)
-        new, msg, its = _solve_level(model, deformation, radius, state, tol, level, seed, r_eff)
+        new, msg, its = _solve_level(model, deformation, radius, state, tol, level, seed, r_eff,
+                                     previous if level == 0 else None)
         iterations += its
         if new is not None and new.det_sign != seed.det_sign:
             new, msg = None, "the solution left the branch (det J changed sign)"
@@ -773,6 +817,8 @@ def _refine(model, deformation, radius, state, tol, seed, undeformed, base, iter
                 fine.model = coarse.model = model
                 fine.deformation = coarse.deformation = deformation
                 fine.coarse = coarse
+                if first is not None:  # one deep: the chain along a scan is not kept
+                    fine.previous, first.previous = first, None
                 return SolveResult(**base, status=Status.CONVERGED, energy=fine.energy, error=error,
                                    momentum=fine.momentum, message="converged",
                                    iterations=iterations, residual=fine.residual,
