@@ -421,6 +421,7 @@ class ExcitedEquations:
         return eps
 
     def _dressing_of(self, solved):
+        """The kernel part of a solved neighbour's eps on this grid (interpolated)."""
         g = solved.dressing
         if solved.grid != self.grid:
             g = _interpolate(solved.grid, g[None, :], self.grid.t)[0]
