@@ -504,6 +504,14 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
     prev = start._state if (isinstance(start, SolveResult) and start.converged
                             and start.model == "lee-yang" and tuple(start.state) == (0,)) else None
     seed = None
+    if prev is not None and prev["final"]["alpha"] == alpha and prev["final"]["radius"] != radius:
+        # along a scan: the previous point's level refined at this R directly (two grid solves),
+        # kept unless a grid's solution leaves its branch (det J changes sign)
+        direct = _two_grids(base, radius, alpha, tol, prev["final"], prev["undeformed"],
+                            iterations, det_sign=prev["final"]["det_sign"])
+        if direct.converged:
+            return direct
+        iterations = direct.iterations
     if prev is not None and prev["final"]["alpha"] == alpha:
         # a fold on the way ends this quickly: the path below then gives the verdict
         seed, msg, its = _follow(alpha, radius, tol, prev["final"], "radius",
@@ -534,12 +542,20 @@ def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=No
                 return SolveResult(**base, status=status, iterations=iterations, message=msg)
     elif prev is not None:
         undeformed = prev["undeformed"]
-    # -- two grids at the target --------------------------------------------------------------------
+    return _two_grids(base, radius, alpha, tol, seed, undeformed, iterations)
+
+
+def _two_grids(base, radius, alpha, tol, seed, undeformed, iterations, det_sign=None):
+    """The point on grids of increasing resolution from ``seed`` until two agree within tol (a
+    SolveResult; with ``det_sign``, not-converged as soon as a grid's solution has another sign
+    of det J: it left the seed's branch)."""
     levels = []
     error = math.nan
     for level in (0, 1, 2, 3):
         new, msg, its = _solve(radius, alpha, tol, level, seed)
         iterations += its
+        if new is not None and det_sign is not None and new["det_sign"] != det_sign:
+            new, msg = None, "the solution left the branch (det J changed sign)"
         if new is None:
             return SolveResult(**base, status=Status.NOT_CONVERGED, iterations=iterations,
                                message=f"refinement level {level}: {msg}")
