@@ -484,9 +484,11 @@ def _follow(alpha_target, radius_target, tol, seed, parameter, min_step=1e-9):
 
 def solve_lee_yang_one_particle(radius, deformation=None, *, tol=1e-12, start=None):
     """E_1(R) of the Lee-Yang zero-momentum one-particle state, at any R > 0 (see the module
-    doc), with the TTbar CDD factor if given. The undeformed state is followed in R from
-    R = 12 (or from ``start``, a converged result of this function), the coupling is then
-    switched on at fixed R, and the point is solved on two grids for the error estimate.
+    doc), with the TTbar CDD factor if given. With ``start`` a converged result of this
+    function at the same alpha (the previous point of a scan), its level is refined at R
+    directly, unless a grid's solution changes the sign of det J. Otherwise the state is
+    followed in R (from ``start``, or undeformed from R = 12), the coupling is then switched on
+    at fixed R, and the point is solved on two grids for the error estimate.
     Status NO_REAL_SOLUTION when the level meets its branch point before the requested
     coupling (alpha < 0). Returns a SolveResult with state (0,) and no particle rapidities."""
     from tba.solvers.ground import _validate, require_deformation, require_start
