@@ -795,6 +795,28 @@ def _run_level(K, drive, U, V, c, wE, wP, R, hist_r, hist_g, sign, tol, maxiter,
 
 
 @numba.njit(cache=True, nogil=True)
+def _octave_key(r_eff, keys):
+    """(floor(64 log2 r_eff) lies in [keys[0], keys[1]], it lies within 1e-9 of an integer)."""
+    x = 64.0 * np.log2(r_eff)
+    key = np.floor(x)
+    return keys[0] <= key <= keys[1], min(x - key, key + 1.0 - x) < 1e-9
+
+
+@numba.njit(cache=True, nogil=True)
+def _plain(status, rec, deformed, tol, amplified, polish_fraction, tail_fraction):
+    """A level solved by `_run_level` needs nothing more of the caller's point loop: converged,
+    a positive fold indicator (``deformed``), no extended-precision polish, no wider cutoff."""
+    if status != CONVERGED:
+        return False
+    size = abs(rec[5])
+    if deformed and not rec[3] > 0:
+        return False
+    if rec[4] > amplified * size and rec[4] + rec[2] > polish_fraction * tol * size:
+        return False
+    return not rec[7] > tail_fraction * tol * size
+
+
+@numba.njit(cache=True, nogil=True)
 def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, keys0,
               K1, drive1, U1, V1, wE1, wP1, hr1, hg1, A1, out1, small1, rec1, keys1,
               c, n, N0, N1, radii, E_prev, ttbar, deformed, sign, tol, maxiter, trivial,
@@ -830,46 +852,29 @@ def solve_run(K0, drive0, U0, V0, wE0, wP0, hr0, hg0, A0, out0, small0, rec0, ke
         r_eff = R + ttbar * E_prev if ttbar == ttbar else R
         if not r_eff > 0:
             r_eff = R
-        x = 64.0 * np.log2(r_eff)
-        key = np.floor(x)
-        if key < keys0[0] or key > keys0[1]:
+        inside, edge0 = _octave_key(r_eff, keys0)
+        if not inside:
             return j, A_0, A_1
-        edge0 = min(x - key, key + 1.0 - x) < 1e-9
         status, A_new0 = _run_level(K0, drive0, U0, V0, c, wE0, wP0, R, h_r0, h_g0, sign, tol,
                                     maxiter, A_0, trivial, n, N0, out0[j], small0[j], rec0[j])
-        if status != CONVERGED:
+        if not _plain(status, rec0[j], deformed, tol, amplified, polish_fraction, tail_fraction):
             return j, A_0, A_1
         E0 = rec0[j, 5]
-        size = abs(E0)
-        if deformed and not rec0[j, 3] > 0:
-            return j, A_0, A_1
-        if rec0[j, 4] > amplified * size and rec0[j, 4] + rec0[j, 2] > polish_fraction * tol * size:
-            return j, A_0, A_1
-        if rec0[j, 7] > tail_fraction * tol * size:
-            return j, A_0, A_1
         if ttbar == ttbar:
             r_eff1 = R + ttbar * E0
             if r_eff1 != 0.0:
                 r_eff = r_eff1
         if not r_eff > 0:
             return j, A_0, A_1
-        x = 64.0 * np.log2(r_eff)
-        key = np.floor(x)
-        if key < keys1[0] or key > keys1[1]:
+        inside, edge1 = _octave_key(r_eff, keys1)
+        if not inside:
             return j, A_0, A_1
-        edge1 = min(x - key, key + 1.0 - x) < 1e-9
         status, A_new1 = _run_level(K1, drive1, U1, V1, c, wE1, wP1, R, h_r1, h_g1, sign, tol,
                                     maxiter, A_1, trivial, n, N1, out1[j], small1[j], rec1[j])
-        if status != CONVERGED:
+        if not _plain(status, rec1[j], deformed, tol, amplified, polish_fraction, tail_fraction):
             return j, A_0, A_1
         E1 = rec1[j, 5]
         size = abs(E1)
-        if deformed and not rec1[j, 3] > 0:
-            return j, A_0, A_1
-        if rec1[j, 4] > amplified * size and rec1[j, 4] + rec1[j, 2] > polish_fraction * tol * size:
-            return j, A_0, A_1
-        if rec1[j, 7] > tail_fraction * tol * size:
-            return j, A_0, A_1
         rec0[j, 10] = 1.0 if edge0 else 0.0
         rec1[j, 10] = 1.0 if edge1 else 0.0
         error = abs(E1 - E0) + rec1[j, 2] + rec0[j, 2] + rec1[j, 4] + rec1[j, 7]

@@ -296,7 +296,6 @@ class ExcitedEquations:
         self.psi_full = sc.psi  # D' itself (self.psi may be its pole-subtracted part)
         self.near = NearPoles(model)
         self._integrals = None  # (t, L, psi integrals) of the last `residual`, for `jacobian`
-        self._sources = {}  # t.tobytes() -> `sources`(t), the last few
         if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
             self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
                                                                       np.sinh, 1, True)
@@ -340,20 +339,11 @@ class ExcitedEquations:
     def sources(self, t):
         """sum_j D(t_grid - t_j) on the grid. At B = 1 a particle on a grid point makes
         D(0) = +inf there (e^-eps has a double zero at t_j on the axis): such a value is set to
-        700, where e^-700 leaves L unchanged. The last few are kept by the bytes of t (a Newton
-        step asks for the same ones in its line search and residual)."""
-        key = np.asarray(t, dtype=float).tobytes()
-        out = self._sources.get(key)
-        if out is None:
-            tg = self.grid.t
-            with np.errstate(divide="ignore", invalid="ignore"):
-                out = sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
-            out = np.where(out == np.inf, 700.0, out)
-            out.flags.writeable = False  # shared between callers
-            if len(self._sources) >= 4:
-                self._sources.clear()
-            self._sources[key] = out
-        return out
+        700, where e^-700 leaves L unchanged."""
+        tg = self.grid.t
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
+        return np.where(out == np.inf, 700.0, out)
 
     def source_slopes(self, t, dt):
         """-(d sources / dt) . dt = sum_j psi(t_grid - t_j) dt_j."""

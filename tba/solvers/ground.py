@@ -998,8 +998,7 @@ class _GridRule:
     once, and the grids are kept by (octave index of the effective radius, level, cutoff
     extra), so that the radii of a scan look their grids up in one dictionary."""
 
-    __slots__ = ("args", "tol", "grids", "model", "deformation", "ops", "ttbar", "sign", "tails",
-                 "_by_id")
+    __slots__ = ("args", "tol", "grids", "model", "deformation", "ops", "ttbar", "sign", "tails")
 
     def __init__(self, model, deformation, tol):
         min_mass, massless, kernel_decay = grid_masses(model)
@@ -1014,7 +1013,6 @@ class _GridRule:
         self.sign = 1 if model.statistics == "fermion" else -1
         #: `_unbounded_spin_tails` of (model, deformation): the same at every radius
         self.tails = _unbounded_spin_tails(model, deformation)
-        self._by_id = {}  # id(grid) -> (grid, its operators): no hashing of grids
 
     def effective_radius(self, state, radius):
         """`_effective_radius` of a state at ``radius``: R + alpha E or None."""
@@ -1024,14 +1022,10 @@ class _GridRule:
 
     def operators(self, grid):
         """(`operators` of the model on ``grid``, their separable terms of the deformation)."""
-        known = self._by_id.get(id(grid))
-        if known is not None and known[0] is grid:
-            return known[1]
         out = self.ops.get(grid)
         if out is None:
             ops = operators(self.model, grid, self.deformation)
             out = self.ops[grid] = (ops, ops.terms(self.deformation))
-        self._by_id[id(grid)] = (grid, out)
         return out
 
     def grid(self, r_eff, level, cutoff_extra):
@@ -1279,14 +1273,12 @@ RUN_POINTS = 256
 
 def _keys(rule, seed, level, key, low, high):
     """[first, last] octave keys around ``key`` (`_GridRule.grid_of_key`), within [low, high],
-    whose grid of ``level`` is the seed's once `_keep_wider` has looked at it (its test
-    written out: this runs for every key a scan meets)."""
+    whose grid of ``level`` is the seed's once `_keep_wider` has looked at it."""
     g = seed.grid
-    grids = rule.grids
 
     def same(k):
-        grid = grids.get((k, level, 0.0)) or rule.grid_of_key(k, level, 0.0)
-        return grid is g or (grid.h == g.h and grid.N <= g.N <= grid.N + KEEP_POINTS)
+        grid = rule.grid_of_key(k, level, 0.0)
+        return grid is g or grid == g or _keep_wider(grid, seed) is g
 
     if not same(key):
         return None
