@@ -626,6 +626,8 @@ def summary(K, L, e, wE, wP, V, n, N, trivial):
     for i in range(M):
         E += wE[i] * L[i]
         P += wP[i] * L[i]
+    if N < 2:  # (the pairs below would read past the species' points)
+        raise ValueError("a grid of one point per species has no tail estimate")
     tail = 0.0
     for a in range(n):
         for i, j in ((a * N, a * N + 1), (a * N + N - 1, a * N + N - 2)):

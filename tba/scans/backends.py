@@ -13,6 +13,7 @@ import signal
 import threading
 import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 
 from tba.scans.interrupts import caused_by_interrupt
@@ -230,10 +231,12 @@ class ProcessPool(Backend):
                     futures.update({executor.submit(solve_branch_task, run, key): key
                                     for key in levels})
                 pending = set(futures)
+                broken = False
                 while pending:
                     finished, pending = wait(pending, return_when=FIRST_COMPLETED)
                     for future in finished:
                         exc = future.exception()
+                        broken = broken or isinstance(exc, BrokenProcessPool)
                         what = futures[future]
                         # a worker that died (killed, out of memory) breaks the pool: its
                         # chunks and those still queued come back failed, the rest is saved
@@ -246,7 +249,12 @@ class ProcessPool(Backend):
             except BaseException:  # Ctrl-C, an error, or the generator closed early
                 _stop(executor)
                 raise
-            executor.shutdown(wait=True)
+            if broken:
+                # the dead worker may have held the lock of the result queue: the others then
+                # wait for it forever, and so would shutdown (CPython 3.11-3.13); stop them
+                _stop(executor)
+            else:
+                executor.shutdown(wait=True)
         yield from _branch_points_here(run, branch_pairs)
 
 
