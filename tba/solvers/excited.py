@@ -35,6 +35,8 @@ from fractions import Fraction
 import numpy as np
 import scipy.linalg
 
+from kernels import excited as _compiled
+from kernels import lapack as _lapack
 from tba.models.cdd import NO_DEFORMATION
 from tba.solvers.grid import choose_grid
 from tba.models.blocks import block_kernel_shifted
@@ -241,6 +243,11 @@ class Scattering:
         m = float(model.masses[0])
         self.cdd = [(s, a * (m * m if s == 1 else 1.0)) for s, a in deformation.couplings.items()]
 
+    def arrays(self):
+        """The CDD terms for `kernels.excited`: spins, coefficients, signs (-1)^((s-1)/2)."""
+        return (np.array([float(s) for s, _ in self.cdd]), np.array([a for _, a in self.cdd]),
+                np.array([float((-1) ** ((s - 1) // 2)) for s, _ in self.cdd]))
+
     def _cdd(self, u, fn, power, odd_sign):
         out = 0.0
         for s, a in self.cdd:
@@ -296,6 +303,7 @@ class ExcitedEquations:
         self.psi_full = sc.psi  # D' itself (self.psi may be its pole-subtracted part)
         self.near = NearPoles(model)
         self._integrals = None  # (t, L, psi integrals) of the last `residual`, for `jacobian`
+        self._scattering = sc
         if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
             self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
                                                                       np.sinh, 1, True)
@@ -364,6 +372,56 @@ class ExcitedEquations:
         # the Jacobian at an accepted iterate needs the same integrals: kept for it
         self._integrals = (t, L, integrals)
         return F, Q
+
+    def compiled_arguments(self):
+        """The arguments of `kernels.excited` after the unknowns (eps, t) and before tol.
+        The blocks of one species are full blocks f_x (crossing pairs half-blocks into them:
+        see `tba.models.base`)."""
+        d, cell = self.disc, self.model.blocks[0][0]
+        N = self.N
+        K = d.ops.matrix if not d.ops.trivial else np.zeros((1, 1))
+        r = d.c.size
+        cs, ca, csg = self._scattering.arrays()
+        poles = self.near.poles
+        return (np.ascontiguousarray(self.grid.t, dtype=float), float(self.grid.h),
+                np.ascontiguousarray(d.nu[0], dtype=float), np.ascontiguousarray(K, dtype=float),
+                bool(d.ops.trivial), np.ascontiguousarray(d.c, dtype=float),
+                np.ascontiguousarray(d.U_flat, dtype=float).reshape(r, N),
+                np.ascontiguousarray(d.V_flat, dtype=float).reshape(r, N),
+                np.ascontiguousarray(d.wE[0], dtype=float), np.ascontiguousarray(d.wP[0], dtype=float),
+                self.m, float(self.radius), np.ascontiguousarray(self.I, dtype=float),
+                float(self.sigma),
+                np.array([math.sin(math.pi * float(x)) for x in cell]),
+                np.array([float(k) for k in cell.values()]), cs, ca, csg,
+                np.array([a for a, _, _ in poles]), np.array([k for _, k, _ in poles]),
+                np.array([math.sin(math.pi * float(x)) for _, _, x in poles]))
+
+    def _compiled(self, kernel, eps, t):
+        """``kernel`` of `kernels.excited` at (eps, t), or None (COMPILED off, or eps outside
+        the domain of L: the numpy path then gives what it always gave)."""
+        if not COMPILED:
+            return None
+        out = kernel(np.ascontiguousarray(eps, dtype=float), np.ascontiguousarray(t, dtype=float),
+                     *self.compiled_arguments())
+        return out[1:] if out[0] else None
+
+    def equations(self, eps, t):
+        """(F, Q) at (eps, t)."""
+        out = self._compiled(_compiled.equations, eps, t)
+        if out is not None:
+            return out
+        return self.residual(eps, t, self.occupation(eps)[0])
+
+    def linearised(self, eps, t):
+        """(F, Q, L', solve) at (eps, t): the equations, dL/deps and a solver of J x = b."""
+        out = self._compiled(_compiled.linearise, eps, t)
+        if out is not None:
+            F, Q, dL, at, ipiv = out
+            return F, Q, dL, lambda b: _lapack.lu_solve(at, ipiv, np.array(b, dtype=float))
+        L, dL, _ = self.occupation(eps)
+        F, Q = self.residual(eps, t, L)
+        lu = scipy.linalg.lu_factor(self.jacobian(eps, t, L, dL), check_finite=False)
+        return F, Q, dL, lambda b: scipy.linalg.lu_solve(lu, b, check_finite=False)
 
     def _psi_integrals(self, t, L):
         """`psi_integral` at each rapidity of (clipped) ``t``: those of the last `residual`
@@ -480,27 +538,55 @@ class ExcitedState:
 
         eqs = ExcitedEquations(self.model, self.deformation, self.radius, self.grid, self.state)
         N, t = eqs.N, self.rapidities
-        L, dL, _ = eqs.occupation(self.eps)
-        lu = scipy.linalg.lu_factor(eqs.jacobian(self.eps, t, L, dL), check_finite=False)
+        F0, Q0, dL, solve = eqs.linearised(self.eps, t)
 
         def response(rhs):
-            dx = scipy.linalg.lu_solve(lu, rhs, check_finite=False)
+            dx = solve(rhs)
             return eqs.m * float(np.dot(np.sinh(t), dx[N:])) + float(np.sum(eqs.disc.wE[0] * dL * dx[:N]))
 
         out = {"dE_dR": response(np.concatenate([eqs.disc.nu[0] / eqs.radius, -eqs.m * np.sinh(t)]))}
-        F0, Q0 = eqs.residual(self.eps, t, L)
         for spin in spins:
             couplings = dict(self.deformation.couplings)
             couplings[spin] = couplings.get(spin, 0.0) + 1.0
             shifted = ExcitedEquations(self.model, CDD(couplings, self.deformation.factors),
                                        self.radius, self.grid, self.state)
-            F1, Q1 = shifted.residual(self.eps, t, L)
+            F1, Q1 = shifted.equations(self.eps, t)
             out[f"dE_dalpha{spin}"] = response(-np.concatenate([F1 - F0, Q1 - Q0]))
         return out
 
 
+#: solve with the compiled iteration (`kernels.excited`); tests set it False to run the numpy
+#: iteration it is checked against
+COMPILED = True
+
+_FAILURES = {_compiled.OUTSIDE_DOMAIN: "initial guess outside the domain of L",
+             _compiled.SINGULAR: "singular Jacobian",
+             _compiled.LINE_SEARCH_FAILED: "line search failed"}
+
+
 def _newton(eqs, eps, t, tol, maxiter=60):
-    """Newton's method with backtracking on (eps, rapidities). Returns (ExcitedState|None, msg)."""
+    """Newton's method with backtracking on (eps, rapidities), compiled (`kernels.excited`;
+    `_newton_python` with COMPILED off). Returns (ExcitedState | None, message, Newton steps)."""
+    if not COMPILED:
+        return _newton_python(eqs, eps, t, tol, maxiter)
+    args = eqs.compiled_arguments()
+    status, it, eps, t, dressing, S, out = _compiled.newton(
+        np.ascontiguousarray(eps, dtype=float), np.ascontiguousarray(t, dtype=float), *args,
+        float(tol), int(maxiter))
+    if status == _compiled.MAX_ITERATIONS:
+        return None, f"no convergence in {maxiter} Newton steps", maxiter
+    if status != _compiled.CONVERGED:
+        return None, _FAILURES[status], it
+    E, P, dE, r, rounding, dE_dR, det_sign, jac_scale = (float(v) for v in out)
+    return ExcitedState(grid=eqs.grid, radius=eqs.radius, state=eqs.state, eps=eps, dE_dR=dE_dR,
+                        rapidities=t, dressing=dressing, scalars=S, energy=E, momentum=P,
+                        iteration_error=dE, residual=r, iterations=it, rounding_error=rounding,
+                        det_sign=det_sign, jac_scale=jac_scale), "converged", it
+
+
+def _newton_python(eqs, eps, t, tol, maxiter=60):
+    """Newton's method with backtracking on (eps, rapidities) in numpy: the reference the
+    compiled iteration is tested against (the formulas are written out here)."""
     N = eqs.N
     L, dL, ok = eqs.occupation(eps)
     if not ok:
