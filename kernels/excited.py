@@ -216,6 +216,9 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
             for p in range(na.size):
                 a, kp = na[p], nk[p]
                 sv, sdv = 0.0, 0.0
+                # exp(-i pi w) on the grid, w = (t_k - t_i - i a) / h: the value at t_0 times
+                # (-1)^i (t_i = t_0 + i h), one complex exponential per particle and pole
+                e = np.exp(-1j * np.pi * (complex(tk - tg[0], -a) / h))
                 for i in range(N):
                     w = complex(tk - tg[i], -a) / h
                     if abs(w) < 1e-3:
@@ -224,9 +227,9 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
                         dk1 = 1j * np.pi * (-0.5j * np.pi - np.pi ** 2 * w / 3
                                             + 0.125j * np.pi ** 3 * w ** 2) / h
                     else:
-                        e = np.exp(-1j * np.pi * w)
                         k1 = (1 - e) / w
                         dk1 = (1j * np.pi * e / w - (1 - e) / (w * w)) / h
+                    e = -e
                     sv += k1.real * L[i]
                     sdv += dk1.real * L[i]
                     grad[k, i] += 2 * kp * k1.real / (2 * np.pi)
@@ -281,19 +284,20 @@ def _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca
 
 
 @numba.njit(**_JIT)
-def _jacobian_t(tc, L, dL, tg, K, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at):
+def _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at):
     """The Jacobian of (F, Q) in (eps, t), stored transposed in ``at`` (LAPACK's order)."""
     N, Np = tg.size, tc.size
-    for j in range(N):  # column j of J0 = row j of at
+    for j in range(N):  # column j of J0 = row j of at (KT: K transposed)
+        d = dL[j]
         for i in range(N):
-            v = 1.0 if i == j else 0.0
-            if not trivial:
-                v += K[i, j] * dL[j]
-            for r in range(c.size):
-                v += c[r] * (U[r, i] * (V[r, j] * dL[j]))
-            at[j, i] = v
+            at[j, i] = KT[j, i] * d if not trivial else 0.0
+        at[j, j] += 1.0
+        for r in range(c.size):
+            f = c[r] * (V[r, j] * d)
+            for i in range(N):
+                at[j, i] += f * U[r, i]
         for k in range(Np):
-            at[j, N + k] = -grad[k, j] * dL[j]
+            at[j, N + k] = -grad[k, j] * d
     for q in range(Np):
         for i in range(N):
             at[N + q, i] = _finite(_full(bs, bk, cs, ca, csg, tg[i] - tc[q], 1))
@@ -317,7 +321,7 @@ def _max_abs(x):
 
 
 @numba.njit(**_JIT)
-def newton(eps0, t0, tg, h, nu, K, trivial, c, U, V, wE, wP, m, R, I, sigma,
+def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
            bs, bk, cs, ca, csg, na, nk, ns, tol, maxiter):
     """Newton with backtracking on (eps, t) from (eps0, t0), as `_newton` in
     tba.solvers.excited. Returns (status, iterations, eps, t, dressing, scalars, out) with
@@ -349,7 +353,7 @@ def newton(eps0, t0, tg, h, nu, K, trivial, c, U, V, wE, wP, m, R, I, sigma,
     for it in range(maxiter + 1):
         for k in range(Np):
             tc[k] = _clip(t[k])
-        _jacobian_t(tc, L, dL, tg, K, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
+        _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
         lu_factor(at, ipiv)
         for i in range(N):
             step[i] = -F[i]
@@ -453,7 +457,7 @@ def newton(eps0, t0, tg, h, nu, K, trivial, c, U, V, wE, wP, m, R, I, sigma,
 
 
 @numba.njit(**_JIT)
-def linearise(eps, t, tg, h, nu, K, trivial, c, U, V, wE, wP, m, R, I, sigma,
+def linearise(eps, t, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
               bs, bk, cs, ca, csg, na, nk, ns):
     """The equations and their Jacobian at (eps, t) (the arguments of `newton`): returns
     (ok, F, Q, dL, at, ipiv) with the Jacobian factored by `kernels.lapack.lu_factor` (ok
@@ -470,13 +474,13 @@ def linearise(eps, t, tg, h, nu, K, trivial, c, U, V, wE, wP, m, R, I, sigma,
         return False, F, Q, dL, at, ipiv
     _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
               na, nk, ns, tc, src, S, F, Q, value, slope, grad)
-    _jacobian_t(tc, L, dL, tg, K, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
+    _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
     lu_factor(at, ipiv)
     return True, F, Q, dL, at, ipiv
 
 
 @numba.njit(**_JIT)
-def equations(eps, t, tg, h, nu, K, trivial, c, U, V, wE, wP, m, R, I, sigma,
+def equations(eps, t, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
               bs, bk, cs, ca, csg, na, nk, ns):
     """(ok, F, Q) at (eps, t) (the arguments of `newton`)."""
     N, Np, nr = tg.size, t.size, c.size

@@ -379,12 +379,12 @@ class ExcitedEquations:
         see `tba.models.base`)."""
         d, cell = self.disc, self.model.blocks[0][0]
         N = self.N
-        K = d.ops.matrix if not d.ops.trivial else np.zeros((1, 1))
+        K, KT = (d.ops.matrix, d.ops.matrix_transposed) if not d.ops.trivial else (_NONE, _NONE)
         r = d.c.size
         cs, ca, csg = self._scattering.arrays()
         poles = self.near.poles
         return (np.ascontiguousarray(self.grid.t, dtype=float), float(self.grid.h),
-                np.ascontiguousarray(d.nu[0], dtype=float), np.ascontiguousarray(K, dtype=float),
+                np.ascontiguousarray(d.nu[0], dtype=float), K, KT,
                 bool(d.ops.trivial), np.ascontiguousarray(d.c, dtype=float),
                 np.ascontiguousarray(d.U_flat, dtype=float).reshape(r, N),
                 np.ascontiguousarray(d.V_flat, dtype=float).reshape(r, N),
@@ -554,6 +554,8 @@ class ExcitedState:
             out[f"dE_dalpha{spin}"] = response(-np.concatenate([F1 - F0, Q1 - Q0]))
         return out
 
+
+_NONE = np.zeros((1, 1))  # the kernel matrix of a free model
 
 #: solve with the compiled iteration (`kernels.excited`); tests set it False to run the numpy
 #: iteration it is checked against

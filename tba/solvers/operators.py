@@ -212,6 +212,11 @@ class Operators:
             self._terms[key] = out
         return out
 
+    @functools.cached_property
+    def matrix_transposed(self):
+        """The dense kernel matrix transposed, in C order (its columns as rows)."""
+        return np.ascontiguousarray(self.matrix.T)
+
     def convolve(self, f):
         """sum_b sum_j w_ab(t_i - t_j) f_b(t_j) for f of shape (n, N)."""
         if self.trivial:
