@@ -86,6 +86,12 @@ def _children_ignore_ctrl_c():
         signal.signal(signal.SIGINT, previous if previous is not None else signal.default_int_handler)
 
 
+#: seconds a local pool takes to be ready (spawning its workers, their imports, loading the
+#: compiled kernels from numba's cache): 1.2-1.5 s measured on this project's 2-core machine
+#: (benchmarks/README.md); a default-sized pool starts only for work that repays it
+POOL_START_UP = 1.5
+
+
 def default_workers():
     try:
         return len(os.sched_getaffinity(0))
@@ -191,6 +197,16 @@ def _here(run, chunk):
         return chunk_failed(run, chunk, exc)
 
 
+def _level_here(run, key):
+    """An excited level's fold solved in this process, as the pool would report it."""
+    try:
+        return branch_done(key, solve_branch_task(run, key))
+    except Exception as exc:  # noqa: BLE001
+        if caused_by_interrupt(exc):
+            raise KeyboardInterrupt from None
+        return TaskFailed(f"{branch_label(run, key)}", one_line(exc))
+
+
 class InProcess(Backend):
     """One chunk after the other in the driver's process, then the branch points."""
 
@@ -209,10 +225,28 @@ class ProcessPool(Backend):
     The first chunk is still solved in the driver, before the pool starts: on a fresh
     install that compiles the numba kernels once and caches them on disk, instead of once
     per worker at the same time.
+
+    ``adaptive`` (the default number of workers, not one asked for): the driver goes on
+    solving chunks itself, and then the excited levels' folds, as long as the work left,
+    estimated from the mean time of those it solved after the first, is too little to repay
+    the pool's start-up (`POOL_START_UP`) with the workers it would add; the pool starts for
+    the rest as soon as it is worth it.
     """
 
-    def __init__(self, workers):
+    def __init__(self, workers, adaptive=False):
         self.workers = int(workers)
+        self.adaptive = adaptive
+
+    def describe(self):
+        return f"up to {super().describe()}" if self.adaptive else super().describe()
+
+    def _worth_a_pool(self, seconds, left):
+        """Whether ``left`` tasks of the mean duration of ``seconds`` take longer in the
+        driver alone than with the pool, start-up included."""
+        if not seconds:
+            return False  # nothing measured yet: one task here first
+        alone = sum(seconds) / len(seconds) * left
+        return alone - alone / min(self.workers, left) > POOL_START_UP
 
     def compute(self, run, chunks, branch_pairs):
         if chunks:
@@ -220,6 +254,19 @@ class ProcessPool(Backend):
         rest = chunks[1:]
         levels = [k for k in branch_pairs if len(k) == 3]
         branch_pairs = [k for k in branch_pairs if len(k) == 2]
+        if self.adaptive:
+            seconds = []
+            while rest and not self._worth_a_pool(seconds, len(rest) + len(levels)):
+                start = time.perf_counter()
+                done = _here(run, rest.pop(0))
+                seconds.append(time.perf_counter() - start)
+                yield done
+            seconds = []  # a fold is not a chunk: measured afresh
+            while levels and not rest and not self._worth_a_pool(seconds, len(levels)):
+                start = time.perf_counter()
+                done = _level_here(run, levels.pop(0))
+                seconds.append(time.perf_counter() - start)
+                yield done
         if rest or levels:
             workers = min(self.workers, len(rest) + len(levels))
             executor = ProcessPoolExecutor(max_workers=workers,
@@ -259,8 +306,10 @@ class ProcessPool(Backend):
 
 
 def local_backend(workers, pending):
-    """The backend for ``workers`` processes on this machine (None: the usable cores),
-    never more than there are chunks to compute."""
+    """The backend for ``workers`` processes on this machine, never more than there are
+    chunks to compute; None: up to the usable cores, the pool started only for work that
+    repays its start-up (`ProcessPool`, ``adaptive``)."""
+    adaptive = workers is None
     workers = default_workers() if workers is None else int(workers)
     workers = max(1, min(workers, pending))
-    return InProcess() if workers == 1 else ProcessPool(workers)
+    return InProcess() if workers == 1 else ProcessPool(workers, adaptive=adaptive)

@@ -1,0 +1,93 @@
+"""When a scan with the default number of workers starts its local process pool: only for work
+that repays the pool's start-up (tba.scans.backends.ProcessPool, ``adaptive``), and always
+when a number of workers is asked for. The rule is common practice (no source): a pool is
+worth starting when the work divided among its workers saves more than the start-up costs."""
+
+import io
+from concurrent.futures import Future
+
+import numpy as np
+import pytest
+
+import tba
+
+from tba.scans import backends
+from tba.scans.runfile import loads_run
+from tba.store.driver import run_scan
+
+# the free fermion's ground state: quick chunks (a few ms each)
+RUN = """\
+output = "pool.h5"
+
+[[models]]
+name = "free-fermion"
+
+[deformation]
+alphas = [0, 0.1]
+
+[radii]
+start = 1.0
+stop = 3.0
+count = 8
+
+[scan]
+chunk_size = 2
+"""
+
+
+class RecordingPool:
+    """A stand-in for ProcessPoolExecutor that runs each task when it is submitted."""
+
+    made = []
+
+    def __init__(self, max_workers, **kwargs):
+        self.max_workers, self.submitted = max_workers, []
+        RecordingPool.made.append(self)
+
+    def submit(self, fn, *args):
+        self.submitted.append(args[1])
+        future = Future()
+        future.set_result(fn(*args))
+        return future
+
+    def shutdown(self, wait=True, cancel_futures=False):
+        pass
+
+
+@pytest.fixture
+def pool(monkeypatch):
+    RecordingPool.made = []
+    monkeypatch.setattr(backends, "ProcessPoolExecutor", RecordingPool)
+    monkeypatch.setattr(backends, "default_workers", lambda: 4)
+    return RecordingPool
+
+
+def _scan(tmp_path, workers):
+    run = loads_run(RUN, base_dir=tmp_path)
+    log = io.StringIO()
+    summary = run_scan(run, workers=workers, log=log)
+    return run, summary, log.getvalue()
+
+
+def test_a_short_scan_with_the_default_workers_is_solved_in_the_driver(tmp_path, pool):
+    run, summary, log = _scan(tmp_path, None)
+    assert pool.made == []  # no pool: 8 chunks of a few ms never repay 1.5 s of start-up
+    assert "up to 4 workers" in log
+    assert summary.chunks_computed == 8 and not summary.failed
+    assert np.all(np.isfinite(tba.open_scan(run.output)["energy"].values))
+
+
+def test_work_that_repays_the_start_up_goes_to_the_pool(tmp_path, pool, monkeypatch):
+    monkeypatch.setattr(backends, "POOL_START_UP", 0.0)
+    run, summary, _ = _scan(tmp_path, None)
+    # the first chunk (compiling) and one measured chunk in the driver, the rest in the pool
+    assert len(pool.made) == 1
+    assert len(pool.made[0].submitted) == 6
+    assert summary.chunks_computed == 8 and not summary.failed
+
+
+def test_workers_asked_for_always_get_a_pool(tmp_path, pool):
+    _, summary, log = _scan(tmp_path, 2)
+    assert len(pool.made) == 1 and pool.made[0].max_workers == 2
+    assert len(pool.made[0].submitted) == 7  # all but the first chunk
+    assert "2 workers" in log and "up to" not in log
