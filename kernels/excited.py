@@ -125,9 +125,31 @@ def _pole_part(na, nk, u, derivative):
 
 
 @numba.njit(**_JIT)
-def _smooth_psi(bs, bk, cs, ca, csg, na, nk, ns, u):
-    """psi minus the pole part of the near poles (expanded where |u| and a are below 1e-2)."""
-    out = _blocks(bs, bk, u, 1) - _pole_part(na, nk, u, False)
+def _psi_parts(bs, bk, cs, ca, csg, u):
+    """psi and psi' of the blocks and of the CDD terms at u, sharing the transcendental
+    functions (the values of `_blocks` and `_cdd`, bit for bit)."""
+    pb, dpb, pc, dpc = 0.0, 0.0, 0.0, 0.0
+    if bs.size:
+        ch = math.cosh(u)
+        sech = 1.0 / ch
+        th = math.tanh(u)
+        for i in range(bs.size):
+            s = bs[i]
+            pb += bk[i] * (2.0 * s * th * sech / (1.0 - (s * sech) ** 2))
+            dpb += bk[i] * (2.0 * s * sech * ((1 - s * s) * sech ** 2 - th ** 2)
+                            / (1.0 - (s * sech) ** 2) ** 2)
+    for i in range(cs.size):
+        s = cs[i]
+        pc += ca[i] * csg[i] * s * math.sinh(s * u)
+        dpc += ca[i] * csg[i] * (s * s) * math.cosh(s * u)
+    return pb, dpb, pc, dpc
+
+
+@numba.njit(**_JIT)
+def _smooth_psi(na, nk, ns, u, blocks_psi, cdd_psi):
+    """psi minus the pole part of the near poles (expanded where |u| and a are below 1e-2),
+    from the blocks' psi at u and the CDD terms' psi."""
+    out = blocks_psi - _pole_part(na, nk, u, False)
     if abs(u) < 1e-2:
         tiny = False
         for i in range(na.size):
@@ -149,7 +171,7 @@ def _smooth_psi(bs, bk, cs, ca, csg, na, nk, ns, u):
                     f2 = 0.0
                 exact = _finite(exact) - k * _finite(direct) + k * f2
             out = exact
-    return out + _cdd(cs, ca, csg, _clip(u), 1)
+    return out + cdd_psi
 
 
 # -- the equations ----------------------------------------------------------------------------
@@ -200,12 +222,14 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
         dv = 0.0
         for i in range(N):
             u = tk - tg[i]
-            if near:
-                w = _smooth_psi(bs, bk, cs, ca, csg, na, nk, ns, u)
-                dw = _finite(_full(bs, bk, cs, ca, csg, u, 2) - _pole_part(na, nk, u, True))
+            uc = _clip(u)
+            pb, dpb, pc, dpc = _psi_parts(bs, bk, cs, ca, csg, uc)
+            if near:  # the blocks' psi at u itself (as the numpy path), the rest at clip(u)
+                w = _smooth_psi(na, nk, ns, u, pb if u == uc else _blocks(bs, bk, u, 1), pc)
+                dw = _finite((dpb + dpc) - _pole_part(na, nk, u, True))
             else:
-                w = _full(bs, bk, cs, ca, csg, u, 1)
-                dw = _full(bs, bk, cs, ca, csg, u, 2)
+                w = pb + pc
+                dw = dpb + dpc
             v += w * L[i]
             dv += dw * L[i]
             grad[k, i] = c * w

@@ -304,6 +304,7 @@ class ExcitedEquations:
         self.near = NearPoles(model)
         self._integrals = None  # (t, L, psi integrals) of the last `residual`, for `jacobian`
         self._scattering = sc
+        self._arguments = self._functions = None  # of the compiled kernels, made on first use
         if self.near:  # psi = smooth part (trapezoid rule) + poles near the axis (exact)
             self.psi = lambda u: self.near.smooth(model, u) + sc._cdd(np.clip(u, -700.0, 700.0),
                                                                       np.sinh, 1, True)
@@ -348,6 +349,10 @@ class ExcitedEquations:
         """sum_j D(t_grid - t_j) on the grid. At B = 1 a particle on a grid point makes
         D(0) = +inf there (e^-eps has a double zero at t_j on the axis): such a value is set to
         700, where e^-700 leaves L unchanged."""
+        if COMPILED:
+            tg, functions = self.compiled_functions()
+            return _compiled.sources(tg, np.ascontiguousarray(t, dtype=float), *functions,
+                                     np.empty(self.N))
         tg = self.grid.t
         with np.errstate(divide="ignore", invalid="ignore"):
             out = sum((self.D(tg - tj) for tj in t), np.zeros(self.N))
@@ -377,24 +382,33 @@ class ExcitedEquations:
         """The arguments of `kernels.excited` after the unknowns (eps, t) and before tol.
         The blocks of one species are full blocks f_x (crossing pairs half-blocks into them:
         see `tba.models.base`)."""
-        d, cell = self.disc, self.model.blocks[0][0]
-        N = self.N
-        K, KT = (d.ops.matrix, d.ops.matrix_transposed) if not d.ops.trivial else (_NONE, _NONE)
-        r = d.c.size
-        cs, ca, csg = self._scattering.arrays()
-        poles = self.near.poles
-        return (np.ascontiguousarray(self.grid.t, dtype=float), float(self.grid.h),
-                np.ascontiguousarray(d.nu[0], dtype=float), K, KT,
+        if self._arguments is None:
+            d, N = self.disc, self.N
+            K, KT = (d.ops.matrix, d.ops.matrix_transposed) if not d.ops.trivial else (_NONE, _NONE)
+            r = d.c.size
+            tg, functions = self.compiled_functions()
+            poles = self.near.poles
+            self._arguments = (
+                tg, float(self.grid.h), np.ascontiguousarray(d.nu[0], dtype=float), K, KT,
                 bool(d.ops.trivial), np.ascontiguousarray(d.c, dtype=float),
                 np.ascontiguousarray(d.U_flat, dtype=float).reshape(r, N),
                 np.ascontiguousarray(d.V_flat, dtype=float).reshape(r, N),
                 np.ascontiguousarray(d.wE[0], dtype=float), np.ascontiguousarray(d.wP[0], dtype=float),
                 self.m, float(self.radius), np.ascontiguousarray(self.I, dtype=float),
-                float(self.sigma),
-                np.array([math.sin(math.pi * float(x)) for x in cell]),
-                np.array([float(k) for k in cell.values()]), cs, ca, csg,
+                float(self.sigma), *functions,
                 np.array([a for a, _, _ in poles]), np.array([k for _, k, _ in poles]),
                 np.array([math.sin(math.pi * float(x)) for _, _, x in poles]))
+        return self._arguments
+
+    def compiled_functions(self):
+        """(grid points, (block parameters sin(pi x), multiplicities, CDD spins, coefficients,
+        signs)): what `kernels.excited` needs to evaluate D, psi and delta."""
+        if self._functions is None:
+            cell = self.model.blocks[0][0]
+            self._functions = (np.ascontiguousarray(self.grid.t, dtype=float), (
+                np.array([math.sin(math.pi * float(x)) for x in cell]),
+                np.array([float(k) for k in cell.values()]), *self._scattering.arrays()))
+        return self._functions
 
     def _compiled(self, kernel, eps, t):
         """``kernel`` of `kernels.excited` at (eps, t), or None (COMPILED off, or eps outside
