@@ -56,78 +56,24 @@ def _finite(x):
 # -- the scattering functions at one rapidity difference --------------------------------------
 
 @numba.njit(**_JIT)
-def _cdd(cs, ca, csg, u, kind):
-    """sum over spins of a sign^odd s^power fn(s u): kind 0 D, 1 psi, 2 psi', 3 delta,
-    4 delta'."""
-    out = 0.0
-    for i in range(cs.size):
-        s = cs[i]
-        if kind == 0:
-            out += ca[i] * csg[i] * 1.0 * math.cosh(s * u)
-        elif kind == 1:
-            out += ca[i] * csg[i] * s * math.sinh(s * u)
-        elif kind == 2:
-            out += ca[i] * csg[i] * (s * s) * math.cosh(s * u)
-        elif kind == 3:
-            out += ca[i] * 1.0 * 1.0 * math.sinh(s * u)
-        else:
-            out += ca[i] * 1.0 * s * math.cosh(s * u)
-    return out
-
-
-@numba.njit(**_JIT)
-def _block_psi(s, u):
-    sech = 1.0 / math.cosh(u)
-    return 2.0 * s * math.tanh(u) * sech / (1.0 - (s * sech) ** 2)
-
-
-@numba.njit(**_JIT)
-def _blocks(bs, bk, u, kind):
-    """sum k f(s, u) over the blocks: kind 0 source, 1 psi, 2 psi', 3 phase, 4 kernel."""
-    out = 0.0
-    for i in range(bs.size):
-        s = bs[i]
-        if kind == 0:
-            ch = math.cosh(u)
-            v = math.log((ch - s) / (ch + s))
-        elif kind == 1:
-            v = _block_psi(s, u)
-        elif kind == 2:
-            sech = 1.0 / math.cosh(u)
-            th = math.tanh(u)
-            v = 2.0 * s * sech * ((1 - s * s) * sech ** 2 - th ** 2) / (1.0 - (s * sech) ** 2) ** 2
-        elif kind == 3:
-            v = -2.0 * math.atan(math.sinh(u) / s)
-        else:
-            sech = 1.0 / math.cosh(u)
-            v = -2.0 * s * sech / (math.tanh(u) ** 2 + (s * sech) ** 2)
-        out += bk[i] * v
-    return out
-
-
-@numba.njit(**_JIT)
-def _full(bs, bk, cs, ca, csg, u, kind):
-    """D, psi, psi', delta or delta' (kind 0-4) with the CDD terms, at clip(u)."""
+def _source(bs, bk, cs, ca, csg, u):
+    """D at clip(u): sum k log((cosh u - s)/(cosh u + s)) + sum a sign cosh(s u)."""
     u = _clip(u)
-    return _blocks(bs, bk, u, kind) + _cdd(cs, ca, csg, u, kind)
-
-
-@numba.njit(**_JIT)
-def _pole_part(na, nk, u, derivative):
-    out = 0.0
-    for i in range(na.size):
-        a, k = na[i], nk[i]
-        if derivative:
-            out += 2 * k * (a * a - u * u) / (u * u + a * a) ** 2
-        else:
-            out += 2 * k * u / (u * u + a * a)
-    return out
+    b = 0.0
+    if bs.size:
+        ch = math.cosh(u)
+        for i in range(bs.size):
+            b += bk[i] * math.log((ch - bs[i]) / (ch + bs[i]))
+    c = 0.0
+    for i in range(cs.size):
+        c += ca[i] * csg[i] * 1.0 * math.cosh(cs[i] * u)
+    return b + c
 
 
 @numba.njit(**_JIT)
 def _psi_parts(bs, bk, cs, ca, csg, u):
     """psi and psi' of the blocks and of the CDD terms at u, sharing the transcendental
-    functions (the values of `_blocks` and `_cdd`, bit for bit)."""
+    functions: (blocks' psi, blocks' psi', CDD psi, CDD psi')."""
     pb, dpb, pc, dpc = 0.0, 0.0, 0.0, 0.0
     if bs.size:
         ch = math.cosh(u)
@@ -143,6 +89,64 @@ def _psi_parts(bs, bk, cs, ca, csg, u):
         pc += ca[i] * csg[i] * s * math.sinh(s * u)
         dpc += ca[i] * csg[i] * (s * s) * math.cosh(s * u)
     return pb, dpb, pc, dpc
+
+
+@numba.njit(**_JIT)
+def _block_psi(s, u):
+    """psi of one block f_x, s = sin(pi x)."""
+    sech = 1.0 / math.cosh(u)
+    return 2.0 * s * math.tanh(u) * sech / (1.0 - (s * sech) ** 2)
+
+
+@numba.njit(**_JIT)
+def _psi(bs, bk, cs, ca, csg, u):
+    """psi = D' at clip(u)."""
+    pb, _, pc, _ = _psi_parts(bs, bk, cs, ca, csg, _clip(u))
+    return pb + pc
+
+
+@numba.njit(**_JIT)
+def _phase(bs, bk, cs, ca, csg, u):
+    """delta at clip(u): sum -2 k arctan(sinh u / s) + sum a sinh(s u)."""
+    u = _clip(u)
+    b = 0.0
+    if bs.size:
+        sh = math.sinh(u)
+        for i in range(bs.size):
+            b += bk[i] * (-2.0 * math.atan(sh / bs[i]))
+    c = 0.0
+    for i in range(cs.size):
+        c += ca[i] * 1.0 * 1.0 * math.sinh(cs[i] * u)
+    return b + c
+
+
+@numba.njit(**_JIT)
+def _phase_slope(bs, bk, cs, ca, csg, u):
+    """delta' = phi at clip(u): sum -2 k s sech u / (tanh^2 u + s^2 sech^2 u) + sum a s cosh(s u)."""
+    u = _clip(u)
+    b = 0.0
+    if bs.size:
+        sech = 1.0 / math.cosh(u)
+        th = math.tanh(u)
+        for i in range(bs.size):
+            s = bs[i]
+            b += bk[i] * (-2.0 * s * sech / (th ** 2 + (s * sech) ** 2))
+    c = 0.0
+    for i in range(cs.size):
+        c += ca[i] * 1.0 * cs[i] * math.cosh(cs[i] * u)
+    return b + c
+
+
+@numba.njit(**_JIT)
+def _pole_part(na, nk, u, derivative):
+    out = 0.0
+    for i in range(na.size):
+        a, k = na[i], nk[i]
+        if derivative:
+            out += 2 * k * (a * a - u * u) / (u * u + a * a) ** 2
+        else:
+            out += 2 * k * u / (u * u + a * a)
+    return out
 
 
 @numba.njit(**_JIT)
@@ -205,7 +209,7 @@ def sources(tg, t, bs, bk, cs, ca, csg, out):
     for i in range(tg.size):
         v = 0.0
         for j in range(t.size):
-            v += _full(bs, bk, cs, ca, csg, tg[i] - t[j], 0)
+            v += _source(bs, bk, cs, ca, csg, tg[i] - t[j])
         out[i] = 700.0 if v == np.inf else v
     return out
 
@@ -225,7 +229,7 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
             uc = _clip(u)
             pb, dpb, pc, dpc = _psi_parts(bs, bk, cs, ca, csg, uc)
             if near:  # the blocks' psi at u itself (as the numpy path), the rest at clip(u)
-                w = _smooth_psi(na, nk, ns, u, pb if u == uc else _blocks(bs, bk, u, 1), pc)
+                w = _smooth_psi(na, nk, ns, u, pb if u == uc else _psi_parts(bs, bk, cs, ca, csg, u)[0], pc)
                 dw = _finite((dpb + dpc) - _pole_part(na, nk, u, True))
             else:
                 w = pb + pc
@@ -246,10 +250,10 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
                 for i in range(N):
                     w = complex(tk - tg[i], -a) / h
                     if abs(w) < 1e-3:
-                        k1 = 1j * np.pi * (1 - 0.5j * np.pi * w - (np.pi * w) ** 2 / 6
-                                           + 1j * (np.pi * w) ** 3 / 24)
-                        dk1 = 1j * np.pi * (-0.5j * np.pi - np.pi ** 2 * w / 3
-                                            + 0.125j * np.pi ** 3 * w ** 2) / h
+                        pw = np.pi * w
+                        k1 = 1j * np.pi * (1 - 0.5j * pw - pw * pw / 6 + 1j * (pw * pw * pw) / 24)
+                        dk1 = 1j * np.pi * (-0.5j * np.pi - np.pi * pw / 3
+                                            + 0.125j * np.pi * (pw * pw)) / h
                     else:
                         k1 = (1 - e) / w
                         dk1 = (1j * np.pi * e / w - (1 - e) / (w * w)) / h
@@ -301,7 +305,7 @@ def _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca
         d = 0.0
         for j in range(Np):
             if j != k:
-                d += _full(bs, bk, cs, ca, csg, tc[k] - tc[j], 3)
+                d += _phase(bs, bk, cs, ca, csg, tc[k] - tc[j])
         Q[k] = m * R * math.sinh(tc[k]) + d - value[k] - 2 * np.pi * I[k]
         big = _track(big, Q[k])
     return big
@@ -324,16 +328,16 @@ def _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, 
             at[j, N + k] = -grad[k, j] * d
     for q in range(Np):
         for i in range(N):
-            at[N + q, i] = _finite(_full(bs, bk, cs, ca, csg, tg[i] - tc[q], 1))
+            at[N + q, i] = _finite(_psi(bs, bk, cs, ca, csg, tg[i] - tc[q]))
         for k in range(Np):
             if k == q:
                 d = 0.0
                 for j in range(Np):
                     if j != k:
-                        d += _full(bs, bk, cs, ca, csg, tc[k] - tc[j], 4)
+                        d += _phase_slope(bs, bk, cs, ca, csg, tc[k] - tc[j])
                 at[N + q, N + k] = m * R * math.cosh(tc[k]) + d - slope[k]
             else:
-                at[N + q, N + k] = -_full(bs, bk, cs, ca, csg, tc[k] - tc[q], 4)
+                at[N + q, N + k] = -_phase_slope(bs, bk, cs, ca, csg, tc[k] - tc[q])
 
 
 @numba.njit(**_JIT)
@@ -446,7 +450,7 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
             for i in range(N):
                 v = 0.0
                 for k in range(Np):
-                    v += _finite(_full(bs, bk, cs, ca, csg, tg[i] - t[k], 1)) * step[N + k]
+                    v += _finite(_psi(bs, bk, cs, ca, csg, tg[i] - t[k])) * step[N + k]
                 slopes_dt[i] = v
         lam = 1.0
         while True:
@@ -482,12 +486,13 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
 
 @numba.njit(**_JIT)
 def linearise(eps, t, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
-              bs, bk, cs, ca, csg, na, nk, ns):
-    """The equations and their Jacobian at (eps, t) (the arguments of `newton`): returns
-    (ok, F, Q, dL, at, ipiv) with the Jacobian factored by `kernels.lapack.lu_factor` (ok
-    False where eps is outside the domain of L)."""
+              bs, bk, cs, ca, csg, na, nk, ns, factor):
+    """The equations at (eps, t) (the arguments of `newton`) and, with ``factor``, their
+    Jacobian factored by `kernels.lapack.lu_factor`: returns (ok, F, Q, dL, at, ipiv), ok
+    False where eps is outside the domain of L (at and ipiv are left unset without
+    ``factor``)."""
     N, Np, nr = tg.size, t.size, c.size
-    n = N + Np
+    n = N + Np if factor else 1
     L, dL = np.empty(N), np.empty(N)
     tc, src, S = np.empty(Np), np.empty(N), np.empty(nr)
     F, Q = np.empty(N), np.empty(Np)
@@ -498,22 +503,7 @@ def linearise(eps, t, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma
         return False, F, Q, dL, at, ipiv
     _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
               na, nk, ns, tc, src, S, F, Q, value, slope, grad)
-    _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
-    lu_factor(at, ipiv)
+    if factor:
+        _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
+        lu_factor(at, ipiv)
     return True, F, Q, dL, at, ipiv
-
-
-@numba.njit(**_JIT)
-def equations(eps, t, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
-              bs, bk, cs, ca, csg, na, nk, ns):
-    """(ok, F, Q) at (eps, t) (the arguments of `newton`)."""
-    N, Np, nr = tg.size, t.size, c.size
-    L, dL = np.empty(N), np.empty(N)
-    tc, src, S = np.empty(Np), np.empty(N), np.empty(nr)
-    F, Q = np.empty(N), np.empty(Np)
-    value, slope, grad = np.empty(Np), np.empty(Np), np.empty((Np, N))
-    if not occupation(eps, sigma, L, dL):
-        return False, F, Q
-    _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
-              na, nk, ns, tc, src, S, F, Q, value, slope, grad)
-    return True, F, Q

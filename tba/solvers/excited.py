@@ -410,25 +410,26 @@ class ExcitedEquations:
                 np.array([float(k) for k in cell.values()]), *self._scattering.arrays()))
         return self._functions
 
-    def _compiled(self, kernel, eps, t):
-        """``kernel`` of `kernels.excited` at (eps, t), or None (COMPILED off, or eps outside
-        the domain of L: the numpy path then gives what it always gave)."""
+    def _compiled(self, eps, t, factor):
+        """`kernels.excited.linearise` at (eps, t), or None (COMPILED off, or eps outside the
+        domain of L: the numpy path then gives what it always gave)."""
         if not COMPILED:
             return None
-        out = kernel(np.ascontiguousarray(eps, dtype=float), np.ascontiguousarray(t, dtype=float),
-                     *self.compiled_arguments())
+        out = _compiled.linearise(np.ascontiguousarray(eps, dtype=float),
+                                  np.ascontiguousarray(t, dtype=float), *self.compiled_arguments(),
+                                  factor)
         return out[1:] if out[0] else None
 
     def equations(self, eps, t):
         """(F, Q) at (eps, t)."""
-        out = self._compiled(_compiled.equations, eps, t)
+        out = self._compiled(eps, t, False)
         if out is not None:
-            return out
+            return out[:2]
         return self.residual(eps, t, self.occupation(eps)[0])
 
     def linearised(self, eps, t):
         """(F, Q, L', solve) at (eps, t): the equations, dL/deps and a solver of J x = b."""
-        out = self._compiled(_compiled.linearise, eps, t)
+        out = self._compiled(eps, t, True)
         if out is not None:
             F, Q, dL, at, ipiv = out
             return F, Q, dL, lambda b: _lapack.lu_solve(at, ipiv, np.array(b, dtype=float))
