@@ -122,7 +122,8 @@ def _phase(bs, bk, cs, ca, csg, u):
 
 @numba.njit(**_JIT)
 def _phase_slope(bs, bk, cs, ca, csg, u):
-    """delta' = phi at clip(u): sum -2 k s sech u / (tanh^2 u + s^2 sech^2 u) + sum a s cosh(s u)."""
+    """delta' = phi at clip(u): sum -2 k s sech u / (tanh^2 u + s^2 sech^2 u)
+    + sum a s cosh(s u)."""
     u = _clip(u)
     b = 0.0
     if bs.size:
@@ -229,7 +230,8 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
             uc = _clip(u)
             pb, dpb, pc, dpc = _psi_parts(bs, bk, cs, ca, csg, uc)
             if near:  # the blocks' psi at u itself (as the numpy path), the rest at clip(u)
-                w = _smooth_psi(na, nk, ns, u, pb if u == uc else _psi_parts(bs, bk, cs, ca, csg, u)[0], pc)
+                pu = pb if u == uc else _psi_parts(bs, bk, cs, ca, csg, u)[0]
+                w = _smooth_psi(na, nk, ns, u, pu, pc)
                 dw = _finite((dpb + dpc) - _pole_part(na, nk, u, True))
             else:
                 w = pb + pc

@@ -107,7 +107,8 @@ def test_a_scan_started_from_its_previous_point_stays_on_the_level(state, alpha,
 
 def test_a_scan_extrapolating_its_starts_finds_the_same_levels_in_fewer_steps(monkeypatch):
     # along a scan the coarse grid starts from the linear extrapolation in R of the two previous
-    # points' solutions (tba/solvers/excited.py, `extrapolated_guess`); the same scans from the
+    # points' solutions, and each step of a continuation from that through its last two
+    # (tba/solvers/excited.py, `extrapolated_guess`); the same scans from the
     # previous point alone must give the same statuses and energies within the summed error
     # estimates (common practice for a change of starting point, no source), in more Newton
     # steps (sinh-Gordon at its self-dual point, as in runs/sinh-gordon-levels.toml: the boosted
@@ -120,8 +121,8 @@ def test_a_scan_extrapolating_its_starts_finds_the_same_levels_in_fewer_steps(mo
     extrapolated = ExcitedEquations.extrapolated_guess
     taken = []
 
-    def counted(self, s1, s2):
-        out = extrapolated(self, s1, s2)
+    def counted(self, s1, s2, w=None):
+        out = extrapolated(self, s1, s2, w)
         taken.append(out is not None)
         return out
 
@@ -135,7 +136,7 @@ def test_a_scan_extrapolating_its_starts_finds_the_same_levels_in_fewer_steps(mo
 
     monkeypatch.setattr(ExcitedEquations, "extrapolated_guess", counted)
     fast = [res for state, alpha in scans for res in scan(state, alpha)]
-    monkeypatch.setattr(ExcitedEquations, "extrapolated_guess", lambda self, s1, s2: None)
+    monkeypatch.setattr(ExcitedEquations, "extrapolated_guess", lambda self, s1, s2, w=None: None)
     plain = [res for state, alpha in scans for res in scan(state, alpha)]
     assert sum(taken) >= len(scans) * (len(radii) - 3)
     for a, b in zip(fast, plain, strict=True):

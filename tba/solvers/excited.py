@@ -490,16 +490,16 @@ class ExcitedEquations:
             g = _interpolate(solved.grid, g[None, :], self.grid.t)[0]
         return g
 
-    def extrapolated_guess(self, s1, s2):
-        """(rapidities, eps) extrapolated linearly in R from the solutions ``s1`` at R_1 and
-        ``s2`` at R_2 of the same level and couplings (rapidities, kernel part and separable
-        scalars), or None where that is not an interpolation or a modest extrapolation
-        (|R - R_1| <= 2 |R_1 - R_2|)."""
-        R, R1, R2 = self.radius, s1.radius, s2.radius
-        if (R1 == R2 or not abs(R - R1) <= 2 * abs(R1 - R2)
-                or s1.rapidities.shape != s2.rapidities.shape):
+    def extrapolated_guess(self, s1, s2, w=None):
+        """(rapidities, eps) extrapolated linearly from the solutions ``s1`` and ``s2`` of the
+        same level (rapidities, kernel part and separable scalars): x_1 + w (x_1 - x_2), by
+        default in R (s1 at R_1, s2 at R_2, the same couplings: w = (R - R_1) / (R_1 - R_2));
+        None where that is not an interpolation or a modest extrapolation (|w| <= 2)."""
+        if w is None:
+            R, R1, R2 = self.radius, s1.radius, s2.radius
+            w = (R - R1) / (R1 - R2) if R1 != R2 else math.inf
+        if not abs(w) <= 2 or s1.rapidities.shape != s2.rapidities.shape:
             return None
-        w = (R - R1) / (R1 - R2)
         t = s1.rapidities + w * (s1.rapidities - s2.rapidities)
         g1, g2 = self._dressing_of(s1), self._dressing_of(s2)
         eps = self.disc.nu[0] + self.sources(t) + g1 + w * (g1 - g2)
@@ -711,17 +711,19 @@ def _grid(model, deformation, r_eff, tol, level):
                        strip=strip, shift=beta, quantum=EXCITED_QUANTUM)
 
 
-def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff, previous=None):
+def _solve_level(model, deformation, radius, state, tol, level, seed, r_eff, previous=None,
+                 weight=None):
     """Newton on one grid from ``seed`` (or the Bethe-Yang rapidities); with ``previous``, the
-    solution before ``seed`` along a scan, first from the linear extrapolation of the two in R
-    (kept if it lands on the seed's branch and is not spurious; else the plain start)."""
+    solution before ``seed`` along a scan or a continuation, first from the linear
+    extrapolation of the two (`ExcitedEquations.extrapolated_guess`, in R or with ``weight``;
+    kept if it lands on the seed's branch and is not spurious; else the plain start)."""
     grid = _grid(model, deformation, r_eff, tol, level)
     eqs = ExcitedEquations(model, deformation, radius, grid, state)
     if not eqs.disc.ops.dense:
         return None, f"grid of {grid.N} points: beyond the dense excited-state solver", 0
     its = 0
-    guess = eqs.extrapolated_guess(seed, previous) if seed is not None and previous is not None \
-        else None
+    guess = eqs.extrapolated_guess(seed, previous, weight) \
+        if seed is not None and previous is not None else None
     if guess is not None:
         new, msg, its = _newton(eqs, guess[1], guess[0], tol)
         if new is not None and new.det_sign == seed.det_sign \
@@ -971,11 +973,14 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
     step = (target - now) / 4 if parameter == "radius" else 0.25
     history = [(now, seed.jac_scale)]
     spurious = False
+    before = None  # the solution before ``seed`` on the path, at parameter ``history[-2][0]``
     while now != target:
         trial = target if abs(target - now) <= abs(step) else now + step
         defo, R = value(trial)
         r_eff = _effective_radius(defo, R, seed.energy, seed.momentum)
-        new, msg, its = _solve_level(model, defo, R, state, tol, 0, seed, r_eff)
+        # each step starts from the extrapolation through the last two solutions on the path
+        w = (trial - now) / (now - history[-2][0]) if before is not None else None
+        new, msg, its = _solve_level(model, defo, R, state, tol, 0, seed, r_eff, before, w)
         its_total += its
         if new is not None and new.det_sign != seed.det_sign:
             new, msg = None, "the solution left the branch (det J changed sign)"
@@ -986,7 +991,7 @@ def _follow(model, deformation, state, tol, seed, parameter, target):
             # the tail coefficient of the top spin passed through zero on the way
             return None, _spin_tails(model, defo, new), its_total
         if new is not None:
-            seed, now = new, trial
+            before, seed, now = seed, new, trial
             history.append((now, new.jac_scale))
             step *= 1.5
             continue
