@@ -34,6 +34,8 @@ def _worker_init(parent):
     # driver handles them, closes its history entry and stops the workers (SIGKILL)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    if hasattr(signal, "pthread_sigmask"):  # born with SIGINT blocked (`_children_block_ctrl_c`)
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
 
 
@@ -84,6 +86,27 @@ def _children_ignore_ctrl_c():
         yield
     finally:
         signal.signal(signal.SIGINT, previous if previous is not None else signal.default_int_handler)
+
+
+@contextlib.contextmanager
+def _children_block_ctrl_c():
+    """Start the local pool's workers with SIGINT blocked from birth (a process inherits the
+    signal mask across fork and exec): a Ctrl-C on the terminal, which reaches the whole
+    process group, stays pending in a worker until its initializer ignores SIGINT (which
+    discards it) and unblocks it. In the driver it stays pending too, and is handled as soon
+    as the block ends: none is lost, however long process creation takes on a loaded machine
+    (ignoring SIGINT in the driver meanwhile, as `_children_ignore_ctrl_c` does for dask's
+    processes, lost one pressed then)."""
+    if threading.current_thread() is not threading.main_thread() \
+            or not hasattr(signal, "pthread_sigmask"):
+        with _children_ignore_ctrl_c():
+            yield
+        return
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
 
 
 #: seconds a local pool takes to be ready (spawning its workers, their imports, loading the
@@ -273,7 +296,7 @@ class ProcessPool(Backend):
                                            mp_context=multiprocessing.get_context("spawn"),
                                            initializer=_worker_init, initargs=(os.getpid(),))
             try:
-                with _single_threaded_children(), _children_ignore_ctrl_c():  # workers start on submit
+                with _single_threaded_children(), _children_block_ctrl_c():  # workers start on submit
                     futures = {executor.submit(solve_chunk, run, chunk): chunk for chunk in rest}
                     futures.update({executor.submit(solve_branch_task, run, key): key
                                     for key in levels})
