@@ -27,6 +27,7 @@ B = 1 (and reach it there); closer than `POLE_SUBTRACTION` they are integrated e
 (`NearPoles`), and Newton steps then move the sharp sources D(t - t_j) with the rapidities.
 """
 
+import functools
 import math
 import numbers
 from dataclasses import dataclass, field
@@ -65,6 +66,15 @@ def _pole_distance(x):
     return abs(math.pi / 2 - math.pi * float(x))
 
 
+@functools.lru_cache(maxsize=256)
+def _block_poles(cell):
+    """(the poles of psi nearer the axis than POLE_SUBTRACTION as (a, k, x), the distances of
+    the others) for a single species' blocks ``cell`` ((x, k) pairs): once per model."""
+    near = [(_pole_distance(x), float(k), x) for x, k in cell if _pole_distance(x) < POLE_SUBTRACTION]
+    far = [_pole_distance(x) for x, _ in cell if _pole_distance(x) >= POLE_SUBTRACTION]
+    return near, far
+
+
 def _finite(x):
     """x with inf/NaN (a pole hit exactly: measure zero) set to 0, for Jacobian entries."""
     return np.where(np.isfinite(x), x, 0.0)
@@ -85,8 +95,7 @@ class NearPoles:
     strip), half the rate of the trapezoid rule: the grid is chosen for half the strip."""
 
     def __init__(self, model):
-        self.poles = [(_pole_distance(x), float(k), x) for x, k in model.blocks[0][0].items()
-                      if _pole_distance(x) < POLE_SUBTRACTION]
+        self.poles = _block_poles(tuple(model.blocks[0][0].items()))[0]
 
     def __bool__(self):
         return bool(self.poles)
@@ -187,6 +196,20 @@ def state_items(state):
 def parse_state(numbers_):
     """Quantum numbers from a name like "1/2,-1/2" or from ints, floats, Fractions or strings
     like "1/2" and "-3/2" (see `state_items`)."""
+    # names and parsed states (tuples of Fractions) come back at every point of a scan: kept
+    # (other inputs are read each time: 1 == True == 1.0 would share a cache entry)
+    if type(numbers_) is str or (type(numbers_) is tuple
+                                 and all(type(n) is Fraction for n in numbers_)):
+        return _parsed_state(numbers_)
+    return _parse_state(numbers_)
+
+
+@functools.lru_cache(maxsize=1024)
+def _parsed_state(numbers_):
+    return _parse_state(numbers_)
+
+
+def _parse_state(numbers_):
     out = []
     for n in state_items(numbers_):
         if isinstance(n, str):
@@ -702,8 +725,8 @@ def bethe_yang_energy(model, radius, state, deformation=NO_DEFORMATION):
 def _grid(model, deformation, r_eff, tol, level):
     """Grid for a driving term m R~ cosh(t - beta): r_eff = (R~, beta)."""
     strip = min(math.pi / 2, model.excited_strip)
-    if NearPoles(model):  # L's strip, halved for the sinc interpolation (see NearPoles)
-        far = [_pole_distance(x) for x in model.blocks[0][0] if _pole_distance(x) >= POLE_SUBTRACTION]
+    near, far = _block_poles(tuple(model.blocks[0][0].items()))
+    if near:  # L's strip, halved for the sinc interpolation (see NearPoles)
         strip = min([math.pi / 4] + far)
     Rt, beta = r_eff
     return choose_grid(model.pole_distance, float(model.masses[0]), max(Rt, 1e-3), tol, level,
