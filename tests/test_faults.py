@@ -596,9 +596,6 @@ def test_ctrl_c_inside_compiled_code_is_a_clean_interrupt():
         seen.append(sum(range(50)))
 
     previous = signal.signal(signal.SIGALRM, lambda s, f: signal.raise_signal(signal.SIGINT))
-    # a test run started with SIGINT ignored (nohup, a background job) keeps it ignored under
-    # the handlers, by design: the interrupts would all be lost here
-    previous_int = signal.signal(signal.SIGINT, signal.default_int_handler)
     thresholds = gc.get_threshold()
     gc.callbacks.append(gc_callback)
     gc.set_threshold(50)
@@ -618,7 +615,6 @@ def test_ctrl_c_inside_compiled_code_is_a_clean_interrupt():
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
         signal.signal(signal.SIGALRM, previous)
-        signal.signal(signal.SIGINT, previous_int)
         gc.callbacks.remove(gc_callback)
         gc.set_threshold(*thresholds)
     assert outcomes == [signal.SIGINT] * 60
