@@ -9,6 +9,7 @@ hands results back, in any order, as `ChunkDone`, `BranchDone` or `TaskFailed`. 
 import contextlib
 import multiprocessing
 import os
+import random
 import signal
 import threading
 import time
@@ -250,10 +251,10 @@ class ProcessPool(Backend):
     per worker at the same time.
 
     ``adaptive`` (the default number of workers, not one asked for): the driver goes on
-    solving chunks itself, and then the excited levels' folds, as long as the work left,
-    estimated from the mean time of those it solved after the first, is too little to repay
-    the pool's start-up (`POOL_START_UP`) with the workers it would add; the pool starts for
-    the rest as soon as it is worth it.
+    solving chunks itself, picked at random, and then the excited levels' folds, as long as
+    the work left, estimated from the mean time of those it solved after the first, is too
+    little to repay the pool's start-up (`POOL_START_UP`) with the workers it would add; the
+    pool starts for the rest as soon as it is worth it.
     """
 
     def __init__(self, workers, adaptive=False):
@@ -278,10 +279,13 @@ class ProcessPool(Backend):
         levels = [k for k in branch_pairs if len(k) == 3]
         branch_pairs = [k for k in branch_pairs if len(k) == 2]
         if self.adaptive:
+            # chunks picked at random: a run's chunks come in curves of like cost (cheap ground
+            # states first, say), and the mean of the first few would be no estimate
+            pick = random.Random(len(chunks))
             seconds = []
             while rest and not self._worth_a_pool(seconds, len(rest) + len(levels)):
                 start = time.perf_counter()
-                done = _here(run, rest.pop(0))
+                done = _here(run, rest.pop(pick.randrange(len(rest))))
                 seconds.append(time.perf_counter() - start)
                 yield done
             seconds = []  # a fold is not a chunk: measured afresh
