@@ -354,8 +354,14 @@ def _max_abs(x):
 def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
            bs, bk, cs, ca, csg, na, nk, ns, tol, maxiter):
     """Newton with backtracking on (eps, t) from (eps0, t0), as `_newton` in
-    tba.solvers.excited. Returns (status, iterations, eps, t, dressing, scalars, out) with
-    out = [E, P, iteration error, residual, rounding error, dE/dR, sign of det J, pivot ratio]."""
+    tba.solvers.excited. Returns (status, iterations, eps, t, dressing, scalars, out, F, Q,
+    dL, at, ipiv) with out = [E, P, iteration error, residual, rounding error, dE/dR, sign of
+    det J, pivot ratio].
+
+    ``maxiter`` < 0 linearises instead (one compiled function for both: each entry point
+    costs seconds of compilation on a fresh install): -1 evaluates the equations F, Q and dL
+    at (eps0, t0), -2 also the Jacobian, factored by `kernels.lapack.lu_factor` into
+    (at, ipiv); status OUTSIDE_DOMAIN where eps0 is outside the domain of L."""
     N, Np, nr = tg.size, t0.size, c.size
     n = N + Np
     eps = eps0.copy()
@@ -375,9 +381,15 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
     dressing = np.zeros(N)
     near = na.size > 0
     if not occupation(eps, sigma, L, dL):
-        return OUTSIDE_DOMAIN, 0, eps, t, dressing, S, out
+        return OUTSIDE_DOMAIN, 0, eps, t, dressing, S, out, F, Q, dL, at, ipiv
     r = _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
                   na, nk, ns, tc, src, S, F, Q, value, slope, grad)
+    if maxiter < 0:
+        if maxiter == -2:
+            _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope,
+                        grad, at)
+            lu_factor(at, ipiv)
+        return CONVERGED, 0, eps, t, dressing, S, out, F, Q, dL, at, ipiv
     floor = 64 * _EPS * max(1.0, _max_abs(nu))
     dE = np.inf
     for it in range(maxiter + 1):
@@ -392,7 +404,7 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
         lu_solve(at, ipiv, step)
         for v in step:
             if not math.isfinite(v):
-                return SINGULAR, it, eps, t, dressing, S, out
+                return SINGULAR, it, eps, t, dressing, S, out, F, Q, dL, at, ipiv
         # E, P and the energy change the step would make
         E = 0.0
         for k in range(Np):
@@ -444,7 +456,7 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
             sign, scale = pivot_summary(at, ipiv)
             out[0], out[1], out[2], out[3] = E, P, dE, r
             out[4], out[5], out[6], out[7] = rounding, m * st + se, sign, scale
-            return CONVERGED, it, eps, t, dressing, S, out
+            return CONVERGED, it, eps, t, dressing, S, out, F, Q, dL, at, ipiv
         if it == maxiter:
             break
         if near:  # steps in (eps - sources, t): the sharp sources move with t exactly
@@ -472,7 +484,7 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
                     break
             lam *= 0.5
             if lam < 1e-4:
-                return LINE_SEARCH_FAILED, it, eps, t, dressing, S, out
+                return LINE_SEARCH_FAILED, it, eps, t, dressing, S, out, F, Q, dL, at, ipiv
         eps, eps_new = eps_new, eps
         t, t_new = t_new, t
         L, Ln = Ln, L
@@ -483,29 +495,4 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
         slope, slopen = slopen, slope
         grad, gradn = gradn, grad
         r = r_new
-    return MAX_ITERATIONS, maxiter, eps, t, dressing, S, out
-
-
-@numba.njit(**_JIT)
-def linearise(eps, t, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
-              bs, bk, cs, ca, csg, na, nk, ns, factor):
-    """The equations at (eps, t) (the arguments of `newton`) and, with ``factor``, their
-    Jacobian factored by `kernels.lapack.lu_factor`: returns (ok, F, Q, dL, at, ipiv), ok
-    False where eps is outside the domain of L (at and ipiv are left unset without
-    ``factor``)."""
-    N, Np, nr = tg.size, t.size, c.size
-    n = N + Np if factor else 1
-    L, dL = np.empty(N), np.empty(N)
-    tc, src, S = np.empty(Np), np.empty(N), np.empty(nr)
-    F, Q = np.empty(N), np.empty(Np)
-    value, slope, grad = np.empty(Np), np.empty(Np), np.empty((Np, N))
-    at = np.empty((n, n))
-    ipiv = np.empty(n, dtype=PIVOT_TYPE)
-    if not occupation(eps, sigma, L, dL):
-        return False, F, Q, dL, at, ipiv
-    _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
-              na, nk, ns, tc, src, S, F, Q, value, slope, grad)
-    if factor:
-        _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope, grad, at)
-        lu_factor(at, ipiv)
-    return True, F, Q, dL, at, ipiv
+    return MAX_ITERATIONS, maxiter, eps, t, dressing, S, out, F, Q, dL, at, ipiv

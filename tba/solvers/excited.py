@@ -434,14 +434,15 @@ class ExcitedEquations:
         return self._functions
 
     def _compiled(self, eps, t, factor):
-        """`kernels.excited.linearise` at (eps, t), or None (COMPILED off, or eps outside the
+        """(F, Q, dL, at, ipiv) of `kernels.excited.newton`'s linearisation at (eps, t)
+        (``factor``: with the Jacobian factored), or None (COMPILED off, or eps outside the
         domain of L: the numpy path then gives what it always gave)."""
         if not COMPILED:
             return None
-        out = _compiled.linearise(np.ascontiguousarray(eps, dtype=float),
-                                  np.ascontiguousarray(t, dtype=float), *self.compiled_arguments(),
-                                  factor)
-        return out[1:] if out[0] else None
+        out = _compiled.newton(np.ascontiguousarray(eps, dtype=float),
+                               np.ascontiguousarray(t, dtype=float), *self.compiled_arguments(),
+                               0.0, -2 if factor else -1)
+        return out[7:] if out[0] == _compiled.CONVERGED else None
 
     def equations(self, eps, t):
         """(F, Q) at (eps, t)."""
@@ -610,7 +611,7 @@ def _newton(eqs, eps, t, tol, maxiter=60):
     if not COMPILED:
         return _newton_python(eqs, eps, t, tol, maxiter)
     args = eqs.compiled_arguments()
-    status, it, eps, t, dressing, S, out = _compiled.newton(
+    status, it, eps, t, dressing, S, out, *_ = _compiled.newton(
         np.ascontiguousarray(eps, dtype=float), np.ascontiguousarray(t, dtype=float), *args,
         float(tol), int(maxiter))
     if status == _compiled.MAX_ITERATIONS:
