@@ -246,9 +246,10 @@ class ProcessPool(Backend):
     after the chunks (a few undeformed solves each), the excited levels' folds (up to seconds
     each) are tasks of the pool after the chunks, one per (model, alpha, state).
 
-    The first chunk is still solved in the driver, before the pool starts: on a fresh
-    install that compiles the numba kernels once and caches them on disk, instead of once
-    per worker at the same time.
+    The first chunk of each state (the ground state, each excited level) is still solved in
+    the driver, before the pool starts: on a fresh install that compiles the numba kernels
+    its solver needs once and caches them on disk, instead of once per worker at the same
+    time.
 
     ``adaptive`` (the default number of workers, not one asked for): the driver goes on
     solving chunks itself, picked at random, and then the excited levels' folds, as long as
@@ -273,9 +274,12 @@ class ProcessPool(Backend):
         return alone - alone / min(self.workers, left) > POOL_START_UP
 
     def compute(self, run, chunks, branch_pairs):
-        if chunks:
-            yield _here(run, chunks[0])
-        rest = chunks[1:]
+        first = {}
+        for chunk in chunks:
+            first.setdefault(chunk.state, chunk)
+        for chunk in first.values():
+            yield _here(run, chunk)
+        rest = [chunk for chunk in chunks if first[chunk.state] is not chunk]
         levels = [k for k in branch_pairs if len(k) == 3]
         branch_pairs = [k for k in branch_pairs if len(k) == 2]
         if self.adaptive:
