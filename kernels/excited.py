@@ -14,15 +14,15 @@ CDD factors (spins, coefficients, signs (-1)^((s-1)/2)):
     psi   = D'        delta = sum -2 k arctan(sinh u / s) + sum a sinh(s u)
     delta' = phi      (the kernel: sum -2 k s sech u / (tanh^2 u + s^2 sech^2 u) + ...)
 
-Poles of psi closer to the real axis than the caller's threshold (``near_a``, with
-multiplicities ``near_k`` and their blocks' ``near_s``) are taken out of the trapezoid rule
-and integrated exactly against the sinc interpolant of L; a Newton step then moves the sharp
-sources with the rapidities.
+Poles of psi closer to the real axis than the caller's threshold (their distances ``na``,
+multiplicities ``nk`` and their blocks' ``ns`` = sin(pi x)) are taken out of the trapezoid
+rule and integrated exactly against the sinc interpolant of L; a Newton step then moves the
+sharp sources with the rapidities.
 
-Every formula, the stopping rule, the line search and the error terms are those of the
-Python iteration in tba.solvers.excited (`_newton`), which documents them and is the
-reference this one is tested against; the Jacobian is factored by LAPACK (`kernels.lapack`),
-the same routine scipy calls.
+Every formula, the stopping rule, the line search and the error terms are those of the numpy
+iteration in tba.solvers.excited (`_newton_python`, `ExcitedEquations`, `NearPoles`), which
+documents them and is the reference this one is tested against; the Jacobian is factored by
+LAPACK (`kernels.lapack`), the same routine scipy calls.
 """
 
 import math

@@ -253,9 +253,10 @@ class ProcessPool(Backend):
 
     ``adaptive`` (the default number of workers, not one asked for): the driver goes on
     solving chunks itself, picked at random, and then the excited levels' folds, as long as
-    the work left, estimated from the mean time of those it solved after the first, is too
-    little to repay the pool's start-up (`POOL_START_UP`) with the workers it would add; the
-    pool starts for the rest as soon as it is worth it.
+    the work left, estimated from the mean time of those it solved after the first of each
+    state (which may have compiled), is too little to repay the pool's start-up
+    (`POOL_START_UP`) with the workers it would add; the pool starts for the rest as soon as
+    it is worth it.
     """
 
     def __init__(self, workers, adaptive=False):
