@@ -448,7 +448,8 @@ def build_parser():
                         "before the suffix)")
     where = run.add_mutually_exclusive_group()
     where.add_argument("--workers", action=Once, metavar="N",
-                       help="worker processes on this machine (default: the usable cores)")
+                       help="worker processes on this machine (default: up to the usable cores, "
+                            "started only when the work repays their start-up)")
     where.add_argument("--scheduler", action=Once, metavar="ADDRESS",
                        help="run the chunks on an existing dask.distributed cluster: the "
                        "scheduler's address (tcp://host:8786) or its scheduler file; needs "
@@ -531,7 +532,8 @@ def build_parser():
                           "into ./tba-demo-out/; writes demo.h5 and demo.png and prints the report. "
                           "A complete demo.h5 is reused; one from another run is replaced.")
     demo.add_argument("--workers", action=Once, metavar="N",
-                      help="worker processes (default: the usable cores)")
+                      help="worker processes (default: up to the usable cores, started only when "
+                           "the work repays their start-up)")
     demo.add_argument("--force", action="store_true", help="recompute from scratch")
     add_output_argument(demo, "DIR", "write demo.h5 and demo.png here", directory=True)
     demo.set_defaults(func=cmd_demo)

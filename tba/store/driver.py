@@ -115,7 +115,7 @@ def run_scan(run, path=None, *, workers=None, backend=None, shard=None, force=Fa
     Holds the output's lock throughout: a second writer of the same file fails at once
     (`tba.store.errors.StoreBusy`). Where the chunks are computed: ``backend`` (a `Backend`,
     e.g. `tba.scans.cluster.DaskBackend`), else ``workers`` processes on this machine (default:
-    the usable cores). ``shard`` (a `tba.scans.runfile.Shard`) computes only that shard's
+    up to the usable cores, the pool started only for work that repays its start-up). ``shard`` (a `tba.scans.runfile.Shard`) computes only that shard's
     chunks and branch points into a shard file. ``progress`` None shows a bar on a terminal
     and, where stderr is not a terminal (a log file), one line every ``progress_every``
     seconds (0: none) on ``log`` with the chunks done, the rate and the time left
