@@ -18,6 +18,7 @@ against.
 
 import numba
 import numpy as np
+from scipy import fft as _fft
 
 
 @numba.njit(cache=True, parallel=True, nogil=True)
@@ -60,20 +61,17 @@ class SpectralConvolver:
         n, n2, width = kern.shape
         if n != n2 or width % 2 != 1:
             raise ValueError("kern must have shape (n, n, 2N-1)")
-        from scipy import fft  # here, not at import: dense solves never need it (0.1 s)
-
-        self._fft = fft
         self.n = n
         self.N = (width + 1) // 2
-        self.size = fft.next_fast_len(width, real=True)
-        spectra = fft.rfft(kern, self.size, axis=-1)
+        self.size = _fft.next_fast_len(width, real=True)
+        spectra = _fft.rfft(kern, self.size, axis=-1)
         # (freq, a, b) layout makes the per-frequency product a batched matmul.
         self._spectra = np.ascontiguousarray(np.moveaxis(spectra, -1, 0))
 
     def __call__(self, f, out=None):
-        F = self._fft.rfft(f, self.size, axis=-1)  # (n, freq)
+        F = _fft.rfft(f, self.size, axis=-1)  # (n, freq)
         G = np.matmul(self._spectra, F.T[:, :, None])[:, :, 0].T
-        full = self._fft.irfft(G, self.size, axis=-1)
+        full = _fft.irfft(G, self.size, axis=-1)
         N = self.N
         if out is None:
             return np.ascontiguousarray(full[:, N - 1 : 2 * N - 1])
