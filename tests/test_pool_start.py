@@ -80,7 +80,7 @@ def test_a_short_scan_with_the_default_workers_is_solved_in_the_driver(tmp_path,
 def test_work_that_repays_the_start_up_goes_to_the_pool(tmp_path, pool, monkeypatch):
     monkeypatch.setattr(backends, "POOL_START_UP", 0.0)
     run, summary, _ = _scan(tmp_path, None)
-    # the first chunk (compiling) and one measured chunk in the driver, the rest in the pool
+    # the first chunk (it may compile) and one measured chunk in the driver, the rest in the pool
     assert len(pool.made) == 1
     assert len(pool.made[0].submitted) == 6
     assert summary.chunks_computed == 8 and not summary.failed
@@ -93,11 +93,25 @@ def test_workers_asked_for_always_get_a_pool(tmp_path, pool):
     assert "2 workers" in log and "up to" not in log
 
 
+def test_the_first_chunk_of_each_state_is_solved_before_the_pool_starts(tmp_path, pool):
+    # on a fresh install that chunk compiles its solver's kernels once, in the driver, instead
+    # of in every worker at the same time
+    run = loads_run(RUN.replace('output = "pool.h5"', 'output = "pool.h5"\nstates = ["ground", '
+                                '"1/2,-1/2"]'), base_dir=tmp_path)
+    chunks = run.chunks()
+    firsts = {c.state: c.index for c in reversed(chunks)}
+    summary = run_scan(run, workers=2, log=io.StringIO())
+    submitted = {c.index for c in pool.made[0].submitted if not isinstance(c, tuple)}  # folds
+    assert set(firsts.values()).isdisjoint(submitted)
+    assert submitted == {c.index for c in chunks} - set(firsts.values())
+    assert summary.chunks_computed == len(chunks) == 16 and not summary.failed
+
+
 def test_a_ctrl_c_while_the_pool_starts_is_handled_once_it_has_started():
     # before: SIGINT was ignored in the driver while it created the workers, and a Ctrl-C
-    # pressed then was lost (test_resume's Ctrl-C test saw the scan run to its end). Blocked
-    # instead, it stays pending and is raised when the block ends (POSIX signal masks, common
-    # practice); the workers inherit the blocked mask and ignore SIGINT before unblocking it
+    # pressed then was lost. Blocked instead, it stays pending and is raised when the block
+    # ends (POSIX signal masks, common practice); the workers inherit the blocked mask and
+    # ignore SIGINT before unblocking it
     import signal
     import subprocess
     import sys
