@@ -270,6 +270,15 @@ def _psi_integrals(tg, h, t, L, bs, bk, cs, ca, csg, na, nk, ns, value, slope, g
 
 
 @numba.njit(**_JIT)
+def _unclipped(t):
+    """No entry of t is changed by `_clip`."""
+    for v in t:
+        if v > 700.0 or v < -700.0:
+            return False
+    return True
+
+
+@numba.njit(**_JIT)
 def _track(big, x):
     """max(big, |x|) with NaN kept (numpy's max of |F| and |Q|)."""
     a = abs(x)
@@ -280,12 +289,14 @@ def _track(big, x):
 
 @numba.njit(**_JIT)
 def _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
-              na, nk, ns, tc, src, S, F, Q, value, slope, grad):
-    """F and Q into their arrays (t clipped into ``tc``); max |F|, |Q|."""
+              na, nk, ns, tc, src, ready, S, F, Q, value, slope, grad):
+    """F and Q into their arrays (t clipped into ``tc``); max |F|, |Q|. ``ready``: ``src``
+    holds the sources at ``tc`` already."""
     N, Np = tg.size, t.size
     for k in range(Np):
         tc[k] = _clip(t[k])
-    sources(tg, tc, bs, bk, cs, ca, csg, src)
+    if not ready:
+        sources(tg, tc, bs, bk, cs, ca, csg, src)
     for r in range(c.size):
         s = 0.0
         for i in range(N):
@@ -380,10 +391,11 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
     out = np.full(8, np.nan)
     dressing = np.zeros(N)
     near = na.size > 0
+    have_src_t = False
     if not occupation(eps, sigma, L, dL):
         return OUTSIDE_DOMAIN, 0, eps, t, dressing, S, out, F, Q, dL, at, ipiv
     r = _residual(eps, t, L, tg, h, nu, K, trivial, c, U, V, m, R, I, bs, bk, cs, ca, csg,
-                  na, nk, ns, tc, src, S, F, Q, value, slope, grad)
+                  na, nk, ns, tc, src, False, S, F, Q, value, slope, grad)
     if maxiter < 0:
         if maxiter == -2:
             _jacobian_t(tc, L, dL, tg, KT, trivial, c, U, V, m, R, bs, bk, cs, ca, csg, slope,
@@ -460,7 +472,9 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
         if it == maxiter:
             break
         if near:  # steps in (eps - sources, t): the sharp sources move with t exactly
-            sources(tg, t, bs, bk, cs, ca, csg, src_t)
+            if not have_src_t:  # later: those of the accepted trial
+                sources(tg, t, bs, bk, cs, ca, csg, src_t)
+                have_src_t = True
             for i in range(N):
                 v = 0.0
                 for k in range(Np):
@@ -477,8 +491,11 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
                 for i in range(N):
                     eps_new[i] = eps_new[i] + src_new[i] - src_t[i] + lam * slopes_dt[i]
             if occupation(eps_new, sigma, Ln, dLn):
+                # the trial's sources serve its residual too where no rapidity is clipped
+                ready = near and _unclipped(t_new)
+                buffer = src_new if ready else src
                 r_new = _residual(eps_new, t_new, Ln, tg, h, nu, K, trivial, c, U, V, m, R, I,
-                                  bs, bk, cs, ca, csg, na, nk, ns, tc, src, S, Fn, Qn,
+                                  bs, bk, cs, ca, csg, na, nk, ns, tc, buffer, ready, S, Fn, Qn,
                                   valuen, slopen, gradn)
                 if r_new <= (1 - 0.25 * lam) * r or r_new <= floor:
                     break
@@ -494,5 +511,6 @@ def newton(eps0, t0, tg, h, nu, K, KT, trivial, c, U, V, wE, wP, m, R, I, sigma,
         value, valuen = valuen, value
         slope, slopen = slopen, slope
         grad, gradn = gradn, grad
+        src_t, src_new = src_new, src_t
         r = r_new
     return MAX_ITERATIONS, maxiter, eps, t, dressing, S, out, F, Q, dL, at, ipiv
