@@ -179,6 +179,10 @@ def chunk_failed(run, chunk, exc):
     return TaskFailed(describe_chunk(run, chunk), one_line(exc), chunk=chunk)
 
 
+def level_failed(run, key, exc):
+    return TaskFailed(branch_label(run, key), one_line(exc))
+
+
 class Backend:
     """Where the chunks (and branch points) of a scan are computed.
 
@@ -221,6 +225,14 @@ def _here(run, chunk):
         return chunk_failed(run, chunk, exc)
 
 
+def _timed(seconds, solve, run, task):
+    """``solve(run, task)``, its duration appended to ``seconds``."""
+    start = time.perf_counter()
+    done = solve(run, task)
+    seconds.append(time.perf_counter() - start)
+    return done
+
+
 def _level_here(run, key):
     """An excited level's fold solved in this process, as the pool would report it."""
     try:
@@ -228,7 +240,7 @@ def _level_here(run, key):
     except Exception as exc:  # noqa: BLE001
         if caused_by_interrupt(exc):
             raise KeyboardInterrupt from None
-        return TaskFailed(f"{branch_label(run, key)}", one_line(exc))
+        return level_failed(run, key, exc)
 
 
 class InProcess(Backend):
@@ -289,16 +301,10 @@ class ProcessPool(Backend):
             pick = random.Random(len(chunks))
             seconds = []
             while rest and not self._worth_a_pool(seconds, len(rest) + len(levels)):
-                start = time.perf_counter()
-                done = _here(run, rest.pop(pick.randrange(len(rest))))
-                seconds.append(time.perf_counter() - start)
-                yield done
+                yield _timed(seconds, _here, run, rest.pop(pick.randrange(len(rest))))
             seconds = []  # a fold is not a chunk: measured afresh
             while levels and not rest and not self._worth_a_pool(seconds, len(levels)):
-                start = time.perf_counter()
-                done = _level_here(run, levels.pop(0))
-                seconds.append(time.perf_counter() - start)
-                yield done
+                yield _timed(seconds, _level_here, run, levels.pop(0))
         if rest or levels:
             workers = min(self.workers, len(rest) + len(levels))
             executor = ProcessPoolExecutor(max_workers=workers,
@@ -321,7 +327,7 @@ class ProcessPool(Backend):
                         # chunks and those still queued come back failed, the rest is saved
                         if isinstance(what, tuple):
                             yield (branch_done(what, future.result()) if exc is None else
-                                   TaskFailed(f"{branch_label(run, what)}", one_line(exc)))
+                                   level_failed(run, what, exc))
                         else:
                             yield (ChunkDone(*future.result()) if exc is None else
                                    chunk_failed(run, what, exc))
